@@ -1,0 +1,248 @@
+"""Load the data table and turn it into the inputs every candidate receives.
+
+Coding of predictors (documented in the README, relied on by the built-in priors):
+
+* a numeric predictor column is centred at its mean and divided by its sample
+  standard deviation (ddof = 1), so a coefficient is the change in the linear
+  predictor per standard deviation of that column;
+* a non-numeric predictor column (text, category or boolean) is expanded into one
+  0/1 indicator per level except the first level in sorted order (the reference
+  level), and each indicator is centred at its mean, so that the intercept stays
+  at the average of the data rather than at the reference level.
+
+The reference scale passed to every candidate as ``y_center`` and ``y_scale`` is the
+user's stated typical value and typical spread when given, else the median and the
+sample standard deviation (ddof = 1) of the outcome.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+import pandas as pd
+
+from .errors import UserError
+
+
+@dataclass(frozen=True)
+class PredictorCoding:
+    """How one column of ``X`` was made from the table."""
+
+    name: str            # name of the column of X, for example "density[high]"
+    source: str          # column of the table it came from
+    center: float        # value subtracted
+    scale: float         # value divided by (1.0 for indicators)
+
+
+@dataclass(frozen=True)
+class Design:
+    """The outcome, predictors and grouping of one dataset, ready for Stan."""
+
+    source: str
+    outcome: str
+    y: np.ndarray                      # float64, length N
+    X: np.ndarray                      # float64, N x K
+    coding: tuple[PredictorCoding, ...]
+    group_column: str | None
+    group: np.ndarray                  # int, 1..J, or zeros when there is no grouping
+    group_levels: tuple[str, ...]
+    y_center: float
+    y_scale: float
+    dropped_rows: int = 0
+    table: pd.DataFrame | None = field(default=None, repr=False, compare=False)
+
+    @property
+    def N(self) -> int:
+        return int(self.y.shape[0])
+
+    @property
+    def K(self) -> int:
+        return int(self.X.shape[1])
+
+    @property
+    def J(self) -> int:
+        return len(self.group_levels)
+
+    def stan_inputs(self, fit_idx: np.ndarray | None = None) -> dict:
+        """The inputs the contract defines, for one fit subset.
+
+        ``fit_idx`` holds 0-based row numbers of the observations that enter the
+        likelihood; ``None`` means all of them and an empty array means none (the
+        prior predictive mode). Stan receives them 1-based.
+        """
+        if fit_idx is None:
+            fit_idx = np.arange(self.N)
+        fit_idx = np.asarray(fit_idx, dtype=np.int64)
+        if fit_idx.size and (fit_idx.min() < 0 or fit_idx.max() >= self.N):
+            raise ValueError("fit_idx holds a row number outside 0..N-1")
+        return {
+            "N": self.N,
+            "y": self.y,
+            "K": self.K,
+            "X": self.X,
+            "J": self.J,
+            "group": self.group,
+            "N_fit": int(fit_idx.size),
+            "fit_idx": fit_idx + 1,
+            "y_center": self.y_center,
+            "y_scale": self.y_scale,
+        }
+
+
+#: Names of the inputs the runner supplies itself; every other declared input of a
+#: candidate is a prior hyperparameter.
+SUPPLIED_INPUTS = ("N", "y", "K", "X", "J", "group", "N_fit", "fit_idx", "y_center", "y_scale")
+
+
+def read_table(path: str | Path) -> pd.DataFrame:
+    """Read a CSV file with a header row, with messages a user can act on."""
+    path = Path(path)
+    if not path.exists():
+        raise UserError(f"{path}: data file not found; check the path.")
+    if path.is_dir():
+        raise UserError(f"{path}: is a folder; give the path of a CSV file.")
+    try:
+        table = pd.read_csv(path, encoding="utf-8")
+    except UnicodeDecodeError:
+        raise UserError(f"{path}: not UTF-8 text; save the file as UTF-8 CSV.") from None
+    except pd.errors.EmptyDataError:
+        raise UserError(f"{path}: the file is empty; it needs a header row and data rows.") from None
+    except pd.errors.ParserError as exc:
+        raise UserError(f"{path}: not a readable CSV file ({exc}).") from None
+    if table.shape[0] == 0:
+        raise UserError(f"{path}: has a header row but no data rows.")
+    return table
+
+
+def build_design(
+    table: pd.DataFrame,
+    outcome: str,
+    predictors: Sequence[str] = (),
+    group: str | None = None,
+    typical_value: float | None = None,
+    typical_spread: float | None = None,
+    source: str = "data",
+    min_rows: int = 10,
+) -> Design:
+    """Check the table and build the :class:`Design` (see the module docstring).
+
+    Rows whose outcome is missing or not finite are dropped and counted in
+    ``dropped_rows``; missing values in a predictor or the group column are an error,
+    because silently dropping them would change which rows every candidate sees.
+    """
+    columns = [str(c) for c in table.columns]
+    for role, name in [("outcome", outcome), *[("predictor", p) for p in predictors],
+                       *([("group", group)] if group else [])]:
+        if name not in columns:
+            raise UserError(
+                f"{source}: {role} column '{name}' not found; the columns are: "
+                + ", ".join(columns)
+            )
+    if outcome in predictors or (group and (group == outcome or group in predictors)):
+        raise UserError(f"{source}: a column is used twice among outcome, predictors and group.")
+
+    y_raw = pd.to_numeric(table[outcome], errors="coerce")
+    bad_text = y_raw.isna() & table[outcome].notna()
+    if bad_text.all():
+        raise UserError(f"{source}: outcome column '{outcome}' is not numeric.")
+    if bad_text.any():
+        first = table.loc[bad_text, outcome].iloc[0]
+        raise UserError(
+            f"{source}: outcome column '{outcome}' has {int(bad_text.sum())} non-numeric "
+            f"value(s), for example {first!r}; fix or remove those rows."
+        )
+    y_all = y_raw.to_numpy(dtype=float)
+    keep = np.isfinite(y_all)
+    dropped = int((~keep).sum())
+    table = table.loc[keep].reset_index(drop=True)
+    y = y_all[keep]
+    if y.size < min_rows:
+        raise UserError(
+            f"{source}: {y.size} usable observations of '{outcome}'; at least {min_rows} are needed."
+        )
+    if np.ptp(y) == 0:
+        raise UserError(f"{source}: outcome column '{outcome}' is constant ({y[0]:g}); nothing to model.")
+
+    coding: list[PredictorCoding] = []
+    blocks: list[np.ndarray] = []
+    for name in predictors:
+        col = table[name]
+        if col.isna().any():
+            raise UserError(
+                f"{source}: predictor column '{name}' has {int(col.isna().sum())} missing value(s); "
+                "fill them or remove those rows."
+            )
+        if col.nunique() < 2:
+            raise UserError(f"{source}: predictor column '{name}' is constant; remove it from the predictors.")
+        if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
+            x = col.to_numpy(dtype=float)
+            center, scale = float(x.mean()), float(x.std(ddof=1))
+            coding.append(PredictorCoding(name, name, center, scale))
+            blocks.append(((x - center) / scale)[:, None])
+        else:
+            levels = sorted(col.astype(str).unique())
+            text = col.astype(str).to_numpy()
+            for level in levels[1:]:
+                ind = (text == level).astype(float)
+                center = float(ind.mean())
+                coding.append(PredictorCoding(f"{name}[{level}]", name, center, 1.0))
+                blocks.append((ind - center)[:, None])
+    X = np.hstack(blocks) if blocks else np.zeros((y.size, 0))
+
+    if group:
+        gcol = table[group]
+        if gcol.isna().any():
+            raise UserError(
+                f"{source}: group column '{group}' has {int(gcol.isna().sum())} missing value(s); "
+                "fill them or remove those rows."
+            )
+        text = gcol.astype(str).to_numpy()
+        levels = tuple(sorted(set(text)))
+        if len(levels) < 2:
+            raise UserError(
+                f"{source}: group column '{group}' has a single level; varying intercepts need at "
+                "least two (omit the group setting)."
+            )
+        index = {lev: i + 1 for i, lev in enumerate(levels)}
+        gidx = np.array([index[t] for t in text], dtype=np.int64)
+    else:
+        levels = ()
+        gidx = np.zeros(y.size, dtype=np.int64)
+
+    y_center = float(np.median(y)) if typical_value is None else float(typical_value)
+    y_scale = float(np.std(y, ddof=1)) if typical_spread is None else float(typical_spread)
+    if not np.isfinite(y_center):
+        raise UserError(f"{source}: typical value must be a finite number.")
+    if not (np.isfinite(y_scale) and y_scale > 0):
+        raise UserError(f"{source}: typical spread must be a positive number.")
+
+    return Design(
+        source=source, outcome=outcome, y=y, X=X, coding=tuple(coding),
+        group_column=group, group=gidx, group_levels=levels,
+        y_center=y_center, y_scale=y_scale, dropped_rows=dropped, table=table,
+    )
+
+
+def support_problem(y: np.ndarray, support: str) -> str | None:
+    """Why outcome values ``y`` lie outside a candidate's declared support, or None."""
+    if support == "real":
+        return None
+    if support == "positive":
+        bad = int((y <= 0).sum())
+        return f"{bad} outcome value(s) are zero or negative; this candidate needs y > 0" if bad else None
+    if support == "unit":
+        bad = int(((y <= 0) | (y >= 1)).sum())
+        return f"{bad} outcome value(s) lie outside (0, 1); this candidate needs 0 < y < 1" if bad else None
+    if support == "count":
+        bad = int(((y < 0) | (y != np.round(y))).sum())
+        return f"{bad} outcome value(s) are not whole numbers >= 0; this candidate needs counts" if bad else None
+    if support == "binary":
+        bad = int((~np.isin(y, (0, 1))).sum())
+        return f"{bad} outcome value(s) are neither 0 nor 1; this candidate needs 0/1 outcomes" if bad else None
+    raise ValueError(f"unknown support {support!r}")
+
+
+SUPPORTS = ("real", "positive", "unit", "count", "binary")

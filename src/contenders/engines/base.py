@@ -1,0 +1,85 @@
+"""The engine interface and the plain records it exchanges."""
+
+from __future__ import annotations
+
+import abc
+from dataclasses import dataclass
+from typing import Any, Mapping
+
+import arviz as az
+import numpy as np
+
+from ..candidates import Candidate
+
+
+class SamplingError(RuntimeError):
+    """Stan could not run a candidate (initialisation failed, an exception in the
+    program, ...). The message carries Stan's own words."""
+
+
+@dataclass(frozen=True)
+class SamplerSettings:
+    """Settings of one NUTS run; ``adapt_delta`` and ``max_treedepth`` are Stan's own."""
+
+    chains: int = 4
+    warmup: int = 1000
+    draws: int = 1000
+    adapt_delta: float = 0.8
+    max_treedepth: int = 10
+    seed: int = 20261201
+
+    def __post_init__(self) -> None:
+        if self.chains < 1 or self.draws < 1 or self.warmup < 0:
+            raise ValueError("chains and draws must be >= 1 and warmup >= 0")
+        if not 0 < self.adapt_delta < 1:
+            raise ValueError("adapt_delta must lie strictly between 0 and 1")
+
+
+@dataclass
+class Program:
+    """A compiled candidate: the engine's handle plus how long compiling took."""
+
+    candidate_id: str
+    code: str
+    handle: Any
+    compile_seconds: float
+    from_cache: bool
+
+
+@dataclass
+class Draws:
+    """The result of one sampling run."""
+
+    idata: az.InferenceData
+    engine: str
+    compile_seconds: float
+    sample_seconds: float
+    settings: SamplerSettings
+    messages: str = ""
+
+
+class Engine(abc.ABC):
+    """Compile once, sample many times."""
+
+    name: str = ""
+
+    @abc.abstractmethod
+    def version(self) -> str:
+        """Engine and Stan versions, as one line."""
+
+    @abc.abstractmethod
+    def compile(self, candidate: Candidate) -> Program:
+        """Compile (or fetch from the engine's cache) the candidate's program."""
+
+    @abc.abstractmethod
+    def sample(self, program: Program, data: Mapping[str, Any], settings: SamplerSettings) -> Draws:
+        """Run NUTS; return all draws as InferenceData."""
+
+    @abc.abstractmethod
+    def single_draw(self, program: Program, data: Mapping[str, Any], seed: int) -> dict[str, np.ndarray]:
+        """One draw of every generated quantity at random initial values, without
+        sampling (used to check output lengths before any sampling)."""
+
+
+#: Dimension names shared by both engines' output.
+OBS_DIMS = {"y_rep": ["obs"], "log_lik": ["obs"], "y": ["obs"]}

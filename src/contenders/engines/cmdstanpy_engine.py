@@ -1,0 +1,107 @@
+"""CmdStanPy engine: used when a CmdStan installation is found.
+
+Each program is copied into a folder named by the hash of its code under the user's
+cache folder (``~/.cache/contenders/cmdstan/``) and compiled there once, so the
+candidates folder is never littered with executables. Sampler output (CSV files) goes
+to a temporary folder that is removed once the draws are in memory.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import shutil
+import tempfile
+import time
+from pathlib import Path
+from typing import Any, Mapping
+
+import arviz as az
+import numpy as np
+
+from ..candidates import Candidate
+from .base import OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError
+
+
+def _cache_root() -> Path:
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(base) / "contenders" / "cmdstan"
+
+
+class CmdStanPyEngine(Engine):
+    name = "cmdstanpy"
+
+    def __init__(self) -> None:
+        logging.getLogger("cmdstanpy").setLevel(logging.WARNING)
+
+    def version(self) -> str:
+        import cmdstanpy
+
+        return f"cmdstanpy {cmdstanpy.__version__} (CmdStan at {cmdstanpy.cmdstan_path()})"
+
+    def compile(self, candidate: Candidate) -> Program:
+        from cmdstanpy import CmdStanModel
+
+        folder = _cache_root() / candidate.code_hash[:16]
+        folder.mkdir(parents=True, exist_ok=True)
+        stan_file = folder / f"{candidate.id}.stan"
+        if not stan_file.exists() or stan_file.read_text() != candidate.code:
+            stan_file.write_text(candidate.code)
+        exe = stan_file.with_suffix("")
+        cached = exe.exists()
+        start = time.perf_counter()
+        try:
+            model = CmdStanModel(stan_file=str(stan_file))
+        except Exception as exc:
+            raise SamplingError(f"{candidate.path.name}: compiling failed:\n{str(exc)[:4000]}") from None
+        return Program(candidate.id, candidate.code, model, time.perf_counter() - start, cached)
+
+    def sample(self, program: Program, data: Mapping[str, Any], settings: SamplerSettings) -> Draws:
+        out = tempfile.mkdtemp(prefix="contenders_")
+        start = time.perf_counter()
+        try:
+            try:
+                fit = program.handle.sample(
+                    data=dict(data),
+                    chains=settings.chains,
+                    parallel_chains=settings.chains,
+                    iter_warmup=settings.warmup,
+                    iter_sampling=settings.draws,
+                    adapt_delta=settings.adapt_delta,
+                    max_treedepth=settings.max_treedepth,
+                    seed=settings.seed,
+                    output_dir=out,
+                    show_progress=False,
+                    show_console=False,
+                )
+            except Exception as exc:
+                raise SamplingError(f"{program.candidate_id}: sampling failed: {str(exc)[:4000]}") from None
+            seconds = time.perf_counter() - start
+            idata = az.from_cmdstanpy(
+                posterior=fit,
+                posterior_predictive=["y_rep"],
+                log_likelihood=["log_lik"],
+                observed_data={"y": np.asarray(data["y"])},
+                dims=OBS_DIMS,
+            )
+            del fit
+        finally:
+            shutil.rmtree(out, ignore_errors=True)
+        return Draws(idata, self.name, program.compile_seconds, seconds, settings)
+
+    def single_draw(self, program: Program, data: Mapping[str, Any], seed: int) -> dict[str, np.ndarray]:
+        out = tempfile.mkdtemp(prefix="contenders_")
+        try:
+            try:
+                fit = program.handle.sample(
+                    data=dict(data), fixed_param=True, chains=1, iter_sampling=1, seed=seed,
+                    output_dir=out, show_progress=False, show_console=False,
+                )
+            except Exception as exc:
+                raise SamplingError(
+                    f"{program.candidate_id}: could not evaluate the program at random initial "
+                    f"values: {str(exc)[:4000]}"
+                ) from None
+            return {name: np.asarray(value)[0] for name, value in fit.stan_variables().items()}
+        finally:
+            shutil.rmtree(out, ignore_errors=True)

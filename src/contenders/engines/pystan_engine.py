@@ -1,0 +1,178 @@
+"""PyStan 3 engine (httpstan underneath; installs from PyPI alone).
+
+PyStan compiles each program once into httpstan's cache (under the user's cache
+folder) and reuses it for every dataset. With a random seed httpstan also caches each
+fit on disk; this engine deletes those files once the draws are read, because a fit
+with ``y_rep`` and ``log_lik`` for every observation can take hundreds of megabytes.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import io
+import time
+from typing import Any, Mapping
+
+import arviz as az
+import numpy as np
+
+from ..candidates import Candidate
+from .base import OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError
+
+
+class _FitNameRecorder:
+    """Wraps PyStan's httpstan client to note the names of the fits it reads, so that
+    exactly those cached files can be deleted afterwards."""
+
+    names: list[str] = []
+
+    def __init__(self, inner_cls):
+        self._inner_cls = inner_cls
+
+    def __call__(self, *args, **kwargs):
+        client = self._inner_cls(*args, **kwargs)
+        original_get = client.get
+        recorder = self
+
+        async def get(path, *a, **kw):
+            if "/fits/" in path and not path.startswith("/operations"):
+                recorder.names.append(path.lstrip("/"))
+            return await original_get(path, *a, **kw)
+
+        client.get = get
+        return client
+
+
+@contextlib.contextmanager
+def _quiet():
+    """Capture PyStan's console output; yield the buffer holding it."""
+    buf = io.StringIO()
+    with contextlib.redirect_stderr(buf), contextlib.redirect_stdout(buf):
+        yield buf
+
+
+def _short(exc: BaseException, limit: int = 1500) -> str:
+    text = str(exc)
+    return text if len(text) <= limit else text[:limit] + " ..."
+
+
+def _stan_message(text: str) -> str:
+    """The informative lines of PyStan's console output."""
+    keep = [ln.strip() for ln in text.splitlines()
+            if ln.strip() and not ln.lstrip().startswith(("Sampling", "Building", "Messages received"))]
+    return "\n".join(dict.fromkeys(keep))[:4000]
+
+
+class PyStanEngine(Engine):
+    name = "pystan"
+
+    def version(self) -> str:
+        import httpstan
+        import stan
+
+        return f"pystan {stan.__version__} (httpstan {httpstan.__version__})"
+
+    def compile(self, candidate: Candidate) -> Program:
+        import httpstan.models
+        import stan.common
+
+        model_name = httpstan.models.calculate_model_name(candidate.code)
+        try:
+            httpstan.models.import_services_extension_module(model_name)
+            cached = True
+        except KeyError:
+            cached = False
+
+        async def build() -> None:
+            async with stan.common.HttpstanClient() as client:
+                resp = await client.post("/models", json={"program_code": candidate.code})
+                if resp.status != 201:
+                    raise SamplingError(
+                        f"{candidate.path.name}: compiling failed:\n{resp.json().get('message', '')[:4000]}"
+                    )
+
+        start = time.perf_counter()
+        with _quiet():
+            asyncio.run(build())
+        return Program(candidate.id, candidate.code, model_name, time.perf_counter() - start, cached)
+
+    def _build(self, program: Program, data: Mapping[str, Any], seed: int):
+        import stan
+
+        with _quiet() as buf:
+            try:
+                return stan.build(program.code, data=dict(data), random_seed=int(seed))
+            except (RuntimeError, ValueError) as exc:
+                raise SamplingError(f"{program.candidate_id}: Stan rejected the data: "
+                                    f"{_short(exc)}\n{_stan_message(buf.getvalue())}") from None
+
+    def sample(self, program: Program, data: Mapping[str, Any], settings: SamplerSettings) -> Draws:
+        import stan.common
+
+        model = self._build(program, data, settings.seed)
+        recorder = _FitNameRecorder(stan.common.HttpstanClient)
+        recorder.names = []
+        start = time.perf_counter()
+        original = stan.common.HttpstanClient
+        stan.common.HttpstanClient = recorder
+        try:
+            with _quiet() as buf:
+                try:
+                    fit = model.sample(
+                        num_chains=settings.chains,
+                        num_warmup=settings.warmup,
+                        num_samples=settings.draws,
+                        delta=settings.adapt_delta,
+                        max_depth=settings.max_treedepth,
+                    )
+                except (RuntimeError, ValueError) as exc:
+                    raise SamplingError(
+                        f"{program.candidate_id}: sampling failed: {_short(exc)}\n{_stan_message(buf.getvalue())}"
+                    ) from None
+        finally:
+            stan.common.HttpstanClient = original
+            self._forget_fits(recorder.names)
+        seconds = time.perf_counter() - start
+        idata = az.from_pystan(
+            posterior=fit,
+            posterior_model=model,
+            posterior_predictive=["y_rep"],
+            log_likelihood=["log_lik"],
+            observed_data=["y"],
+            dims=OBS_DIMS,
+        )
+        del fit
+        return Draws(idata, self.name, program.compile_seconds, seconds, settings,
+                     _stan_message(buf.getvalue()))
+
+    def single_draw(self, program: Program, data: Mapping[str, Any], seed: int) -> dict[str, np.ndarray]:
+        import stan.common
+
+        model = self._build(program, data, seed)
+        recorder = _FitNameRecorder(stan.common.HttpstanClient)
+        recorder.names = []
+        original = stan.common.HttpstanClient
+        stan.common.HttpstanClient = recorder
+        try:
+            with _quiet() as buf:
+                try:
+                    fit = model.fixed_param(num_chains=1, num_samples=1)
+                except (RuntimeError, ValueError) as exc:
+                    raise SamplingError(
+                        f"{program.candidate_id}: could not evaluate the program at random initial "
+                        f"values: {_short(exc)}\n{_stan_message(buf.getvalue())}"
+                    ) from None
+        finally:
+            stan.common.HttpstanClient = original
+            self._forget_fits(recorder.names)
+        return {name: np.asarray(fit[name])[..., 0] for name in fit.param_names
+                if name in model.param_names}
+
+    @staticmethod
+    def _forget_fits(names: list[str]) -> None:
+        import httpstan.cache
+
+        for name in set(names):
+            with contextlib.suppress(Exception):
+                httpstan.cache.delete_fit(name)

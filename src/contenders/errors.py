@@ -1,0 +1,19 @@
+"""The one exception type for mistakes the user can fix.
+
+A :class:`UserError` carries a single message that names the file, column, key or
+candidate concerned, what is wrong and how to fix it. The command line prints the
+message alone (no traceback); library callers can catch it.
+"""
+
+from __future__ import annotations
+
+
+class UserError(Exception):
+    """A problem in the user's input (data, configuration, candidate files)."""
+
+    def __init__(self, message: str) -> None:
+        super().__init__(message)
+        self.message = message
+
+    def __str__(self) -> str:  # pragma: no cover - trivial
+        return self.message

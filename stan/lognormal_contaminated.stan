@@ -1,0 +1,94 @@
+/*
+[candidate]
+label   = "Lognormal with guesses and lapses"
+about   = "Lognormal durations mixed with a small uniform share of fast guesses and lapses"
+support = "positive"
+
+[candidate.defaults]
+intercept_sd   = 1.5   # prior SD of the log-scale intercept, centred at log(y_center)
+coef_sd        = 0.5   # prior SD of each coefficient (log scale, per predictor SD)
+group_sd_scale = 0.5   # half-normal scale of the SD of group intercepts (log scale)
+sigma_scale    = 1.0   # half-normal scale of sigma (log scale)
+stray_a        = 1.0   # beta(stray_a, stray_b) prior on the share of stray responses; mean 0.05
+stray_b        = 19.0
+*/
+// Two-component mixture: with probability 1 - stray, y ~ lognormal(eta, sigma); with
+// probability stray, y is a fast guess or a lapse, uniform on (0, max(y)). The upper end
+// max(y) is taken over all N observations, so it is the same in every mode.
+// Reference: (1 - stray) * SciPy lognorm(s = sigma, scale = exp(eta))
+//            + stray * SciPy uniform(loc = 0, scale = max(y)).
+functions {
+  vector linear_predictor(real intercept, matrix X, vector coef,
+                          array[] int group, vector group_z, vector group_sd) {
+    vector[rows(X)] eta = intercept + X * coef;
+    if (num_elements(group_sd) > 0) {
+      eta += group_sd[1] * group_z[group];
+    }
+    return eta;
+  }
+}
+data {
+  int<lower=0> N;
+  vector[N] y;
+  int<lower=0> K;
+  matrix[N, K] X;
+  int<lower=0> J;
+  array[N] int<lower=0, upper=J> group;
+  int<lower=0, upper=N> N_fit;
+  array[N_fit] int<lower=1, upper=N> fit_idx;
+  real<lower=0> y_center;
+  real<lower=0> y_scale;
+  real<lower=0> intercept_sd;
+  real<lower=0> coef_sd;
+  real<lower=0> group_sd_scale;
+  real<lower=0> sigma_scale;
+  real<lower=0> stray_a;
+  real<lower=0> stray_b;
+}
+transformed data {
+  int has_group = J > 0;
+  real y_max = max(y);
+}
+parameters {
+  real intercept;
+  vector[K] coef;
+  vector[J] group_z;                       // non-centred group intercepts
+  vector<lower=0>[has_group] group_sd;
+  real<lower=0> sigma;
+  real<lower=0, upper=1> stray;            // share of guesses and lapses
+}
+model {
+  vector[N] eta = linear_predictor(intercept, X, coef, group, group_z, group_sd);
+  intercept ~ normal(log(y_center), intercept_sd);
+  coef ~ normal(0, coef_sd);
+  group_sd ~ normal(0, group_sd_scale);
+  sigma ~ normal(0, sigma_scale);
+  stray ~ beta(stray_a, stray_b);
+  group_z ~ std_normal();
+  {
+    // log of each component's weighted density, combined elementwise:
+    // log(exp(a) + exp(b)) = a + log1p_exp(b - a)
+    vector[N_fit] a = log1m(stray) - log(y[fit_idx]) - log(sigma) - 0.5 * log(2 * pi())
+                      - 0.5 * square((log(y[fit_idx]) - eta[fit_idx]) / sigma);
+    real b = log(stray) - log(y_max);
+    target += sum(a + log1p_exp(b - a));
+  }
+}
+generated quantities {
+  vector[N] log_lik;
+  array[N] real y_rep;
+  real lprior = normal_lpdf(intercept | log(y_center), intercept_sd)
+                + normal_lpdf(coef | 0, coef_sd)
+                + normal_lpdf(group_sd | 0, group_sd_scale)
+                + normal_lpdf(sigma | 0, sigma_scale)
+                + beta_lpdf(stray | stray_a, stray_b);
+  {
+    vector[N] eta = linear_predictor(intercept, X, coef, group, group_z, group_sd);
+    for (n in 1:N) {
+      log_lik[n] = log_mix(stray, uniform_lpdf(y[n] | 0, y_max),
+                           lognormal_lpdf(y[n] | eta[n], sigma));
+      y_rep[n] = bernoulli_rng(stray) ? uniform_rng(0, y_max)
+                                      : lognormal_rng(eta[n], sigma);
+    }
+  }
+}
