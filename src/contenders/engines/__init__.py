@@ -58,3 +58,46 @@ def get_engine(name: str = "auto") -> Engine:
 
 __all__ = ["Draws", "Engine", "Program", "SamplerSettings", "SamplingError", "get_engine",
            "cmdstan_available", "ENGINE_NAMES"]
+
+
+def _compile_in_child(engine_name: str, path: str) -> tuple[str, float, str | None]:
+    from ..candidates import load_candidate
+
+    c = load_candidate(path)
+    try:
+        program = get_engine(engine_name).compile(c)
+    except SamplingError as exc:
+        return c.id, 0.0, str(exc)
+    return c.id, program.compile_seconds, None
+
+
+def compile_all(engine: Engine, candidates, jobs: int = 1) -> dict:
+    """Compile valid candidates, ``jobs`` at a time, and return ``{id: Program}``.
+
+    The compiler is single-threaded, so with ``jobs`` > 1 the programs are first
+    compiled in separate processes, which fill the engine's on-disk cache; the
+    programs are then loaded from that cache here. A candidate whose compilation
+    fails gets the compiler's message appended to its ``problems``.
+    """
+    import concurrent.futures as cf
+    import multiprocessing as mp
+
+    todo = [c for c in candidates if c.valid]
+    seconds: dict[str, float] = {}
+    if jobs > 1 and len(todo) > 1:
+        ctx = mp.get_context("spawn")
+        with cf.ProcessPoolExecutor(max_workers=jobs, mp_context=ctx) as pool:
+            for cid, secs, _err in pool.map(_compile_in_child, [engine.name] * len(todo),
+                                             [str(c.path) for c in todo]):
+                seconds[cid] = secs
+    programs = {}
+    for c in todo:
+        try:
+            program = engine.compile(c)
+        except SamplingError as exc:
+            c.problems.append(str(exc))
+            continue
+        if c.id in seconds and seconds[c.id] > program.compile_seconds:
+            program.compile_seconds = seconds[c.id]
+        programs[c.id] = program
+    return programs

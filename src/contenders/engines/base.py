@@ -76,9 +76,13 @@ class Engine(abc.ABC):
         """Run NUTS; return all draws as InferenceData."""
 
     @abc.abstractmethod
-    def single_draw(self, program: Program, data: Mapping[str, Any], seed: int) -> dict[str, np.ndarray]:
-        """One draw of every generated quantity at random initial values, without
-        sampling (used to check output lengths before any sampling)."""
+    def single_draw(
+        self, program: Program, data: Mapping[str, Any], seed: int,
+        init: Mapping[str, Any] | None = None,
+    ) -> dict[str, np.ndarray]:
+        """One draw of every parameter and generated quantity without sampling: at the
+        given parameter values ``init``, else at Stan's random initial values. Used to
+        check output lengths before any sampling, and to simulate from fixed values."""
 
 
 #: Dimension names shared by both engines' output.

@@ -89,12 +89,16 @@ class CmdStanPyEngine(Engine):
             shutil.rmtree(out, ignore_errors=True)
         return Draws(idata, self.name, program.compile_seconds, seconds, settings)
 
-    def single_draw(self, program: Program, data: Mapping[str, Any], seed: int) -> dict[str, np.ndarray]:
+    def single_draw(
+        self, program: Program, data: Mapping[str, Any], seed: int,
+        init: Mapping[str, Any] | None = None,
+    ) -> dict[str, np.ndarray]:
         out = tempfile.mkdtemp(prefix="contenders_")
         try:
             try:
                 fit = program.handle.sample(
                     data=dict(data), fixed_param=True, chains=1, iter_sampling=1, seed=seed,
+                    inits=dict(init) if init else None,
                     output_dir=out, show_progress=False, show_console=False,
                 )
             except Exception as exc:

@@ -11,6 +11,9 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import io
+import os
+import sys
+import tempfile
 import time
 from typing import Any, Mapping
 
@@ -46,10 +49,28 @@ class _FitNameRecorder:
 
 @contextlib.contextmanager
 def _quiet():
-    """Capture PyStan's console output; yield the buffer holding it."""
+    """Capture PyStan's console output and the compiler's, which writes to the process's
+    file descriptors directly; yield a buffer whose ``getvalue()`` returns all of it."""
     buf = io.StringIO()
-    with contextlib.redirect_stderr(buf), contextlib.redirect_stdout(buf):
-        yield buf
+    sys.stdout.flush()
+    sys.stderr.flush()
+    saved = []
+    with tempfile.TemporaryFile(mode="w+b") as sink:
+        try:
+            for fd in (1, 2):
+                try:
+                    saved.append((fd, os.dup(fd)))
+                    os.dup2(sink.fileno(), fd)
+                except OSError:  # no such descriptor (embedded interpreters)
+                    pass
+            with contextlib.redirect_stderr(buf), contextlib.redirect_stdout(buf):
+                yield buf
+        finally:
+            for fd, copy in saved:
+                os.dup2(copy, fd)
+                os.close(copy)
+            sink.seek(0)
+            buf.write(sink.read().decode("utf-8", "replace")[-20000:])
 
 
 def _short(exc: BaseException, limit: int = 1500) -> str:
@@ -146,7 +167,10 @@ class PyStanEngine(Engine):
         return Draws(idata, self.name, program.compile_seconds, seconds, settings,
                      _stan_message(buf.getvalue()))
 
-    def single_draw(self, program: Program, data: Mapping[str, Any], seed: int) -> dict[str, np.ndarray]:
+    def single_draw(
+        self, program: Program, data: Mapping[str, Any], seed: int,
+        init: Mapping[str, Any] | None = None,
+    ) -> dict[str, np.ndarray]:
         import stan.common
 
         model = self._build(program, data, seed)
@@ -157,7 +181,7 @@ class PyStanEngine(Engine):
         try:
             with _quiet() as buf:
                 try:
-                    fit = model.fixed_param(num_chains=1, num_samples=1)
+                    fit = model.fixed_param(num_chains=1, num_samples=1, init=[dict(init or {})])
                 except (RuntimeError, ValueError) as exc:
                     raise SamplingError(
                         f"{program.candidate_id}: could not evaluate the program at random initial "

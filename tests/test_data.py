@@ -1,0 +1,110 @@
+"""Design matrix, grouping and reference scale, checked by hand computation."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from contenders.data import build_design, read_table, support_problem
+from contenders.errors import UserError
+
+
+def _table():
+    return pd.DataFrame({
+        "rt": [510.0, 620.0, 480.0, 700.0, 655.0, 530.0, 590.0, 610.0, 560.0, 720.0, np.nan, np.inf],
+        "load": [1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12],
+        "cue": ["on", "off", "on", "off", "on", "off", "on", "off", "on", "on", "on", "off"],
+        "who": ["p2", "p1", "p2", "p1", "p3", "p3", "p1", "p2", "p3", "p1", "p2", "p3"],
+    })
+
+
+def test_numeric_predictor_is_centred_and_scaled_by_sample_sd():
+    d = build_design(_table(), "rt", ["load"])
+    x = np.arange(1, 11, dtype=float)  # rows with missing or infinite outcome are dropped
+    np.testing.assert_allclose(d.X[:, 0], (x - x.mean()) / x.std(ddof=1))
+    assert d.coding[0].center == pytest.approx(5.5)
+    assert d.coding[0].scale == pytest.approx(np.std(x, ddof=1))
+    assert d.dropped_rows == 2 and d.N == 10
+
+
+def test_text_predictor_becomes_centred_indicators_against_first_sorted_level():
+    d = build_design(_table(), "rt", ["cue"])
+    assert [c.name for c in d.coding] == ["cue[on]"]  # "off" sorts first: reference level
+    on = np.array([1, 0, 1, 0, 1, 0, 1, 0, 1, 1], dtype=float)
+    np.testing.assert_allclose(d.X[:, 0], on - 0.6)
+    assert d.X[:, 0].sum() == pytest.approx(0.0)
+
+
+def test_group_levels_are_sorted_and_one_based():
+    d = build_design(_table(), "rt", group="who")
+    assert d.group_levels == ("p1", "p2", "p3")
+    assert d.J == 3
+    assert d.group.tolist() == [2, 1, 2, 1, 3, 3, 1, 2, 3, 1]
+    assert d.stan_inputs()["group"].tolist() == d.group.tolist()
+
+
+def test_no_group_means_J_zero_and_zero_indices():
+    d = build_design(_table(), "rt")
+    assert d.J == 0 and d.K == 0 and d.X.shape == (10, 0)
+    assert set(d.group.tolist()) == {0}
+
+
+def test_reference_scale_defaults_to_median_and_sd_and_accepts_user_values():
+    d = build_design(_table(), "rt")
+    y = np.array([510, 620, 480, 700, 655, 530, 590, 610, 560, 720], dtype=float)
+    assert d.y_center == pytest.approx(600.0)  # median of the ten finite values
+    assert d.y_scale == pytest.approx(y.std(ddof=1))
+    d2 = build_design(_table(), "rt", typical_value=403.0, typical_spread=50.0)
+    assert (d2.y_center, d2.y_scale) == (403.0, 50.0)
+
+
+def test_fit_subset_is_passed_one_based():
+    d = build_design(_table(), "rt")
+    s = d.stan_inputs(np.array([0, 4]))
+    assert s["N_fit"] == 2 and s["fit_idx"].tolist() == [1, 5]
+    assert d.stan_inputs(np.arange(0))["N_fit"] == 0
+    assert d.stan_inputs()["fit_idx"].tolist() == list(range(1, 11))
+
+
+@pytest.mark.parametrize("kwargs, message", [
+    (dict(outcome="latency"), "outcome column 'latency' not found; the columns are: rt, load, cue, who"),
+    (dict(outcome="cue"), "outcome column 'cue' is not numeric"),
+    (dict(outcome="rt", predictors=["load", "load2"]), "predictor column 'load2' not found"),
+    (dict(outcome="rt", group="nobody"), "group column 'nobody' not found"),
+])
+def test_bad_columns_are_named(kwargs, message):
+    with pytest.raises(UserError, match=message):
+        build_design(_table(), **kwargs)
+
+
+def test_constant_outcome_constant_predictor_single_group_level_and_too_few_rows():
+    t = _table()
+    t2 = t.assign(rt=600.0)
+    with pytest.raises(UserError, match="outcome column 'rt' is constant"):
+        build_design(t2, "rt")
+    with pytest.raises(UserError, match="predictor column 'k' is constant"):
+        build_design(t.assign(k=1.0), "rt", ["k"])
+    with pytest.raises(UserError, match="group column 'g' has a single level"):
+        build_design(t.assign(g="x"), "rt", group="g")
+    with pytest.raises(UserError, match="3 usable observations of 'rt'; at least 10"):
+        build_design(t.head(3), "rt")
+
+
+def test_read_table_errors(tmp_path):
+    with pytest.raises(UserError, match="data file not found"):
+        read_table(tmp_path / "none.csv")
+    (tmp_path / "empty.csv").write_text("")
+    with pytest.raises(UserError, match="the file is empty"):
+        read_table(tmp_path / "empty.csv")
+    (tmp_path / "latin.csv").write_bytes("rt,name\n1,Jos\xe9\n".encode("latin-1"))
+    with pytest.raises(UserError, match="not UTF-8"):
+        read_table(tmp_path / "latin.csv")
+
+
+def test_support_problems():
+    y = np.array([0.0, 1.0, 2.5])
+    assert support_problem(y, "real") is None
+    assert support_problem(y, "positive").startswith("1 outcome value(s) are zero or negative")
+    assert support_problem(y, "count").startswith("1 outcome value(s) are not whole numbers")
+    assert support_problem(np.array([0.0, 1.0]), "binary") is None

@@ -1,0 +1,103 @@
+"""Both engines return the same InferenceData layout; the fit subset switches modes."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from contenders.candidates import inputs_for
+from contenders.data import build_design
+from contenders.engines import SamplerSettings, cmdstan_available, get_engine
+
+SMALL = SamplerSettings(chains=2, warmup=200, draws=150, seed=11)
+
+
+@pytest.fixture(scope="module")
+def design():
+    rng = np.random.default_rng(3)
+    n = 40
+    table = pd.DataFrame({
+        "rt": rng.lognormal(6.2, 0.35, n),
+        "cue": np.tile(["off", "on"], n // 2),
+        "who": np.repeat(["a", "b", "c", "d"], n // 4),
+    })
+    return build_design(table, "rt", ["cue"], "who")
+
+
+def _check_layout(draws, design, settings):
+    idata = draws.idata
+    for group in ("posterior", "posterior_predictive", "log_likelihood", "sample_stats", "observed_data"):
+        assert hasattr(idata, group), group
+    shape = (settings.chains, settings.draws, design.N)
+    assert idata.posterior_predictive["y_rep"].shape == shape
+    assert idata.log_likelihood["log_lik"].shape == shape
+    np.testing.assert_allclose(idata.observed_data["y"].values, design.y)
+    for stat in ("diverging", "tree_depth", "energy", "step_size", "acceptance_rate"):
+        assert idata.sample_stats[stat].shape == shape[:2], stat
+    assert idata.posterior["intercept"].shape == shape[:2]
+    assert idata.posterior["coef"].shape == shape[:2] + (design.K,)
+    assert idata.posterior["group_z"].shape == shape[:2] + (design.J,)
+    assert draws.sample_seconds > 0 and draws.compile_seconds >= 0
+
+
+def test_pystan_output_layout_seed_and_cleanup(engine, programs, builtins, design):
+    import httpstan.cache
+
+    c = builtins["lognormal"]
+    data = inputs_for(c, design)
+    first = engine.sample(programs["lognormal"], data, SMALL)
+    _check_layout(first, design, SMALL)
+    again = engine.sample(programs["lognormal"], data, SMALL)
+    np.testing.assert_array_equal(first.idata.posterior["sigma"].values, again.idata.posterior["sigma"].values)
+    other = engine.sample(programs["lognormal"], data, SamplerSettings(chains=2, warmup=200, draws=150, seed=12))
+    assert not np.array_equal(first.idata.posterior["sigma"].values, other.idata.posterior["sigma"].values)
+    fits = httpstan.cache.model_directory(programs["lognormal"].handle) / "fits"
+    assert not fits.exists() or not any(fits.iterdir()), "httpstan's on-disk fit copies are removed"
+
+
+def test_empty_fit_subset_samples_the_prior(engine, programs, builtins, design):
+    """With N_fit = 0 the posterior is the prior: the lognormal intercept is
+    normal(log(y_center), 1.5) and sigma is half-normal(0, 1), whose mean is
+    sqrt(2 / pi) (closed forms)."""
+    c = builtins["lognormal"]
+    data = inputs_for(c, design, fit_idx=np.arange(0))
+    draws = engine.sample(programs["lognormal"], data, SamplerSettings(chains=2, warmup=300, draws=1000, seed=5))
+    a = draws.idata.posterior["intercept"].values.ravel()
+    s = draws.idata.posterior["sigma"].values.ravel()
+    # Monte Carlo tolerance: 5 standard errors with an effective size of at least 500 draws
+    # (common practice, no source).
+    assert abs(a.mean() - np.log(design.y_center)) < 5 * 1.5 / np.sqrt(500)
+    assert abs(a.std() - 1.5) < 0.2
+    assert abs(s.mean() - np.sqrt(2 / np.pi)) < 5 * np.sqrt(1 - 2 / np.pi) / np.sqrt(500)
+
+
+@pytest.mark.cmdstan
+def test_cmdstanpy_gives_the_same_layout_and_agrees_with_pystan(engine, programs, builtins, design):
+    ok, why = cmdstan_available()
+    if not ok:
+        pytest.skip(f"CmdStanPy engine not tested: {why}")
+    cmd = get_engine("cmdstanpy")
+    c = builtins["lognormal"]
+    data = inputs_for(c, design)
+    settings = SamplerSettings(chains=2, warmup=300, draws=500, seed=4)
+    a = cmd.sample(cmd.compile(c), data, settings)
+    _check_layout(a, design, settings)
+    b = engine.sample(programs["lognormal"], data, settings)
+    for name in ("intercept", "sigma"):
+        x, y = a.idata.posterior[name].values.ravel(), b.idata.posterior[name].values.ravel()
+        # two independent MCMC runs: means agree within 5 combined standard errors,
+        # effective size taken as 300 per run (common practice, no source)
+        assert abs(x.mean() - y.mean()) < 5 * np.sqrt(x.var() / 300 + y.var() / 300), name
+
+
+def test_unknown_engine_and_missing_cmdstan_are_user_errors():
+    from contenders.errors import UserError
+
+    with pytest.raises(UserError, match="engine 'stanny' is not known; choose one of: auto, pystan, cmdstanpy"):
+        get_engine("stanny")
+    ok, _ = cmdstan_available()
+    if not ok:
+        with pytest.raises(UserError, match="engine 'cmdstanpy' cannot run: no CmdStan installation found"):
+            get_engine("cmdstanpy")
+        assert get_engine("auto").name == "pystan"
