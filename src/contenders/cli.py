@@ -39,7 +39,9 @@ def cmd_list(args: argparse.Namespace) -> int:
 def cmd_check(args: argparse.Namespace) -> int:
     """Compile each candidate and evaluate it once on example data (no sampling)."""
     from .candidates import check_outputs, discover, example_design
-    from .engines import get_engine
+    import os
+
+    from .engines import compile_all, get_engine
 
     cands = discover(_candidates_folder(args.candidates))
     if args.names:
@@ -49,15 +51,15 @@ def cmd_check(args: argparse.Namespace) -> int:
             raise UserError(f"no candidate named {', '.join(missing)}; known: {', '.join(sorted(known))}")
         cands = [c for c in cands if c.id in args.names]
     engine = get_engine(args.engine)
+    jobs = args.jobs or os.cpu_count() or 1
+    if any(c.valid for c in cands):
+        print(f"compiling {sum(c.valid for c in cands)} program(s), {jobs} at a time "
+              "(about 45 s each the first time; cached afterwards) ...", flush=True)
+    programs = compile_all(engine, cands, jobs=jobs)
     failed = 0
     for c in cands:
-        if c.valid:
-            try:
-                program = engine.compile(c)
-            except Exception as exc:  # compiler failures are reported, never fatal
-                c.problems.append(str(exc))
-            else:
-                check_outputs(c, engine, program, example_design(c.support))
+        if c.id in programs:
+            check_outputs(c, engine, programs[c.id], example_design(c.support))
         if c.valid:
             print(f"ok       {c.id}")
         else:
@@ -91,6 +93,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="folder of .stan candidate files (default: the built-in candidates)")
     p.add_argument("--engine", default="auto", choices=("auto", "pystan", "cmdstanpy"),
                    help="Stan engine; auto uses CmdStanPy when CmdStan is installed, else PyStan")
+    p.add_argument("--jobs", type=int, default=0, metavar="N",
+                   help="programs compiled at once (default: number of cores)")
     p.set_defaults(func=cmd_check)
     return parser
 

@@ -60,36 +60,35 @@ __all__ = ["Draws", "Engine", "Program", "SamplerSettings", "SamplingError", "ge
            "cmdstan_available", "ENGINE_NAMES"]
 
 
-def _compile_in_child(engine_name: str, path: str) -> tuple[str, float, str | None]:
-    from ..candidates import load_candidate
-
-    c = load_candidate(path)
-    try:
-        program = get_engine(engine_name).compile(c)
-    except SamplingError as exc:
-        return c.id, 0.0, str(exc)
-    return c.id, program.compile_seconds, None
-
-
 def compile_all(engine: Engine, candidates, jobs: int = 1) -> dict:
     """Compile valid candidates, ``jobs`` at a time, and return ``{id: Program}``.
 
-    The compiler is single-threaded, so with ``jobs`` > 1 the programs are first
-    compiled in separate processes, which fill the engine's on-disk cache; the
-    programs are then loaded from that cache here. A candidate whose compilation
-    fails gets the compiler's message appended to its ``problems``.
+    The C++ compiler is single-threaded, so with ``jobs`` > 1 the programs not yet in
+    the engine's on-disk cache are first compiled by separate Python processes
+    (``python -m contenders.engines.compile_one``), which fill that cache; then every
+    program is loaded from the cache here. A candidate whose compilation fails gets the
+    compiler's message appended to its ``problems``.
     """
     import concurrent.futures as cf
-    import multiprocessing as mp
+    import subprocess
+    import sys
 
     todo = [c for c in candidates if c.valid]
+    cold = [c for c in todo if not engine.is_cached(c)]
     seconds: dict[str, float] = {}
-    if jobs > 1 and len(todo) > 1:
-        ctx = mp.get_context("spawn")
-        with cf.ProcessPoolExecutor(max_workers=jobs, mp_context=ctx) as pool:
-            for cid, secs, _err in pool.map(_compile_in_child, [engine.name] * len(todo),
-                                             [str(c.path) for c in todo]):
-                seconds[cid] = secs
+    if jobs > 1 and len(cold) > 1:
+        def child(c):
+            proc = subprocess.run(
+                [sys.executable, "-m", "contenders.engines.compile_one", engine.name, str(c.path)],
+                capture_output=True, text=True,
+            )
+            try:
+                seconds[c.id] = float(proc.stdout.strip().splitlines()[-1])
+            except (ValueError, IndexError):
+                pass  # the compile in this process below reports the error
+
+        with cf.ThreadPoolExecutor(max_workers=jobs) as pool:
+            list(pool.map(child, cold))
     programs = {}
     for c in todo:
         try:
@@ -97,7 +96,8 @@ def compile_all(engine: Engine, candidates, jobs: int = 1) -> dict:
         except SamplingError as exc:
             c.problems.append(str(exc))
             continue
-        if c.id in seconds and seconds[c.id] > program.compile_seconds:
+        if c.id in seconds:
             program.compile_seconds = seconds[c.id]
+            program.from_cache = False
         programs[c.id] = program
     return programs

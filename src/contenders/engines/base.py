@@ -68,6 +68,10 @@ class Engine(abc.ABC):
         """Engine and Stan versions, as one line."""
 
     @abc.abstractmethod
+    def is_cached(self, candidate: Candidate) -> bool:
+        """Whether the candidate's program is already compiled in the engine's cache."""
+
+    @abc.abstractmethod
     def compile(self, candidate: Candidate) -> Program:
         """Compile (or fetch from the engine's cache) the candidate's program."""
 

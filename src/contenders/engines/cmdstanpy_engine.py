@@ -39,6 +39,9 @@ class CmdStanPyEngine(Engine):
 
         return f"cmdstanpy {cmdstanpy.__version__} (CmdStan at {cmdstanpy.cmdstan_path()})"
 
+    def is_cached(self, candidate: Candidate) -> bool:
+        return (_cache_root() / candidate.code_hash[:16] / candidate.id).exists()
+
     def compile(self, candidate: Candidate) -> Program:
         from cmdstanpy import CmdStanModel
 

@@ -94,16 +94,22 @@ class PyStanEngine(Engine):
 
         return f"pystan {stan.__version__} (httpstan {httpstan.__version__})"
 
+    def is_cached(self, candidate: Candidate) -> bool:
+        import httpstan.models
+
+        try:
+            httpstan.models.import_services_extension_module(
+                httpstan.models.calculate_model_name(candidate.code))
+        except KeyError:
+            return False
+        return True
+
     def compile(self, candidate: Candidate) -> Program:
         import httpstan.models
         import stan.common
 
         model_name = httpstan.models.calculate_model_name(candidate.code)
-        try:
-            httpstan.models.import_services_extension_module(model_name)
-            cached = True
-        except KeyError:
-            cached = False
+        cached = self.is_cached(candidate)
 
         async def build() -> None:
             async with stan.common.HttpstanClient() as client:

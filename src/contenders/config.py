@@ -1,0 +1,249 @@
+"""Run configuration: a TOML file and command-line flags become one frozen dataclass.
+
+Every key has a documented meaning in README.md ("Configuration"). Unknown keys and
+values of the wrong type are errors that name the key and the valid choices.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tomllib
+from dataclasses import dataclass, field, fields, replace
+from pathlib import Path
+from typing import Any, Mapping
+
+from .errors import UserError
+
+#: Test statistics computed on every dataset (observed, prior and posterior replicates).
+DEFAULT_STATISTICS = ("mean", "sd", "min", "max", "q05", "q50", "q95", "skewness")
+
+
+@dataclass(frozen=True)
+class RunConfig:
+    """Everything one comparison run needs. Paths are resolved against the folder of
+    the configuration file (or the working folder for flags)."""
+
+    data: Path | None = None
+    outcome: str | None = None
+    predictors: tuple[str, ...] = ()
+    group: str | None = None
+    conditions: tuple[str, ...] = ()
+    typical_value: float | None = None
+    typical_spread: float | None = None
+    candidates: Path | None = None          # None: the built-in candidates
+    only: tuple[str, ...] = ()              # run only these candidate ids
+    out: Path = Path("reports/run")
+    chains: int = 4
+    warmup: int = 1000
+    draws: int = 1000
+    prior_draws: int = 1000                 # prior predictive draws, over all chains
+    seed: int = 20261201
+    adapt_delta: float = 0.8
+    escalation: tuple[float, ...] = (0.95, 0.99)
+    max_treedepth: int = 10
+    jobs: int = 0                           # 0: all cores
+    engine: str = "auto"
+    thresholds: tuple[float, ...] = ()      # statistics "share of y below t"
+    bounds: Mapping[str, tuple[float, float]] = field(default_factory=dict)
+    rhat_max: float = 1.01
+    ess_per_chain_min: float = 100.0
+    ebfmi_min: float = 0.3
+    implausible_share: float = 0.5          # flag priors with less plausible mass than this
+    check_draws: int = 1000                 # replicated datasets used for the checks
+    hyperparameters: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
+    quiet: bool = False
+
+    def with_(self, **changes: Any) -> "RunConfig":
+        return replace(self, **changes)
+
+
+# TOML layout: section -> {key: field name}
+_LAYOUT: dict[str, dict[str, str]] = {
+    "data": {"file": "data", "outcome": "outcome", "predictors": "predictors", "group": "group",
+             "conditions": "conditions", "typical_value": "typical_value",
+             "typical_spread": "typical_spread"},
+    "candidates": {"folder": "candidates", "only": "only"},
+    "sampler": {"chains": "chains", "warmup": "warmup", "draws": "draws",
+                "prior_draws": "prior_draws", "seed": "seed", "adapt_delta": "adapt_delta",
+                "escalation": "escalation", "max_treedepth": "max_treedepth"},
+    "checks": {"thresholds": "thresholds", "bounds": "bounds", "check_draws": "check_draws",
+               "implausible_share": "implausible_share"},
+    "health": {"rhat_max": "rhat_max", "ess_per_chain_min": "ess_per_chain_min",
+               "ebfmi_min": "ebfmi_min"},
+    "run": {"out": "out", "jobs": "jobs", "engine": "engine", "quiet": "quiet"},
+}
+_SECTIONS = tuple(_LAYOUT) + ("hyperparameters",)
+
+_TYPES: dict[str, str] = {
+    "data": "path", "outcome": "str", "predictors": "strs", "group": "str", "conditions": "strs",
+    "typical_value": "float", "typical_spread": "posfloat", "candidates": "path", "only": "strs",
+    "out": "path", "chains": "posint", "warmup": "int0", "draws": "posint", "prior_draws": "posint",
+    "seed": "int0", "adapt_delta": "prob", "escalation": "probs", "max_treedepth": "posint",
+    "jobs": "int0", "engine": "engine", "thresholds": "floats", "bounds": "bounds",
+    "rhat_max": "posfloat", "ess_per_chain_min": "posfloat", "ebfmi_min": "posfloat",
+    "implausible_share": "prob", "check_draws": "posint", "quiet": "bool",
+}
+
+_DESCRIBE = {
+    "path": "a path in quotes", "str": "text in quotes", "strs": "a list of column names",
+    "float": "a number", "posfloat": "a positive number", "posint": "a whole number >= 1",
+    "int0": "a whole number >= 0", "prob": "a number strictly between 0 and 1",
+    "probs": "a list of numbers strictly between 0 and 1", "floats": "a list of numbers",
+    "engine": "one of auto, pystan, cmdstanpy",
+    "bounds": "a table statistic = [low, high] (use -inf or inf for an open end)",
+    "bool": "true or false",
+}
+
+
+def _convert(key: str, value: Any, base: Path) -> Any:
+    kind = _TYPES[key]
+
+    def bad() -> UserError:
+        return UserError(f"configuration key '{key}' must be {_DESCRIBE[kind]}; got {value!r}")
+
+    def num(v: Any) -> float:
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            raise bad()
+        return float(v)
+
+    if kind == "path":
+        if not isinstance(value, (str, Path)) or not str(value):
+            raise bad()
+        p = Path(value).expanduser()
+        return p if p.is_absolute() else base / p
+    if kind == "str":
+        if not isinstance(value, str) or not value:
+            raise bad()
+        return value
+    if kind == "strs":
+        if isinstance(value, str):
+            value = [v.strip() for v in value.split(",") if v.strip()]
+        if not isinstance(value, (list, tuple)) or not all(isinstance(v, str) and v for v in value):
+            raise bad()
+        return tuple(value)
+    if kind == "float":
+        v = num(value)
+        if not math.isfinite(v):
+            raise bad()
+        return v
+    if kind == "posfloat":
+        v = num(value)
+        if not (math.isfinite(v) and v > 0):
+            raise bad()
+        return v
+    if kind in ("posint", "int0"):
+        if isinstance(value, bool) or not isinstance(value, int) or value < (1 if kind == "posint" else 0):
+            raise bad()
+        return int(value)
+    if kind == "prob":
+        v = num(value)
+        if not 0 < v < 1:
+            raise bad()
+        return v
+    if kind == "probs":
+        if not isinstance(value, (list, tuple)):
+            raise bad()
+        vs = tuple(num(v) for v in value)
+        if not all(0 < v < 1 for v in vs):
+            raise bad()
+        return vs
+    if kind == "floats":
+        if not isinstance(value, (list, tuple)):
+            raise bad()
+        vs = tuple(num(v) for v in value)
+        if not all(math.isfinite(v) for v in vs):
+            raise bad()
+        return vs
+    if kind == "engine":
+        if value not in ("auto", "pystan", "cmdstanpy"):
+            raise bad()
+        return value
+    if kind == "bool":
+        if not isinstance(value, bool):
+            raise bad()
+        return value
+    if kind == "bounds":
+        if not isinstance(value, Mapping):
+            raise bad()
+        out = {}
+        for stat, pair in value.items():
+            if not (isinstance(pair, (list, tuple)) and len(pair) == 2):
+                raise UserError(f"configuration bound '{stat}' must be [low, high]; got {pair!r}")
+            low, high = num(pair[0]), num(pair[1])
+            if not low < high:
+                raise UserError(f"configuration bound '{stat}': low {low:g} must be below high {high:g}")
+            out[str(stat)] = (low, high)
+        return out
+    raise AssertionError(kind)  # pragma: no cover
+
+
+def _check_statistic_names(cfg: RunConfig) -> None:
+    known = set(DEFAULT_STATISTICS) | {f"below_{t:g}" for t in cfg.thresholds}
+    for stat in cfg.bounds:
+        if stat not in known:
+            raise UserError(
+                f"configuration bound '{stat}' names no statistic; the statistics are: "
+                + ", ".join(sorted(known))
+            )
+
+
+def from_mapping(raw: Mapping[str, Any], base: Path, source: str = "configuration") -> RunConfig:
+    """Build a :class:`RunConfig` from parsed TOML (sections as in the README)."""
+    values: dict[str, Any] = {}
+    for section, content in raw.items():
+        if section not in _SECTIONS:
+            raise UserError(
+                f"{source}: unknown section [{section}]; the sections are: " + ", ".join(_SECTIONS)
+            )
+        if not isinstance(content, Mapping):
+            raise UserError(f"{source}: [{section}] must be a table of key = value lines")
+        if section == "hyperparameters":
+            for cid, table in content.items():
+                if not isinstance(table, Mapping):
+                    raise UserError(
+                        f"{source}: [hyperparameters.{cid}] must be a table of input = value lines"
+                    )
+            values["hyperparameters"] = {str(k): dict(v) for k, v in content.items()}
+            continue
+        for key, value in content.items():
+            if key not in _LAYOUT[section]:
+                raise UserError(
+                    f"{source}: unknown key '{key}' in [{section}]; the keys there are: "
+                    + ", ".join(_LAYOUT[section])
+                )
+            name = _LAYOUT[section][key]
+            values[name] = _convert(name, value, base)
+    cfg = RunConfig(**values)
+    _check_statistic_names(cfg)
+    return cfg
+
+
+def load(path: str | Path) -> RunConfig:
+    """Read a TOML configuration file."""
+    path = Path(path)
+    if not path.is_file():
+        raise UserError(f"{path}: configuration file not found.")
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except UnicodeDecodeError:
+        raise UserError(f"{path}: not UTF-8 text; save the configuration as UTF-8.") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise UserError(f"{path}: not valid TOML ({exc}).") from None
+    return from_mapping(raw, path.resolve().parent, source=str(path))
+
+
+def apply_flags(cfg: RunConfig, flags: Mapping[str, Any], base: Path | None = None) -> RunConfig:
+    """Override configuration fields with command-line values (``None`` = not given)."""
+    base = base or Path(os.getcwd())
+    names = {f.name for f in fields(RunConfig)}
+    changes = {}
+    for name, value in flags.items():
+        if value is None:
+            continue
+        if name not in names:
+            raise UserError(f"unknown setting '{name}'")
+        changes[name] = _convert(name, value, base) if name in _TYPES else value
+    cfg = replace(cfg, **changes)
+    _check_statistic_names(cfg)
+    return cfg

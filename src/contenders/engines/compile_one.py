@@ -1,0 +1,28 @@
+"""Compile one candidate into an engine's cache; print the seconds it took.
+
+Used by :func:`contenders.engines.compile_all` to compile several programs at once:
+``python -m contenders.engines.compile_one ENGINE PATH``.
+"""
+
+from __future__ import annotations
+
+import sys
+
+from ..candidates import load_candidate
+from . import SamplingError, get_engine
+
+
+def main(argv: list[str]) -> int:
+    engine_name, path = argv
+    candidate = load_candidate(path)
+    try:
+        program = get_engine(engine_name).compile(candidate)
+    except SamplingError as exc:
+        print(exc, file=sys.stderr)
+        return 1
+    print(f"{program.compile_seconds:.3f}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main(sys.argv[1:]))

@@ -1,0 +1,289 @@
+"""One comparison run: every candidate through the same trials on one dataset.
+
+``run(config)`` returns a :class:`RunResult` of plain dataclasses and writes
+``summary.json`` into the output folder. One candidate failing at any stage is
+recorded with its reason and never stops the others.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import platform
+import time
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from . import __version__
+from .candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for
+from .config import RunConfig
+from .data import Design, build_design, read_table
+from .engines import SamplingError, compile_all, get_engine
+from .engines.base import SamplerSettings
+from .errors import UserError
+from .trials.checks import PredictiveChecks, predictive_checks, thin_draws
+from .trials.posterior import Health, fit_with_health
+from .trials.prior import PriorTrial, summarise_prior
+
+#: Replicated datasets kept per candidate for figures (the checks use ``check_draws``).
+FIGURE_DRAWS = 100
+
+
+@dataclass
+class CandidateResult:
+    id: str
+    label: str
+    about: str
+    support: str
+    status: str                        # ok | unhealthy | skipped | failed
+    reason: str = ""
+    code: str = ""
+    code_hash: str = ""
+    hyperparameters: dict[str, Any] = field(default_factory=dict)
+    prior: PriorTrial | None = None
+    health: Health | None = None
+    checks: PredictiveChecks | None = None
+    y_rep_sample: np.ndarray | None = field(default=None, repr=False)
+    seconds: dict[str, float] = field(default_factory=dict)
+    stage: str = ""                    # stage reached (or failed at)
+
+
+@dataclass
+class RunResult:
+    config: RunConfig
+    design: Design
+    candidates: list[CandidateResult]
+    engine: str
+    versions: dict[str, str]
+    data_hash: str
+    seconds: float
+    out: Path
+
+
+def _file_hash(path: Path) -> str:
+    import hashlib
+
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+def load_design(cfg: RunConfig) -> Design:
+    if cfg.data is None:
+        raise UserError("no data file given; pass DATA.csv or set file under [data] in the configuration")
+    if not cfg.outcome:
+        raise UserError("no outcome column given; pass --outcome COL or set outcome under [data]")
+    table = read_table(cfg.data)
+    for cond in cfg.conditions:
+        if cond not in table.columns:
+            raise UserError(
+                f"{cfg.data}: condition column '{cond}' not found; the columns are: "
+                + ", ".join(map(str, table.columns))
+            )
+    return build_design(
+        table, cfg.outcome, cfg.predictors, cfg.group, cfg.typical_value, cfg.typical_spread,
+        source=str(cfg.data),
+    )
+
+
+def select_candidates(cfg: RunConfig) -> list[Candidate]:
+    cands = discover(cfg.candidates or builtin_folder())
+    if cfg.only:
+        known = {c.id for c in cands}
+        missing = [c for c in cfg.only if c not in known]
+        if missing:
+            raise UserError(
+                f"candidate(s) {', '.join(missing)} not in {cfg.candidates or builtin_folder()}; "
+                f"known: {', '.join(sorted(known))}"
+            )
+        cands = [c for c in cands if c.id in cfg.only]
+    unknown = sorted(set(cfg.hyperparameters) - {c.id for c in cands})
+    if unknown:
+        raise UserError(
+            f"[hyperparameters.{unknown[0]}] names no candidate in the run; the candidates are: "
+            + ", ".join(c.id for c in cands)
+        )
+    return cands
+
+
+def _settings(cfg: RunConfig, draws: int | None = None, chains: int | None = None) -> SamplerSettings:
+    return SamplerSettings(
+        chains=chains or cfg.chains, warmup=cfg.warmup, draws=draws or cfg.draws,
+        adapt_delta=cfg.adapt_delta, max_treedepth=cfg.max_treedepth, seed=cfg.seed,
+    )
+
+
+def _stack(idata_group, name: str) -> np.ndarray:
+    """(chain, draw, N) -> (chain * draw, N), chain-major."""
+    values = np.asarray(idata_group[name].values)
+    return values.reshape(-1, values.shape[-1])
+
+
+def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig) -> CandidateResult:
+    """All trials of one candidate; exceptions are recorded, never raised."""
+    res = CandidateResult(c.id, c.label, c.about, c.support, status="ok", code=c.code,
+                          code_hash=c.code_hash)
+    try:
+        res.stage = "check"
+        res.hyperparameters = c.hyperparameter_values(cfg.hyperparameters.get(c.id))
+        check_outputs(c, engine, program, design, seed=cfg.seed)
+        if not c.valid:
+            res.status, res.reason = "failed", "; ".join(c.problems)
+            return res
+        # 1. prior predictive trial: same program, empty fit subset
+        res.stage = "prior"
+        prior_chains = min(cfg.chains, cfg.prior_draws)
+        pdraws = engine.sample(
+            program, inputs_for(c, design, np.arange(0), cfg.hyperparameters.get(c.id)),
+            _settings(cfg, draws=max(1, math.ceil(cfg.prior_draws / prior_chains)), chains=prior_chains),
+        )
+        res.seconds["prior"] = pdraws.sample_seconds
+        res.prior = summarise_prior(
+            _stack(pdraws.idata.posterior_predictive, "y_rep"), design.y, cfg.bounds,
+            cfg.thresholds, cfg.implausible_share,
+        )
+        del pdraws
+        # 2. posterior fit with sampler health
+        res.stage = "posterior"
+        draws, health = fit_with_health(
+            engine, program, inputs_for(c, design, None, cfg.hyperparameters.get(c.id)), _settings(cfg),
+            c.parameter_names, cfg.escalation, rhat_max=cfg.rhat_max,
+            ess_per_chain_min=cfg.ess_per_chain_min, ebfmi_min=cfg.ebfmi_min,
+        )
+        res.health = health
+        res.seconds["posterior"] = sum(a.seconds for a in health.attempts)
+        # 3. posterior predictive checks on a thinned set of draws
+        res.stage = "checks"
+        y_rep = _stack(draws.idata.posterior_predictive, "y_rep")
+        log_lik = _stack(draws.idata.log_likelihood, "log_lik")
+        keep = thin_draws(y_rep.shape[0], cfg.check_draws)
+        conditions = {col: design.table[col].to_numpy() for col in cfg.conditions}
+        res.checks = predictive_checks(design.y, y_rep[keep], log_lik[keep], cfg.thresholds, conditions)
+        res.y_rep_sample = y_rep[thin_draws(y_rep.shape[0], FIGURE_DRAWS)].astype(np.float32)
+        del draws, y_rep, log_lik
+        if not health.healthy:
+            res.status, res.reason = "unhealthy", "; ".join(health.problems)
+        res.stage = "done"
+    except (SamplingError, UserError) as exc:
+        res.status, res.reason = "failed", f"{res.stage}: {exc}"
+    except Exception as exc:  # one candidate never stops the others
+        res.status, res.reason = "failed", f"{res.stage}: unexpected {type(exc).__name__}: {exc}"
+    return res
+
+
+def run(cfg: RunConfig) -> RunResult:
+    """Run every candidate through every trial and write ``summary.json``."""
+    start = time.perf_counter()
+    design = load_design(cfg)
+    cands = select_candidates(cfg)
+    out = Path(cfg.out)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise UserError(f"{out}: cannot create the output folder ({exc.strerror}); choose another with --out")
+    if not os.access(out, os.W_OK):
+        raise UserError(f"{out}: the output folder is not writable; choose another with --out")
+    engine = get_engine(cfg.engine)
+    for c in cands:
+        check_against_data(c, design, cfg.hyperparameters.get(c.id))
+    programs = compile_all(engine, [c for c in cands if c.valid and not c.skip_reason],
+                           jobs=cfg.jobs or os.cpu_count() or 1)
+    results = []
+    for c in cands:
+        if not c.valid:
+            results.append(CandidateResult(c.id, c.label, c.about, c.support, "failed",
+                                           "; ".join(c.problems), c.code, c.code_hash))
+        elif c.skip_reason:
+            results.append(CandidateResult(c.id, c.label, c.about, c.support, "skipped",
+                                           c.skip_reason, c.code, c.code_hash))
+        else:
+            results.append(run_candidate(c, engine, programs[c.id], design, cfg))
+    result = RunResult(
+        config=cfg, design=design, candidates=results, engine=engine.name,
+        versions=versions(engine), data_hash=_file_hash(cfg.data) if cfg.data else "",
+        seconds=time.perf_counter() - start, out=out,
+    )
+    write_summary(result)
+    return result
+
+
+def versions(engine) -> dict[str, str]:
+    import arviz
+    import numpy
+    import scipy
+
+    return {
+        "contenders": __version__, "engine": engine.version(), "arviz": arviz.__version__,
+        "numpy": numpy.__version__, "scipy": scipy.__version__, "python": platform.python_version(),
+    }
+
+
+def _clean(value: Any) -> Any:
+    """JSON-safe: NaN and infinities become null; numpy scalars become Python numbers."""
+    if isinstance(value, dict):
+        return {str(k): _clean(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_clean(v) for v in value]
+    if isinstance(value, (np.floating, float)):
+        v = float(value)
+        return v if math.isfinite(v) else None
+    if isinstance(value, np.integer):
+        return int(value)
+    if isinstance(value, Path):
+        return str(value)
+    return value
+
+
+def candidate_summary(r: CandidateResult) -> dict[str, Any]:
+    h, p, k = r.health, r.prior, r.checks
+    return {
+        "id": r.id, "label": r.label, "status": r.status, "reason": r.reason,
+        "rhat_max": h.rhat_max if h else None,
+        "ess_bulk_min": h.ess_bulk_min if h else None,
+        "ess_tail_min": h.ess_tail_min if h else None,
+        "divergences": h.divergences if h else None,
+        "treedepth_hits": h.treedepth_hits if h else None,
+        "ebfmi": h.ebfmi if h else None,
+        "adapt_delta": h.adapt_delta if h else None,
+        "adapt_delta_attempts": [asdict(a) for a in h.attempts] if h else [],
+        "prior_plausible_share": p.plausible_share if p else None,
+        "prior_flagged": p.flagged if p else None,
+        "ppc": {row["statistic"]: {"observed": row["observed"], "p_value": row["p_value"]}
+                for row in k.rows} if k else {},
+        "ppc_grouped": {cond: {lev: {row["statistic"]: {"observed": row["observed"], "p_value": row["p_value"]}
+                                     for row in rows} for lev, rows in levels.items()}
+                        for cond, levels in k.grouped.items()} if k else {},
+        "loo_pit_test": k.loo_pit_test if k else None,
+        "hyperparameters": r.hyperparameters,
+        "code_sha256": r.code_hash,
+        "seconds": r.seconds,
+    }
+
+
+def summary_dict(result: RunResult) -> dict[str, Any]:
+    cfg = result.config
+    return _clean({
+        "contenders_version": __version__,
+        "data": {"file": cfg.data, "sha256": result.data_hash, "outcome": cfg.outcome,
+                 "n": result.design.N, "dropped_rows": result.design.dropped_rows,
+                 "predictors": [c.name for c in result.design.coding], "group": cfg.group,
+                 "conditions": list(cfg.conditions), "y_center": result.design.y_center,
+                 "y_scale": result.design.y_scale},
+        "sampler": {"engine": result.engine, "chains": cfg.chains, "warmup": cfg.warmup,
+                    "draws": cfg.draws, "seed": cfg.seed, "adapt_delta": cfg.adapt_delta,
+                    "max_treedepth": cfg.max_treedepth},
+        "versions": result.versions,
+        "seconds": result.seconds,
+        "candidates": [candidate_summary(r) for r in result.candidates],
+    })
+
+
+def write_summary(result: RunResult) -> Path:
+    """Write ``summary.json`` atomically (temporary file, then rename)."""
+    path = result.out / "summary.json"
+    tmp = path.with_suffix(".json.tmp")
+    tmp.write_text(json.dumps(summary_dict(result), indent=2))
+    os.replace(tmp, path)
+    return path
