@@ -52,6 +52,10 @@ class Health:
     warnings: list[str]
     table: list[dict] = field(default_factory=list)   # per parameter element
 
+    @property
+    def posterior_means(self) -> dict[str, float]:
+        return {row["parameter"]: row["mean"] for row in self.table}
+
 
 def _flatten(ds, var_names: Sequence[str]) -> dict[str, float]:
     out = {}
@@ -82,7 +86,13 @@ def diagnose(
     rhat = _flatten(az.rhat(idata, var_names=names, method="rank"), names)
     bulk = _flatten(az.ess(idata, var_names=names, method="bulk"), names)
     tail = _flatten(az.ess(idata, var_names=names, method="tail"), names)
-    table = [{"parameter": k, "rhat": rhat[k], "ess_bulk": bulk[k], "ess_tail": tail[k]} for k in rhat]
+    post = idata.posterior
+    mean = _flatten(post[names].mean(dim=("chain", "draw")), names)
+    sd = _flatten(post[names].std(dim=("chain", "draw")), names)
+    q05 = _flatten(post[names].quantile(0.05, dim=("chain", "draw")), names)
+    q95 = _flatten(post[names].quantile(0.95, dim=("chain", "draw")), names)
+    table = [{"parameter": k, "mean": mean[k], "sd": sd[k], "q05": q05[k], "q95": q95[k],
+              "rhat": rhat[k], "ess_bulk": bulk[k], "ess_tail": tail[k]} for k in rhat]
     finite_rhat = {k: v for k, v in rhat.items() if np.isfinite(v)}
     worst_r = max(finite_rhat, key=finite_rhat.get) if finite_rhat else ""
     worst_e = min(bulk, key=lambda k: min(bulk[k], tail[k])) if bulk else ""
