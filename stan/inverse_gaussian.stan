@@ -28,9 +28,10 @@ functions {
   // Michael, Schucany & Haas (1976), "Generating random variates using transformations
   // with multiple roots", The American Statistician 30(2), 88-90.
   real inv_gaussian_rng(real mu, real lambda) {
-    real v = square(normal_rng(0, 1));
-    real x = mu + square(mu) * v / (2 * lambda)
-             - mu / (2 * lambda) * sqrt(4 * mu * lambda * v + square(mu * v));
+    // smaller root x = mu * (1 + r/2 - sqrt(r + r^2/4)) with r = mu * v / lambda, written
+    // as mu / (1 + r/2 + sqrt(r + r^2/4)) to avoid cancellation when r is large
+    real r = mu * square(normal_rng(0, 1)) / lambda;
+    real x = mu / (1 + r / 2 + sqrt(r + square(r) / 4));
     if (uniform_rng(0, 1) <= mu / (mu + x)) {
       return x;
     }

@@ -106,8 +106,8 @@ class CmdStanPyEngine(Engine):
                 )
             except Exception as exc:
                 raise SamplingError(
-                    f"{program.candidate_id}: could not evaluate the program at random initial "
-                    f"values: {str(exc)[:4000]}"
+                    f"{program.candidate_id}: could not evaluate the program at "
+                    f"{'the given' if init else 'random initial'} values: {str(exc)[:4000]}"
                 ) from None
             return {name: np.asarray(value)[0] for name, value in fit.stan_variables().items()}
         finally:

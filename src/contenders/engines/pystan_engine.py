@@ -190,8 +190,8 @@ class PyStanEngine(Engine):
                     fit = model.fixed_param(num_chains=1, num_samples=1, init=[dict(init or {})])
                 except (RuntimeError, ValueError) as exc:
                     raise SamplingError(
-                        f"{program.candidate_id}: could not evaluate the program at random initial "
-                        f"values: {_short(exc)}\n{_stan_message(buf.getvalue())}"
+                        f"{program.candidate_id}: could not evaluate the program at "
+                        f"{'the given' if init else 'random initial'} values: {_short(exc)}\n{_stan_message(buf.getvalue())}"
                     ) from None
         finally:
             stan.common.HttpstanClient = original
