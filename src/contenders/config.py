@@ -51,6 +51,10 @@ class RunConfig:
     ebfmi_min: float = 0.3
     implausible_share: float = 0.5          # flag priors with less plausible mass than this
     check_draws: int = 1000                 # replicated datasets used for the checks
+    ppp_extreme: float = 0.01               # p-values beyond this (or 1 - it) count as misfit
+    cross_validation: str = "loo"           # loo | kfold | leave_group_out
+    refit_cap: int = 10                     # exact refits per candidate before K-fold
+    folds: int = 10
     hyperparameters: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
     quiet: bool = False
 
@@ -68,7 +72,8 @@ _LAYOUT: dict[str, dict[str, str]] = {
                 "prior_draws": "prior_draws", "seed": "seed", "adapt_delta": "adapt_delta",
                 "escalation": "escalation", "max_treedepth": "max_treedepth"},
     "checks": {"thresholds": "thresholds", "bounds": "bounds", "check_draws": "check_draws",
-               "implausible_share": "implausible_share"},
+               "implausible_share": "implausible_share", "ppp_extreme": "ppp_extreme"},
+    "comparison": {"cross_validation": "cross_validation", "refit_cap": "refit_cap", "folds": "folds"},
     "health": {"rhat_max": "rhat_max", "ess_per_chain_min": "ess_per_chain_min",
                "ebfmi_min": "ebfmi_min"},
     "run": {"out": "out", "jobs": "jobs", "engine": "engine", "quiet": "quiet"},
@@ -82,7 +87,8 @@ _TYPES: dict[str, str] = {
     "seed": "int0", "adapt_delta": "prob", "escalation": "probs", "max_treedepth": "posint",
     "jobs": "int0", "engine": "engine", "thresholds": "floats", "bounds": "bounds",
     "rhat_max": "posfloat", "ess_per_chain_min": "posfloat", "ebfmi_min": "posfloat",
-    "implausible_share": "prob", "check_draws": "posint", "quiet": "bool",
+    "implausible_share": "prob", "check_draws": "posint", "quiet": "bool", "ppp_extreme": "prob",
+    "cross_validation": "cv", "refit_cap": "int0", "folds": "folds",
 }
 
 _DESCRIBE = {
@@ -93,6 +99,7 @@ _DESCRIBE = {
     "engine": "one of auto, pystan, cmdstanpy",
     "bounds": "a table statistic = [low, high] (use -inf or inf for an open end)",
     "bool": "true or false",
+    "cv": "one of loo, kfold, leave_group_out", "folds": "a whole number >= 2",
 }
 
 
@@ -159,6 +166,14 @@ def _convert(key: str, value: Any, base: Path) -> Any:
         if value not in ("auto", "pystan", "cmdstanpy"):
             raise bad()
         return value
+    if kind == "cv":
+        if value not in ("loo", "kfold", "leave_group_out"):
+            raise bad()
+        return value
+    if kind == "folds":
+        if isinstance(value, bool) or not isinstance(value, int) or value < 2:
+            raise bad()
+        return int(value)
     if kind == "bool":
         if not isinstance(value, bool):
             raise bad()

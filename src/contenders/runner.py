@@ -19,6 +19,7 @@ from typing import Any
 import numpy as np
 
 from . import __version__
+from .compare import Comparison, OutOfSample, compare_candidates, estimate
 from .candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for
 from .config import RunConfig
 from .data import Design, build_design, read_table
@@ -47,6 +48,8 @@ class CandidateResult:
     prior: PriorTrial | None = None
     health: Health | None = None
     checks: PredictiveChecks | None = None
+    oos: OutOfSample | None = None
+    refit_divergences: int = 0
     y_rep_sample: np.ndarray | None = field(default=None, repr=False)
     seconds: dict[str, float] = field(default_factory=dict)
     stage: str = ""                    # stage reached (or failed at)
@@ -57,6 +60,7 @@ class RunResult:
     config: RunConfig
     design: Design
     candidates: list[CandidateResult]
+    comparison: Comparison
     engine: str
     versions: dict[str, str]
     data_hash: str
@@ -162,7 +166,12 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig)
         conditions = {col: design.table[col].to_numpy() for col in cfg.conditions}
         res.checks = predictive_checks(design.y, y_rep[keep], log_lik[keep], cfg.thresholds, conditions)
         res.y_rep_sample = y_rep[thin_draws(y_rep.shape[0], FIGURE_DRAWS)].astype(np.float32)
-        del draws, y_rep, log_lik
+        del y_rep, log_lik
+        # 4. out-of-sample: PSIS-LOO, exact refits of high-k observations, or K-fold
+        res.stage = "out-of-sample"
+        res.oos = _out_of_sample(res, c, engine, program, design, cfg, draws, health.adapt_delta)
+        res.seconds["refits"] = res.seconds.pop("_refits", 0.0)
+        del draws
         if not health.healthy:
             res.status, res.reason = "unhealthy", "; ".join(health.problems)
         res.stage = "done"
@@ -173,10 +182,31 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig)
     return res
 
 
+def _out_of_sample(res: CandidateResult, c: Candidate, engine, program, design: Design, cfg: RunConfig,
+                   draws, adapt_delta: float) -> OutOfSample:
+    """elpd of one candidate; refits go through the same engine and compiled program."""
+    counter = [0]
+
+    def refit(fit_idx: np.ndarray) -> np.ndarray:
+        counter[0] += 1
+        settings = SamplerSettings(chains=cfg.chains, warmup=cfg.warmup, draws=cfg.draws,
+                                   adapt_delta=adapt_delta, max_treedepth=cfg.max_treedepth,
+                                   seed=cfg.seed + 1000 + counter[0])
+        d = engine.sample(program, inputs_for(c, design, fit_idx, cfg.hyperparameters.get(c.id)), settings)
+        res.refit_divergences += int(np.asarray(d.idata.sample_stats["diverging"].values).sum())
+        res.seconds["_refits"] = res.seconds.get("_refits", 0.0) + d.sample_seconds
+        return _stack(d.idata.log_likelihood, "log_lik")
+
+    groups = design.group if design.J > 0 else None
+    return estimate(draws.idata, refit, cfg.cross_validation, cfg.refit_cap, cfg.folds, groups, cfg.seed)
+
+
 def run(cfg: RunConfig) -> RunResult:
     """Run every candidate through every trial and write ``summary.json``."""
     start = time.perf_counter()
     design = load_design(cfg)
+    if cfg.cross_validation == "leave_group_out" and design.J == 0:
+        raise UserError("cross_validation = leave_group_out needs a group column; set group under [data] or --group")
     cands = select_candidates(cfg)
     out = Path(cfg.out)
     try:
@@ -200,8 +230,9 @@ def run(cfg: RunConfig) -> RunResult:
                                            c.skip_reason, c.code, c.code_hash))
         else:
             results.append(run_candidate(c, engine, programs[c.id], design, cfg))
+    comparison = compare_candidates(results, cfg.seed, cfg.ppp_extreme)
     result = RunResult(
-        config=cfg, design=design, candidates=results, engine=engine.name,
+        config=cfg, design=design, candidates=results, comparison=comparison, engine=engine.name,
         versions=versions(engine), data_hash=_file_hash(cfg.data) if cfg.data else "",
         seconds=time.perf_counter() - start, out=out,
     )
@@ -236,8 +267,9 @@ def _clean(value: Any) -> Any:
     return value
 
 
-def candidate_summary(r: CandidateResult) -> dict[str, Any]:
-    h, p, k = r.health, r.prior, r.checks
+def candidate_summary(r: CandidateResult, comparison: Comparison) -> dict[str, Any]:
+    h, p, k, o = r.health, r.prior, r.checks, r.oos
+    row = next((row for row in comparison.rows if row["id"] == r.id), {})
     return {
         "id": r.id, "label": r.label, "status": r.status, "reason": r.reason,
         "rhat_max": h.rhat_max if h else None,
@@ -256,6 +288,19 @@ def candidate_summary(r: CandidateResult) -> dict[str, Any]:
                                      for row in rows} for lev, rows in levels.items()}
                         for cond, levels in k.grouped.items()} if k else {},
         "loo_pit_test": k.loo_pit_test if k else None,
+        "elpd_loo": o.elpd if o else None,
+        "elpd_loo_se": o.se if o else None,
+        "p_loo": o.p if o else None,
+        "elpd_diff": row.get("elpd_diff"),
+        "elpd_diff_se": row.get("elpd_diff_se"),
+        "stacking_weight": row.get("stacking_weight"),
+        "pseudo_bma_weight": row.get("pseudo_bma_weight"),
+        "pareto_k_max": o.k_max if o else None,
+        "n_high_pareto_k": o.n_high_k if o else None,
+        "n_refits": o.n_refits if o else None,
+        "refitted_observations": [i + 1 for i in o.refitted] if o else [],
+        "elpd_method": o.method if o else None,
+        "rank": row.get("rank"),
         "hyperparameters": r.hyperparameters,
         "code_sha256": r.code_hash,
         "seconds": r.seconds,
@@ -276,7 +321,10 @@ def summary_dict(result: RunResult) -> dict[str, Any]:
                     "max_treedepth": cfg.max_treedepth},
         "versions": result.versions,
         "seconds": result.seconds,
-        "candidates": [candidate_summary(r) for r in result.candidates],
+        "ranking": result.comparison.ranking,
+        "preferred": result.comparison.preferred,
+        "verdict": " ".join(result.comparison.verdict),
+        "candidates": [candidate_summary(r, result.comparison) for r in result.candidates],
     })
 
 

@@ -1,0 +1,286 @@
+"""Out-of-sample comparison: PSIS-LOO with exact refits, K-fold, weights and a verdict.
+
+Sources:
+
+* PSIS-LOO, elpd, its SE and p_loo: Vehtari, Gelman & Gabry (2017), "Practical
+  Bayesian model evaluation using leave-one-out cross-validation and WAIC", Statistics
+  and Computing 27, 1413-1432; computed with ArviZ's ``loo``.
+* The Pareto k threshold min(1 - 1 / log10(S), 0.7) for S draws: Vehtari, Simpson,
+  Gelman, Yao & Gabry (2024), "Pareto smoothed importance sampling", JMLR 25(72)
+  (ArviZ's ``good_k``).
+* Stacking weights: Yao, Vehtari, Simpson & Gelman (2018), "Using stacking to average
+  Bayesian predictive distributions", Bayesian Analysis 13(3); pseudo-BMA+ weights with
+  the Bayesian bootstrap, same paper; both computed with ArviZ's ``compare``.
+* A difference in elpd below 4 is small, and the normal approximation of its
+  uncertainty is then poor: Sivula, Magnusson, Matamoros & Vehtari (2025),
+  "Uncertainty in Bayesian leave-one-out cross-validation based model comparison",
+  Bayesian Analysis (arXiv:2008.10296).
+"""
+
+from __future__ import annotations
+
+import copy
+from dataclasses import dataclass, field, replace
+from typing import Callable, Sequence
+
+import arviz as az
+import numpy as np
+from scipy.special import logsumexp
+
+#: elpd differences below this are "small" (Sivula et al.).
+SMALL_DIFFERENCE = 4.0
+
+
+@dataclass
+class OutOfSample:
+    """Estimated expected log predictive density of one candidate."""
+
+    elpd: float
+    se: float
+    p: float                      # effective number of parameters: lppd - elpd
+    pointwise: np.ndarray         # elpd of each observation
+    pareto_k: np.ndarray          # PSIS shape estimate per observation (NaN for K-fold only)
+    k_threshold: float
+    method: str                   # how the elpd was obtained, in words
+    refitted: list[int] = field(default_factory=list)  # 0-based observations refitted exactly
+    n_refits: int = 0
+    elpd_psis: float = float("nan")                     # plain PSIS-LOO before any refit
+    elpd_object: object = field(default=None, repr=False)   # ArviZ ELPDData for compare
+
+    @property
+    def k_max(self) -> float:
+        k = self.pareto_k[np.isfinite(self.pareto_k)]
+        return float(k.max()) if k.size else float("nan")
+
+    @property
+    def n_high_k(self) -> int:
+        return int((self.pareto_k > self.k_threshold).sum())
+
+
+def log_mean_exp(log_lik: np.ndarray, axis: int = 0) -> np.ndarray:
+    """log of the mean of exp(x) along ``axis``, computed stably."""
+    n = log_lik.shape[axis]
+    return logsumexp(log_lik, axis=axis) - np.log(n)
+
+
+def make_folds(n: int, k: int, strata: np.ndarray | None = None, seed: int = 0) -> np.ndarray:
+    """Fold number (0..k-1) of each observation. With ``strata`` every fold receives
+    an (almost) equal share of each stratum: members of a stratum are shuffled and
+    dealt to the folds in turn, starting where the previous stratum stopped."""
+    rng = np.random.default_rng(seed)
+    folds = np.empty(n, dtype=np.int64)
+    if strata is None:
+        order = rng.permutation(n)
+        folds[order] = np.arange(n) % k
+        return folds
+    start = 0
+    for level in np.unique(strata):
+        members = rng.permutation(np.flatnonzero(strata == level))
+        folds[members] = (start + np.arange(members.size)) % k
+        start = (start + members.size) % k
+    return folds
+
+
+def _with_pointwise(base, pointwise: np.ndarray, lppd: float):
+    """Copy of an ArviZ ELPDData with new pointwise values and the totals that follow."""
+    out = copy.deepcopy(base)
+    n = pointwise.size
+    out["loo_i"].values[:] = pointwise
+    out["elpd_loo"] = float(pointwise.sum())
+    out["se"] = float(np.sqrt(n * np.var(pointwise)))
+    out["p_loo"] = float(lppd - pointwise.sum())
+    out["warning"] = False
+    return out
+
+
+RefitFn = Callable[[np.ndarray], np.ndarray]
+"""Given 0-based indices of the observations to fit, returns log_lik draws (S, N)."""
+
+
+def estimate(
+    idata,
+    refit: RefitFn,
+    strategy: str = "loo",
+    refit_cap: int = 10,
+    folds: int = 10,
+    groups: np.ndarray | None = None,
+    seed: int = 0,
+) -> OutOfSample:
+    """elpd of one candidate.
+
+    ``strategy`` ``loo``: PSIS-LOO; observations whose Pareto k exceeds the threshold
+    are refitted exactly with that observation held out, up to ``refit_cap``; above
+    the cap the whole estimate falls back to K-fold. ``kfold``: K-fold for every
+    candidate. ``leave_group_out``: each level of ``groups`` held out in turn
+    (predicting new groups, a different quantity from LOO).
+    """
+    loo = az.loo(idata, pointwise=True, var_name="log_lik")
+    log_lik = np.asarray(idata.log_likelihood["log_lik"].values)
+    log_lik = log_lik.reshape(-1, log_lik.shape[-1])
+    n = log_lik.shape[1]
+    lppd = float(log_mean_exp(log_lik).sum())
+    psis = np.asarray(loo["loo_i"].values, dtype=float)
+    k = np.asarray(loo["pareto_k"].values, dtype=float)
+    threshold = float(loo["good_k"])
+    base = dict(pareto_k=k, k_threshold=threshold, elpd_psis=float(loo["elpd_loo"]))
+
+    def held_out(fold_of: np.ndarray, label: str) -> OutOfSample:
+        pointwise = np.empty(n)
+        n_fits = 0
+        for f in np.unique(fold_of):
+            out_idx = np.flatnonzero(fold_of == f)
+            draws = refit(np.flatnonzero(fold_of != f))
+            pointwise[out_idx] = log_mean_exp(draws[:, out_idx])
+            n_fits += 1
+        obj = _with_pointwise(loo, pointwise, lppd)
+        return OutOfSample(float(pointwise.sum()), float(obj["se"]), float(obj["p_loo"]), pointwise,
+                           method=label, n_refits=n_fits, elpd_object=obj, **base)
+
+    if strategy == "leave_group_out":
+        if groups is None:
+            raise ValueError("leave-one-group-out needs a group column")
+        return held_out(np.asarray(groups), f"leave-one-group-out ({len(np.unique(groups))} groups)")
+    if strategy == "kfold":
+        return held_out(make_folds(n, folds, groups, seed), f"{folds}-fold cross-validation")
+    high = np.flatnonzero(k > threshold)
+    if high.size == 0:
+        obj = _with_pointwise(loo, psis, lppd)
+        return OutOfSample(float(psis.sum()), float(obj["se"]), float(obj["p_loo"]), psis,
+                           method="PSIS-LOO", elpd_object=obj, **base)
+    if high.size > refit_cap:
+        est = held_out(make_folds(n, folds, groups, seed), f"{folds}-fold cross-validation")
+        est.method += (f" ({high.size} observations had Pareto k above {threshold:.2f}, more "
+                       f"than the {refit_cap} exact refits allowed)")
+        return est
+    pointwise = psis.copy()
+    everyone = np.arange(n)
+    for i in high:
+        draws = refit(everyone[everyone != i])
+        pointwise[i] = log_mean_exp(draws[:, i])
+    obj = _with_pointwise(loo, pointwise, lppd)
+    return OutOfSample(float(pointwise.sum()), float(obj["se"]), float(obj["p_loo"]), pointwise,
+                       method=f"PSIS-LOO with {high.size} exact refit{'s' if high.size > 1 else ''}",
+                       refitted=[int(i) for i in high], n_refits=int(high.size), elpd_object=obj, **base)
+
+
+@dataclass
+class Comparison:
+    ranking: list[str]
+    rows: list[dict]              # per ranked candidate, best first
+    verdict: list[str]            # sentences, most important first
+    preferred: list[str]
+
+
+def weights(estimates: dict[str, OutOfSample], seed: int = 0) -> tuple[dict, dict, dict]:
+    """Stacking weights, pseudo-BMA+ weights (Bayesian bootstrap) and the ArviZ table
+    (elpd_diff, dse) for the given candidates."""
+    if len(estimates) == 1:
+        (cid,) = estimates
+        return {cid: 1.0}, {cid: 1.0}, {cid: (0.0, 0.0)}
+    objs = {cid: e.elpd_object for cid, e in estimates.items()}
+    stacked = az.compare(objs, ic="loo", method="stacking")
+    bma = az.compare(objs, ic="loo", method="BB-pseudo-BMA", seed=seed)
+    diffs = {cid: (float(stacked.loc[cid, "elpd_diff"]), float(stacked.loc[cid, "dse"])) for cid in objs}
+    return ({cid: float(stacked.loc[cid, "weight"]) for cid in objs},
+            {cid: float(bma.loc[cid, "weight"]) for cid in objs}, diffs)
+
+
+def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
+    """Plain descriptions of the predictive checks a candidate fails."""
+    from .trials.statistics import describe
+
+    if r.checks is None:
+        return []
+    out = []
+    for row in r.checks.rows:
+        p = row["p_value"]
+        if np.isfinite(p) and (p < ppp_extreme or p > 1 - ppp_extreme):
+            # p = Pr(T(y_rep) >= T(y)): near 0, replicates fall short of the observed value
+            side = "lower" if p < 0.5 else "higher"
+            out.append(f"the {describe(row['statistic'])} (observed {row['observed']:.4g}, replicated "
+                       f"values almost always {side}; p = {p:.3f})")
+    test = r.checks.loo_pit_test
+    if np.isfinite(test["p_value"]) and test["p_value"] < pit_alpha:
+        out.append(f"the calibration of its leave-one-out predictions (LOO-PIT not uniform, p = {test['p_value']:.2g})")
+    return out
+
+
+def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.01,
+                       pit_alpha: float = 0.01) -> Comparison:
+    """Rank healthy candidates by elpd and write the verdict.
+
+    Rules: a difference below 4 elpd is small (Sivula et al.); a difference within two
+    SE of the paired difference is uncertain (common practice, no source, for the
+    factor 2); a candidate with a posterior predictive p-value below ``ppp_extreme``
+    or above 1 - ``ppp_extreme`` for any statistic, or a LOO-PIT uniformity p-value
+    below ``pit_alpha``, is named as misfitting even when it ranks well (the
+    thresholds are common practice, no source); unhealthy, failed and skipped
+    candidates are not ranked.
+    """
+    ranked = [r for r in results if r.status == "ok" and r.oos is not None]
+    verdict: list[str] = []
+    rows: list[dict] = []
+    preferred: list[str] = []
+    if ranked:
+        est = {r.id: r.oos for r in ranked}
+        stack_w, bma_w, diffs = weights(est, seed)
+        ranked.sort(key=lambda r: -r.oos.elpd)
+        best = ranked[0]
+        preferred.append(best.id)
+        for pos, r in enumerate(ranked, 1):
+            d, dse = diffs[r.id]
+            rows.append({
+                "rank": pos, "id": r.id, "label": r.label, "elpd": r.oos.elpd, "se": r.oos.se,
+                "p": r.oos.p, "elpd_diff": d, "elpd_diff_se": dse, "stacking_weight": stack_w[r.id],
+                "pseudo_bma_weight": bma_w[r.id], "pareto_k_max": r.oos.k_max,
+                "n_high_k": r.oos.n_high_k, "n_refits": r.oos.n_refits, "method": r.oos.method,
+            })
+        if len(ranked) == 1:
+            verdict.append(f"{best.label} is the only candidate that could be ranked "
+                           f"(elpd {best.oos.elpd:.1f}, SE {best.oos.se:.1f}); there is nothing to compare it with.")
+        else:
+            verdict.append(
+                f"{best.label} predicts best: elpd {best.oos.elpd:.1f} (SE {best.oos.se:.1f}), "
+                f"stacking weight {stack_w[best.id]:.2f}, pseudo-BMA+ weight {bma_w[best.id]:.2f}.")
+        close, uncertain, worse = [], [], []
+        for r in ranked[1:]:
+            d, dse = diffs[r.id]
+            if d < SMALL_DIFFERENCE:
+                close.append(f"{r.label} ({d:.1f} behind, SE {dse:.1f})")
+                preferred.append(r.id)
+            elif d < 2 * dse:
+                uncertain.append(f"{r.label} ({d:.1f} behind, SE {dse:.1f})")
+                preferred.append(r.id)
+            else:
+                worse.append(f"{r.label} ({d:.1f} behind, SE {dse:.1f})")
+        if close:
+            verdict.append(
+                "Within 4 elpd of it, too close to tell apart by predictive accuracy: " + "; ".join(close)
+                + ". Choose among these on the predictive checks, interpretability and theory.")
+        if uncertain:
+            verdict.append("Behind it by less than two standard errors of the difference, so the order is "
+                           "uncertain: " + "; ".join(uncertain) + ".")
+        if worse:
+            verdict.append("Clearly worse at prediction (more than 4 elpd and two standard errors behind): "
+                           + "; ".join(worse) + ".")
+        for pos, r in enumerate(ranked, 1):
+            misses = _misfit(r, ppp_extreme, pit_alpha)
+            if misses:
+                where = "ranks first" if pos == 1 else f"ranks {pos} of {len(ranked)}"
+                verdict.append(f"{r.label} {where} but misses " + "; ".join(misses)
+                               + ". Treat its predictions of these features with suspicion and consider "
+                                 "a family that can produce them.")
+    else:
+        verdict.append("No candidate could be ranked: every candidate was skipped, failed or is unhealthy "
+                       "(see below). Fix the problems named there and run again.")
+    for r in results:
+        if r.prior is not None and r.prior.flagged:
+            verdict.append(f"{r.label}: {r.prior.message}.")
+    for r in results:
+        if r.status == "unhealthy":
+            verdict.append(f"{r.label} is not ranked because the sampler did not converge: {r.reason}.")
+        elif r.status == "failed":
+            verdict.append(f"{r.label} could not be run: {r.reason.splitlines()[0]}")
+        elif r.status == "skipped":
+            verdict.append(f"{r.label} was {r.reason}.")
+    return Comparison([row["id"] for row in rows], rows, verdict, preferred)
