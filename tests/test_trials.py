@@ -149,7 +149,7 @@ def test_funnel_triggers_adapt_delta_escalation_and_is_recorded(tmp_path):
     groups = np.repeat(np.arange(8), 2)
     y = rng.normal(rng.normal(5, 1, 8)[groups], 10)
     pd.DataFrame({"y": y, "school": groups}).to_csv(tmp_path / "f.csv", index=False)
-    cfg = RunConfig(data=tmp_path / "f.csv", outcome="y", group="school", candidates=HERE / "candidates",
+    cfg = RunConfig(data=tmp_path / "f.csv", outcome="y", group="school", candidates=HERE / "candidates" / "funnel",
                     out=tmp_path / "o", chains=4, warmup=300, draws=300, prior_draws=200, engine="pystan",
                     seed=3, jobs=1)
     result = run(cfg)

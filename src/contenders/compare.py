@@ -45,6 +45,7 @@ class OutOfSample:
     refitted: list[int] = field(default_factory=list)  # 0-based observations refitted exactly
     n_refits: int = 0
     elpd_psis: float = float("nan")                     # plain PSIS-LOO before any refit
+    mcse: float = float("nan")                          # Monte Carlo SE of elpd (chains as batches)
     elpd_object: object = field(default=None, repr=False)   # ArviZ ELPDData for compare
 
     @property
@@ -61,6 +62,25 @@ def log_mean_exp(log_lik: np.ndarray, axis: int = 0) -> np.ndarray:
     """log of the mean of exp(x) along ``axis``, computed stably."""
     n = log_lik.shape[axis]
     return logsumexp(log_lik, axis=axis) - np.log(n)
+
+
+def _chain_mcse(per_chain_totals: np.ndarray) -> float:
+    """Monte Carlo SE of an elpd total from its value computed on each chain alone:
+    the chains are independent batches, so SE = SD across chains / sqrt(chains)
+    (batch means; common practice, no source for using chains as the batches)."""
+    t = np.asarray(per_chain_totals, dtype=float)
+    if t.size < 2 or not np.all(np.isfinite(t)):
+        return float("nan")
+    return float(t.std(ddof=1) / np.sqrt(t.size))
+
+
+def _psis_by_chain(log_lik: np.ndarray) -> np.ndarray:
+    """PSIS-LOO pointwise elpd computed on each chain alone; ``log_lik`` is (C, S, N)."""
+    out = []
+    for ll in log_lik:
+        lw, _ = az.psislw(-ll.T)
+        out.append(logsumexp(lw + ll.T, axis=1))
+    return np.asarray(out)
 
 
 def make_folds(n: int, k: int, strata: np.ndarray | None = None, seed: int = 0) -> np.ndarray:
@@ -114,9 +134,15 @@ def estimate(
     candidate. ``leave_group_out``: each level of ``groups`` held out in turn
     (predicting new groups, a different quantity from LOO).
     """
-    loo = az.loo(idata, pointwise=True, var_name="log_lik")
-    log_lik = np.asarray(idata.log_likelihood["log_lik"].values)
-    log_lik = log_lik.reshape(-1, log_lik.shape[-1])
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # ArviZ warns on high k; handled below, not ignored
+        loo = az.loo(idata, pointwise=True, var_name="log_lik")
+        chains_ll = np.asarray(idata.log_likelihood["log_lik"].values, dtype=float)
+        by_chain = _psis_by_chain(chains_ll)
+    n_chains = chains_ll.shape[0]
+    log_lik = chains_ll.reshape(-1, chains_ll.shape[-1])
     n = log_lik.shape[1]
     lppd = float(log_mean_exp(log_lik).sum())
     psis = np.asarray(loo["loo_i"].values, dtype=float)
@@ -124,17 +150,23 @@ def estimate(
     threshold = float(loo["good_k"])
     base = dict(pareto_k=k, k_threshold=threshold, elpd_psis=float(loo["elpd_loo"]))
 
+    def exact(draws: np.ndarray, idx: np.ndarray, pointwise: np.ndarray, per_chain: np.ndarray) -> None:
+        """Exact held-out elpd of observations ``idx`` from refit draws (S, N)."""
+        pointwise[idx] = log_mean_exp(draws[:, idx])
+        split = draws.reshape(n_chains, -1, n)
+        per_chain[:, idx] = log_mean_exp(split[:, :, idx], axis=1)
+
     def held_out(fold_of: np.ndarray, label: str) -> OutOfSample:
         pointwise = np.empty(n)
+        per_chain = np.empty((n_chains, n))
         n_fits = 0
         for f in np.unique(fold_of):
-            out_idx = np.flatnonzero(fold_of == f)
-            draws = refit(np.flatnonzero(fold_of != f))
-            pointwise[out_idx] = log_mean_exp(draws[:, out_idx])
+            exact(refit(np.flatnonzero(fold_of != f)), np.flatnonzero(fold_of == f), pointwise, per_chain)
             n_fits += 1
         obj = _with_pointwise(loo, pointwise, lppd)
         return OutOfSample(float(pointwise.sum()), float(obj["se"]), float(obj["p_loo"]), pointwise,
-                           method=label, n_refits=n_fits, elpd_object=obj, **base)
+                           method=label, n_refits=n_fits, elpd_object=obj,
+                           mcse=_chain_mcse(per_chain.sum(axis=1)), **base)
 
     if strategy == "leave_group_out":
         if groups is None:
@@ -146,21 +178,23 @@ def estimate(
     if high.size == 0:
         obj = _with_pointwise(loo, psis, lppd)
         return OutOfSample(float(psis.sum()), float(obj["se"]), float(obj["p_loo"]), psis,
-                           method="PSIS-LOO", elpd_object=obj, **base)
+                           method="PSIS-LOO", elpd_object=obj, mcse=_chain_mcse(by_chain.sum(axis=1)),
+                           **base)
     if high.size > refit_cap:
         est = held_out(make_folds(n, folds, groups, seed), f"{folds}-fold cross-validation")
         est.method += (f" ({high.size} observations had Pareto k above {threshold:.2f}, more "
                        f"than the {refit_cap} exact refits allowed)")
         return est
     pointwise = psis.copy()
+    per_chain = by_chain.copy()
     everyone = np.arange(n)
     for i in high:
-        draws = refit(everyone[everyone != i])
-        pointwise[i] = log_mean_exp(draws[:, i])
+        exact(refit(everyone[everyone != i]), np.array([i]), pointwise, per_chain)
     obj = _with_pointwise(loo, pointwise, lppd)
     return OutOfSample(float(pointwise.sum()), float(obj["se"]), float(obj["p_loo"]), pointwise,
                        method=f"PSIS-LOO with {high.size} exact refit{'s' if high.size > 1 else ''}",
-                       refitted=[int(i) for i in high], n_refits=int(high.size), elpd_object=obj, **base)
+                       refitted=[int(i) for i in high], n_refits=int(high.size), elpd_object=obj,
+                       mcse=_chain_mcse(per_chain.sum(axis=1)), **base)
 
 
 @dataclass
@@ -183,6 +217,27 @@ def weights(estimates: dict[str, OutOfSample], seed: int = 0) -> tuple[dict, dic
     diffs = {cid: (float(stacked.loc[cid, "elpd_diff"]), float(stacked.loc[cid, "dse"])) for cid in objs}
     return ({cid: float(stacked.loc[cid, "weight"]) for cid in objs},
             {cid: float(bma.loc[cid, "weight"]) for cid in objs}, diffs)
+
+
+def order_with_ties(ranked: list) -> list:
+    """Sort by elpd, best first; candidates whose elpd differ by less than twice the
+    combined Monte Carlo SE of the two estimates are tied (their order would change
+    with the seed) and are listed in id order within the tie."""
+    ordered = sorted(ranked, key=lambda r: -r.oos.elpd)
+    tiers: list[list] = []
+    for r in ordered:
+        if tiers:
+            prev = tiers[-1][-1]
+            gap = prev.oos.elpd - r.oos.elpd
+            noise = 2 * np.sqrt(np.nan_to_num(prev.oos.mcse) ** 2 + np.nan_to_num(r.oos.mcse) ** 2)
+            if gap <= noise:
+                tiers[-1].append(r)
+                continue
+        tiers.append([r])
+    for tier in tiers:
+        for r in tier:
+            r.tied_with = [o.id for o in tier if o is not r]
+    return [r for tier in tiers for r in sorted(tier, key=lambda r: r.id)]
 
 
 def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
@@ -224,7 +279,7 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
     if ranked:
         est = {r.id: r.oos for r in ranked}
         stack_w, bma_w, diffs = weights(est, seed)
-        ranked.sort(key=lambda r: -r.oos.elpd)
+        ranked = order_with_ties(ranked)
         best = ranked[0]
         preferred.append(best.id)
         for pos, r in enumerate(ranked, 1):
@@ -234,8 +289,15 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
                 "p": r.oos.p, "elpd_diff": d, "elpd_diff_se": dse, "stacking_weight": stack_w[r.id],
                 "pseudo_bma_weight": bma_w[r.id], "pareto_k_max": r.oos.k_max,
                 "n_high_k": r.oos.n_high_k, "n_refits": r.oos.n_refits, "method": r.oos.method,
+                "mcse": r.oos.mcse, "tied_with": list(r.tied_with),
             })
-        if len(ranked) == 1:
+        tied = [r for r in ranked if best.id in r.tied_with]
+        if tied:
+            names = ", ".join([best.label] + [r.label for r in tied])
+            verdict.append(
+                f"{names} predict best, tied within Monte Carlo error (elpd {best.oos.elpd:.1f}, SE "
+                f"{best.oos.se:.1f}; their order would change with the seed, so they are listed by id).")
+        elif len(ranked) == 1:
             verdict.append(f"{best.label} is the only candidate that could be ranked "
                            f"(elpd {best.oos.elpd:.1f}, SE {best.oos.se:.1f}); there is nothing to compare it with.")
         else:
@@ -244,6 +306,9 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
                 f"stacking weight {stack_w[best.id]:.2f}, pseudo-BMA+ weight {bma_w[best.id]:.2f}.")
         close, uncertain, worse = [], [], []
         for r in ranked[1:]:
+            if r in tied:
+                preferred.append(r.id)
+                continue
             d, dse = diffs[r.id]
             if d < SMALL_DIFFERENCE:
                 close.append(f"{r.label} ({d:.1f} behind, SE {dse:.1f})")

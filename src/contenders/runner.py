@@ -50,6 +50,7 @@ class CandidateResult:
     checks: PredictiveChecks | None = None
     oos: OutOfSample | None = None
     refit_divergences: int = 0
+    tied_with: list[str] = field(default_factory=list)   # ranked candidates tied within Monte Carlo error
     y_rep_sample: np.ndarray | None = field(default=None, repr=False)
     seconds: dict[str, float] = field(default_factory=dict)
     stage: str = ""                    # stage reached (or failed at)
@@ -300,6 +301,8 @@ def candidate_summary(r: CandidateResult, comparison: Comparison) -> dict[str, A
         "n_refits": o.n_refits if o else None,
         "refitted_observations": [i + 1 for i in o.refitted] if o else [],
         "elpd_method": o.method if o else None,
+        "elpd_mcse": o.mcse if o else None,
+        "tied_with": r.tied_with,
         "rank": row.get("rank"),
         "hyperparameters": r.hyperparameters,
         "code_sha256": r.code_hash,
