@@ -71,6 +71,122 @@ def cmd_check(args: argparse.Namespace) -> int:
     return 1 if failed else 0
 
 
+#: Settings given on the command line of ``run`` (and ``demo``), in help order.
+RUN_FLAGS = (
+    "outcome", "predictors", "group", "conditions", "typical_value", "typical_spread", "candidates",
+    "only", "out", "chains", "warmup", "draws", "prior_draws", "seed", "jobs", "engine", "adapt_delta",
+    "escalation", "max_treedepth", "thresholds", "bounds", "rhat_max", "ess_per_chain_min", "ebfmi_min",
+    "implausible_share", "check_draws", "ppp_extreme", "cross_validation", "refit_cap", "folds",
+)
+#: Shorter spellings the issue tracker and README use.
+ALIASES = {"conditions": ["--condition"], "thresholds": ["--threshold"]}
+
+
+def _add_run_flags(p: argparse.ArgumentParser) -> None:
+    from .config import HELP, section_of
+
+    p.add_argument("--config", metavar="FILE", help="TOML configuration file; flags override its keys")
+    for name in RUN_FLAGS:
+        flag = "--" + name.replace("_", "-")
+        p.add_argument(flag, *ALIASES.get(name, []), dest=name, metavar="VALUE", default=None,
+                       help=f"{HELP[name]} (configuration: {section_of(name)})")
+    p.add_argument("--hyper", action="append", default=[], metavar="ID.NAME=VALUE",
+                   help=HELP["hyperparameters"] + " (configuration: [hyperparameters.ID] NAME)")
+    p.add_argument("--quiet", action="store_true", default=None, help=HELP["quiet"])
+
+
+def _config_from_args(args: argparse.Namespace, data: str | None):
+    from .config import RunConfig, apply_flags, load, parse_flag, parse_hyper_flags
+
+    cfg = load(args.config) if args.config else RunConfig()
+    flags = {name: parse_flag(name, getattr(args, name)) for name in RUN_FLAGS
+             if getattr(args, name) is not None}
+    if data:
+        flags["data"] = data
+    if args.quiet:
+        flags["quiet"] = True
+    cfg = apply_flags(cfg, flags)
+    extra = parse_hyper_flags(args.hyper)
+    if extra:
+        merged = {k: dict(v) for k, v in cfg.hyperparameters.items()}
+        for cid, values in extra.items():
+            merged.setdefault(cid, {}).update(values)
+        cfg = cfg.with_(hyperparameters=merged)
+    return cfg
+
+
+def _run_and_report(cfg, command_line: str) -> int:
+    from .report import write_report
+    from .runner import run
+
+    say = (lambda _t: None) if cfg.quiet else (lambda t: print(t, flush=True))
+    result = run(cfg, progress=say)
+    report = write_report(result, result.out, command_line=command_line)
+    if not cfg.quiet:
+        print()
+        for sentence in result.comparison.verdict:
+            print(sentence)
+        print()
+        print(f"report:  {report}")
+        print(f"summary: {result.out / 'summary.json'}")
+    return 0
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    """Fit every candidate to one dataset, compare them and write the report.
+
+    A quick run needs no configuration file: contenders run DATA.csv --outcome COL.
+    Every configuration key has a flag; flags override the file given with --config."""
+    cfg = _config_from_args(args, args.data)
+    return _run_and_report(cfg, " ".join(["contenders", *sys.argv[1:]]))
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    """Generate the invented demo data into demo_data/ and run every built-in on it,
+    writing reports/demo/report.html. The first run compiles all programs."""
+    from . import demo
+    from .config import apply_flags, load
+
+    root = Path(__file__).resolve().parents[2]
+    folder = Path(args.folder) if args.folder else root / "demo_data"
+    cfg_path = demo.write(folder)
+    cfg = load(cfg_path)
+    changes = {}
+    if args.out:
+        changes["out"] = args.out
+    if args.engine:
+        changes["engine"] = args.engine
+    if args.draws:
+        changes["draws"] = args.draws
+        changes["warmup"] = args.draws
+    if args.quiet:
+        changes["quiet"] = True
+    cfg = apply_flags(cfg, changes)
+    if not cfg.quiet:
+        print(f"demo data: {folder / 'icon_search.csv'} (invented; see {folder / 'README.md'})")
+    return _run_and_report(cfg, " ".join(["contenders", *sys.argv[1:]]))
+
+
+def cmd_new(args: argparse.Namespace) -> int:
+    """Write a new candidate file that already keeps the contract, ready to edit."""
+    import re
+
+    from .scaffold import TEMPLATE
+
+    if not re.fullmatch(r"[A-Za-z][A-Za-z0-9_]*", args.name):
+        raise UserError(f"'{args.name}' is not a plain id; use letters, digits and underscores, starting with a letter")
+    folder = _candidates_folder(args.candidates)
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / f"{args.name}.stan"
+    if path.exists():
+        raise UserError(f"{path} already exists; choose another name (nothing was overwritten)")
+    label = args.label or args.name.replace("_", " ").capitalize()
+    path.write_text(TEMPLATE.replace("@LABEL@", label.replace('"', "'")))
+    print(f"wrote {path}: a lognormal starting point; edit the likelihood and priors, then run "
+          f"'contenders check {args.name}" + (f" --candidates {args.candidates}'" if args.candidates else "'"))
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="contenders",
@@ -85,6 +201,29 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--candidates", metavar="DIR",
                    help="folder of .stan candidate files (default: the built-in candidates)")
     p.set_defaults(func=cmd_list)
+
+    p = sub.add_parser("run", help="compare the candidates on one dataset and write the report",
+                       description=cmd_run.__doc__)
+    p.add_argument("data", nargs="?", metavar="DATA.csv", help="CSV data file (or [data] file in --config)")
+    _add_run_flags(p)
+    p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser("demo", help="run every built-in on the invented demo study",
+                       description=cmd_demo.__doc__)
+    p.add_argument("--folder", metavar="DIR", help="where to write the demo data (default: demo_data/)")
+    p.add_argument("--out", metavar="DIR", help="output folder (default: reports/demo)")
+    p.add_argument("--engine", choices=("auto", "pystan", "cmdstanpy"), help="Stan engine")
+    p.add_argument("--draws", type=int, metavar="N", help="warmup and kept draws per chain (default 1000)")
+    p.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser("new", help="write a new candidate file that keeps the contract",
+                       description=cmd_new.__doc__)
+    p.add_argument("name", metavar="NAME", help="id of the new candidate (the file name without .stan)")
+    p.add_argument("--label", help="label in the header (default: from the name)")
+    p.add_argument("--candidates", metavar="DIR",
+                   help="folder to write into (default: the built-in candidates folder)")
+    p.set_defaults(func=cmd_new)
 
     p = sub.add_parser("check", help="compile candidates and check the contract without sampling",
                        description=cmd_check.__doc__)

@@ -64,10 +64,17 @@ def log_mean_exp(log_lik: np.ndarray, axis: int = 0) -> np.ndarray:
     return logsumexp(log_lik, axis=axis) - np.log(n)
 
 
+def _batches(draws_per_chain: int) -> int:
+    """Batches per chain for the Monte Carlo SE: two halves when each holds at least
+    100 draws, else the whole chain."""
+    return 2 if draws_per_chain >= 200 and draws_per_chain % 2 == 0 else 1
+
+
 def _chain_mcse(per_chain_totals: np.ndarray) -> float:
-    """Monte Carlo SE of an elpd total from its value computed on each chain alone:
-    the chains are independent batches, so SE = SD across chains / sqrt(chains)
-    (batch means; common practice, no source for using chains as the batches)."""
+    """Monte Carlo SE of an elpd total from its value computed on each batch of draws
+    alone (each chain, or each half of a chain): SE = SD across batches /
+    sqrt(batches), the batch-means estimate (common practice, no source for the
+    choice of batches)."""
     t = np.asarray(per_chain_totals, dtype=float)
     if t.size < 2 or not np.all(np.isfinite(t)):
         return float("nan")
@@ -140,8 +147,8 @@ def estimate(
         warnings.simplefilter("ignore")  # ArviZ warns on high k; handled below, not ignored
         loo = az.loo(idata, pointwise=True, var_name="log_lik")
         chains_ll = np.asarray(idata.log_likelihood["log_lik"].values, dtype=float)
-        by_chain = _psis_by_chain(chains_ll)
-    n_chains = chains_ll.shape[0]
+        n_chains = chains_ll.shape[0] * _batches(chains_ll.shape[1])
+        by_chain = _psis_by_chain(chains_ll.reshape(n_chains, -1, chains_ll.shape[-1]))
     log_lik = chains_ll.reshape(-1, chains_ll.shape[-1])
     n = log_lik.shape[1]
     lppd = float(log_mean_exp(log_lik).sum())
@@ -303,7 +310,15 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
         else:
             verdict.append(
                 f"{best.label} predicts best: elpd {best.oos.elpd:.1f} (SE {best.oos.se:.1f}), "
-                f"stacking weight {stack_w[best.id]:.2f}, pseudo-BMA+ weight {bma_w[best.id]:.2f}.")
+                f"pseudo-BMA+ weight {bma_w[best.id]:.2f}.")
+        if len(ranked) > 1:
+            top = sorted(((w, rid) for rid, w in stack_w.items() if w >= 0.05), reverse=True)
+            names = {r.id: r.label for r in ranked}
+            verdict.append(
+                "Stacking, which looks for the mixture of candidates that predicts best, puts its weight on "
+                + ", ".join(f"{names[rid]} ({w:.2f})" for w, rid in top)
+                + (" (candidates that complement each other can outweigh the single best one)."
+                   if best.id not in {rid for _, rid in top} else "."))
         close, uncertain, worse = [], [], []
         for r in ranked[1:]:
             if r in tied:

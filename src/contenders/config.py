@@ -262,3 +262,104 @@ def apply_flags(cfg: RunConfig, flags: Mapping[str, Any], base: Path | None = No
     cfg = replace(cfg, **changes)
     _check_statistic_names(cfg)
     return cfg
+
+
+#: One line per setting: used for ``--help`` and the README's configuration reference.
+HELP: dict[str, str] = {
+    "data": "CSV data file with a header row",
+    "outcome": "column holding the outcome",
+    "predictors": "predictor columns, comma-separated (numeric: centred and scaled; text: indicators)",
+    "group": "grouping column for varying intercepts (participants, items, machines)",
+    "conditions": "columns whose levels get their own predictive checks, comma-separated",
+    "typical_value": "typical value of the outcome for default priors (default: its median)",
+    "typical_spread": "typical spread of the outcome for default priors (default: its SD)",
+    "candidates": "folder of .stan candidate files (default: the built-in candidates)",
+    "only": "run only these candidate ids, comma-separated",
+    "out": "output folder for report.html, summary.json and tables",
+    "chains": "Markov chains per fit",
+    "warmup": "warmup iterations per chain",
+    "draws": "kept draws per chain",
+    "prior_draws": "prior predictive draws in all (over all chains)",
+    "seed": "random seed of every fit",
+    "adapt_delta": "Stan's target acceptance rate for the first fit",
+    "escalation": "higher adapt_delta values tried in turn after divergent transitions",
+    "max_treedepth": "Stan's maximum tree depth",
+    "jobs": "programs compiled at once (0: all cores)",
+    "engine": "Stan engine: auto (CmdStanPy when CmdStan is installed, else PyStan), pystan, cmdstanpy",
+    "thresholds": "extra statistics: share of observations below each value, comma-separated",
+    "bounds": "plausibility bounds for the prior trial, e.g. mean=150:5000,min=100:inf",
+    "rhat_max": "R-hat must be below this",
+    "ess_per_chain_min": "bulk and tail ESS must exceed this many per chain",
+    "ebfmi_min": "E-BFMI below this flags a chain",
+    "implausible_share": "flag candidates whose share of plausible prior draws is below this",
+    "check_draws": "replicated datasets used for the predictive checks",
+    "ppp_extreme": "posterior predictive p-values below this or above 1 minus this count as misfit",
+    "cross_validation": "loo (PSIS-LOO, exact refits, K-fold above the cap), kfold, or leave_group_out",
+    "refit_cap": "exact leave-one-out refits per candidate before falling back to K-fold",
+    "folds": "number of folds K for K-fold cross-validation",
+    "hyperparameters": "prior hyperparameter overrides, e.g. lognormal.sigma_scale=0.5 (repeatable)",
+    "quiet": "print nothing but errors",
+}
+
+
+def section_of(name: str) -> str:
+    """The TOML section and key a setting lives under, as ``[section] key``."""
+    if name == "hyperparameters":
+        return "[hyperparameters.ID] NAME"
+    for section, keys in _LAYOUT.items():
+        for key, field_name in keys.items():
+            if field_name == name:
+                return f"[{section}] {key}"
+    raise KeyError(name)
+
+
+def parse_flag(name: str, text: str) -> Any:
+    """A command-line value as the TOML value it spells, for the named setting."""
+    kind = _TYPES.get(name)
+    if kind in ("path", "str", "engine", "cv"):
+        return text
+    if kind in ("strs",):
+        return [v.strip() for v in text.split(",") if v.strip()]
+    if kind in ("floats", "probs"):
+        try:
+            return [_number(v) for v in text.split(",") if v.strip()]
+        except ValueError:
+            raise UserError(f"--{name.replace('_', '-')} must be {_DESCRIBE[kind]}; got {text!r}") from None
+    if kind == "bounds":
+        out = {}
+        for part in filter(None, (p.strip() for p in text.split(","))):
+            try:
+                stat, rng = part.split("=")
+                low, high = rng.split(":")
+                out[stat.strip()] = [_number(low), _number(high)]
+            except ValueError:
+                raise UserError(f"--bounds must look like mean=150:5000,min=100:inf; got {part!r}") from None
+        return out
+    if kind == "bool":
+        return text.lower() in ("1", "true", "yes")
+    try:
+        return _number(text)
+    except ValueError:
+        raise UserError(f"--{name.replace('_', '-')} must be {_DESCRIBE[kind]}; got {text!r}") from None
+
+
+def _number(text: str) -> int | float:
+    text = text.strip()
+    try:
+        return int(text)
+    except ValueError:
+        return float(text)
+
+
+def parse_hyper_flags(items: list[str]) -> dict[str, dict[str, Any]]:
+    """``ID.NAME=VALUE`` items -> ``{ID: {NAME: VALUE}}``."""
+    out: dict[str, dict[str, Any]] = {}
+    for item in items:
+        try:
+            key, value = item.split("=", 1)
+            cid, name = key.split(".", 1)
+            number: Any = _number(value)
+        except ValueError:
+            raise UserError(f"--hyper must look like ID.NAME=NUMBER, e.g. lognormal.sigma_scale=0.5; got {item!r}") from None
+        out.setdefault(cid.strip(), {})[name.strip()] = number
+    return out

@@ -202,8 +202,11 @@ def _out_of_sample(res: CandidateResult, c: Candidate, engine, program, design: 
     return estimate(draws.idata, refit, cfg.cross_validation, cfg.refit_cap, cfg.folds, groups, cfg.seed)
 
 
-def run(cfg: RunConfig) -> RunResult:
-    """Run every candidate through every trial and write ``summary.json``."""
+def run(cfg: RunConfig, progress=None) -> RunResult:
+    """Run every candidate through every trial and write ``summary.json``.
+
+    ``progress``, when given, is called with one line of text at each step."""
+    say = progress or (lambda _text: None)
     start = time.perf_counter()
     design = load_design(cfg)
     if cfg.cross_validation == "leave_group_out" and design.J == 0:
@@ -219,10 +222,15 @@ def run(cfg: RunConfig) -> RunResult:
     engine = get_engine(cfg.engine)
     for c in cands:
         check_against_data(c, design, cfg.hyperparameters.get(c.id))
-    programs = compile_all(engine, [c for c in cands if c.valid and not c.skip_reason],
-                           jobs=cfg.jobs or os.cpu_count() or 1)
+    runnable = [c for c in cands if c.valid and not c.skip_reason]
+    cold = sum(not engine.is_cached(c) for c in runnable)
+    if cold:
+        say(f"compiling {cold} program(s) with {engine.name} (about 45 s each, {cfg.jobs or os.cpu_count()} "
+            "at a time; cached for later runs)")
+    programs = compile_all(engine, runnable, jobs=cfg.jobs or os.cpu_count() or 1)
     results = []
-    for c in cands:
+    for i, c in enumerate(cands, 1):
+        say(f"[{i}/{len(cands)}] {c.id}")
         if not c.valid:
             results.append(CandidateResult(c.id, c.label, c.about, c.support, "failed",
                                            "; ".join(c.problems), c.code, c.code_hash))
@@ -230,7 +238,11 @@ def run(cfg: RunConfig) -> RunResult:
             results.append(CandidateResult(c.id, c.label, c.about, c.support, "skipped",
                                            c.skip_reason, c.code, c.code_hash))
         else:
+            t0 = time.perf_counter()
             results.append(run_candidate(c, engine, programs[c.id], design, cfg))
+            say(f"      {results[-1].status}, {time.perf_counter() - t0:.0f} s")
+        if results[-1].status in ("failed", "skipped"):
+            say(f"      {results[-1].status}: {results[-1].reason.splitlines()[0][:160]}")
     comparison = compare_candidates(results, cfg.seed, cfg.ppp_extreme)
     result = RunResult(
         config=cfg, design=design, candidates=results, comparison=comparison, engine=engine.name,

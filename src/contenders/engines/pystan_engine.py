@@ -24,27 +24,37 @@ from ..candidates import Candidate
 from .base import OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError
 
 
-class _FitNameRecorder:
-    """Wraps PyStan's httpstan client to note the names of the fits it reads, so that
-    exactly those cached files can be deleted afterwards."""
+@contextlib.contextmanager
+def _forgetting_fits():
+    """Run PyStan calls while noting the names of the fits its httpstan client reads,
+    then delete exactly those cached fit files (the client class is swapped for the
+    duration; PyStan looks it up at call time)."""
+    import httpstan.cache
+    import stan.common
 
+    original = stan.common.HttpstanClient
     names: list[str] = []
 
-    def __init__(self, inner_cls):
-        self._inner_cls = inner_cls
-
-    def __call__(self, *args, **kwargs):
-        client = self._inner_cls(*args, **kwargs)
-        original_get = client.get
-        recorder = self
+    def recording_client(*args, **kwargs):
+        client = original(*args, **kwargs)
+        plain_get = client.get
 
         async def get(path, *a, **kw):
             if "/fits/" in path and not path.startswith("/operations"):
-                recorder.names.append(path.lstrip("/"))
-            return await original_get(path, *a, **kw)
+                names.append(path.lstrip("/"))
+            return await plain_get(path, *a, **kw)
 
         client.get = get
         return client
+
+    stan.common.HttpstanClient = recording_client
+    try:
+        yield
+    finally:
+        stan.common.HttpstanClient = original
+        for name in set(names):
+            with contextlib.suppress(Exception):
+                httpstan.cache.delete_fit(name)
 
 
 @contextlib.contextmanager
@@ -135,31 +145,21 @@ class PyStanEngine(Engine):
                                     f"{_short(exc)}\n{_stan_message(buf.getvalue())}") from None
 
     def sample(self, program: Program, data: Mapping[str, Any], settings: SamplerSettings) -> Draws:
-        import stan.common
-
         model = self._build(program, data, settings.seed)
-        recorder = _FitNameRecorder(stan.common.HttpstanClient)
-        recorder.names = []
         start = time.perf_counter()
-        original = stan.common.HttpstanClient
-        stan.common.HttpstanClient = recorder
-        try:
-            with _quiet() as buf:
-                try:
-                    fit = model.sample(
-                        num_chains=settings.chains,
-                        num_warmup=settings.warmup,
-                        num_samples=settings.draws,
-                        delta=settings.adapt_delta,
-                        max_depth=settings.max_treedepth,
-                    )
-                except (RuntimeError, ValueError) as exc:
-                    raise SamplingError(
-                        f"{program.candidate_id}: sampling failed: {_short(exc)}\n{_stan_message(buf.getvalue())}"
-                    ) from None
-        finally:
-            stan.common.HttpstanClient = original
-            self._forget_fits(recorder.names)
+        with _forgetting_fits(), _quiet() as buf:
+            try:
+                fit = model.sample(
+                    num_chains=settings.chains,
+                    num_warmup=settings.warmup,
+                    num_samples=settings.draws,
+                    delta=settings.adapt_delta,
+                    max_depth=settings.max_treedepth,
+                )
+            except (RuntimeError, ValueError) as exc:
+                raise SamplingError(
+                    f"{program.candidate_id}: sampling failed: {_short(exc)}\n{_stan_message(buf.getvalue())}"
+                ) from None
         seconds = time.perf_counter() - start
         idata = az.from_pystan(
             posterior=fit,
@@ -177,32 +177,15 @@ class PyStanEngine(Engine):
         self, program: Program, data: Mapping[str, Any], seed: int,
         init: Mapping[str, Any] | None = None,
     ) -> dict[str, np.ndarray]:
-        import stan.common
-
         model = self._build(program, data, seed)
-        recorder = _FitNameRecorder(stan.common.HttpstanClient)
-        recorder.names = []
-        original = stan.common.HttpstanClient
-        stan.common.HttpstanClient = recorder
-        try:
-            with _quiet() as buf:
-                try:
-                    fit = model.fixed_param(num_chains=1, num_samples=1, init=[dict(init or {})])
-                except (RuntimeError, ValueError) as exc:
-                    raise SamplingError(
-                        f"{program.candidate_id}: could not evaluate the program at "
-                        f"{'the given' if init else 'random initial'} values: {_short(exc)}\n{_stan_message(buf.getvalue())}"
-                    ) from None
-        finally:
-            stan.common.HttpstanClient = original
-            self._forget_fits(recorder.names)
+        with _forgetting_fits(), _quiet() as buf:
+            try:
+                fit = model.fixed_param(num_chains=1, num_samples=1, init=[dict(init or {})])
+            except (RuntimeError, ValueError) as exc:
+                raise SamplingError(
+                    f"{program.candidate_id}: could not evaluate the program at "
+                    f"{'the given' if init else 'random initial'} values: {_short(exc)}\n"
+                    f"{_stan_message(buf.getvalue())}"
+                ) from None
         return {name: np.asarray(fit[name])[..., 0] for name in fit.param_names
                 if name in model.param_names}
-
-    @staticmethod
-    def _forget_fits(names: list[str]) -> None:
-        import httpstan.cache
-
-        for name in set(names):
-            with contextlib.suppress(Exception):
-                httpstan.cache.delete_fit(name)

@@ -1,0 +1,156 @@
+"""The command line through its real entry point, the scaffold and the demo data."""
+
+from __future__ import annotations
+
+import json
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from contenders import demo
+from contenders.candidates import builtin_folder
+
+EXE = [sys.executable, "-m", "contenders.cli"]
+
+
+def cli(*args, cwd=None):
+    return subprocess.run([*EXE, *map(str, args)], capture_output=True, text=True, cwd=cwd, timeout=1200)
+
+
+@pytest.fixture
+def small(tmp_path):
+    rng = np.random.default_rng(9)
+    n = 60
+    pd.DataFrame({"rt": rng.lognormal(6.2, 0.4, n), "cue": np.tile(["off", "on"], n // 2)}).to_csv(
+        tmp_path / "small.csv", index=False)
+    return tmp_path / "small.csv"
+
+
+def test_list_shows_the_ten_builtins():
+    res = cli("list")
+    assert res.returncode == 0
+    for cid in ("normal", "lognormal", "shifted_lognormal", "exgaussian", "gamma", "weibull",
+                "inverse_gaussian", "student_t", "skew_normal", "lognormal_contaminated"):
+        assert cid in res.stdout
+    assert "10 of 10 candidates keep the contract" in res.stdout
+    assert cli().stdout == res.stdout  # the bare command lists too
+
+
+def test_quick_run_end_to_end_writes_outputs(small, tmp_path, programs):
+    out = tmp_path / "out"
+    res = cli("run", small, "--outcome", "rt", "--predictors", "cue", "--condition", "cue",
+              "--only", "lognormal,normal", "--out", out, "--chains", 2, "--warmup", 200, "--draws", 200,
+              "--prior-draws", 200, "--engine", "pystan", "--bounds", "mean=150:5000,min=50:inf",
+              "--hyper", "lognormal.sigma_scale=0.5")
+    assert res.returncode == 0, res.stderr
+    summary = json.loads((out / "summary.json").read_text())
+    assert [c["id"] for c in summary["candidates"]] == ["lognormal", "normal"]
+    assert summary["candidates"][0]["hyperparameters"]["sigma_scale"] == 0.5
+    assert set(summary["ranking"]) <= {"lognormal", "normal"}
+    assert (out / "report.html").stat().st_size > 10_000
+    assert "report:" in res.stdout
+
+
+@pytest.mark.parametrize("args, message", [
+    (["--outcome", "latency"], "outcome column 'latency' not found; the columns are: rt, cue"),
+    (["--outcome", "rt", "--chains", "two"], "--chains must be a whole number >= 1; got 'two'"),
+    (["--outcome", "rt", "--engine", "stanny"], "configuration key 'engine' must be one of auto, pystan, cmdstanpy"),
+    (["--outcome", "rt", "--bounds", "median=1:2"], "configuration bound 'median' names no statistic"),
+])
+def test_user_errors_are_one_line_without_traceback(small, tmp_path, args, message):
+    res = cli("run", small, "--out", tmp_path / "o", *args)
+    assert res.returncode == 2
+    assert message in res.stderr
+    assert "Traceback" not in res.stderr and len(res.stderr.strip().splitlines()) == 1
+
+
+def test_bad_configuration_key_and_empty_candidates_folder(small, tmp_path):
+    cfg = tmp_path / "c.toml"
+    cfg.write_text('[data]\nfile = "small.csv"\noutcome = "rt"\n\n[sampler]\nchain = 2\n')
+    shutil.copy(small, tmp_path / "small.csv")
+    res = cli("run", "--config", cfg)
+    assert res.returncode == 2
+    assert "unknown key 'chain' in [sampler]; the keys there are: chains, warmup" in res.stderr
+    cfg.write_text('[data]\nfile = "small.csv"\noutcome = "rt"\n[run\n')
+    assert "not valid TOML" in cli("run", "--config", cfg).stderr
+    (tmp_path / "empty").mkdir()
+    res = cli("run", small, "--outcome", "rt", "--candidates", tmp_path / "empty", "--out", tmp_path / "o")
+    assert res.returncode == 2
+    assert "no .stan files in the candidates folder" in res.stderr
+
+
+def test_scaffolded_candidate_passes_check_and_can_be_fitted(small, tmp_path, engine):
+    folder = tmp_path / "mine"
+    res = cli("new", "my_family", "--candidates", folder, "--label", "My family")
+    assert res.returncode == 0, res.stderr
+    assert cli("new", "my_family", "--candidates", folder).returncode == 2  # never overwrites
+    res = cli("check", "--candidates", folder)
+    assert res.returncode == 0, res.stdout + res.stderr
+    assert "ok       my_family" in res.stdout
+    res = cli("run", small, "--outcome", "rt", "--candidates", folder, "--out", tmp_path / "o", "--chains", 2,
+              "--warmup", 200, "--draws", 200, "--prior-draws", 100, "--engine", "pystan", "--quiet")
+    assert res.returncode == 0, res.stderr
+    summary = json.loads((tmp_path / "o" / "summary.json").read_text())
+    assert summary["candidates"][0]["label"] == "My family"
+    assert summary["candidates"][0]["elpd_loo"] is not None
+
+
+def test_demo_generator_is_reproducible_and_documented(tmp_path):
+    a = demo.generate()
+    assert a.equals(demo.generate())
+    assert not a.equals(demo.generate(seed=demo.SEED + 1))
+    assert a.shape == (30 * 48, 5)
+    assert (a.groupby(["participant", "density", "cue"]).size() == 12).all()
+    cfg = demo.write(tmp_path)
+    first = (tmp_path / "icon_search.csv").read_bytes()
+    demo.write(tmp_path)
+    assert (tmp_path / "icon_search.csv").read_bytes() == first
+    assert cfg.name == "demo.toml" and (tmp_path / "README.md").exists()
+    # the shipped copy in demo_data/ is the generator's output
+    shipped = builtin_folder().parent / "demo_data" / "icon_search.csv"
+    if shipped.exists():
+        assert shipped.read_bytes() == first
+
+
+def test_demo_process_parameters_are_recovered_by_the_true_family(tmp_path, programs):
+    """Recovery with a known process: the demo generator without fast guesses and without
+    the interaction is an additive shifted lognormal, the shifted_lognormal candidate.
+    Each true value must lie within 3 posterior SDs of the posterior mean (common
+    practice, no source). Coefficients are per centred indicator: 'density[sparse]' is
+    -0.30 and 'cue[on]' is -0.20; with centred indicators the intercept is
+    log(420) + 0.5 * 0.30 - 0.5 * 0.20."""
+    from contenders.config import RunConfig
+    from contenders.runner import run
+
+    demo.generate(guess_rate=0.0, interaction=0.0).to_csv(tmp_path / "d.csv", index=False)
+    cfg = RunConfig(data=tmp_path / "d.csv", outcome="rt_ms", predictors=("density", "cue"), group="participant",
+                    only=("shifted_lognormal",), out=tmp_path / "o", chains=4, warmup=500, draws=500,
+                    prior_draws=100, engine="pystan", cross_validation="loo", refit_cap=0)
+    c = run(cfg).candidates[0]
+    rows = {r["parameter"]: r for r in c.health.table}
+    truth = {"shift": 230.0, "sigma": 0.40, "group_sd[1]": 0.15, "coef[1]": 0.20 * -1.0,
+             "coef[2]": -0.30, "intercept": np.log(420) + 0.15 - 0.10}
+    # X columns in the order of the predictors: cue[on] comes from "cue", density[sparse] from "density"
+    names = [p.name for p in __import__("contenders.runner", fromlist=["load_design"]).load_design(cfg).coding]
+    assert names == ["density[sparse]", "cue[on]"]
+    truth["coef[1]"], truth["coef[2]"] = -0.30, -0.20
+    for name, value in truth.items():
+        r = rows[name]
+        assert abs(r["mean"] - value) < 3 * r["sd"], (name, r, value)
+
+
+def test_readme_documents_every_configuration_key_and_both_commands():
+    from contenders.config import HELP, section_of
+
+    readme = (builtin_folder().parent / "README.md").read_text()
+    for name in HELP:
+        assert f"`{section_of(name)}`" in readme, name
+    assert 'pip install -e ".[test]" && contenders demo' in readme
+    ci = (builtin_folder().parent / ".ci" / "run").read_text()
+    assert ". .venv/bin/activate && python -m pytest -q" in readme
+    assert ". .venv/bin/activate && python -m pytest -q" in ci
