@@ -181,7 +181,7 @@ def test_verdict_rules():
     assert "too close to tell apart by predictive accuracy: Beta (2.0 behind" in text
     assert "order is uncertain: Gamma" in text
     assert "Clearly worse at prediction (more than 4 elpd and two standard errors behind): Delta" in text
-    assert "Alpha ranks first but misses the maximum" in text
+    assert "Alpha ranks first but its replicated data miss: maximum (replicates lower" in text
     assert "Eps is not ranked because the sampler did not converge: R-hat 1.2 for sigma." in text
     assert "Zeta was skipped: 3 outcome value(s) are zero or negative." in text
     assert comp.preferred == ["alpha", "beta", "gamma"]

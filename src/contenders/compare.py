@@ -248,7 +248,7 @@ def order_with_ties(ranked: list) -> list:
 
 
 def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
-    """Plain descriptions of the predictive checks a candidate fails."""
+    """Short descriptions of the predictive checks a candidate fails."""
     from .trials.statistics import describe
 
     if r.checks is None:
@@ -259,11 +259,11 @@ def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
         if np.isfinite(p) and (p < ppp_extreme or p > 1 - ppp_extreme):
             # p = Pr(T(y_rep) >= T(y)): near 0, replicates fall short of the observed value
             side = "lower" if p < 0.5 else "higher"
-            out.append(f"the {describe(row['statistic'])} (observed {row['observed']:.4g}, replicated "
-                       f"values almost always {side}; p = {p:.3f})")
+            out.append(f"{describe(row['statistic'])} (replicates {side} than the observed "
+                       f"{row['observed']:.4g}; p = {p:.3f})")
     test = r.checks.loo_pit_test
     if np.isfinite(test["p_value"]) and test["p_value"] < pit_alpha:
-        out.append(f"the calibration of its leave-one-out predictions (LOO-PIT not uniform, p = {test['p_value']:.2g})")
+        out.append(f"calibration (LOO-PIT not uniform, p = {test['p_value']:.2g})")
     return out
 
 
@@ -347,15 +347,19 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
             misses = _misfit(r, ppp_extreme, pit_alpha)
             if misses:
                 where = "ranks first" if pos == 1 else f"ranks {pos} of {len(ranked)}"
-                verdict.append(f"{r.label} {where} but misses " + "; ".join(misses)
-                               + ". Treat its predictions of these features with suspicion and consider "
-                                 "a family that can produce them.")
+                verdict.append(f"{r.label} {where} but its replicated data miss: " + "; ".join(misses)
+                               + ". Do not trust its predictions of these features; a family that can "
+                                 "produce them may do better.")
     else:
         verdict.append("No candidate could be ranked: every candidate was skipped, failed or is unhealthy "
                        "(see below). Fix the problems named there and run again.")
-    for r in results:
-        if r.prior is not None and r.prior.flagged:
-            verdict.append(f"{r.label}: {r.prior.message}.")
+    flagged = [r for r in results if r.prior is not None and r.prior.flagged]
+    if flagged:
+        verdict.append(
+            "Priors that put most of their mass on implausible datasets (share of prior draws inside every "
+            "plausibility bound): " + "; ".join(f"{r.label} {100 * r.prior.plausible_share:.0f} %" for r in flagged)
+            + ". Tighten these candidates' priors under [hyperparameters.ID], or revisit the bounds; "
+              "the prior predictive section shows which statistic is implausible.")
     for r in results:
         if r.status == "unhealthy":
             verdict.append(f"{r.label} is not ranked because the sampler did not converge: {r.reason}.")

@@ -34,6 +34,7 @@ class RunConfig:
     candidates: Path | None = None          # None: the built-in candidates
     only: tuple[str, ...] = ()              # run only these candidate ids
     out: Path = Path("reports/run")
+    store: Path | None = None               # stored fits; None: OUT/fits
     chains: int = 4
     warmup: int = 1000
     draws: int = 1000
@@ -76,14 +77,14 @@ _LAYOUT: dict[str, dict[str, str]] = {
     "comparison": {"cross_validation": "cross_validation", "refit_cap": "refit_cap", "folds": "folds"},
     "health": {"rhat_max": "rhat_max", "ess_per_chain_min": "ess_per_chain_min",
                "ebfmi_min": "ebfmi_min"},
-    "run": {"out": "out", "jobs": "jobs", "engine": "engine", "quiet": "quiet"},
+    "run": {"out": "out", "store": "store", "jobs": "jobs", "engine": "engine", "quiet": "quiet"},
 }
 _SECTIONS = tuple(_LAYOUT) + ("hyperparameters",)
 
 _TYPES: dict[str, str] = {
     "data": "path", "outcome": "str", "predictors": "strs", "group": "str", "conditions": "strs",
     "typical_value": "float", "typical_spread": "posfloat", "candidates": "path", "only": "strs",
-    "out": "path", "chains": "posint", "warmup": "int0", "draws": "posint", "prior_draws": "posint",
+    "out": "path", "store": "path", "chains": "posint", "warmup": "int0", "draws": "posint", "prior_draws": "posint",
     "seed": "int0", "adapt_delta": "prob", "escalation": "probs", "max_treedepth": "posint",
     "jobs": "int0", "engine": "engine", "thresholds": "floats", "bounds": "bounds",
     "rhat_max": "posfloat", "ess_per_chain_min": "posfloat", "ebfmi_min": "posfloat",
@@ -276,6 +277,7 @@ HELP: dict[str, str] = {
     "candidates": "folder of .stan candidate files (default: the built-in candidates)",
     "only": "run only these candidate ids, comma-separated",
     "out": "output folder for report.html, summary.json and tables",
+    "store": "folder of stored fits, reused by later runs (default: OUT/fits)",
     "chains": "Markov chains per fit",
     "warmup": "warmup iterations per chain",
     "draws": "kept draws per chain",

@@ -52,6 +52,18 @@ max = [0.0, 20000.0]
 
 [run]
 out = "../reports/demo"
+
+# Priors informed by what latencies usually look like (log-scale spread of a few tenths,
+# a typical latency known within a factor of about 3): common practice, no source.
+# The other candidates keep their generic header defaults, so the prior predictive
+# trial shows the difference.
+[hyperparameters.lognormal]
+intercept_sd = 0.5
+sigma_scale = 0.5
+
+[hyperparameters.shifted_lognormal]
+intercept_sd = 0.5
+sigma_scale = 0.5
 """
 
 README = """\

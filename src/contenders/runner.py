@@ -25,6 +25,7 @@ from .config import RunConfig
 from .data import Design, build_design, read_table
 from .engines import SamplingError, compile_all, get_engine
 from .engines.base import SamplerSettings
+from .store import FitStore, StoredEngine
 from .errors import UserError
 from .trials.checks import PredictiveChecks, predictive_checks, thin_draws
 from .trials.posterior import Health, fit_with_health
@@ -53,6 +54,7 @@ class CandidateResult:
     tied_with: list[str] = field(default_factory=list)   # ranked candidates tied within Monte Carlo error
     y_rep_sample: np.ndarray | None = field(default=None, repr=False)
     seconds: dict[str, float] = field(default_factory=dict)
+    fit_files: list[str] = field(default_factory=list)   # stored fits (NetCDF) of this candidate
     stage: str = ""                    # stage reached (or failed at)
 
 
@@ -67,6 +69,8 @@ class RunResult:
     data_hash: str
     seconds: float
     out: Path
+    fits_sampled: int = 0
+    fits_reused: int = 0
 
 
 def _file_hash(path: Path) -> str:
@@ -219,7 +223,7 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
         raise UserError(f"{out}: cannot create the output folder ({exc.strerror}); choose another with --out")
     if not os.access(out, os.W_OK):
         raise UserError(f"{out}: the output folder is not writable; choose another with --out")
-    engine = get_engine(cfg.engine)
+    engine = StoredEngine(get_engine(cfg.engine), FitStore(cfg.store or out / "fits"))
     for c in cands:
         check_against_data(c, design, cfg.hyperparameters.get(c.id))
     runnable = [c for c in cands if c.valid and not c.skip_reason]
@@ -239,15 +243,18 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
                                            c.skip_reason, c.code, c.code_hash))
         else:
             t0 = time.perf_counter()
+            before = engine.reused
             results.append(run_candidate(c, engine, programs[c.id], design, cfg))
-            say(f"      {results[-1].status}, {time.perf_counter() - t0:.0f} s")
+            results[-1].fit_files = [str(p) for p in dict.fromkeys(engine.paths.get(c.id, []))]
+            reused = " (from the fit store)" if engine.reused > before else ""
+            say(f"      {results[-1].status}, {time.perf_counter() - t0:.0f} s{reused}")
         if results[-1].status in ("failed", "skipped"):
             say(f"      {results[-1].status}: {results[-1].reason.splitlines()[0][:160]}")
     comparison = compare_candidates(results, cfg.seed, cfg.ppp_extreme)
     result = RunResult(
         config=cfg, design=design, candidates=results, comparison=comparison, engine=engine.name,
         versions=versions(engine), data_hash=_file_hash(cfg.data) if cfg.data else "",
-        seconds=time.perf_counter() - start, out=out,
+        seconds=time.perf_counter() - start, out=out, fits_sampled=engine.sampled, fits_reused=engine.reused,
     )
     write_summary(result)
     return result
@@ -319,6 +326,7 @@ def candidate_summary(r: CandidateResult, comparison: Comparison) -> dict[str, A
         "hyperparameters": r.hyperparameters,
         "code_sha256": r.code_hash,
         "seconds": r.seconds,
+        "fit_files": r.fit_files,
     }
 
 
@@ -336,6 +344,8 @@ def summary_dict(result: RunResult) -> dict[str, Any]:
                     "max_treedepth": cfg.max_treedepth},
         "versions": result.versions,
         "seconds": result.seconds,
+        "fits": {"sampled": result.fits_sampled, "from_store": result.fits_reused,
+                 "store": cfg.store or result.out / "fits"},
         "ranking": result.comparison.ranking,
         "preferred": result.comparison.preferred,
         "verdict": " ".join(result.comparison.verdict),

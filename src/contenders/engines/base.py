@@ -56,6 +56,7 @@ class Draws:
     sample_seconds: float
     settings: SamplerSettings
     messages: str = ""
+    from_store: bool = False
 
 
 class Engine(abc.ABC):

@@ -33,10 +33,12 @@ import matplotlib
 from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: E402
 from matplotlib.collections import LineCollection  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
-from matplotlib.ticker import MaxNLocator  # noqa: E402
+from matplotlib.ticker import (  # noqa: E402
+    FixedLocator, FuncFormatter, MaxNLocator, NullLocator)
 from markupsafe import Markup, escape  # noqa: E402
 import numpy as np  # noqa: E402
 
+from ..compare import SMALL_DIFFERENCE  # noqa: E402
 from ..trials.statistics import describe  # noqa: E402
 
 # --- palette and style ------------------------------------------------------------
@@ -111,6 +113,25 @@ def plain(text: str, limit: int = 34) -> str:
     return text.replace("$", r"\$")
 
 
+_NUMBER = re.compile(r"-?\d+\.\d{3,}")
+
+
+def _short_numbers(text: str) -> str:
+    """Coordinates to two decimals (a hundredth of a point) and single spaces."""
+    text = _NUMBER.sub(lambda m: f"{float(m.group(0)):.2f}".rstrip("0").rstrip("."), text)
+    return " ".join(text.split())
+
+
+def _compact(svg: str) -> str:
+    """Smaller SVG with the same drawing: short coordinates, no indentation."""
+    svg = re.sub(r'\b(d|points)="([^"]*)"', lambda m: f'{m.group(1)}="{_short_numbers(m.group(2))}"', svg)
+    svg = re.sub(r'\b(x|y|width|height)="(-?\d+\.\d+)"',
+                 lambda m: f'{m.group(1)}="{_short_numbers(m.group(2))}"', svg)
+    used = set(re.findall(r'href="#([^"]+)"', svg)) | set(re.findall(r"url\(#([^)]+)\)", svg))
+    svg = re.sub(r'\sid="([^"]+)"', lambda m: m.group(0) if m.group(1) in used else "", svg)
+    return re.sub(r">\s+<", "><", svg)
+
+
 def _svg(fig: Figure, alt: str) -> str:
     buf = io.StringIO()
     fig.savefig(buf, format="svg", dpi=RASTER_DPI, metadata={"Date": None, "Creator": None})
@@ -130,7 +151,7 @@ def _svg(fig: Figure, alt: str) -> str:
         style = f' style="max-width:{width.group(1)}pt"' if width else ""
         return tag[:-1] + f' class="fig" role="img" aria-label="{escape(alt)}"{style}>'
 
-    return re.sub(r"<svg\b[^>]*>", root, text, count=1)
+    return _compact(re.sub(r"<svg\b[^>]*>", root, text, count=1))
 
 
 def _png(fig: Figure, alt: str) -> str:
@@ -173,52 +194,139 @@ def _styled(fn):
 
 @dataclass
 class Scale:
+    """The x-axis of one quantity, shared by every candidate's panel.
+
+    ``kind`` is linear, log (everything positive, spanning orders of magnitude) or asinh
+    (both signs and orders of magnitude: linear within ``width`` of zero, logarithmic
+    beyond; matplotlib's ``asinh`` scale)."""
+
     lo: float
     hi: float
-    log: bool
+    kind: str = "linear"
+    width: float = 1.0
 
-    def edges(self, n: int = 36) -> np.ndarray:
-        if self.log:
-            return np.geomspace(self.lo, self.hi, n + 1)
-        return np.linspace(self.lo, self.hi, n + 1)
+    def forward(self, x):
+        x = np.asarray(x, dtype=float)
+        if self.kind == "log":
+            return np.log(x)
+        if self.kind == "asinh":
+            return self.width * np.arcsinh(x / self.width)
+        return x
+
+    def inverse(self, t):
+        t = np.asarray(t, dtype=float)
+        if self.kind == "log":
+            return np.exp(t)
+        if self.kind == "asinh":
+            return self.width * np.sinh(t / self.width)
+        return t
+
+    def edges(self, n: int = 32) -> np.ndarray:
+        return self.inverse(np.linspace(self.forward(self.lo), self.forward(self.hi), n + 1))
+
+    @property
+    def note(self) -> str:
+        return {"log": "log scale", "asinh": "compressed scale"}.get(self.kind, "")
 
 
-def shared_scale(arrays: Sequence[np.ndarray], points: Sequence[float] = (),
-                 q: tuple[float, float] = (0.05, 0.95), log_ratio: float = 50.0) -> Scale | None:
+def shared_scale(arrays: Sequence[np.ndarray], observed: float = np.nan, points: Sequence[float] = (),
+                 q: tuple[float, float] = (0.05, 0.95), log_ratio: float = 50.0,
+                 asinh_ratio: float = 10.0) -> Scale | None:
     """One x-range for the same quantity across candidates: from the lowest lower
     quantile to the highest upper quantile of any candidate's draws, widened to take in
-    ``points`` (observed value, bounds). Log scale when everything in view is positive
-    and the range spans more than ``log_ratio``."""
-    lows, highs = [], []
+    the observed value and ``points`` (bounds).
+
+    Log scale when everything in view is positive and the range spans more than
+    ``log_ratio``; asinh scale when the range has both signs and is more than
+    ``asinh_ratio`` times a typical size (the observed value's size, or the narrowest
+    candidate's interquartile range if larger), so that candidates whose draws differ
+    by orders of magnitude all stay readable."""
+    lows, highs, iqrs = [], [], []
     for a in arrays:
         a = np.asarray(a, dtype=float)
         a = a[np.isfinite(a)]
         if a.size:
-            lo, hi = np.quantile(a, q)
+            lo, q25, q75, hi = np.quantile(a, [q[0], 0.25, 0.75, q[1]])
             lows.append(lo)
             highs.append(hi)
-    lows += [p for p in points if np.isfinite(p)]
-    highs += [p for p in points if np.isfinite(p)]
+            iqrs.append(q75 - q25)
+    extra = [p for p in (observed, *points) if np.isfinite(p)]
+    lows += extra
+    highs += extra
     if not lows:
         return None
     lo, hi = float(min(lows)), float(max(highs))
-    log = lo > 0 and hi / lo > log_ratio
     if hi <= lo:
         pad = abs(lo) * 0.1 or 1.0
-        return Scale(lo - pad, hi + pad, False)
-    if log:
-        f = (hi / lo) ** 0.05
-        return Scale(lo / f, hi * f, True)
-    pad = 0.05 * (hi - lo)
-    return Scale(lo - pad, hi + pad, False)
+        return Scale(lo - pad, hi + pad)
+    typical = max(abs(observed) if np.isfinite(observed) else 0.0, min(iqrs) if iqrs else 0.0)
+    if lo > 0 and hi / lo > log_ratio:
+        kind, width = "log", 1.0
+    elif typical > 0 and (hi - lo) > asinh_ratio * typical:
+        kind, width = "asinh", float(typical)
+    else:
+        kind, width = "linear", 1.0
+    scale = Scale(lo, hi, kind, width)
+    t0, t1 = scale.forward(lo), scale.forward(hi)
+    pad = 0.05 * (t1 - t0)
+    lo2, hi2 = scale.inverse(t0 - pad), scale.inverse(t1 + pad)
+    return Scale(float(lo2), float(hi2), kind, width)
 
 
-def _compact_ticks(ax, scale: Scale) -> None:
-    if scale.log:
+def nice_ticks(scale: Scale, most: int = 4, gap: float = 0.27) -> list[float]:
+    """Round tick values for log and compressed axes, at least ``gap`` of the axis
+    apart: zero first, then powers of ten, then 2 and 5 times them."""
+    t0, t1 = float(scale.forward(scale.lo)), float(scale.forward(scale.hi))
+    span = t1 - t0
+    mags = range(int(np.floor(np.log10(max(abs(scale.lo), abs(scale.hi), 1e-300)))) - 12,
+                 int(np.floor(np.log10(max(abs(scale.lo), abs(scale.hi), 1e-300)))) + 2)
+    cands = [0.0] if scale.kind != "log" else []
+    for mult in (1, 2, 5):
+        for e in sorted(mags, reverse=True):
+            for sign in (1, -1):
+                cands.append(sign * mult * 10.0 ** e)
+    chosen: list[float] = []
+    for v in cands:
+        if not scale.lo <= v <= scale.hi or (scale.kind == "log" and v <= 0):
+            continue
+        t = float(scale.forward(v))
+        if min(t - t0, t1 - t) < 0.07 * span:   # a label at the very edge collides with the next panel
+            continue
+        if all(abs(t - float(scale.forward(c))) >= gap * span for c in chosen):
+            chosen.append(v)
+        if len(chosen) >= most:
+            break
+    return sorted(chosen)
+
+
+def _set_scale(ax, scale: Scale) -> None:
+    if scale.kind == "log":
         ax.set_xscale("log")
+    elif scale.kind == "asinh":
+        ax.set_xscale("asinh", linear_width=scale.width)
+    if scale.kind in ("log", "asinh"):
+        ax.xaxis.set_major_locator(FixedLocator(nice_ticks(scale)))
+        ax.xaxis.set_minor_locator(NullLocator())
+        ax.xaxis.set_major_formatter(FuncFormatter(_tick_text))
     else:
         ax.xaxis.set_major_locator(MaxNLocator(nbins=3, min_n_ticks=2))
     ax.set_xlim(scale.lo, scale.hi)
+
+
+_SUP = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
+
+
+def _tick_text(x: float, _pos=None) -> str:
+    """Tick labels of compressed axes: plain numbers, powers of ten when large."""
+    if x == 0:
+        return "0"
+    sign = "−" if x < 0 else ""
+    if 1e-2 <= abs(x) < 1e4:
+        return sign + f"{abs(x):g}"
+    exp = int(np.floor(np.log10(abs(x)) + 1e-9))
+    man = abs(x) / 10 ** exp
+    head = "" if abs(man - 1) < 0.05 else f"{man:.0f}·"
+    return sign + head + "10" + str(exp).translate(_SUP)
 
 
 def _histogram(ax, draws: np.ndarray, scale: Scale, color: str) -> tuple[float, float]:
@@ -233,21 +341,33 @@ def _histogram(ax, draws: np.ndarray, scale: Scale, color: str) -> tuple[float, 
     above = float(np.mean(d > scale.hi))
     edges = scale.edges()
     counts, _ = np.histogram(d[(d >= scale.lo) & (d <= scale.hi)], bins=edges)
-    width = np.diff(np.log(edges) if scale.log else edges)
-    dens = counts / (d.size * width)
-    ax.stairs(dens, edges, fill=True, color=color, alpha=0.45, linewidth=0)
-    ax.stairs(dens, edges, color=color, linewidth=0.7)
-    ax.set_ylim(0, max(float(dens.max()), 1e-300) * 1.22)
+    dens = counts / (d.size * np.diff(scale.forward(edges)))
+    nz = np.flatnonzero(counts)
+    if nz.size:   # draw only from the first to the last occupied bin
+        a, b = nz[0], nz[-1] + 1
+        ax.stairs(dens[a:b], edges[a:b + 1], fill=True, facecolor=_tint(color, 0.45), edgecolor=color,
+                  linewidth=0.7)
+    ax.set_ylim(0, max(float(dens.max()), 1e-300) * 1.25)
     return below, above
+
+
+def _tint(color: str, alpha: float) -> tuple[float, float, float, float]:
+    from matplotlib.colors import to_rgb
+
+    return (*to_rgb(color), alpha)
 
 
 def _beyond(ax, below: float, above: float) -> None:
     """Note the share of draws outside the shown range, at the panel's edges."""
     style = dict(transform=ax.transAxes, fontsize=5.8, color="#555555", va="top")
-    if below >= 0.005:
-        ax.text(0.01, 0.99, f"← {100 * below:.0f} %", ha="left", **style)
-    if above >= 0.005:
-        ax.text(0.99, 0.99, f"{100 * above:.0f} % →", ha="right", **style)
+
+    def pct(x: float) -> str:
+        return f"{100 * x:.0f} %" if x >= 0.01 else "<1 %"
+
+    if below > 0:
+        ax.text(0.01, 0.99, f"← {pct(below)}", ha="left", **style)
+    if above > 0:
+        ax.text(0.99, 0.99, f"{pct(above)} →", ha="right", **style)
 
 
 def _flag_frame(ax) -> None:
@@ -257,8 +377,8 @@ def _flag_frame(ax) -> None:
         ax.spines[side].set_linewidth(1.6)
 
 
-def _row_label(ax, text: str) -> None:
-    ax.annotate(plain(text, 24), xy=(0, 0.5), xycoords="axes fraction", xytext=(-6, 0),
+def _row_label(ax, text: str, offset: float = 6) -> None:
+    ax.annotate(_wrap(text, 20), xy=(0, 0.5), xycoords="axes fraction", xytext=(-offset, 0),
                 textcoords="offset points", ha="right", va="center", fontsize=7.5, color=INK)
 
 
@@ -286,8 +406,8 @@ def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
     ypos = np.arange(n)[::-1]
     hi = float(np.nanmax(d + 2 * se)) if n else 1.0
     right = max(hi * 1.08, 6.0)
-    ax.axvspan(0, 4, color=BAND, zorder=0, linewidth=0)
-    ax.text(2, ypos[0] + 0.62, "within 4: too close to tell apart", ha="center", va="bottom",
+    ax.axvspan(0, SMALL_DIFFERENCE, color=BAND, zorder=0, linewidth=0)
+    ax.text(SMALL_DIFFERENCE / 2, ypos[0] + 0.62, f"within {SMALL_DIFFERENCE:g}: too close to tell apart", ha="center", va="bottom",
             fontsize=6.3, color="#555555", clip_on=False)
     ax.axvline(0, color=MUTED, linewidth=0.7)
     for y, di, s, r in zip(ypos, d, se, rows):
@@ -308,6 +428,87 @@ def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
 
 # --- 2. prior predictive trial ----------------------------------------------------------
 
+def _wrap(text: str, width: int = 20, lines: int = 2) -> str:
+    import textwrap
+
+    parts = textwrap.wrap(str(text), width) or [""]
+    if len(parts) > lines:
+        parts = parts[:lines]
+        parts[-1] = parts[-1][: width - 1] + "…"
+    return plain("\n".join(parts), 200)
+
+
+def _statistic_grid(cands, stats, observed, draws_of, color, annotate, flag_of=None):
+    """Rows: candidates; columns: statistics on one x-range per column."""
+    nrow, ncol = len(cands), len(stats)
+    width = min(1.7 + 1.1 * ncol, 12.0)
+    height = 0.62 + 0.8 * nrow
+    fig = _new(width, height)
+    fig.subplots_adjust(left=1.35 / width, right=0.99, top=1 - 0.42 / height, bottom=0.36 / height,
+                        wspace=0.16, hspace=0.5)
+    axes = fig.subplots(nrow, ncol, squeeze=False)
+    for j, stat in enumerate(stats):
+        extra = annotate.points(stat) if hasattr(annotate, "points") else ()
+        scale = shared_scale([draws_of(c, stat) for _, c in cands], observed.get(stat, np.nan), extra,
+                             q=annotate.q)
+        for i, (label, c) in enumerate(cands):
+            ax = axes[i, j]
+            ax.set_yticks([])
+            ax.spines["left"].set_visible(False)
+            if scale is None:
+                ax.set_xticks([])
+                continue
+            below, above = _histogram(ax, draws_of(c, stat), scale, color)
+            _set_scale(ax, scale)
+            annotate(ax, c, stat, scale)
+            obs = observed.get(stat, np.nan)
+            if np.isfinite(obs):
+                ax.axvline(obs, color=INK, linewidth=2.0)
+            _beyond(ax, below, above)
+            if flag_of is not None and flag_of(c, stat):
+                _flag_frame(ax)
+            if i < nrow - 1:
+                ax.tick_params(axis="x", labelbottom=False)
+            else:
+                ax.tick_params(axis="x", pad=10)
+        title = describe(stat)
+        axes[0, j].set_title(_wrap(title, 18, 1) + ("\n" + scale.note if scale is not None and scale.note else "\n"),
+                             fontsize=7)
+    for i, (label, _) in enumerate(cands):
+        axes[i, 0].annotate(_wrap(label, 20), xy=(0, 0.5), xycoords="axes fraction", xytext=(-6, 0),
+                            textcoords="offset points", ha="right", va="center", fontsize=7.3, color=INK)
+    return fig
+
+
+class _PriorMarks:
+    """Bounds and the share inside them, for the prior grid."""
+
+    q = (0.05, 0.95)
+
+    def __init__(self, bounds):
+        self.bounds = bounds
+
+    def points(self, stat):
+        return tuple(self.bounds.get(stat, ()))
+
+    def __call__(self, ax, p, stat, scale):
+        b = p.bounds.get(stat)
+        if not b:
+            return
+        lo, hi = b
+        if np.isfinite(lo) and lo > scale.lo:
+            ax.axvspan(scale.lo, lo, facecolor="none", edgecolor=LIMIT, hatch="////", linewidth=0, alpha=0.35)
+            ax.axvline(lo, color=LIMIT, linestyle=(0, (3, 2)), linewidth=1.1)
+        if np.isfinite(hi) and hi < scale.hi:
+            ax.axvspan(hi, scale.hi, facecolor="none", edgecolor=LIMIT, hatch="////", linewidth=0, alpha=0.35)
+            ax.axvline(hi, color=LIMIT, linestyle=(0, (3, 2)), linewidth=1.1)
+        inside = p.inside_each.get(stat)
+        if inside is not None:
+            ax.text(0.5, -0.03, f"{100 * inside:.0f} % inside", transform=ax.transAxes, ha="center", va="top",
+                    fontsize=5.8, color=LIMIT, fontweight="bold",
+                    bbox=dict(facecolor="white", edgecolor="none", pad=0.4))
+
+
 @_styled
 def prior_grid(cands: Sequence[tuple[str, object]], statistics: Sequence[str],
                observed: dict[str, float]) -> Rendered | None:
@@ -315,54 +516,11 @@ def prior_grid(cands: Sequence[tuple[str, object]], statistics: Sequence[str],
     statistic (fill), the observed value (thick ink line) and the plausibility bounds
     (dashed vermillion, the implausible side hatched). Each column has one x-range."""
     cands = [(label, p) for label, p in cands if p is not None]
-    if not cands:
+    if not cands or not statistics:
         return None
-    stats = list(statistics)
-    nrow, ncol = len(cands), len(stats)
-    width = min(1.6 + 1.12 * ncol, 12.0)
-    height = 0.55 + 0.78 * nrow
-    fig = _new(width, height)
-    fig.subplots_adjust(left=1.45 / width, right=0.99, top=1 - 0.32 / height, bottom=0.3 / height,
-                        wspace=0.14, hspace=0.32)
-    axes = fig.subplots(nrow, ncol, squeeze=False)
-    for j, stat in enumerate(stats):
-        bounds = cands[0][1].bounds.get(stat)
-        pts = [observed.get(stat, np.nan)] + (list(bounds) if bounds else [])
-        scale = shared_scale([p.stat_draws.get(stat, np.zeros(0)) for _, p in cands], pts)
-        for i, (label, p) in enumerate(cands):
-            ax = axes[i, j]
-            ax.set_yticks([])
-            ax.spines["left"].set_visible(False)
-            if scale is None:
-                ax.set_xticks([])
-                continue
-            below, above = _histogram(ax, p.stat_draws.get(stat, np.zeros(0)), scale, PRIOR)
-            _compact_ticks(ax, scale)
-            if bounds:
-                lo, hi = bounds
-                if np.isfinite(lo) and lo > scale.lo:
-                    ax.axvspan(scale.lo, lo, facecolor="none", edgecolor=LIMIT, hatch="////",
-                               linewidth=0, alpha=0.35)
-                    ax.axvline(lo, color=LIMIT, linestyle=(0, (3, 2)), linewidth=1.1)
-                if np.isfinite(hi) and hi < scale.hi:
-                    ax.axvspan(hi, scale.hi, facecolor="none", edgecolor=LIMIT, hatch="////",
-                               linewidth=0, alpha=0.35)
-                    ax.axvline(hi, color=LIMIT, linestyle=(0, (3, 2)), linewidth=1.1)
-                inside = p.inside_each.get(stat)
-                if inside is not None:
-                    ax.text(0.5, -0.02, f"{100 * inside:.0f} % inside", transform=ax.transAxes,
-                            ha="center", va="top", fontsize=5.8, color=LIMIT,
-                            bbox=dict(facecolor="white", edgecolor="none", pad=0.6))
-            obs = observed.get(stat, np.nan)
-            if np.isfinite(obs):
-                ax.axvline(obs, color=INK, linewidth=2.0)
-            _beyond(ax, below, above)
-            if i < nrow - 1:
-                ax.tick_params(axis="x", labelbottom=False)
-        title = describe(stat) + (" (log)" if scale is not None and scale.log else "")
-        axes[0, j].set_title(plain(title, 22), fontsize=7.2)
-    for i, (label, p) in enumerate(cands):
-        _row_label(axes[i, 0], label)
+    marks = _PriorMarks(cands[0][1].bounds)
+    fig = _statistic_grid(cands, list(statistics), observed,
+                          lambda p, stat: p.stat_draws.get(stat, np.zeros(0)), PRIOR, marks)
     return render(fig, "prior distribution of each test statistic per candidate, with the observed value and bounds")
 
 
@@ -403,70 +561,120 @@ def pareto_k_grid(cands: Sequence[tuple[str, object]]) -> Rendered | None:
         ax.axhline(o.k_threshold, color=LIMIT, linestyle=(0, (4, 2)), linewidth=1.0)
         ax.set_ylim(ymin, ymax)
         ax.set_xlim(0, n_obs + 1)
-        ax.yaxis.set_major_locator(MaxNLocator(nbins=3))
+        ax.set_yticks([v for v in (0.0, 0.5, 1.0) if ymin <= v <= ymax])
         if not np.isfinite(k).any():
             ax.text(0.5, 0.5, "no Pareto k (elpd from held-out fits)", transform=ax.transAxes,
                     ha="center", va="center", fontsize=6.5, color=MUTED)
         note = f"threshold {o.k_threshold:.2f}; {int(high.sum())} above; {len(o.refitted)} refitted"
         ax.text(0.995, 0.97, note, transform=ax.transAxes, ha="right", va="top", fontsize=6,
                 color="#444444", bbox=dict(facecolor=PANEL, edgecolor="none", pad=0.5))
-        _row_label(ax, label)
+        _row_label(ax, label, offset=24)
     axes[-1].set_xlabel("observation (row of the data after dropping rows without an outcome)")
     return render(fig, "Pareto k of every observation per candidate, with the threshold")
 
 
 # --- 4. observed against replicated distributions ---------------------------------------------
 
-def _quantile_lines(y_rep: np.ndarray, m: int = 160) -> np.ndarray:
-    """Each replicated dataset's empirical distribution as m quantile points (x, p)."""
-    probs = (np.arange(m) + 0.5) / m
-    q = np.quantile(np.asarray(y_rep, dtype=float), probs, axis=1).T   # (draws, m)
-    return np.stack([q, np.broadcast_to(probs, q.shape)], axis=-1)
+def silverman_bandwidth(y: np.ndarray) -> float:
+    """Rule-of-thumb kernel bandwidth 0.9 min(SD, IQR / 1.34) n^(-1/5) (Silverman 1986,
+    "Density Estimation for Statistics and Data Analysis", eq. 3.31)."""
+    y = np.asarray(y, dtype=float)
+    y = y[np.isfinite(y)]
+    sd = float(np.std(y, ddof=1)) if y.size > 1 else 0.0
+    q75, q25 = np.percentile(y, [75, 25]) if y.size else (0.0, 0.0)
+    spread = min(sd, (q75 - q25) / 1.34) or sd or 1.0
+    return 0.9 * spread * max(y.size, 1) ** -0.2
+
+
+def binned_density(rows: np.ndarray, lo: float, hi: float, bandwidth: float, m: int = 240) -> tuple[np.ndarray, np.ndarray]:
+    """Gaussian kernel density of each row on an m-point grid, by binning and smoothing
+    (values beyond the grid are left out of the counts but not of the total)."""
+    from scipy.ndimage import gaussian_filter1d
+
+    rows = np.atleast_2d(np.asarray(rows, dtype=float))
+    edges = np.linspace(lo, hi, m + 1)
+    step = edges[1] - edges[0]
+    counts = np.stack([np.histogram(r[np.isfinite(r)], bins=edges)[0] for r in rows]).astype(float)
+    sigma = bandwidth / step
+    if sigma >= 0.3:
+        counts = gaussian_filter1d(counts, sigma, axis=1, mode="constant", truncate=4.0)
+    total = np.maximum(np.isfinite(rows).sum(axis=1, keepdims=True), 1)
+    return (edges[:-1] + edges[1:]) / 2, counts / (total * step)
 
 
 @_styled
-def replicate_ecdf_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]], ncols: int = 3) -> Rendered | None:
-    """One panel per candidate, same axes: the empirical distribution function of each
-    replicated dataset (thin, light) and of the observed data (thick, solid ink)."""
+def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]], ncols: int = 3) -> Rendered | None:
+    """One panel per candidate, same axes: the density of each replicated dataset (thin,
+    light lines) and of the observed data (thick, solid ink), all smoothed with the same
+    kernel bandwidth (Silverman's rule on the observed data)."""
     cands = [(label, r) for label, r in cands if r is not None and np.size(r)]
     if not cands:
         return None
     y = np.asarray(y, dtype=float)
-    scale = shared_scale([r.reshape(-1) for _, r in cands], [float(y.min()), float(y.max())],
-                         q=(0.005, 0.995), log_ratio=np.inf)
+    scale = shared_scale([r.reshape(-1) for _, r in cands], points=[float(y.min()), float(y.max())],
+                         q=(0.005, 0.995), log_ratio=np.inf, asinh_ratio=np.inf)
+    bw = silverman_bandwidth(y)
+    grid, obs = binned_density(y, scale.lo, scale.hi, bw)
+    obs = obs[0]
+    reps = [binned_density(r, scale.lo, scale.hi, bw)[1] for _, r in cands]
+    top = max(float(obs.max()), max(float(np.quantile(d.max(axis=1), 0.95)) for d in reps)) * 1.1
     nrow, ncol = _grid_shape(len(cands), ncols)
-    width, height = 7.6, 0.45 + 1.75 * nrow
+    width, height = 7.6, 0.5 + 1.6 * nrow
     fig = _new(width, height)
-    fig.subplots_adjust(left=0.07, right=0.99, top=1 - 0.3 / height, bottom=0.5 / height,
-                        wspace=0.12, hspace=0.42)
+    fig.subplots_adjust(left=0.04, right=0.99, top=1 - 0.3 / height, bottom=0.52 / height,
+                        wspace=0.1, hspace=0.45)
     axes = fig.subplots(nrow, ncol, squeeze=False)
-    ys = np.sort(y)
-    py = np.arange(1, ys.size + 1) / ys.size
     for k, ax in enumerate(axes.flat):
         if k >= len(cands):
             ax.set_visible(False)
             continue
         label, r = cands[k]
-        segs = _quantile_lines(r)
-        ax.add_collection(LineCollection(segs, colors=REPLICATE, linewidths=0.45, alpha=0.45,
+        segs = np.stack([np.broadcast_to(grid, reps[k].shape), reps[k]], axis=-1)
+        ax.add_collection(LineCollection(segs, colors=REPLICATE, linewidths=0.5, alpha=0.5,
                                          rasterized=True, label=f"replicated datasets ({r.shape[0]})"))
-        ax.step(np.r_[scale.lo, ys], np.r_[0, py], where="post", color=INK, linewidth=2.0,
-                label="observed data")
+        ax.plot(grid, obs, color=INK, linewidth=2.0, label="observed data")
         ax.set_xlim(scale.lo, scale.hi)
-        ax.set_ylim(0, 1.02)
+        ax.set_ylim(0, top)
         ax.xaxis.set_major_locator(MaxNLocator(nbins=4))
-        ax.set_yticks([0, 0.5, 1])
-        if k % ncol:
-            ax.tick_params(axis="y", labelleft=False)
-        ax.set_title(plain(label, 30))
+        ax.set_yticks([])
+        ax.spines["left"].set_visible(False)
+        ax.set_title(plain(label, 34))
         if k == 0:
-            ax.legend(loc="lower right", fontsize=6.2, handlelength=1.8)
-    fig.supxlabel("outcome", fontsize=7.5, y=0.12 / height)
-    fig.text(0.012, 0.5, "share of values at or below", rotation=90, va="center", fontsize=7.5)
-    return render(fig, "empirical distribution functions of replicated datasets and of the observed data per candidate")
+            ax.legend(loc="upper right", fontsize=6.2, handlelength=1.8)
+    fig.supxlabel("outcome", fontsize=7.5, y=0.1 / height)
+    return render(fig, "density of replicated datasets and of the observed data per candidate")
 
 
 # --- 5. test statistics ----------------------------------------------------------------
+
+def _p_text(p: float) -> str:
+    from .format import pvalue
+
+    return "p " + pvalue(p)
+
+
+class _PosteriorMarks:
+    """The posterior predictive p-value under each panel."""
+
+    q = (0.005, 0.995)
+
+    def __init__(self, extreme: float):
+        self.extreme = extreme
+
+    def flagged(self, c, stat) -> bool:
+        p = self.p(c, stat)
+        return bool(np.isfinite(p) and (p < self.extreme or p > 1 - self.extreme))
+
+    @staticmethod
+    def p(c, stat) -> float:
+        return next((r["p_value"] for r in c.rows if r["statistic"] == stat), np.nan)
+
+    def __call__(self, ax, c, stat, scale):
+        flagged = self.flagged(c, stat)
+        ax.text(0.5, -0.03, ("◆ " if flagged else "") + _p_text(self.p(c, stat)), transform=ax.transAxes,
+                ha="center", va="top", fontsize=6, fontweight="bold" if flagged else "normal", color=INK,
+                bbox=dict(facecolor="white", edgecolor="none", pad=0.4))
+
 
 @_styled
 def statistic_grid(cands: Sequence[tuple[str, object]], extreme: float) -> Rendered | None:
@@ -478,44 +686,9 @@ def statistic_grid(cands: Sequence[tuple[str, object]], extreme: float) -> Rende
         return None
     stats = [row["statistic"] for row in cands[0][1].rows]
     observed = {row["statistic"]: row["observed"] for row in cands[0][1].rows}
-    nrow, ncol = len(cands), len(stats)
-    width = min(1.6 + 1.12 * ncol, 12.0)
-    height = 0.5 + 0.74 * nrow
-    fig = _new(width, height)
-    fig.subplots_adjust(left=1.45 / width, right=0.99, top=1 - 0.32 / height, bottom=0.3 / height,
-                        wspace=0.14, hspace=0.32)
-    axes = fig.subplots(nrow, ncol, squeeze=False)
-    for j, stat in enumerate(stats):
-        scale = shared_scale([c.stat_draws.get(stat, np.zeros(0)) for _, c in cands],
-                             [observed[stat]], q=(0.005, 0.995))
-        for i, (label, c) in enumerate(cands):
-            ax = axes[i, j]
-            ax.set_yticks([])
-            ax.spines["left"].set_visible(False)
-            if scale is None:
-                continue
-            below, above = _histogram(ax, c.stat_draws.get(stat, np.zeros(0)), scale, POSTERIOR)
-            _compact_ticks(ax, scale)
-            if np.isfinite(observed[stat]):
-                ax.axvline(observed[stat], color=INK, linewidth=2.0)
-            _beyond(ax, below, above)
-            row = next(r for r in c.rows if r["statistic"] == stat)
-            p = row["p_value"]
-            flagged = np.isfinite(p) and (p < extreme or p > 1 - extreme)
-            text = ("◆ " if flagged else "") + ("p —" if not np.isfinite(p) else
-                                                 "p < 0.001" if p < 0.001 else
-                                                 "p > 0.999" if p > 0.999 else f"p {p:.2f}")
-            ax.text(0.5, -0.02, text, transform=ax.transAxes, ha="center", va="top", fontsize=6,
-                    fontweight="bold" if flagged else "normal", color=INK,
-                    bbox=dict(facecolor="white", edgecolor="none", pad=0.6))
-            if flagged:
-                _flag_frame(ax)
-            if i < nrow - 1:
-                ax.tick_params(axis="x", labelbottom=False)
-        title = describe(stat) + (" (log)" if scale is not None and scale.log else "")
-        axes[0, j].set_title(plain(title, 22), fontsize=7.2)
-    for i, (label, _) in enumerate(cands):
-        _row_label(axes[i, 0], label)
+    marks = _PosteriorMarks(extreme)
+    fig = _statistic_grid(cands, stats, observed, lambda c, stat: c.stat_draws.get(stat, np.zeros(0)),
+                          POSTERIOR, marks, flag_of=marks.flagged)
     return render(fig, "distribution of each test statistic over replicated datasets per candidate, with the observed value")
 
 
@@ -538,9 +711,12 @@ def loo_pit_grid(cands: Sequence[tuple[str, object]], alpha: float = 0.01, ncols
     for label, c in cands:
         pit = np.sort(np.asarray(c.loo_pit, dtype=float)[np.isfinite(c.loo_pit)])
         n = pit.size
-        # the ECDF jumps from (i - 1) / n to i / n at the i-th smallest value
-        u = np.r_[0.0, np.repeat(pit, 2), 1.0]
-        f = np.r_[0.0, np.column_stack([np.arange(n) / n, np.arange(1, n + 1) / n]).ravel(), 1.0]
+        if n <= 400:   # exact steps: the ECDF jumps from (i - 1) / n to i / n at the i-th value
+            u = np.r_[0.0, np.repeat(pit, 2), 1.0]
+            f = np.r_[0.0, np.column_stack([np.arange(n) / n, np.arange(1, n + 1) / n]).ravel(), 1.0]
+        else:          # on a fine grid: the steps are narrower than a line's width
+            u = np.linspace(0.0, 1.0, 801)
+            f = np.searchsorted(pit, u, side="right") / n
         curves.append((label, c, u, f - u, KS_95 / np.sqrt(n)))
     lim = max(max(float(np.abs(d).max()), b * 1.25) for *_, d, b in curves) * 1.12
     nrow, ncol = _grid_shape(len(cands), ncols)
@@ -566,7 +742,7 @@ def loo_pit_grid(cands: Sequence[tuple[str, object]], alpha: float = 0.01, ncols
         p = c.loo_pit_test["p_value"]
         flagged = np.isfinite(p) and p < alpha
         ax.set_title(plain(label, 30))
-        ax.text(0.98, 0.04, ("◆ " if flagged else "") + f"KS p {'< 0.001' if p < 0.001 else f'{p:.3f}'}",
+        ax.text(0.98, 0.04, ("◆ " if flagged else "") + "KS " + _p_text(p),
                 transform=ax.transAxes, ha="right", va="bottom", fontsize=6.3,
                 fontweight="bold" if flagged else "normal")
         if flagged:
@@ -586,6 +762,7 @@ class Lineup:
     answer: int                 # 1-based position of the observed data
     replicate_rows: list[int]   # rows of y_rep_sample used, in panel order (observed skipped)
     edges: np.ndarray           # the bins shared by every panel
+    counts: list[np.ndarray]    # the histogram of each panel, in reading order
 
 
 def lineup_layout(n_replicates: int, seed: int, n_panels: int = 20) -> tuple[int, list[int]]:
@@ -622,13 +799,11 @@ def lineup(y: np.ndarray, y_rep: np.ndarray, seed: int, n_bins: int = 24) -> Lin
         fig = _new(1.45, 0.95)
         fig.subplots_adjust(left=0.03, right=0.97, top=0.97, bottom=0.06)
         ax = fig.add_subplot()
-        ax.stairs(c, edges, fill=True, color=POSTERIOR, alpha=0.5, linewidth=0)
-        ax.stairs(c, edges, color=POSTERIOR, linewidth=0.8)
+        ax.stairs(c, edges, fill=True, facecolor=_tint(POSTERIOR, 0.5), edgecolor=POSTERIOR, linewidth=0.8)
         ax.set_xlim(lo, hi)
         ax.set_ylim(0, top)
         ax.set_xticks([])
         ax.set_yticks([])
         ax.spines["left"].set_visible(False)
         panels.append(render(fig, f"panel {k + 1}"))
-    replicate_rows = rows
-    return Lineup(panels, position + 1, replicate_rows, edges)
+    return Lineup(panels, position + 1, rows, edges, counts)

@@ -26,6 +26,11 @@ NEXT_STEP = {
 }
 
 
+#: Posterior predictive p-values outside this range are marked as worth a look (◇);
+#: the range of the checks' own ``extreme`` list (trials/checks.py).
+MILD = (0.025, 0.975)
+
+
 @dataclass
 class Cell:
     text: str
@@ -61,7 +66,7 @@ def n(text: str, cls: str = "") -> Cell:
     return Cell(text, ("num " + cls).strip())
 
 
-def p_cell(p: float, strong: float, mild: tuple[float, float] = (0.025, 0.975)) -> Cell:
+def p_cell(p: float, strong: float, mild: tuple[float, float] = MILD) -> Cell:
     """A posterior predictive p-value, marked ◆ beyond ``strong`` (or 1 - strong) and
     ◇ outside the ``mild`` range."""
     text = fmt.pvalue(p)

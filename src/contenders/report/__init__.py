@@ -1,0 +1,715 @@
+"""The comparison report: one self-contained HTML page and a CSV file of every table.
+
+``write_report(result, out_dir)`` reads a :class:`contenders.runner.RunResult` (it never
+changes it) and writes ``report.html`` with figures and styles inline, plus the CSV
+files, each to a temporary file in ``out_dir`` renamed into place, so an interrupted
+run never leaves half a file. Every number on the page is formatted in Python
+(:mod:`.format`); the template (``templates/report.html.j2``) holds layout only and
+escapes all text, so column names, labels, file names and Stan code are shown as text.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import os
+import shlex
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+from jinja2 import Environment, FileSystemLoader, StrictUndefined
+
+from ..compare import SMALL_DIFFERENCE
+from ..trials.statistics import describe
+from . import figures
+from . import format as fmt
+from .tables import MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, n, p_cell, pit_reading
+
+__all__ = ["write_report", "build_context", "CSV_FILES"]
+
+TEMPLATES = Path(__file__).parent / "templates"
+
+#: At most this many leading candidates get a lineup.
+LINEUPS = 3
+
+#: LOO-PIT uniformity p-values below this are flagged (the verdict's rule in compare.py).
+PIT_ALPHA = 0.01
+
+SECTIONS = [
+    ("verdict", "Verdict"),
+    ("cautions", "Cautions"),
+    ("ranking", "Ranking"),
+    ("prior", "Prior predictive trial"),
+    ("health", "Sampler health"),
+    ("out-of-sample", "Out-of-sample comparison"),
+    ("checks", "Predictive checks"),
+    ("candidates", "Candidates"),
+    ("reproducibility", "Reproducibility"),
+]
+
+CSV_FILES = (
+    "ranking.csv", "verdict_certainty.csv", "prior_plausibility.csv", "prior_trial.csv",
+    "sampler_health.csv", "out_of_sample.csv", "predictive_checks.csv", "grouped_checks.csv",
+    "loo_pit.csv", "hyperparameters.csv", "parameters.csv", "run_settings.csv", "candidate_files.csv",
+)
+
+
+# --- writing -----------------------------------------------------------------------------
+
+def _umask() -> int:
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def _write_atomic(path: Path, text: str) -> None:
+    """Write text to a temporary file in the same folder, then rename it into place."""
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+        os.chmod(tmp, 0o666 & ~_umask())   # mkstemp makes the file private; give it the usual mode
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def _csv_text(table: Table) -> str:
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\n")
+    writer.writerow(table.csv_headers)
+    for row in table.csv_rows:
+        writer.writerow([fmt.raw(v) for v in row])
+    return buf.getvalue()
+
+
+def _environment() -> Environment:
+    return Environment(loader=FileSystemLoader(str(TEMPLATES)), autoescape=True,
+                       undefined=StrictUndefined, trim_blocks=True, lstrip_blocks=True)
+
+
+def write_report(result, out_dir: str | Path, command_line: str | Sequence[str] | None = None) -> Path:
+    """Write ``report.html`` and the CSV tables into ``out_dir``; return the page's path.
+
+    ``command_line`` (text or a list of arguments) is shown under Reproducibility when
+    given.
+    """
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    ctx = build_context(result, command_line)
+    for table in ctx["csv_tables"]:
+        _write_atomic(out / table.csv_name, _csv_text(table))
+    if not result.config.conditions and (out / "grouped_checks.csv").exists():
+        (out / "grouped_checks.csv").unlink()   # left by an earlier run with conditions
+    html = _environment().get_template("report.html.j2").render(**ctx)
+    path = out / "report.html"
+    _write_atomic(path, html)
+    return path
+
+
+# --- the page's content -----------------------------------------------------------------
+
+@dataclass
+class CandidateView:
+    """What the page shows of one candidate, formatted."""
+
+    id: str
+    label: str
+    about: str
+    support: str
+    status: str
+    status_text: str
+    reason: str
+    rank: str
+    code: str
+    code_hash: str
+    hyperparameters: Table
+    prior: Table | None
+    parameters: Table | None
+    checks: Table | None
+    advice: list[str] = field(default_factory=list)
+
+
+def _name(r) -> str:
+    return f"{r.label} ({r.id})" if r.label != r.id else r.id
+
+
+def _rows_by_id(result) -> dict[str, dict]:
+    return {row["id"]: row for row in result.comparison.rows}
+
+
+def _ordered(result) -> list:
+    """Ranked candidates first (by rank), then unhealthy, failed, skipped (by id)."""
+    rows = _rows_by_id(result)
+    order = {"unhealthy": 1, "failed": 2, "skipped": 3, "ok": 4}
+    ranked = sorted((r for r in result.candidates if r.id in rows), key=lambda r: rows[r.id]["rank"])
+    rest = sorted((r for r in result.candidates if r.id not in rows), key=lambda r: (order[r.status], r.id))
+    return ranked + rest
+
+
+def _with_se(value: float, se: float) -> str:
+    return f"{fmt.fixed(value, 1)} ({fmt.fixed(se, 1)})"
+
+
+def _behind(row: dict) -> str:
+    return "best" if row["rank"] == 1 else _with_se(row["elpd_diff"], row["elpd_diff_se"])
+
+
+def _ranking(result, cands) -> Table:
+    rows = _rows_by_id(result)
+    extreme = result.config.ppp_extreme
+    t = Table("ranking.csv",
+              ["Rank", "Candidate", "Status", "elpd (SE)", "Behind the best (SE of difference)",
+               "Stacking weight", "Pseudo-BMA+ weight", "Notes and what to do next"],
+              csv_headers=["rank", "id", "label", "status", "elpd", "elpd_se", "elpd_behind_best",
+                           "elpd_behind_best_se", "stacking_weight", "pseudo_bma_weight", "p_loo",
+                           "elpd_mcse", "elpd_method", "tied_with", "misses", "reason"],
+              numeric=[True, False, False, True, True, True, True, False])
+    for r in cands:
+        row = rows.get(r.id)
+        notes = []
+        if row:
+            if row["tied_with"]:
+                notes.append("tied within Monte Carlo error with " + ", ".join(row["tied_with"])
+                             + "; the order among them would change with the seed")
+            missed = misfits(r.checks, extreme, PIT_ALPHA)
+            if missed:
+                notes.append("misses " + ", ".join(missed)
+                             + ": treat its predictions of these with suspicion (see Predictive checks)")
+            if r.prior is not None and r.prior.flagged:
+                notes.append(r.prior.message)
+            if not notes:
+                notes.append("no check flagged")
+        else:
+            notes.append(r.reason.splitlines()[0] if r.reason else "")
+            notes.append(NEXT_STEP.get(r.status, ""))
+        misses = misfits(r.checks, extreme, PIT_ALPHA)
+        cls = {"ok": "ranked", "unhealthy": "unhealthy", "failed": "failed", "skipped": "skipped"}[r.status]
+        t.add([
+            n(str(row["rank"]) if row else fmt.MISSING),
+            Cell(r.label, "name", r.id),
+            Cell(STATUS_TEXT[r.status], "status " + cls),
+            n(_with_se(row["elpd"], row["se"]) if row else fmt.MISSING),
+            n(_behind(row) if row else fmt.MISSING),
+            n(fmt.fixed(row["stacking_weight"], 2) if row else fmt.MISSING),
+            n(fmt.fixed(row["pseudo_bma_weight"], 2) if row else fmt.MISSING),
+            Cell(" ".join(x.rstrip(".") + "." for x in notes if x), "wrap"),
+        ], [
+            row["rank"] if row else None, r.id, r.label, r.status, row["elpd"] if row else None,
+            row["se"] if row else None, row["elpd_diff"] if row else None,
+            row["elpd_diff_se"] if row else None, row["stacking_weight"] if row else None,
+            row["pseudo_bma_weight"] if row else None, row["p"] if row else None,
+            row["mcse"] if row else None, row["method"] if row else None,
+            " ".join(row["tied_with"]) if row else None, "; ".join(misses), r.reason,
+        ], cls)
+    return t
+
+
+def _certainty(result) -> Table:
+    rows = _rows_by_id(result)
+    t = Table("verdict_certainty.csv",
+              ["Candidate", "elpd (SE)", "Behind the best (SE of difference)", "Behind by more than 2 SE?",
+               "Stacking weight", "Pseudo-BMA+ weight"],
+              csv_headers=["id", "label", "elpd", "elpd_se", "elpd_behind_best", "elpd_behind_best_se",
+                           "beyond_two_se", "stacking_weight", "pseudo_bma_weight"],
+              numeric=[False, True, True, False, True, True])
+    for cid in result.comparison.preferred:
+        row = rows[cid]
+        beyond = row["rank"] > 1 and row["elpd_diff"] > 2 * row["elpd_diff_se"]
+        t.add([
+            Cell(row["label"], "name", cid),
+            n(_with_se(row["elpd"], row["se"])),
+            n(_behind(row)),
+            Cell(fmt.MISSING if row["rank"] == 1 else ("yes" if beyond else "no: the order is uncertain")),
+            n(fmt.fixed(row["stacking_weight"], 2)),
+            n(fmt.fixed(row["pseudo_bma_weight"], 2)),
+        ], [cid, row["label"], row["elpd"], row["se"], row["elpd_diff"], row["elpd_diff_se"],
+            bool(beyond), row["stacking_weight"], row["pseudo_bma_weight"]])
+    return t
+
+
+def _prior_summary(result, cands) -> Table:
+    t = Table("prior_plausibility.csv",
+              ["Candidate", "Prior datasets", "Plausible (inside every bound)", "Datasets with non-finite values",
+               "Reading and what to do next"],
+              csv_headers=["id", "label", "prior_draws", "plausible_share", "nonfinite_datasets", "flagged",
+                           "message"],
+              numeric=[False, True, True, True, False])
+    for r in cands:
+        p = r.prior
+        if p is None:
+            t.add([Cell(r.label, "name", r.id), n(fmt.MISSING), n(fmt.MISSING), n(fmt.MISSING),
+                   Cell("not run: " + (r.reason.splitlines()[0] if r.reason else r.status), "muted wrap")],
+                  [r.id, r.label, None, None, None, None, "not run"], "muted")
+            continue
+        msg = p.message[:1].upper() + p.message[1:] + "."
+        if p.n_nonfinite:
+            msg += (f" {p.n_nonfinite} prior datasets hold infinite or undefined values: the priors allow "
+                    "extreme parameter values; tighten them.")
+        t.add([Cell(r.label, "name", r.id), n(fmt.integer(p.n_draws)),
+               n(("◆ " if p.flagged else "") + (fmt.share(p.plausible_share)
+                                                 if p.plausible_share is not None else "no bounds set"),
+                 "flag" if p.flagged else ""),
+               n(fmt.integer(p.n_nonfinite), "flag" if p.n_nonfinite else ""),
+               Cell(msg, "wrap")],
+              [r.id, r.label, p.n_draws, p.plausible_share, p.n_nonfinite, p.flagged, p.message],
+              "flagged" if p.flagged else "")
+    return t
+
+
+def _prior_long(result, cands) -> Table:
+    t = Table("prior_trial.csv", ["Statistic", "Observed", "Prior 5 %", "Prior median", "Prior 95 %",
+                                  "Prior draws below observed", "Bound", "Draws inside bound"],
+              csv_headers=["id", "statistic", "description", "observed", "prior_mean", "prior_q05",
+                           "prior_q50", "prior_q95", "share_below_observed", "bound_low", "bound_high",
+                           "share_inside_bound", "missing_draws"])
+    for r in cands:
+        if r.prior is None:
+            continue
+        for row in r.prior.rows:
+            b = r.prior.bounds.get(row["statistic"])
+            t.csv_rows.append([r.id, row["statistic"], describe(row["statistic"]), row["observed"],
+                               row["mean"], row["q05"], row["q50"], row["q95"], row["share_below_observed"],
+                               b[0] if b else None, b[1] if b else None,
+                               r.prior.inside_each.get(row["statistic"]), row.get("n_missing")])
+    return t
+
+
+def _prior_table(p) -> Table:
+    t = Table("", ["Statistic", "Observed", "Prior 5 %", "Prior median", "Prior 95 %",
+                   "Prior draws below observed", "Bound", "Draws inside bound"],
+              numeric=[False, True, True, True, True, True, True, True])
+    for row in p.rows:
+        b = p.bounds.get(row["statistic"])
+        share = row["share_below_observed"]
+        edge = np.isfinite(share) and (share < 0.01 or share > 0.99)
+        inside = p.inside_each.get(row["statistic"])
+        t.add([describe(row["statistic"]), n(fmt.num(row["observed"], 4)), n(fmt.num(row["q05"])),
+               n(fmt.num(row["q50"])), n(fmt.num(row["q95"])),
+               n(("◆ " if edge else "") + fmt.share(share), "flag" if edge else ""),
+               n(fmt.bound(*b) if b else fmt.MISSING), n(fmt.share(inside) if inside is not None else fmt.MISSING)])
+    return t
+
+
+def _health(result, cands) -> tuple[Table, list[tuple[str, str, list[str]]]]:
+    cfg = result.config
+    t = Table("sampler_health.csv",
+              ["Candidate", "Status", "Largest R-hat", "Smallest bulk ESS", "Smallest tail ESS",
+               "Divergent transitions", "Max tree depth hits", "E-BFMI per chain", "adapt_delta runs"],
+              csv_headers=["id", "label", "status", "rhat_max", "rhat_worst_parameter", "ess_bulk_min",
+                           "ess_tail_min", "ess_worst_parameter", "divergences", "treedepth_hits", "ebfmi",
+                           "adapt_delta", "attempts", "problems", "warnings"],
+              numeric=[False, False, True, True, True, True, True, True, False])
+    advice = []
+    for r in cands:
+        h = r.health
+        cls = {"ok": "ranked", "unhealthy": "unhealthy", "failed": "failed", "skipped": "skipped"}[r.status]
+        if h is None:
+            t.add([Cell(r.label, "name", r.id), Cell(STATUS_TEXT[r.status], "status " + cls)]
+                  + [n(fmt.MISSING, "muted")] * 6 + [Cell("not sampled", "muted")],
+                  [r.id, r.label, r.status] + [None] * 12, "muted")
+            continue
+        chains = max(len(h.ebfmi), 1)
+        ess_min = cfg.ess_per_chain_min * chains
+        rbad = not np.isfinite(h.rhat_max) or h.rhat_max >= cfg.rhat_max
+        bbad = h.ess_bulk_min < ess_min
+        tbad = h.ess_tail_min < ess_min
+        ebad = any(v < cfg.ebfmi_min for v in h.ebfmi)
+        runs = " → ".join(f"{a.adapt_delta:g}: {a.divergences} div." for a in h.attempts)
+        t.add([
+            Cell(r.label, "name", r.id),
+            Cell(STATUS_TEXT[r.status], "status " + cls),
+            n(("◆ " if rbad else "") + fmt.fixed(h.rhat_max, 3) + (f" ({h.rhat_worst})" if h.rhat_worst else ""),
+              "flag" if rbad else ""),
+            n(("◆ " if bbad else "") + fmt.integer(h.ess_bulk_min), "flag" if bbad else ""),
+            n(("◆ " if tbad else "") + fmt.integer(h.ess_tail_min), "flag" if tbad else ""),
+            n(("◆ " if h.divergences else "") + fmt.integer(h.divergences), "flag" if h.divergences else ""),
+            n(("◇ " if h.treedepth_hits else "") + fmt.integer(h.treedepth_hits),
+              "watch" if h.treedepth_hits else ""),
+            n(("◆ " if ebad else "") + ", ".join(fmt.fixed(v, 2) for v in h.ebfmi), "flag" if ebad else ""),
+            Cell(runs),
+        ], [r.id, r.label, r.status, h.rhat_max, h.rhat_worst, h.ess_bulk_min, h.ess_tail_min, h.ess_worst,
+            h.divergences, h.treedepth_hits, " ".join(repr(float(v)) for v in h.ebfmi), h.adapt_delta,
+            "; ".join(f"adapt_delta {a.adapt_delta:g}: {a.divergences} divergences, {a.seconds:.2f} s"
+                      for a in h.attempts),
+            "; ".join(h.problems), "; ".join(h.warnings)], cls)
+        items = [p[:1].upper() + p[1:] + "." for p in h.problems] + [w[:1].upper() + w[1:] + "." for w in h.warnings]
+        if r.refit_divergences:
+            items.append(f"The exact refits for out-of-sample comparison had {r.refit_divergences} divergent "
+                         "transitions: the refitted observations' elpd may be off; treat it with caution "
+                         "or reparameterise.")
+        if items:
+            advice.append((r.label, r.id, items))
+    return t, advice
+
+
+def _oos(result, cands) -> tuple[Table, list[tuple[str, str]]]:
+    rows = _rows_by_id(result)
+    t = Table("out_of_sample.csv",
+              ["Rank", "Candidate", "elpd (SE)", "p_loo", "Behind the best (SE of difference)",
+               "Stacking weight", "Pseudo-BMA+ weight", "MC SE of elpd", "Largest Pareto k",
+               "k above threshold", "Method"],
+              csv_headers=["rank", "id", "label", "status", "elpd", "elpd_se", "p_loo", "elpd_behind_best",
+                           "elpd_behind_best_se", "stacking_weight", "pseudo_bma_weight", "elpd_mcse",
+                           "elpd_psis_before_refits", "pareto_k_max", "pareto_k_threshold", "n_high_k",
+                           "n_refits", "refitted_observations", "method"],
+              numeric=[True, False, True, True, True, True, True, True, True, True, False])
+    refitted = []
+    for r in cands:
+        o = r.oos
+        if o is None:
+            continue
+        row = rows.get(r.id)
+        high = o.n_high_k
+        t.add([
+            n(str(row["rank"]) if row else fmt.MISSING),
+            Cell(r.label + ("" if row else " (not ranked: sampler unhealthy)"), "name", r.id),
+            n(_with_se(o.elpd, o.se)), n(fmt.fixed(o.p, 1)),
+            n(_behind(row) if row else fmt.MISSING),
+            n(fmt.fixed(row["stacking_weight"], 2) if row else fmt.MISSING),
+            n(fmt.fixed(row["pseudo_bma_weight"], 2) if row else fmt.MISSING),
+            n(fmt.fixed(o.mcse, 2)),
+            n(fmt.fixed(o.k_max, 2), "watch" if np.isfinite(o.k_max) and o.k_max > o.k_threshold else ""),
+            n(("◇ " if high else "") + str(high), "watch" if high else ""),
+            Cell(o.method, "wrap"),
+        ], [row["rank"] if row else None, r.id, r.label, r.status, o.elpd, o.se, o.p,
+            row["elpd_diff"] if row else None, row["elpd_diff_se"] if row else None,
+            row["stacking_weight"] if row else None, row["pseudo_bma_weight"] if row else None,
+            o.mcse, o.elpd_psis, o.k_max, o.k_threshold, high, o.n_refits,
+            " ".join(str(i + 1) for i in o.refitted), o.method], "" if row else "muted")
+        if o.refitted:
+            refitted.append((r.label, ", ".join(str(i + 1) for i in o.refitted)))
+    return t, refitted
+
+
+def _check_matrix(result, cands, pick) -> tuple[list[str], list[list[Cell]]]:
+    """p-values with statistics as rows and candidates as columns; ``pick`` returns the
+    rows of one candidate's checks."""
+    extreme = result.config.ppp_extreme
+    first = pick(cands[0].checks)
+    body = []
+    for k, row in enumerate(first):
+        cells = [Cell(describe(row["statistic"])), n(fmt.num(row["observed"], 4))]
+        for r in cands:
+            rr = pick(r.checks)
+            cells.append(p_cell(rr[k]["p_value"], extreme) if k < len(rr) else n(fmt.MISSING))
+        body.append(cells)
+    return [r.label for r in cands], body
+
+
+def _checks_long(result, cands) -> Table:
+    t = Table("predictive_checks.csv", [],
+              csv_headers=["id", "statistic", "description", "observed", "replicated_mean", "replicated_q05",
+                           "replicated_q50", "replicated_q95", "p_value", "beyond_extreme"])
+    extreme = result.config.ppp_extreme
+    for r in cands:
+        for row in r.checks.rows:
+            p = row["p_value"]
+            t.csv_rows.append([r.id, row["statistic"], describe(row["statistic"]), row["observed"], row["mean"],
+                               row["q05"], row["q50"], row["q95"], p,
+                               bool(np.isfinite(p) and (p < extreme or p > 1 - extreme))])
+    return t
+
+
+def _grouped_long(result, cands) -> Table:
+    t = Table("grouped_checks.csv", [],
+              csv_headers=["id", "condition", "level", "statistic", "description", "observed",
+                           "replicated_mean", "replicated_q05", "replicated_q50", "replicated_q95", "p_value"])
+    for r in cands:
+        for cond, levels in r.checks.grouped.items():
+            for level, rows in levels.items():
+                for row in rows:
+                    t.csv_rows.append([r.id, cond, str(level), row["statistic"], describe(row["statistic"]),
+                                       row["observed"], row["mean"], row["q05"], row["q50"], row["q95"],
+                                       row["p_value"]])
+    return t
+
+
+def _check_table(checks, extreme: float) -> Table:
+    t = Table("", ["Statistic", "Observed", "Replicated median", "Replicated 90 % interval",
+                   "Posterior predictive p"], numeric=[False, True, True, True, True])
+    for row in checks.rows:
+        t.add([describe(row["statistic"]), n(fmt.num(row["observed"], 4)), n(fmt.num(row["q50"])),
+               n(fmt.interval(row["q05"], row["q95"])), p_cell(row["p_value"], extreme)])
+    return t
+
+
+def _pit_table(cands) -> Table:
+    t = Table("loo_pit.csv", ["Candidate", "KS statistic", "p-value", "Reading and what to do next"],
+              csv_headers=["id", "label", "ks_statistic", "p_value", "method", "reading"],
+              numeric=[False, True, True, False])
+    for r in cands:
+        test = r.checks.loo_pit_test
+        p = test.get("p_value", np.nan)
+        flagged = np.isfinite(p) and p < PIT_ALPHA
+        reading = pit_reading(r.checks.loo_pit)
+        if flagged and not reading:
+            reading = "the LOO-PIT values depart from uniform; look at the figure for where"
+        if not reading:
+            reading = "no clear pattern; this does not show the candidate is right"
+        t.add([Cell(r.label, "name", r.id), n(fmt.fixed(test.get("statistic"), 3)),
+               n(("◆ " if flagged else "") + fmt.pvalue(p), "flag" if flagged else ""),
+               Cell(reading[:1].upper() + reading[1:] + ".", "wrap")],
+              [r.id, r.label, test.get("statistic"), p, test.get("method"), reading],
+              "flagged" if flagged else "")
+    return t
+
+
+def _hyper_table(r) -> Table:
+    t = Table("", ["Input", "Value used"], numeric=[False, True])
+    for k, v in r.hyperparameters.items():
+        t.add([Cell(k, "code"), n(fmt.num(v, 6) if isinstance(v, (int, float)) and not isinstance(v, bool)
+                                  else str(v))])
+    return t
+
+
+def _param_table(h) -> Table:
+    t = Table("", ["Parameter", "Mean", "SD", "5 %", "95 %", "R-hat", "Bulk ESS", "Tail ESS"],
+              numeric=[False] + [True] * 7)
+    for row in h.table:
+        t.add([Cell(row["parameter"], "code"), n(fmt.num(row["mean"])), n(fmt.num(row["sd"], 2)),
+               n(fmt.num(row["q05"])), n(fmt.num(row["q95"])), n(fmt.fixed(row["rhat"], 3)),
+               n(fmt.integer(row["ess_bulk"])), n(fmt.integer(row["ess_tail"]))])
+    return t
+
+
+def _candidate_views(result, cands) -> list[CandidateView]:
+    rows = _rows_by_id(result)
+    views = []
+    for r in cands:
+        advice = []
+        if r.status in NEXT_STEP:
+            advice.append(NEXT_STEP[r.status])
+        views.append(CandidateView(
+            id=r.id, label=r.label, about=r.about, support=r.support, status=r.status,
+            status_text=STATUS_TEXT[r.status], reason=r.reason,
+            rank=str(rows[r.id]["rank"]) if r.id in rows else fmt.MISSING,
+            code=r.code, code_hash=r.code_hash, hyperparameters=_hyper_table(r),
+            prior=_prior_table(r.prior) if r.prior is not None else None,
+            parameters=_param_table(r.health) if r.health is not None and r.health.table else None,
+            checks=_check_table(r.checks, result.config.ppp_extreme) if r.checks is not None else None,
+            advice=advice,
+        ))
+    return views
+
+
+def _long_csv(name: str, headers: list[str], rows: list[list[Any]]) -> Table:
+    return Table(name, [], csv_headers=headers, csv_rows=rows)
+
+
+def _settings(result, command_line) -> Table:
+    cfg, d = result.config, result.design
+    t = Table("run_settings.csv", ["Setting", "Value"], csv_headers=["setting", "value"])
+
+    def add(key: str, shown: str, raw: Any) -> None:
+        t.add([key, shown], [key, raw])
+
+    add("data file", str(cfg.data) if cfg.data else fmt.MISSING, cfg.data)
+    add("data SHA-256", result.data_hash or fmt.MISSING, result.data_hash)
+    add("outcome column", d.outcome, d.outcome)
+    add("observations used", fmt.integer(d.N), d.N)
+    add("rows dropped (outcome missing or not finite)", fmt.integer(d.dropped_rows), d.dropped_rows)
+    add("predictor columns", ", ".join(cfg.predictors) or "none", " ".join(cfg.predictors))
+    add("predictor coding", "; ".join(f"{c.name}: centre {fmt.num(c.center, 4)}, scale {fmt.num(c.scale, 4)}"
+                                      for c in d.coding) or "none",
+        "; ".join(f"{c.name}: center {c.center!r} scale {c.scale!r}" for c in d.coding))
+    add("group column", d.group_column or "none", d.group_column)
+    add("condition columns", ", ".join(cfg.conditions) or "none", " ".join(cfg.conditions))
+    add("reference scale (y_center, y_scale)", f"{fmt.num(d.y_center, 4)}, {fmt.num(d.y_scale, 4)}",
+        f"{d.y_center!r} {d.y_scale!r}")
+    add("candidates folder", str(cfg.candidates) if cfg.candidates else "built-in candidates",
+        cfg.candidates or "built-in")
+    add("engine", result.engine, result.engine)
+    add("seed", str(cfg.seed), cfg.seed)
+    add("chains, warmup, draws", f"{cfg.chains}, {cfg.warmup}, {cfg.draws}",
+        f"{cfg.chains} {cfg.warmup} {cfg.draws}")
+    add("prior predictive draws", str(cfg.prior_draws), cfg.prior_draws)
+    add("adapt_delta and escalation", f"{cfg.adapt_delta:g}, then " + (", ".join(f"{v:g}" for v in cfg.escalation)
+                                                                         or "none"),
+        " ".join(f"{v:g}" for v in (cfg.adapt_delta, *cfg.escalation)))
+    add("max_treedepth", str(cfg.max_treedepth), cfg.max_treedepth)
+    add("health thresholds", f"R-hat below {cfg.rhat_max:g}; ESS at least {cfg.ess_per_chain_min:g} per chain; "
+                             f"E-BFMI at least {cfg.ebfmi_min:g}",
+        f"rhat_max={cfg.rhat_max!r} ess_per_chain_min={cfg.ess_per_chain_min!r} ebfmi_min={cfg.ebfmi_min!r}")
+    add("replicated datasets used by the checks", str(cfg.check_draws), cfg.check_draws)
+    add("extreme posterior predictive p-value", f"below {cfg.ppp_extreme:g} or above {1 - cfg.ppp_extreme:g}",
+        cfg.ppp_extreme)
+    add("cross-validation", f"{cfg.cross_validation}; at most {cfg.refit_cap} exact refits; {cfg.folds} folds",
+        f"{cfg.cross_validation} refit_cap={cfg.refit_cap} folds={cfg.folds}")
+    add("plausibility bounds", "; ".join(f"{describe(k)}: {fmt.bound(*v)}" for k, v in cfg.bounds.items())
+        or "none", "; ".join(f"{k}: {v[0]!r} {v[1]!r}" for k, v in cfg.bounds.items()))
+    add("implausible prior share flagged below", fmt.share(cfg.implausible_share), cfg.implausible_share)
+    add("thresholds for shares below", ", ".join(f"{v:g}" for v in cfg.thresholds) or "none",
+        " ".join(f"{v!r}" for v in cfg.thresholds))
+    for name, version in result.versions.items():
+        add(f"version of {name}", str(version), version)
+    sampled, reused = getattr(result, "fits_sampled", None), getattr(result, "fits_reused", None)
+    if sampled is not None and reused is not None:
+        add("fits sampled in this run, and reused from the fit store", f"{sampled}, {reused}",
+            f"{sampled} {reused}")
+    add("run time", fmt.seconds(result.seconds), result.seconds)
+    if command_line:
+        line = command_line if isinstance(command_line, str) else shlex.join(list(command_line))
+        add("command line", line, line)
+    return t
+
+
+def _files(result, cands) -> Table:
+    t = Table("candidate_files.csv", ["Candidate", "Program SHA-256", "Prior", "Posterior", "Refits", "Total"],
+              csv_headers=["id", "label", "status", "code_sha256", "seconds_prior", "seconds_posterior",
+                           "seconds_refits", "seconds_total"],
+              numeric=[False, False, True, True, True, True])
+    for r in cands:
+        s = r.seconds
+        total = sum(s.values()) if s else None
+        t.add([Cell(r.label, "name", r.id), Cell(r.code_hash, "hash"), n(fmt.seconds(s.get("prior"))),
+               n(fmt.seconds(s.get("posterior"))), n(fmt.seconds(s.get("refits"))), n(fmt.seconds(total))],
+              [r.id, r.label, r.status, r.code_hash, s.get("prior"), s.get("posterior"), s.get("refits"), total])
+    return t
+
+
+def _lineups(result, cands) -> list[dict]:
+    by_id = {r.id: r for r in cands}
+    out = []
+    for k, cid in enumerate(result.comparison.preferred[:LINEUPS]):
+        r = by_id.get(cid)
+        if r is None or r.y_rep_sample is None:
+            continue
+        lu = figures.lineup(result.design.y, r.y_rep_sample, seed=int(result.config.seed) + 7919 * (k + 1))
+        if lu is None:
+            continue
+        out.append({"id": r.id, "label": r.label, "panels": lu.panels, "answer": lu.answer,
+                    "n_replicates": int(r.y_rep_sample.shape[0]),
+                    "range": f"{fmt.num(lu.edges[0], 4)} to {fmt.num(lu.edges[-1], 4)}"})
+    return out
+
+
+def build_context(result, command_line: str | Sequence[str] | None = None) -> dict[str, Any]:
+    """Everything the template shows, formatted; tables carry their CSV rows too."""
+    cfg, d = result.config, result.design
+    cands = _ordered(result)
+    by_id = {r.id: r for r in cands}
+    rows = _rows_by_id(result)
+    with_prior = [r for r in cands if r.prior is not None]
+    with_checks = [r for r in cands if r.checks is not None]
+    with_oos = [r for r in cands if r.oos is not None]
+
+    ranking = _ranking(result, cands)
+    certainty = _certainty(result)
+    prior_summary = _prior_summary(result, cands)
+    prior_long = _prior_long(result, cands)
+    health, health_advice = _health(result, cands)
+    oos, refitted = _oos(result, cands)
+    settings = _settings(result, command_line)
+    files = _files(result, cands)
+    views = _candidate_views(result, cands)
+
+    stats = [row["statistic"] for row in with_prior[0].prior.rows] if with_prior else []
+    observed = {row["statistic"]: row["observed"] for row in with_prior[0].prior.rows} if with_prior else {}
+
+    figs: dict[str, Any] = {
+        "elpd": figures.elpd_differences(result.comparison.rows),
+        "prior": figures.prior_grid([(r.label, r.prior) for r in with_prior], stats, observed),
+        "pareto": figures.pareto_k_grid([(r.label, r.oos) for r in with_oos]),
+        "density": figures.replicate_density_grid(d.y, [(r.label, r.y_rep_sample) for r in with_checks]),
+        "stats": figures.statistic_grid([(r.label, r.checks) for r in with_checks], cfg.ppp_extreme),
+        "pit": figures.loo_pit_grid([(r.label, r.checks) for r in with_checks], PIT_ALPHA),
+    }
+
+    checks_long = _checks_long(result, with_checks)
+    matrix = None
+    grouped = []
+    pit = None
+    grouped_long = None
+    if with_checks:
+        heads, body = _check_matrix(result, with_checks, lambda c: c.rows)
+        matrix = {"heads": heads, "ids": [r.id for r in with_checks], "body": body}
+        for cond in with_checks[0].checks.grouped:
+            levels = with_checks[0].checks.grouped[cond]
+            blocks = []
+            for level in levels:
+                h, b = _check_matrix(result, with_checks,
+                                     lambda c, cond=cond, level=level: c.grouped.get(cond, {}).get(level, []))
+                blocks.append({"level": str(level), "body": b,
+                               "n": int(np.sum(d.table[cond].astype(str).to_numpy() == str(level)))
+                               if d.table is not None and cond in d.table else None})
+            grouped.append({"condition": cond, "blocks": blocks})
+        grouped_long = _grouped_long(result, with_checks)
+        pit = _pit_table(with_checks)
+
+    lineups = _lineups(result, cands)
+
+    preferred = [{"id": cid, "label": by_id[cid].label} for cid in result.comparison.preferred if cid in by_id]
+    n_status = {s: sum(r.status == s for r in cands) for s in ("ok", "unhealthy", "failed", "skipped")}
+    counts = ", ".join(f"{v} {k if k != 'ok' else 'ranked'}" for k, v in n_status.items() if v)
+
+    csv_tables = [ranking, certainty, prior_summary, prior_long, health, oos, checks_long, pit, settings, files]
+    if cfg.conditions and grouped_long is not None:
+        csv_tables.append(grouped_long)
+    csv_tables.append(_long_csv("hyperparameters.csv", ["id", "input", "value"],
+                                [[r.id, k, v] for r in cands for k, v in r.hyperparameters.items()]))
+    csv_tables.append(_long_csv(
+        "parameters.csv", ["id", "parameter", "mean", "sd", "q05", "q95", "rhat", "ess_bulk", "ess_tail"],
+        [[r.id, row["parameter"], row["mean"], row["sd"], row["q05"], row["q95"], row["rhat"],
+          row["ess_bulk"], row["ess_tail"]] for r in cands if r.health is not None for row in r.health.table]))
+    csv_tables = [t for t in csv_tables if t is not None]
+
+    data_name = Path(str(cfg.data)).name if cfg.data else "data"
+    return {
+        "title": f"Candidate models for {d.outcome}",
+        "data_name": data_name,
+        "outcome": d.outcome,
+        "n_obs": fmt.integer(d.N),
+        "dropped": fmt.integer(d.dropped_rows) if d.dropped_rows else "",
+        "predictors": ", ".join(cfg.predictors),
+        "group": d.group_column or "",
+        "conditions": list(cfg.conditions),
+        "n_candidates": len(cands),
+        "counts": counts,
+        "engine": result.engine,
+        "run_time": fmt.seconds(result.seconds),
+        "sections": SECTIONS,
+        "verdict": list(result.comparison.verdict),
+        "preferred": preferred,
+        "any_ranked": bool(rows),
+        "ranking": ranking,
+        "certainty": certainty,
+        "prior_summary": prior_summary,
+        "bounds": [(describe(k), fmt.bound(*v)) for k, v in cfg.bounds.items()],
+        "implausible_share": fmt.share(cfg.implausible_share),
+        "prior_draws": fmt.integer(cfg.prior_draws),
+        "health": health,
+        "health_advice": health_advice,
+        "health_rules": {
+            "rhat": fmt.fixed(cfg.rhat_max, 2),
+            "ess": fmt.integer(cfg.ess_per_chain_min),
+            "ebfmi": fmt.fixed(cfg.ebfmi_min, 1),
+            "treedepth": str(cfg.max_treedepth),
+        },
+        "oos": oos,
+        "refitted": refitted,
+        "refit_cap": str(cfg.refit_cap),
+        "ppp_extreme": fmt.num(cfg.ppp_extreme),
+        "small_difference": fmt.num(SMALL_DIFFERENCE),
+        "mild_low": fmt.num(MILD[0]),
+        "mild_high": fmt.num(MILD[1]),
+        "ppp_extreme_high": fmt.num(1 - cfg.ppp_extreme),
+        "matrix": matrix,
+        "grouped": grouped,
+        "pit": pit,
+        "pit_alpha": fmt.num(PIT_ALPHA),
+        "lineups": lineups,
+        "candidates": views,
+        "settings": settings,
+        "files": files,
+        "figures": figs,
+        "csv_tables": csv_tables,
+        "csv_names": [t.csv_name for t in csv_tables],
+        "command_line": (command_line if isinstance(command_line, str) or command_line is None
+                         else shlex.join(list(command_line))),
+    }
