@@ -72,7 +72,6 @@ def test_user_errors_are_one_line_without_traceback(small, tmp_path, args, messa
 def test_bad_configuration_key_and_empty_candidates_folder(small, tmp_path):
     cfg = tmp_path / "c.toml"
     cfg.write_text('[data]\nfile = "small.csv"\noutcome = "rt"\n\n[sampler]\nchain = 2\n')
-    shutil.copy(small, tmp_path / "small.csv")
     res = cli("run", "--config", cfg)
     assert res.returncode == 2
     assert "unknown key 'chain' in [sampler]; the keys there are: chains, warmup" in res.stderr

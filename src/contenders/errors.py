@@ -7,11 +7,15 @@ message alone (no traceback); library callers can catch it.
 
 from __future__ import annotations
 
+import re
+
 
 class UserError(Exception):
     """A problem in the user's input (data, configuration, candidate files)."""
 
     def __init__(self, message: str) -> None:
+        # one line, whatever the names in it hold (column names may contain line breaks)
+        message = re.sub(r"\s*[\r\n]+\s*", " ", message).strip()
         super().__init__(message)
         self.message = message
 

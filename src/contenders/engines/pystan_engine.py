@@ -12,6 +12,7 @@ import asyncio
 import contextlib
 import io
 import os
+import re
 import sys
 import tempfile
 import time
@@ -83,8 +84,15 @@ def _quiet():
             buf.write(sink.read().decode("utf-8", "replace")[-20000:])
 
 
-def _short(exc: BaseException, limit: int = 1500) -> str:
+def _short(exc: BaseException, limit: int = 1500, file_name: str = "") -> str:
+    """Stan's own words from an httpstan error: the text inside ``RuntimeError("...")``
+    without httpstan's traceback, with the temporary file name replaced."""
     text = str(exc)
+    inner = re.search(r"""(?:RuntimeError|ValueError)\((['"])(.*?)\1\)`?""", text, re.DOTALL)
+    if inner:
+        text = inner.group(2)
+    text = re.sub(r"'[^']*httpstan_[^']*\.stan'", f"'{file_name}'" if file_name else "the program", text)
+    text = text.replace("\\n", " ").strip()
     return text if len(text) <= limit else text[:limit] + " ..."
 
 
@@ -142,7 +150,7 @@ class PyStanEngine(Engine):
                 return stan.build(program.code, data=dict(data), random_seed=int(seed))
             except (RuntimeError, ValueError) as exc:
                 raise SamplingError(f"{program.candidate_id}: Stan rejected the data: "
-                                    f"{_short(exc)}\n{_stan_message(buf.getvalue())}") from None
+                                    f"{_short(exc, file_name=program.candidate_id + '.stan')}\n{_stan_message(buf.getvalue())}") from None
 
     def sample(self, program: Program, data: Mapping[str, Any], settings: SamplerSettings) -> Draws:
         model = self._build(program, data, settings.seed)
@@ -158,7 +166,7 @@ class PyStanEngine(Engine):
                 )
             except (RuntimeError, ValueError) as exc:
                 raise SamplingError(
-                    f"{program.candidate_id}: sampling failed: {_short(exc)}\n{_stan_message(buf.getvalue())}"
+                    f"{program.candidate_id}: sampling failed: {_short(exc, file_name=program.candidate_id + '.stan')}\n{_stan_message(buf.getvalue())}"
                 ) from None
         seconds = time.perf_counter() - start
         idata = az.from_pystan(
@@ -184,7 +192,7 @@ class PyStanEngine(Engine):
             except (RuntimeError, ValueError) as exc:
                 raise SamplingError(
                     f"{program.candidate_id}: could not evaluate the program at "
-                    f"{'the given' if init else 'random initial'} values: {_short(exc)}\n"
+                    f"{'the given' if init else 'random initial'} values: {_short(exc, file_name=program.candidate_id + '.stan')}\n"
                     f"{_stan_message(buf.getvalue())}"
                 ) from None
         return {name: np.asarray(fit[name])[..., 0] for name in fit.param_names

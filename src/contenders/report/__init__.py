@@ -35,6 +35,9 @@ TEMPLATES = Path(__file__).parent / "templates"
 #: At most this many leading candidates get a lineup.
 LINEUPS = 3
 
+#: The observed value beyond this share of prior draws is marked in the prior tables.
+PRIOR_EDGE = 0.99
+
 #: LOO-PIT uniformity p-values below this are flagged (the verdict's rule in compare.py).
 PIT_ALPHA = 0.01
 
@@ -287,7 +290,7 @@ def _prior_table(p) -> Table:
     for row in p.rows:
         b = p.bounds.get(row["statistic"])
         share = row["share_below_observed"]
-        edge = np.isfinite(share) and (share < 0.01 or share > 0.99)
+        edge = np.isfinite(share) and (share < 1 - PRIOR_EDGE or share > PRIOR_EDGE)
         inside = p.inside_each.get(row["statistic"])
         t.add([describe(row["statistic"]), n(fmt.num(row["observed"], 4)), n(fmt.num(row["q05"])),
                n(fmt.num(row["q50"])), n(fmt.num(row["q95"])),
@@ -682,6 +685,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "prior_summary": prior_summary,
         "bounds": [(describe(k), fmt.bound(*v)) for k, v in cfg.bounds.items()],
         "implausible_share": fmt.share(cfg.implausible_share),
+        "prior_edge": fmt.share(PRIOR_EDGE),
         "prior_draws": fmt.integer(cfg.prior_draws),
         "health": health,
         "health_advice": health_advice,

@@ -378,7 +378,7 @@ def _flag_frame(ax) -> None:
 
 
 def _row_label(ax, text: str, offset: float = 6) -> None:
-    ax.annotate(_wrap(text, 20), xy=(0, 0.5), xycoords="axes fraction", xytext=(-offset, 0),
+    ax.annotate(_wrap(text, 17), xy=(0, 0.5), xycoords="axes fraction", xytext=(-offset, 0),
                 textcoords="offset points", ha="right", va="center", fontsize=7.5, color=INK)
 
 
@@ -475,7 +475,7 @@ def _statistic_grid(cands, stats, observed, draws_of, color, annotate, flag_of=N
         axes[0, j].set_title(_wrap(title, 18, 1) + ("\n" + scale.note if scale is not None and scale.note else "\n"),
                              fontsize=7)
     for i, (label, _) in enumerate(cands):
-        axes[i, 0].annotate(_wrap(label, 20), xy=(0, 0.5), xycoords="axes fraction", xytext=(-6, 0),
+        axes[i, 0].annotate(_wrap(label, 17), xy=(0, 0.5), xycoords="axes fraction", xytext=(-6, 0),
                             textcoords="offset points", ha="right", va="center", fontsize=7.3, color=INK)
     return fig
 
@@ -542,7 +542,7 @@ def pareto_k_grid(cands: Sequence[tuple[str, object]]) -> Rendered | None:
     ymax = max(1.0, float(ks.max()) + 0.08, max(thresholds) + 0.15) if ks.size else 1.0
     width, height = 7.6, 0.5 + 0.72 * len(cands)
     fig = _new(width, height)
-    fig.subplots_adjust(left=1.45 / width, right=0.985, top=1 - 0.15 / height, bottom=0.42 / height,
+    fig.subplots_adjust(left=1.6 / width, right=0.985, top=1 - 0.15 / height, bottom=0.42 / height,
                         hspace=0.3)
     axes = fig.subplots(len(cands), 1, squeeze=False, sharex=True)[:, 0]
     raster = n_obs > 300
