@@ -170,7 +170,7 @@ def test_verdict_rules():
         _result("alpha", base, p_values={"mean": 0.5, "max": 0.001}),     # best but misses the maximum
         _result("beta", base - 0.01),                                     # 2 elpd behind: small
         _result("gamma", base - rng.normal(0.05, 0.4, 200)),              # ~10 behind, SE ~6: uncertain
-        _result("delta", base - 0.5),                                     # 100 behind: clearly worse
+        _result("delta", base - 0.5, p_values={"skewness": 0.999}),       # 100 behind: clearly worse
         _result("eps", None, status="unhealthy", reason="R-hat 1.2 for sigma"),
         _result("zeta", None, status="skipped", reason="skipped: 3 outcome value(s) are zero or negative"),
     ]
@@ -182,6 +182,8 @@ def test_verdict_rules():
     assert "order is uncertain: Gamma" in text
     assert "Clearly worse at prediction (more than 4 elpd and two standard errors behind): Delta" in text
     assert "Alpha ranks first but its replicated data miss: maximum (replicates lower" in text
+    assert ("Lower-ranked candidates whose replicated data also miss features of the data: "
+            "Delta (skewness) (details under Predictive checks).") in text
     assert "Eps is not ranked because the sampler did not converge: R-hat 1.2 for sigma." in text
     assert "Zeta was skipped: 3 outcome value(s) are zero or negative." in text
     assert comp.preferred == ["alpha", "beta", "gamma"]

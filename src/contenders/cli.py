@@ -74,7 +74,7 @@ def cmd_check(args: argparse.Namespace) -> int:
 #: Settings given on the command line of ``run`` (and ``demo``), in help order.
 RUN_FLAGS = (
     "outcome", "predictors", "group", "conditions", "typical_value", "typical_spread", "candidates",
-    "only", "out", "chains", "warmup", "draws", "prior_draws", "seed", "jobs", "engine", "adapt_delta",
+    "only", "out", "store", "chains", "warmup", "draws", "prior_draws", "seed", "jobs", "engine", "adapt_delta",
     "escalation", "max_treedepth", "thresholds", "bounds", "rhat_max", "ess_per_chain_min", "ebfmi_min",
     "implausible_share", "check_draws", "ppp_extreme", "cross_validation", "refit_cap", "folds",
 )
@@ -83,12 +83,16 @@ ALIASES = {"conditions": ["--condition"], "thresholds": ["--threshold"]}
 
 
 def _add_run_flags(p: argparse.ArgumentParser) -> None:
-    from .config import HELP, section_of
+    from .config import _TYPES, HELP, section_of
 
+    metavars = {"path": "DIR", "str": "COL", "strs": "A,B", "float": "X", "posfloat": "X", "posint": "N",
+                "int0": "N", "prob": "P", "probs": "P,P", "floats": "T,T", "engine": "NAME",
+                "bounds": "STAT=LOW:HIGH,...", "cv": "METHOD", "folds": "K", "bool": ""}
     p.add_argument("--config", metavar="FILE", help="TOML configuration file; flags override its keys")
     for name in RUN_FLAGS:
         flag = "--" + name.replace("_", "-")
-        p.add_argument(flag, *ALIASES.get(name, []), dest=name, metavar="VALUE", default=None,
+        metavar = "ID,ID" if name == "only" else metavars[_TYPES[name]]
+        p.add_argument(flag, *ALIASES.get(name, []), dest=name, metavar=metavar, default=None,
                        help=f"{HELP[name]} (configuration: {section_of(name)})")
     p.add_argument("--hyper", action="append", default=[], metavar="ID.NAME=VALUE",
                    help=HELP["hyperparameters"] + " (configuration: [hyperparameters.ID] NAME)")
@@ -127,8 +131,8 @@ def _run_and_report(cfg, command_line: str) -> int:
         for sentence in result.comparison.verdict:
             print(sentence)
         print()
-        print(f"report:  {report}")
-        print(f"summary: {result.out / 'summary.json'}")
+        print(f"report:  {Path(report).resolve()}")
+        print(f"summary: {(result.out / 'summary.json').resolve()}")
     return 0
 
 

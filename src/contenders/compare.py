@@ -343,13 +343,21 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
         if worse:
             verdict.append("Clearly worse at prediction (more than 4 elpd and two standard errors behind): "
                            + "; ".join(worse) + ".")
+        others = []
         for pos, r in enumerate(ranked, 1):
             misses = _misfit(r, ppp_extreme, pit_alpha)
-            if misses:
+            if not misses:
+                continue
+            if r.id in preferred:
                 where = "ranks first" if pos == 1 else f"ranks {pos} of {len(ranked)}"
                 verdict.append(f"{r.label} {where} but its replicated data miss: " + "; ".join(misses)
                                + ". Do not trust its predictions of these features; a family that can "
                                  "produce them may do better.")
+            else:
+                others.append(f"{r.label} ({', '.join(m.split(' (')[0] for m in misses)})")
+        if others:
+            verdict.append("Lower-ranked candidates whose replicated data also miss features of the data: "
+                           + "; ".join(others) + " (details under Predictive checks).")
     else:
         verdict.append("No candidate could be ranked: every candidate was skipped, failed or is unhealthy "
                        "(see below). Fix the problems named there and run again.")

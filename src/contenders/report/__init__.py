@@ -136,6 +136,7 @@ class CandidateView:
     parameters: Table | None
     checks: Table | None
     advice: list[str] = field(default_factory=list)
+    fits: list[tuple[str, str]] = field(default_factory=list)   # (link relative to the report, name)
 
 
 def _name(r) -> str:
@@ -481,6 +482,19 @@ def _param_table(h) -> Table:
     return t
 
 
+def _fit_links(r, out) -> list[tuple[str, str]]:
+    """Stored fits of a candidate as links relative to the report's folder."""
+    links = []
+    for path in getattr(r, "fit_files", []) or []:
+        p = Path(path)
+        try:
+            href = os.path.relpath(p.resolve(), Path(out).resolve())
+        except ValueError:  # another drive
+            href = p.resolve().as_uri()
+        links.append((Path(href).as_posix(), p.name))
+    return links
+
+
 def _candidate_views(result, cands) -> list[CandidateView]:
     rows = _rows_by_id(result)
     views = []
@@ -496,7 +510,7 @@ def _candidate_views(result, cands) -> list[CandidateView]:
             prior=_prior_table(r.prior) if r.prior is not None else None,
             parameters=_param_table(r.health) if r.health is not None and r.health.table else None,
             checks=_check_table(r.checks, result.config.ppp_extreme) if r.checks is not None else None,
-            advice=advice,
+            advice=advice, fits=_fit_links(r, result.out),
         ))
     return views
 
@@ -675,7 +689,9 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "n_candidates": len(cands),
         "counts": counts,
         "engine": result.engine,
-        "run_time": fmt.seconds(result.seconds),
+        "run_time": fmt.seconds(result.seconds) + (
+            f"; {result.fits_reused} of {result.fits_reused + result.fits_sampled} fits loaded from the fit store"
+            if getattr(result, "fits_reused", 0) else ""),
         "sections": SECTIONS,
         "verdict": list(result.comparison.verdict),
         "preferred": preferred,
