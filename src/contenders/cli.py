@@ -255,7 +255,9 @@ def main(argv: list[str] | None = None) -> int:
         print(f"contenders: {exc.message}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print("contenders: interrupted", file=sys.stderr)
+        print("contenders: interrupted; every fit finished so far is kept in the fit store "
+              "(OUT/fits), so running the same command again resumes where this run stopped",
+              file=sys.stderr)
         return 130
 
 
