@@ -227,3 +227,34 @@ def test_arbitrary_configurations_give_a_config_or_a_user_error(tmp_path, raw):
         return
     assert cfg.chains >= 1 and 0 < cfg.adapt_delta < 1
     assert all(low < high for low, high in cfg.bounds.values())
+
+
+def test_ctrl_c_keeps_finished_fits_and_the_rerun_resumes(tmp_path, data, programs):
+    """A real interrupt (SIGINT, as Ctrl-C sends) to the command while it runs."""
+    import signal
+    import time
+
+    import arviz as az
+
+    good, _ = data
+    out = tmp_path / "out"
+    args = [*EXE, "run", str(good), "--outcome", "rt", "--only", "gamma,lognormal,weibull", "--out", str(out),
+            "--chains", "2", "--warmup", "300", "--draws", "300", "--prior-draws", "100", "--engine", "pystan"]
+    proc = subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.time() + 300
+    while time.time() < deadline and len(list((out / "fits").glob("*.nc"))) < 2:
+        time.sleep(0.2)
+    proc.send_signal(signal.SIGINT)
+    _, err = proc.communicate(timeout=300)
+    assert proc.returncode == 130, err
+    assert "interrupted; every fit finished so far is kept in the fit store" in err
+    kept = sorted((out / "fits").glob("*.nc"))
+    assert len(kept) >= 2
+    for path in kept:  # whole files only
+        assert "posterior" in az.from_netcdf(path).groups()
+    assert not list((out / "fits").glob(".*.tmp"))
+    assert not (out / "report.html").exists()
+    again = subprocess.run(args, capture_output=True, text=True, timeout=600)
+    assert again.returncode == 0, again.stderr
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["fits"]["from_store"] >= len(kept)

@@ -84,6 +84,13 @@ def _quiet():
             buf.write(sink.read().decode("utf-8", "replace")[-20000:])
 
 
+def _interrupted_if_none(value):
+    """PyStan answers Ctrl-C by returning None; turn that back into the interrupt."""
+    if value is None:
+        raise KeyboardInterrupt
+    return value
+
+
 def _short(exc: BaseException, limit: int = 1500, file_name: str = "") -> str:
     """Stan's own words from an httpstan error: the text inside ``RuntimeError("...")``
     without httpstan's traceback, with the temporary file name replaced."""
@@ -147,7 +154,8 @@ class PyStanEngine(Engine):
 
         with _quiet() as buf:
             try:
-                return stan.build(program.code, data=dict(data), random_seed=int(seed))
+                model = stan.build(program.code, data=dict(data), random_seed=int(seed))
+                return _interrupted_if_none(model)
             except (RuntimeError, ValueError) as exc:
                 raise SamplingError(f"{program.candidate_id}: Stan rejected the data: "
                                     f"{_short(exc, file_name=program.candidate_id + '.stan')}\n{_stan_message(buf.getvalue())}") from None
@@ -157,13 +165,13 @@ class PyStanEngine(Engine):
         start = time.perf_counter()
         with _forgetting_fits(), _quiet() as buf:
             try:
-                fit = model.sample(
+                fit = _interrupted_if_none(model.sample(
                     num_chains=settings.chains,
                     num_warmup=settings.warmup,
                     num_samples=settings.draws,
                     delta=settings.adapt_delta,
                     max_depth=settings.max_treedepth,
-                )
+                ))
             except (RuntimeError, ValueError) as exc:
                 raise SamplingError(
                     f"{program.candidate_id}: sampling failed: {_short(exc, file_name=program.candidate_id + '.stan')}\n{_stan_message(buf.getvalue())}"
@@ -188,7 +196,8 @@ class PyStanEngine(Engine):
         model = self._build(program, data, seed)
         with _forgetting_fits(), _quiet() as buf:
             try:
-                fit = model.fixed_param(num_chains=1, num_samples=1, init=[dict(init or {})])
+                fit = _interrupted_if_none(
+                    model.fixed_param(num_chains=1, num_samples=1, init=[dict(init or {})]))
             except (RuntimeError, ValueError) as exc:
                 raise SamplingError(
                     f"{program.candidate_id}: could not evaluate the program at "
