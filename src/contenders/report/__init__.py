@@ -237,7 +237,7 @@ def _certainty(result) -> Table:
     return t
 
 
-def _prior_summary(result, cands) -> Table:
+def _prior_plausibility(result, cands) -> Table:
     t = Table("prior_plausibility.csv",
               ["Candidate", "Prior datasets", "Plausible (inside every bound)", "Datasets with non-finite values",
                "Reading and what to do next"],
@@ -618,7 +618,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
 
     ranking = _ranking(result, cands)
     certainty = _certainty(result)
-    prior_summary = _prior_summary(result, cands)
+    prior_plausibility_table = _prior_plausibility(result, cands)
     prior_long = _prior_long(result, cands)
     health, health_advice = _health(result, cands)
     oos, refitted = _oos(result, cands)
@@ -665,7 +665,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     n_status = {s: sum(r.status == s for r in cands) for s in ("ok", "unhealthy", "failed", "skipped")}
     counts = ", ".join(f"{v} {k if k != 'ok' else 'ranked'}" for k, v in n_status.items() if v)
 
-    csv_tables = [ranking, certainty, prior_summary, prior_long, health, oos, checks_long, pit, settings, files]
+    csv_tables = [ranking, certainty, prior_plausibility_table, prior_long, health, oos, checks_long, pit, settings, files]
     if cfg.conditions and grouped_long is not None:
         csv_tables.append(grouped_long)
     csv_tables.append(_long_csv("hyperparameters.csv", ["id", "input", "value"],
@@ -698,7 +698,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "any_ranked": bool(rows),
         "ranking": ranking,
         "certainty": certainty,
-        "prior_summary": prior_summary,
+        "prior_plausibility_table": prior_plausibility_table,
         "bounds": [(describe(k), fmt.bound(*v)) for k, v in cfg.bounds.items()],
         "implausible_share": fmt.share(cfg.implausible_share),
         "prior_edge": fmt.share(PRIOR_EDGE),
