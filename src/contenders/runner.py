@@ -99,6 +99,7 @@ def load_design(cfg: RunConfig) -> Design:
 
 def select_candidates(cfg: RunConfig) -> list[Candidate]:
     cands = discover(cfg.candidates or builtin_folder())
+    every_id = [c.id for c in cands]
     if cfg.only:
         known = {c.id for c in cands}
         missing = [c for c in cfg.only if c not in known]
@@ -108,11 +109,11 @@ def select_candidates(cfg: RunConfig) -> list[Candidate]:
                 f"known: {', '.join(sorted(known))}"
             )
         cands = [c for c in cands if c.id in cfg.only]
-    unknown = sorted(set(cfg.hyperparameters) - {c.id for c in cands})
+    unknown = sorted(set(cfg.hyperparameters) - set(every_id))
     if unknown:
         raise UserError(
             f"[hyperparameters.{unknown[0]}] names no candidate in the run; the candidates are: "
-            + ", ".join(c.id for c in cands)
+            + ", ".join(every_id)
         )
     return cands
 
