@@ -242,7 +242,21 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _on_interrupt(signum, frame) -> None:
+    """Ctrl-C: remember it (engines check after each call, since asyncio-based clients
+    can absorb the interrupt) and interrupt what is running now."""
+    from .engines.base import INTERRUPTED
+
+    INTERRUPTED.set()
+    raise KeyboardInterrupt
+
+
 def main(argv: list[str] | None = None) -> int:
+    import signal
+    import threading
+
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGINT, _on_interrupt)
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "func", None):
@@ -255,6 +269,9 @@ def main(argv: list[str] | None = None) -> int:
         print(f"contenders: {exc.message}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
+        from .engines.pystan_engine import stop_workers
+
+        stop_workers()
         print("contenders: interrupted; every fit finished so far is kept in the fit store "
               "(OUT/fits), so running the same command again resumes where this run stopped",
               file=sys.stderr)

@@ -22,7 +22,7 @@ from typing import Any, Mapping
 import arviz as az
 import numpy as np
 
-from .engines.base import Draws, Engine, Program, SamplerSettings
+from .engines.base import Draws, Engine, Program, SamplerSettings, raise_if_interrupted
 
 
 def fit_key(code: str, data: Mapping[str, Any], settings: SamplerSettings, engine: str) -> str:
@@ -124,4 +124,5 @@ class StoredEngine(Engine):
         draws = self.inner.sample(program, data, settings)
         self.sampled += 1
         self.paths.setdefault(program.candidate_id, []).append(self.store.save(key, draws))
+        raise_if_interrupted()  # a whole fit is kept; then stop
         return draws

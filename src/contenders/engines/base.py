@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import abc
+import threading
 from dataclasses import dataclass
 from typing import Any, Mapping
 
@@ -10,6 +11,16 @@ import arviz as az
 import numpy as np
 
 from ..candidates import Candidate
+
+
+#: Set when the user interrupts (Ctrl-C) while an engine call is running; engines check it
+#: after each call, because an interrupt can be absorbed inside asyncio-based clients.
+INTERRUPTED = threading.Event()
+
+
+def raise_if_interrupted() -> None:
+    if INTERRUPTED.is_set():
+        raise KeyboardInterrupt
 
 
 class SamplingError(RuntimeError):

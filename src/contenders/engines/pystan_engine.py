@@ -22,7 +22,7 @@ import arviz as az
 import numpy as np
 
 from ..candidates import Candidate
-from .base import OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError
+from .base import OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError, raise_if_interrupted
 
 
 @contextlib.contextmanager
@@ -84,10 +84,29 @@ def _quiet():
             buf.write(sink.read().decode("utf-8", "replace")[-20000:])
 
 
+def stop_workers() -> None:
+    """Terminate httpstan's sampling worker processes (forked once per Python process).
+    Called on Ctrl-C: without it, workers whose parent has gone stay behind, holding the
+    parent's output pipes open."""
+    import sys
+
+    stub = sys.modules.get("httpstan.services_stub")
+    executor = getattr(stub, "executor", None)
+    if executor is None:
+        return
+    processes = list(getattr(executor, "_processes", {}).values())
+    with contextlib.suppress(Exception):
+        executor.shutdown(wait=False, cancel_futures=True)
+    for proc in processes:
+        with contextlib.suppress(Exception):
+            proc.terminate()
+
+
 def _interrupted_if_none(value):
     """PyStan answers Ctrl-C by returning None; turn that back into the interrupt."""
     if value is None:
         raise KeyboardInterrupt
+    raise_if_interrupted()
     return value
 
 
