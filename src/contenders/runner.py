@@ -12,7 +12,7 @@ import math
 import os
 import platform
 import time
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -195,9 +195,7 @@ def _out_of_sample(res: CandidateResult, c: Candidate, engine, program, design: 
 
     def refit(fit_idx: np.ndarray) -> np.ndarray:
         counter[0] += 1
-        settings = SamplerSettings(chains=cfg.chains, warmup=cfg.warmup, draws=cfg.draws,
-                                   adapt_delta=adapt_delta, max_treedepth=cfg.max_treedepth,
-                                   seed=cfg.seed + 1000 + counter[0])
+        settings = replace(_settings(cfg), adapt_delta=adapt_delta, seed=cfg.seed + 1000 + counter[0])
         d = engine.sample(program, inputs_for(c, design, fit_idx, cfg.hyperparameters.get(c.id)), settings)
         res.refit_divergences += int(np.asarray(d.idata.sample_stats["diverging"].values).sum())
         res.seconds["_refits"] = res.seconds.get("_refits", 0.0) + d.sample_seconds
