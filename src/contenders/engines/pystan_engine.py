@@ -84,6 +84,200 @@ def _quiet():
             buf.write(sink.read().decode("utf-8", "replace")[-20000:])
 
 
+_SAMPLE_FUNCTION = "stan::services::sample::hmc_nuts_diag_e_adapt"
+_LOGGED: dict[int, str] = {}
+_CHAIN_WORKERS = [0]   # 0: httpstan's default (one per core)
+
+
+def set_chain_workers(n: int) -> None:
+    """Run at most ``n`` chains at once in this process (httpstan runs chains in a pool of
+    forked processes, one per core by default). Used by the run's executor so that
+    candidates fitted side by side do not oversubscribe the cores. Takes effect before
+    the first sampling call in the process; later calls replace the pool."""
+    import concurrent.futures
+    import multiprocessing as mp
+
+    import httpstan.services_stub as stub
+
+    n = max(1, int(n))
+    if _CHAIN_WORKERS[0] == n:
+        return
+    old = stub.executor
+    stub.executor = concurrent.futures.ProcessPoolExecutor(
+        max_workers=n, mp_context=mp.get_context("fork"), initializer=stub.init_worker)
+    _CHAIN_WORKERS[0] = n
+    with contextlib.suppress(Exception):
+        old.shutdown(wait=False)
+
+
+async def _sample_lean(model, settings: SamplerSettings):
+    """NUTS through httpstan's API, chain by chain, without PyStan's ``Fit``.
+
+    The same requests as PyStan's ``model.sample`` (chain ids 1..chains, the model's
+    seed), so the draws are identical; but each chain's output is parsed as soon as it
+    is read and its text released, and the fit files httpstan caches are deleted. PyStan
+    keeps every chain's raw JSON text and a float64 copy of all draws at once, which at
+    N = 10,000 peaked at 4.7 GB for one fit. ``log_lik`` stays float64 (LOO needs it);
+    ``y_rep`` is kept as float32, which holds any latency to 7 significant digits.
+
+    Returns ``(arrays, stats)``: per variable an array (chains, draws, *dims), and per
+    sampler statistic an array (chains, draws)."""
+    import stan.common
+
+    payloads = []
+    for chain in range(1, settings.chains + 1):
+        payloads.append({
+            "function": _SAMPLE_FUNCTION, "chain": chain, "data": model.data, "init": {},
+            "random_seed": model.random_seed, "num_warmup": settings.warmup,
+            "num_samples": settings.draws, "delta": settings.adapt_delta,
+            "max_depth": settings.max_treedepth,
+        })
+    import json as _json
+
+    from stan.model import DataJSONEncoder
+
+    payloads = _json.loads(DataJSONEncoder().encode(payloads))
+    layout = _layout(model)
+    arrays = {name: np.empty((settings.chains, settings.draws, *shape), dtype=dtype, order="C")
+              for name, (shape, dtype, _lo, _hi) in layout.items()}
+    stats: dict[str, np.ndarray] = {}
+    logged: list[str] = []
+    async with stan.common.HttpstanClient() as client:
+        operations = []
+        for payload in payloads:
+            resp = await client.post(f"/{model.model_name}/fits", json=payload)
+            if resp.status == 422:
+                raise ValueError(str(resp.json()))
+            if resp.status != 201:
+                raise RuntimeError(resp.json()["message"])
+            operations.append(resp.json())
+        pending = list(range(len(operations)))
+        while pending:
+            for i in list(pending):
+                resp = await client.get(f"/{operations[i]['name']}")
+                operations[i].update(resp.json())
+                if not operations[i]["done"]:
+                    continue
+                pending.remove(i)
+                result = operations[i]["result"]
+                fit_name = result.get("name")
+                if fit_name is None:
+                    message = result.get("message", "")
+                    if "Initialization failed" in message:
+                        raise RuntimeError("Initialization failed.")
+                    raise RuntimeError(message)
+                resp = await client.get(f"/{fit_name}")
+                if resp.status != 200:
+                    raise RuntimeError(resp.json()["message"])
+                text = resp.content
+                await client.delete(f"/{fit_name}")
+                _parse_chain(text, i, layout, arrays, stats, settings, logged)
+                del text
+            if pending:
+                await asyncio.sleep(0.05)
+    _LOGGED[id(model)] = "\n".join(logged)
+    return arrays, stats
+
+
+def _layout(model) -> dict[str, tuple[tuple[int, ...], Any, int, int]]:
+    """For each variable of the program: shape, dtype kept, and its slice in a draw."""
+    layout = {}
+    offset = 0
+    for name, dims in zip(model.param_names, model.dims):
+        size = int(np.prod(dims)) if dims else 1
+        dtype = np.float32 if name == "y_rep" else np.float64
+        layout[name] = (tuple(int(d) for d in dims), dtype, offset, offset + size)
+        offset += size
+    return layout
+
+
+_BOILERPLATE = ("Gradient evaluation took", "1000 transitions using", "Adjust your expectations",
+                "Elapsed Time", "Iteration")
+_STAT_NAMES = {"lp__": "lp", "accept_stat__": "acceptance_rate", "stepsize__": "step_size",
+               "treedepth__": "tree_depth", "n_leapfrog__": "n_steps", "divergent__": "diverging",
+               "energy__": "energy"}
+
+
+def _parse_chain(text: bytes, chain: int, layout, arrays, stats, settings, logged) -> None:
+    """Fill one chain's slot of ``arrays`` and ``stats`` from httpstan's JSON lines."""
+    import json as _json
+
+    import simdjson
+
+    parser = simdjson.Parser()
+    draw = 0
+    n_stats = None
+    for line in text.splitlines():
+        if b'"logger"' in line:
+            if b'info:Iteration' in line or b'Elapsed Time' in line or b'"info:"' in line:
+                continue
+            try:
+                msg = _json.loads(line)
+                value = str(msg["values"][0]).replace("info:", "").replace("error:", "").strip()
+                if value and not value.startswith(_BOILERPLATE) and not value.startswith("seconds"):
+                    logged.append(value)
+            except Exception:
+                pass
+            continue
+        if b'"sample"' not in line[:40]:
+            continue
+        try:
+            msg = parser.parse(line)
+            values = msg["values"]
+            if not isinstance(values, simdjson.Object):
+                del msg, values
+                continue
+            keys = None if n_stats is not None else tuple(values.keys())
+            row = np.fromiter(values.values(), dtype=np.float64)
+            del msg, values
+        except ValueError:  # nan or infinity, which simdjson does not parse
+            msg = _json.loads(line)
+            values = msg["values"]
+            if not isinstance(values, dict):
+                continue
+            keys = None if n_stats is not None else tuple(values.keys())
+            row = np.asarray([float(v) for v in values.values()], dtype=np.float64)
+        if n_stats is None:
+            stat_keys = [k for k in keys if k.endswith("__")]
+            n_stats = len(stat_keys)
+            for k in stat_keys:
+                stats.setdefault(k, np.empty((settings.chains, settings.draws)))
+        if draw >= settings.draws:
+            raise RuntimeError(f"chain {chain + 1} returned more draws than asked for")
+        for j, k in enumerate(list(stats)[:n_stats]):
+            stats[k][chain, draw] = row[j]
+        params = row[n_stats:]
+        for name, (shape, _dtype, lo, hi) in layout.items():
+            if shape:
+                # Stan writes arrays in column-major order
+                arrays[name][chain, draw] = params[lo:hi].reshape(shape, order="F")
+            else:
+                arrays[name][chain, draw] = params[lo]
+        draw += 1
+    if draw != settings.draws:
+        raise RuntimeError(f"chain {chain + 1} returned {draw} draws, expected {settings.draws}")
+
+
+def _to_inference_data(model, arrays, stats, data) -> az.InferenceData:
+    """InferenceData with the same groups, names and dims as ``az.from_pystan`` gives."""
+    posterior = {k: v for k, v in arrays.items() if k not in ("y_rep", "log_lik") and v.size}
+    sample_stats = {_STAT_NAMES.get(k, k.rstrip("_")): v for k, v in stats.items()}
+    if "diverging" in sample_stats:
+        sample_stats["diverging"] = sample_stats["diverging"].astype(bool)
+    for k in ("tree_depth", "n_steps"):
+        if k in sample_stats:
+            sample_stats[k] = sample_stats[k].astype(np.int64)
+    dims = dict(OBS_DIMS)
+    return az.from_dict(
+        posterior=posterior,
+        posterior_predictive={"y_rep": arrays["y_rep"]} if "y_rep" in arrays else None,
+        log_likelihood={"log_lik": arrays["log_lik"]} if "log_lik" in arrays else None,
+        sample_stats=sample_stats,
+        observed_data={"y": np.asarray(data["y"], dtype=float)} if "y" in data else None,
+        dims=dims,
+    )
+
+
 def stop_workers() -> None:
     """Terminate httpstan's sampling worker processes (forked once per Python process).
     Called on Ctrl-C: without it, workers whose parent has gone stay behind, holding the
@@ -182,31 +376,21 @@ class PyStanEngine(Engine):
     def sample(self, program: Program, data: Mapping[str, Any], settings: SamplerSettings) -> Draws:
         model = self._build(program, data, settings.seed)
         start = time.perf_counter()
-        with _forgetting_fits(), _quiet() as buf:
+        with _quiet() as buf:
             try:
-                fit = _interrupted_if_none(model.sample(
-                    num_chains=settings.chains,
-                    num_warmup=settings.warmup,
-                    num_samples=settings.draws,
-                    delta=settings.adapt_delta,
-                    max_depth=settings.max_treedepth,
-                ))
+                arrays, stats = _interrupted_if_none(asyncio.run(_sample_lean(model, settings)))
             except (RuntimeError, ValueError) as exc:
                 raise SamplingError(
                     f"{program.candidate_id}: sampling failed: {_short(exc, file_name=program.candidate_id + '.stan')}\n{_stan_message(buf.getvalue())}"
                 ) from None
+            except KeyboardInterrupt:
+                raise
+        raise_if_interrupted()
         seconds = time.perf_counter() - start
-        idata = az.from_pystan(
-            posterior=fit,
-            posterior_model=model,
-            posterior_predictive=["y_rep"],
-            log_likelihood=["log_lik"],
-            observed_data=["y"],
-            dims=OBS_DIMS,
-        )
-        del fit
+        idata = _to_inference_data(model, arrays, stats, data)
+        del arrays, stats
         return Draws(idata, self.name, program.compile_seconds, seconds, settings,
-                     _stan_message(buf.getvalue()))
+                     _stan_message(buf.getvalue() + _LOGGED.get(id(model), "")))
 
     def single_draw(
         self, program: Program, data: Mapping[str, Any], seed: int,
