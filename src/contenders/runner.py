@@ -25,7 +25,9 @@ from .config import RunConfig
 from .data import Design, build_design, read_table
 from .engines import SamplingError, compile_all, get_engine
 from .engines.base import SamplerSettings
-from .store import FitStore, StoredEngine
+from .executor import make_executor, report
+from .progress import Progress
+from .store import FitStore, StoredEngine, trials_key
 from .errors import UserError
 from .trials.checks import PredictiveChecks, predictive_checks, thin_draws
 from .trials.posterior import Health, fit_with_health
@@ -56,6 +58,9 @@ class CandidateResult:
     seconds: dict[str, float] = field(default_factory=dict)
     fit_files: list[str] = field(default_factory=list)   # stored fits (NetCDF) of this candidate
     stage: str = ""                    # stage reached (or failed at)
+    fits_sampled: int = 0              # fits sampled for this candidate in this run
+    fits_reused: int = 0               # fits loaded from the fit store
+    from_store: bool = False           # the whole result was read from the fit store
 
 
 @dataclass
@@ -137,6 +142,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig)
                           code_hash=c.code_hash)
     try:
         res.stage = "check"
+        report(c.id, "check")
         res.hyperparameters = c.hyperparameter_values(cfg.hyperparameters.get(c.id))
         check_outputs(c, engine, program, design, seed=cfg.seed)
         if not c.valid:
@@ -144,6 +150,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig)
             return res
         # 1. prior predictive trial: same program, empty fit subset
         res.stage = "prior"
+        report(c.id, "prior")
         prior_chains = min(cfg.chains, cfg.prior_draws)
         pdraws = engine.sample(
             program, inputs_for(c, design, np.arange(0), cfg.hyperparameters.get(c.id)),
@@ -157,6 +164,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig)
         del pdraws
         # 2. posterior fit with sampler health
         res.stage = "posterior"
+        report(c.id, "posterior")
         draws, health = fit_with_health(
             engine, program, inputs_for(c, design, None, cfg.hyperparameters.get(c.id)), _settings(cfg),
             c.parameter_names, cfg.escalation, rhat_max=cfg.rhat_max,
@@ -166,6 +174,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig)
         res.seconds["posterior"] = sum(a.seconds for a in health.attempts)
         # 3. posterior predictive checks on a thinned set of draws
         res.stage = "checks"
+        report(c.id, "checks")
         y_rep = _stack(draws.idata.posterior_predictive, "y_rep")
         log_lik = _stack(draws.idata.log_likelihood, "log_lik")
         keep = thin_draws(y_rep.shape[0], cfg.check_draws)
@@ -175,6 +184,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig)
         del y_rep, log_lik
         # 4. out-of-sample: PSIS-LOO, exact refits of high-k observations, or K-fold
         res.stage = "out-of-sample"
+        report(c.id, "out-of-sample")
         res.oos = _out_of_sample(res, c, engine, program, design, cfg, draws, health.adapt_delta)
         res.seconds["refits"] = res.seconds.pop("_refits", 0.0)
         del draws
@@ -195,6 +205,7 @@ def _out_of_sample(res: CandidateResult, c: Candidate, engine, program, design: 
 
     def refit(fit_idx: np.ndarray) -> np.ndarray:
         counter[0] += 1
+        report(c.id, f"out-of-sample: refit {counter[0]}")
         settings = replace(_settings(cfg), adapt_delta=adapt_delta, seed=cfg.seed + 1000 + counter[0])
         d = engine.sample(program, inputs_for(c, design, fit_idx, cfg.hyperparameters.get(c.id)), settings)
         res.refit_divergences += int(np.asarray(d.idata.sample_stats["diverging"].values).sum())
@@ -205,10 +216,68 @@ def _out_of_sample(res: CandidateResult, c: Candidate, engine, program, design: 
     return estimate(draws.idata, refit, cfg.cross_validation, cfg.refit_cap, cfg.folds, groups, cfg.seed)
 
 
+def candidate_task(c: Candidate, design: Design, cfg: RunConfig, engine_name: str,
+                   store_folder: str) -> CandidateResult:
+    """All trials of one candidate, in whichever process the executor chose. The compiled
+    program comes from the engine's cache (compiled before the tasks start); every fit is
+    written to the fit store as it finishes. Returns the compact result only."""
+    engine = StoredEngine(get_engine(engine_name), FitStore(store_folder))
+    t0 = time.perf_counter()
+    try:
+        program = engine.compile(c)
+    except SamplingError as exc:
+        return CandidateResult(c.id, c.label, c.about, c.support, "failed", f"compile: {exc}",
+                               c.code, c.code_hash, stage="compile")
+    res = run_candidate(c, engine, program, design, cfg)
+    res.fit_files = [str(p) for p in dict.fromkeys(engine.paths.get(c.id, []))]
+    res.seconds["total"] = time.perf_counter() - t0
+    res.fits_sampled, res.fits_reused = engine.sampled, engine.reused
+    return res
+
+
+def with_outcome(design: Design, y: np.ndarray) -> Design:
+    """The same design (predictors, groups, reference scale) with another outcome vector,
+    for fitting simulated datasets (calibration, recovery)."""
+    y = np.asarray(y, dtype=float)
+    if y.shape != design.y.shape:
+        raise ValueError(f"outcome has shape {y.shape}, the design has {design.y.shape}")
+    table = None
+    if design.table is not None:
+        table = design.table.copy()
+        table[design.outcome] = y
+    return replace(design, y=y, table=table)
+
+
+def fit_task(c: Candidate, design: Design, cfg: RunConfig, engine_name: str, store_folder: str,
+             keep, seed: int | None = None):
+    """One posterior fit (with the run's adapt_delta escalation) of ``c`` to ``design``,
+    for studies that fit many simulated datasets. Runs in any executor process, stores
+    the fit, and returns ``(health, keep(draws, health))`` where ``keep`` is a
+    module-level function that extracts the little the study needs, so the full draws
+    never travel back. A failure returns ``(None, message)``."""
+    engine = StoredEngine(get_engine(engine_name), FitStore(store_folder))
+    try:
+        program = engine.compile(c)
+        settings = replace(_settings(cfg), seed=cfg.seed if seed is None else seed)
+        draws, health = fit_with_health(
+            engine, program, inputs_for(c, design, None, cfg.hyperparameters.get(c.id)), settings,
+            c.parameter_names, cfg.escalation, rhat_max=cfg.rhat_max,
+            ess_per_chain_min=cfg.ess_per_chain_min, ebfmi_min=cfg.ebfmi_min,
+        )
+        kept = keep(draws, health)
+        del draws
+        return health, kept
+    except (SamplingError, UserError) as exc:
+        return None, str(exc)
+
+
 def run(cfg: RunConfig, progress=None) -> RunResult:
     """Run every candidate through every trial and write ``summary.json``.
 
-    ``progress``, when given, is called with one line of text at each step."""
+    ``progress``, when given, is called with one line of text at each step, and a live
+    line per candidate is shown; without it the run is silent. Candidates run side by
+    side on ``cfg.jobs`` cores (see :mod:`contenders.executor`); a candidate whose trials
+    were already computed with the same inputs is read from the fit store."""
     say = progress or (lambda _text: None)
     start = time.perf_counter()
     design = load_design(cfg)
@@ -222,41 +291,91 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
         raise UserError(f"{out}: cannot create the output folder ({exc.strerror}); choose another with --out")
     if not os.access(out, os.W_OK):
         raise UserError(f"{out}: the output folder is not writable; choose another with --out")
-    engine = StoredEngine(get_engine(cfg.engine), FitStore(cfg.store or out / "fits"))
+    store = FitStore(cfg.store or out / "fits")
+    engine = StoredEngine(get_engine(cfg.engine), store)
     for c in cands:
         check_against_data(c, design, cfg.hyperparameters.get(c.id))
     runnable = [c for c in cands if c.valid and not c.skip_reason]
-    cold = sum(not engine.is_cached(c) for c in runnable)
-    if cold:
-        say(f"compiling {cold} program(s) with {engine.name} (about 45 s each, {cfg.jobs or os.cpu_count()} "
-            "at a time; cached for later runs)")
-    programs = compile_all(engine, runnable, jobs=cfg.jobs or os.cpu_count() or 1)
-    results = []
-    for i, c in enumerate(cands, 1):
-        say(f"[{i}/{len(cands)}] {c.id}")
+    results: dict[str, CandidateResult] = {}
+    for c in cands:
         if not c.valid:
-            results.append(CandidateResult(c.id, c.label, c.about, c.support, "failed",
-                                           "; ".join(c.problems), c.code, c.code_hash))
+            results[c.id] = CandidateResult(c.id, c.label, c.about, c.support, "failed",
+                                            "; ".join(c.problems), c.code, c.code_hash)
         elif c.skip_reason:
-            results.append(CandidateResult(c.id, c.label, c.about, c.support, "skipped",
-                                           c.skip_reason, c.code, c.code_hash))
+            results[c.id] = CandidateResult(c.id, c.label, c.about, c.support, "skipped",
+                                            c.skip_reason, c.code, c.code_hash)
+    # trials computed before with exactly these inputs come from the store
+    keys = {c.id: trials_key(c, design, cfg, engine.version()) for c in runnable}
+    todo = []
+    for c in runnable:
+        found = store.load_trials(keys[c.id])
+        if found is not None and all(Path(f).exists() for f in found.fit_files):
+            found.from_store = True
+            results[c.id] = found
         else:
-            t0 = time.perf_counter()
-            before = engine.reused
-            results.append(run_candidate(c, engine, programs[c.id], design, cfg))
-            results[-1].fit_files = [str(p) for p in dict.fromkeys(engine.paths.get(c.id, []))]
-            reused = " (from the fit store)" if engine.reused > before else ""
-            say(f"      {results[-1].status}, {time.perf_counter() - t0:.0f} s{reused}")
-        if results[-1].status in ("failed", "skipped"):
-            say(f"      {results[-1].status}: {results[-1].reason.splitlines()[0][:160]}")
-    comparison = compare_candidates(results, cfg.seed, cfg.ppp_extreme)
+            todo.append(c)
+    jobs = cfg.jobs or None
+    from .executor import cores, share
+
+    workers, chain_workers = share(jobs or cores(), len(todo))
+    cold = sum(not engine.is_cached(c) for c in todo)
+    if cold:
+        say(f"compiling {cold} program(s) with {engine.name} (about 45 s each, {jobs or cores()} "
+            "at a time; cached for later runs)")
+    programs = compile_all(engine, todo, jobs=jobs or cores())
+    for c in todo:
+        if c.id not in programs:
+            results[c.id] = CandidateResult(c.id, c.label, c.about, c.support, "failed",
+                                            "; ".join(c.problems), c.code, c.code_hash, stage="compile")
+    todo = [c for c in todo if c.id in programs]
+    if todo:
+        say(f"fitting {len(todo)} candidate(s) on {workers} worker(s) x {chain_workers} chain(s) at once"
+            + (f"; {len(runnable) - len(todo)} from the fit store" if len(runnable) > len(todo) else ""))
+    shown = Progress([c.id for c in cands], workers=workers, quiet=progress is None or cfg.quiet)
+    for cid, r in results.items():
+        shown.event(cid, "stored" if getattr(r, "from_store", False) else r.status)
+    executor = make_executor(engine.name, jobs or cores(), len(todo), on_event=shown.event)
+    try:
+        with shown.ticker():
+            futures = {executor.submit(candidate_task, c, design, cfg, engine.name, str(store.folder)): c
+                       for c in todo}
+            for future in _as_completed(futures):
+                c = futures[future]
+                try:
+                    r = future.result()
+                except Exception as exc:   # a worker died: recorded, the others go on
+                    r = CandidateResult(c.id, c.label, c.about, c.support, "failed",
+                                        f"worker: {type(exc).__name__}: {exc}", c.code, c.code_hash)
+                results[c.id] = r
+                if r.status in ("ok", "unhealthy"):
+                    store.save_trials(keys[c.id], r)
+                shown.event(c.id, "done" if r.status == "ok" else r.status)
+        executor.close()
+    except BaseException:
+        executor.close(cancel=True)
+        raise
+    ordered = [results[c.id] for c in cands]
+    for r in ordered:
+        if r.status in ("failed", "skipped"):
+            say(f"  {r.id}: {r.status}: {r.reason.splitlines()[0][:160] if r.reason else ''}")
+    comparison = compare_candidates(ordered, cfg.seed, cfg.ppp_extreme)
+    sampled = sum(r.fits_sampled for r in ordered if not r.from_store)
+    reused = sum(r.fits_reused for r in ordered if not r.from_store) + sum(
+        len(r.fit_files) for r in ordered if r.from_store)
     result = RunResult(
-        config=cfg, design=design, candidates=results, comparison=comparison, engine=engine.name,
+        config=cfg, design=design, candidates=ordered, comparison=comparison, engine=engine.name,
         versions=versions(engine), data_hash=_file_hash(cfg.data) if cfg.data else "",
-        seconds=time.perf_counter() - start, out=out, fits_sampled=engine.sampled, fits_reused=engine.reused,
+        seconds=time.perf_counter() - start, out=out, fits_sampled=sampled, fits_reused=reused,
     )
     write_summary(result)
     return result
+
+
+def _as_completed(futures):
+    """Futures in the order they finish (inline futures are already finished)."""
+    import concurrent.futures as cf
+
+    return cf.as_completed(list(futures))
 
 
 def versions(engine) -> dict[str, str]:

@@ -45,8 +45,43 @@ def fit_key(code: str, data: Mapping[str, Any], settings: SamplerSettings, engin
     return h.hexdigest()
 
 
+#: Settings of a run that change a candidate's trial results (and so their stored copy).
+TRIAL_SETTINGS = (
+    "chains", "warmup", "draws", "prior_draws", "seed", "adapt_delta", "max_treedepth", "escalation",
+    "rhat_max", "ess_per_chain_min", "ebfmi_min", "thresholds", "bounds", "implausible_share",
+    "check_draws", "conditions", "cross_validation", "refit_cap", "folds",
+)
+#: Bumped whenever the stored trial results change shape.
+TRIALS_FORMAT = 1
+
+
+def trials_key(candidate, design, cfg, engine_version: str) -> str:
+    """SHA-256 of what determines one candidate's trial results: its code and inputs
+    (as for a fit), the values of the condition columns, the run settings in
+    ``TRIAL_SETTINGS``, the engine with its version and this package's version."""
+    from . import __version__
+    from .candidates import inputs_for
+
+    data = dict(inputs_for(candidate, design, None, cfg.hyperparameters.get(candidate.id)))
+    for col in cfg.conditions:
+        data[f"condition:{col}"] = design.table[col].astype(str).to_numpy().astype("U")
+    h = hashlib.sha256()
+    for name in sorted(data):
+        value = np.ascontiguousarray(np.asarray(data[name]))
+        h.update(name.encode())
+        h.update(str(value.dtype).encode())
+        h.update(str(value.shape).encode())
+        h.update(value.tobytes())
+    h.update(candidate.code.encode())
+    settings = {k: getattr(cfg, k) for k in TRIAL_SETTINGS}
+    h.update(json.dumps(settings, sort_keys=True, default=str).encode())
+    h.update(f"{engine_version}|contenders {__version__}|format {TRIALS_FORMAT}".encode())
+    return h.hexdigest()
+
+
 class FitStore:
-    """A folder of stored fits, ``<key>.nc``."""
+    """A folder of stored fits, ``<key>.nc``, and of computed trial results,
+    ``<key>.trials.pickle`` (this package's own cache; the NetCDF fits are for users)."""
 
     def __init__(self, folder: str | Path) -> None:
         self.folder = Path(folder)
@@ -79,6 +114,39 @@ class FitStore:
         attrs["contenders_messages"] = draws.messages[:10000]
         try:
             draws.idata.to_netcdf(str(tmp))
+            os.replace(tmp, path)
+        finally:
+            if tmp.exists():
+                tmp.unlink()
+        return path
+
+
+    def trials_path(self, key: str) -> Path:
+        return self.folder / f"{key[:32]}.trials.pickle"
+
+    def load_trials(self, key: str):
+        """A candidate's stored trial results, or None (missing, damaged or stale)."""
+        import pickle
+
+        path = self.trials_path(key)
+        if not path.exists():
+            return None
+        try:
+            with path.open("rb") as fh:
+                stored_key, result = pickle.load(fh)
+        except Exception:   # a damaged or outdated file is recomputed, never trusted
+            return None
+        return result if stored_key == key else None
+
+    def save_trials(self, key: str, result) -> Path:
+        import pickle
+
+        self.folder.mkdir(parents=True, exist_ok=True)
+        path = self.trials_path(key)
+        tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+        try:
+            with tmp.open("wb") as fh:
+                pickle.dump((key, result), fh, protocol=pickle.HIGHEST_PROTOCOL)
             os.replace(tmp, path)
         finally:
             if tmp.exists():

@@ -1,0 +1,191 @@
+"""Where the work of a run is done: in this process, or in a pool of local processes.
+
+A run hands the executor one task per candidate (all trials of that candidate on one
+dataset). Tasks return compact results (summaries, pointwise elpd, a few replicated
+datasets for figures), never a fit's full draws, so the process that gathers them never
+holds two candidates' draws at once; each worker process releases a fit's arrays
+before it starts the next task.
+
+Cores are shared out so the machine is not oversubscribed: with ``jobs`` cores and
+``w = min(jobs, tasks)`` worker processes, each worker runs at most ``jobs // w`` Stan
+chains at once (Stan's chains run in child processes of the worker). ``jobs = 1`` runs
+everything in this process, one chain at a time.
+
+Workers report progress (candidate, stage) through a queue that the caller drains in a
+thread; see :mod:`contenders.progress`.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures as cf
+import contextlib
+import multiprocessing as mp
+import os
+import queue
+import signal
+import threading
+from typing import Any, Callable
+
+#: The function a task calls to report a stage; set in each worker process.
+_REPORT: list[Callable[[str, str], None]] = [lambda _cid, _stage: None]
+
+
+def report(candidate_id: str, stage: str) -> None:
+    """Tell whoever started the run that ``candidate_id`` has reached ``stage``."""
+    with contextlib.suppress(Exception):
+        _REPORT[0](candidate_id, stage)
+
+
+def cores() -> int:
+    """Cores this process may use (the affinity mask where the platform has one)."""
+    with contextlib.suppress(AttributeError):
+        return max(1, len(os.sched_getaffinity(0)))
+    return max(1, os.cpu_count() or 1)
+
+
+def share(jobs: int, tasks: int) -> tuple[int, int]:
+    """``(worker processes, chains at once per worker)`` for ``jobs`` cores and ``tasks``
+    tasks; their product never exceeds ``jobs``."""
+    jobs = max(1, jobs)
+    workers = max(1, min(jobs, tasks))
+    return workers, max(1, jobs // workers)
+
+
+def _set_chain_workers(engine_name: str, n: int) -> None:
+    if engine_name == "pystan":
+        from .engines.pystan_engine import set_chain_workers
+
+        set_chain_workers(n)
+
+
+def _close_chain_pool() -> None:
+    import sys
+
+    stub = sys.modules.get("httpstan.services_stub")
+    if stub is not None:
+        with contextlib.suppress(Exception):
+            stub.executor.shutdown(wait=True, cancel_futures=True)
+
+
+def _worker_init(engine_name: str, chain_workers: int, events) -> None:
+    """Runs once in each worker process."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)   # the parent handles Ctrl-C and stops us
+
+    def on_term(_signum, _frame):
+        with contextlib.suppress(Exception):
+            from .engines.pystan_engine import stop_workers
+
+            stop_workers()
+        os._exit(143)
+
+    signal.signal(signal.SIGTERM, on_term)
+    _set_chain_workers(engine_name, chain_workers)
+    # Stan's chain processes are children of this worker; a worker's exit waits for its
+    # children, so close their pool first (multiprocessing runs finalisers with an exit
+    # priority before it joins children).
+    from multiprocessing.util import Finalize
+
+    Finalize(None, _close_chain_pool, exitpriority=10)
+    _REPORT[0] = lambda cid, stage: events.put((cid, stage))
+
+
+class Executor:
+    """Runs tasks and relays their progress reports to ``on_event(candidate, stage)``."""
+
+    workers: int = 1
+    chain_workers: int = 1
+
+    def submit(self, fn: Callable, *args: Any) -> cf.Future:
+        raise NotImplementedError
+
+    def close(self, cancel: bool = False) -> None:
+        """Release the workers; with ``cancel``, stop running work at once."""
+
+
+class InlineExecutor(Executor):
+    """Everything in this process, in order (``jobs = 1``, or a single task)."""
+
+    def __init__(self, engine_name: str, chain_workers: int = 1,
+                 on_event: Callable[[str, str], None] | None = None) -> None:
+        self.workers, self.chain_workers = 1, chain_workers
+        _set_chain_workers(engine_name, chain_workers)
+        self._previous = _REPORT[0]
+        _REPORT[0] = on_event or (lambda _cid, _stage: None)
+
+    def submit(self, fn: Callable, *args: Any) -> cf.Future:
+        future: cf.Future = cf.Future()
+        try:
+            future.set_result(fn(*args))
+        except BaseException as exc:   # KeyboardInterrupt included: the caller re-raises it
+            if isinstance(exc, KeyboardInterrupt):
+                raise
+            future.set_exception(exc)
+        return future
+
+    def close(self, cancel: bool = False) -> None:
+        _REPORT[0] = self._previous
+
+
+class ProcessExecutor(Executor):
+    """A pool of ``workers`` local processes (started fresh, not forked, so no state of
+    this process leaks into them), each running ``chain_workers`` chains at once."""
+
+    def __init__(self, engine_name: str, workers: int, chain_workers: int,
+                 on_event: Callable[[str, str], None] | None = None) -> None:
+        self.workers, self.chain_workers = workers, chain_workers
+        ctx = mp.get_context("spawn")
+        self._events = ctx.Queue()
+        self._pool = cf.ProcessPoolExecutor(
+            max_workers=workers, mp_context=ctx, initializer=_worker_init,
+            initargs=(engine_name, chain_workers, self._events),
+        )
+        self._on_event = on_event or (lambda _cid, _stage: None)
+        self._stop = threading.Event()
+        self._relay = threading.Thread(target=self._drain, name="progress-relay", daemon=True)
+        self._relay.start()
+
+    def _drain(self) -> None:
+        while not self._stop.is_set():
+            try:
+                cid, stage = self._events.get(timeout=0.2)
+            except queue.Empty:
+                continue
+            except (EOFError, OSError):
+                return
+            with contextlib.suppress(Exception):
+                self._on_event(cid, stage)
+
+    def submit(self, fn: Callable, *args: Any) -> cf.Future:
+        return self._pool.submit(fn, *args)
+
+    def close(self, cancel: bool = False) -> None:
+        if cancel:
+            processes = list(getattr(self._pool, "_processes", {}).values())
+            self._pool.shutdown(wait=False, cancel_futures=True)
+            for proc in processes:   # each stops its own chain processes (SIGTERM handler)
+                with contextlib.suppress(Exception):
+                    proc.terminate()
+            for proc in processes:
+                with contextlib.suppress(Exception):
+                    proc.join(timeout=5)
+        else:
+            self._pool.shutdown(wait=True)
+        # let the relay deliver what is queued, then stop it
+        self._stop.set()
+        self._relay.join(timeout=2)
+        with contextlib.suppress(Exception):
+            while True:
+                cid, stage = self._events.get_nowait()
+                self._on_event(cid, stage)
+        with contextlib.suppress(Exception):
+            self._events.close()
+
+
+def make_executor(engine_name: str, jobs: int, tasks: int,
+                  on_event: Callable[[str, str], None] | None = None) -> Executor:
+    """The executor for ``tasks`` tasks on ``jobs`` cores (0: all cores)."""
+    jobs = jobs or cores()
+    workers, chain_workers = share(jobs, tasks)
+    if workers == 1:
+        return InlineExecutor(engine_name, chain_workers, on_event)
+    return ProcessExecutor(engine_name, workers, chain_workers, on_event)
