@@ -61,6 +61,7 @@ class CandidateResult:
     fits_sampled: int = 0              # fits sampled for this candidate in this run
     fits_reused: int = 0               # fits loaded from the fit store
     from_store: bool = False           # the whole result was read from the fit store
+    posterior_file: str = ""           # stored NetCDF of the accepted posterior fit
 
 
 @dataclass
@@ -172,6 +173,8 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig)
         )
         res.health = health
         res.seconds["posterior"] = sum(a.seconds for a in health.attempts)
+        stored = getattr(engine, "paths", {}).get(c.id)
+        res.posterior_file = str(stored[-1]) if stored else ""
         # 3. posterior predictive checks on a thinned set of draws
         res.stage = "checks"
         report(c.id, "checks")
