@@ -70,6 +70,7 @@ def test_interrupted_run_keeps_finished_fits(setup, monkeypatch):
         return real(c, *args, **kwargs)
 
     monkeypatch.setattr(runner, "run_candidate", interrupt_second)
+    cfg = cfg.with_(jobs=1)  # in this process, where the patch applies
     with pytest.raises(KeyboardInterrupt):
         run(cfg)
     monkeypatch.setattr(runner, "run_candidate", real)

@@ -286,7 +286,7 @@ HELP: dict[str, str] = {
     "adapt_delta": "Stan's target acceptance rate for the first fit",
     "escalation": "higher adapt_delta values tried in turn after divergent transitions",
     "max_treedepth": "Stan's maximum tree depth",
-    "jobs": "programs compiled at once (0: all cores)",
+    "jobs": "cores the run may use: programs compiled, candidates fitted side by side and chains at once (0: all cores)",
     "engine": "Stan engine: auto (CmdStanPy when CmdStan is installed, else PyStan), pystan, cmdstanpy",
     "thresholds": "extra statistics: share of observations below each value, comma-separated",
     "bounds": "plausibility bounds for the prior trial, e.g. mean=150:5000,min=100:inf",

@@ -98,14 +98,16 @@ Columns of `icon_search.csv`:
 """
 
 
-def generate(seed: int = SEED, guess_rate: float = 0.03, interaction: float = 0.08) -> pd.DataFrame:
+def generate(seed: int = SEED, guess_rate: float = 0.03, interaction: float = 0.08,
+             participants: int = N_PARTICIPANTS) -> pd.DataFrame:
     """The demo table (same seed, same table). ``guess_rate`` and ``interaction`` can
-    be set to 0 to simulate a plain additive shifted lognormal (for recovery tests)."""
+    be set to 0 to simulate a plain additive shifted lognormal (for recovery tests);
+    more ``participants`` give a larger table of the same design (for benchmarks)."""
     rng = np.random.default_rng(seed)
     rows = []
-    u = rng.normal(0.0, 0.15, N_PARTICIPANTS)
+    u = rng.normal(0.0, 0.15, participants)
     cells = [(d, c) for d in ("sparse", "dense") for c in ("off", "on")]
-    for p in range(N_PARTICIPANTS):
+    for p in range(participants):
         order = rng.permutation(np.repeat(np.arange(4), TRIALS_PER_CELL))
         for t, cell in enumerate(order, 1):
             density, cue = cells[cell]
@@ -115,7 +117,7 @@ def generate(seed: int = SEED, guess_rate: float = 0.03, interaction: float = 0.
                 rt = rng.uniform(120, 380)
             else:
                 rt = 230 + rng.lognormal(mu, 0.40)
-            rows.append((f"P{p + 1:02d}", t, density, cue, round(float(rt))))
+            rows.append((f"P{p + 1:0{max(2, len(str(participants)))}d}", t, density, cue, round(float(rt))))
     return pd.DataFrame(rows, columns=["participant", "trial", "density", "cue", "rt_ms"])
 
 

@@ -51,27 +51,44 @@ def share(jobs: int, tasks: int) -> tuple[int, int]:
     return workers, max(1, jobs // workers)
 
 
-def _set_chain_workers(engine_name: str, n: int) -> None:
+def _set_chain_workers(engine_name: str, n: int) -> int:
+    """Limit the chains this process runs at once; return the previous limit (0: none)."""
     if engine_name == "pystan":
-        from .engines.pystan_engine import set_chain_workers
-
-        set_chain_workers(n)
+        from .engines import pystan_engine as module
+    else:
+        from .engines import cmdstanpy_engine as module
+    previous = module.CHAIN_WORKERS[0]
+    module.set_chain_workers(n)
+    return previous
 
 
 def _close_chain_pool() -> None:
     import sys
 
     stub = sys.modules.get("httpstan.services_stub")
-    if stub is not None:
+    if stub is None:
+        return
+    pool = stub.executor
+    processes = list((getattr(pool, "_processes", None) or {}).values())
+    with contextlib.suppress(Exception):
+        pool.shutdown(wait=False, cancel_futures=True)
+    for proc in processes:   # idle by now: the worker only exits between tasks
         with contextlib.suppress(Exception):
-            stub.executor.shutdown(wait=True, cancel_futures=True)
+            proc.terminate()
+    for proc in processes:
+        with contextlib.suppress(Exception):
+            proc.join(timeout=5)
 
 
 def _worker_init(engine_name: str, chain_workers: int, events) -> None:
     """Runs once in each worker process."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)   # the parent handles Ctrl-C and stops us
 
+    me = os.getpid()
+
     def on_term(_signum, _frame):
+        if os.getpid() != me:   # a chain process forked from this worker: just go
+            os._exit(143)
         with contextlib.suppress(Exception):
             from .engines.pystan_engine import stop_workers
 
@@ -81,11 +98,12 @@ def _worker_init(engine_name: str, chain_workers: int, events) -> None:
     signal.signal(signal.SIGTERM, on_term)
     _set_chain_workers(engine_name, chain_workers)
     # Stan's chain processes are children of this worker; a worker's exit waits for its
-    # children, so close their pool first (multiprocessing runs finalisers with an exit
-    # priority before it joins children).
+    # children, so stop them first. multiprocessing runs finalisers with an exit priority
+    # before it joins children, highest first; queues close their feeder threads at
+    # priority 10, so this must come before them.
     from multiprocessing.util import Finalize
 
-    Finalize(None, _close_chain_pool, exitpriority=10)
+    Finalize(None, _close_chain_pool, exitpriority=100)
     _REPORT[0] = lambda cid, stage: events.put((cid, stage))
 
 
@@ -108,7 +126,8 @@ class InlineExecutor(Executor):
     def __init__(self, engine_name: str, chain_workers: int = 1,
                  on_event: Callable[[str, str], None] | None = None) -> None:
         self.workers, self.chain_workers = 1, chain_workers
-        _set_chain_workers(engine_name, chain_workers)
+        self._engine = engine_name
+        self._previous_chains = _set_chain_workers(engine_name, chain_workers)
         self._previous = _REPORT[0]
         _REPORT[0] = on_event or (lambda _cid, _stage: None)
 
@@ -124,6 +143,8 @@ class InlineExecutor(Executor):
 
     def close(self, cancel: bool = False) -> None:
         _REPORT[0] = self._previous
+        # this process goes on (a library caller, a test session): give back its cores
+        _set_chain_workers(self._engine, self._previous_chains or cores())
 
 
 class ProcessExecutor(Executor):

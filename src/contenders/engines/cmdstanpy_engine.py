@@ -28,6 +28,14 @@ def _cache_root() -> Path:
     return Path(base) / "contenders" / "cmdstan"
 
 
+#: Chains run at once by this process (0: all of them); set by the run's executor.
+CHAIN_WORKERS = [0]
+
+
+def set_chain_workers(n: int) -> None:
+    CHAIN_WORKERS[0] = max(1, int(n))
+
+
 class CmdStanPyEngine(Engine):
     name = "cmdstanpy"
 
@@ -67,7 +75,7 @@ class CmdStanPyEngine(Engine):
                 fit = program.handle.sample(
                     data=dict(data),
                     chains=settings.chains,
-                    parallel_chains=settings.chains,
+                    parallel_chains=min(settings.chains, CHAIN_WORKERS[0] or settings.chains),
                     iter_warmup=settings.warmup,
                     iter_sampling=settings.draws,
                     adapt_delta=settings.adapt_delta,

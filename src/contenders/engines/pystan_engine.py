@@ -86,7 +86,7 @@ def _quiet():
 
 _SAMPLE_FUNCTION = "stan::services::sample::hmc_nuts_diag_e_adapt"
 _LOGGED: dict[int, str] = {}
-_CHAIN_WORKERS = [0]   # 0: httpstan's default (one per core)
+CHAIN_WORKERS = [0]   # 0: httpstan's default (one per core)
 
 
 def set_chain_workers(n: int) -> None:
@@ -100,14 +100,23 @@ def set_chain_workers(n: int) -> None:
     import httpstan.services_stub as stub
 
     n = max(1, int(n))
-    if _CHAIN_WORKERS[0] == n:
+    if CHAIN_WORKERS[0] == n:
         return
     old = stub.executor
     stub.executor = concurrent.futures.ProcessPoolExecutor(
-        max_workers=n, mp_context=mp.get_context("fork"), initializer=stub.init_worker)
-    _CHAIN_WORKERS[0] = n
+        max_workers=n, mp_context=mp.get_context("fork"), initializer=_init_chain_process)
+    CHAIN_WORKERS[0] = n
     with contextlib.suppress(Exception):
         old.shutdown(wait=False)
+
+
+def _init_chain_process() -> None:
+    """Chain processes ignore Ctrl-C (their parent handles it, as in httpstan) and die
+    at once on SIGTERM, whatever handler the forking process had installed."""
+    import signal
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
 
 
 async def _sample_lean(model, settings: SamplerSettings):

@@ -1,0 +1,224 @@
+"""End-to-end benchmark: contenders against a plain hand-written baseline, in one run.
+
+Not a test. Run it from the repository root with the project installed:
+
+    python benchmarks/end_to_end.py                     # speed: demo design, all built-ins
+    python benchmarks/end_to_end.py --memory            # memory: N = 20,000, jobs = 2
+
+Speed part (each phase starts from an empty fit store; programs are compiled first, so
+compiling is not timed):
+
+* baseline: what a careful analyst would write by hand with the same engine and ArviZ,
+  one candidate after the other: PyStan ``build`` + ``sample`` (same chains, warmup,
+  draws and seed), ``arviz.from_pystan``, ``arviz.loo``, then ``arviz.compare``. It does
+  no prior predictive trial, no predictive checks, no refits and writes no report, so
+  it does less work than the tool; the ratios are therefore conservative for the tool.
+* cold: ``contenders run`` with ``jobs`` = all cores and an empty fit store.
+* warm: the same command again (every result from the fit store).
+* jobs=1: ``contenders run`` with ``jobs`` = 1 and an empty fit store.
+
+Printed as ratios: warm / baseline (target: at least 20x faster), cold / baseline (target:
+at most 1.15x), jobs=1 / jobs=all (target: at least 1.6x on two cores).
+
+Memory part: the whole run at N = 20,000 (the demo design with more participants) with
+``jobs`` = 2; peak resident memory of the process tree (the command and every process
+it starts), sampled every 0.25 s from /proc (Linux). Sum of RSS, so shared pages are
+counted more than once: an upper bound.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _children(pid: int) -> list[int]:
+    out = []
+    try:
+        for task in Path(f"/proc/{pid}/task").iterdir():
+            text = (task / "children").read_text().split()
+            out.extend(int(t) for t in text)
+    except OSError:
+        pass
+    return out
+
+
+def _tree_rss(pid: int) -> int:
+    """Sum of VmRSS (bytes) over ``pid`` and all its descendants."""
+    total, todo, seen = 0, [pid], set()
+    while todo:
+        p = todo.pop()
+        if p in seen:
+            continue
+        seen.add(p)
+        try:
+            for line in Path(f"/proc/{p}/status").read_text().splitlines():
+                if line.startswith("VmRSS:"):
+                    total += int(line.split()[1]) * 1024
+                    break
+        except OSError:
+            continue
+        todo.extend(_children(p))
+    return total
+
+
+def timed(cmd: list[str], env: dict | None = None) -> tuple[float, int]:
+    """Wall seconds and peak process-tree RSS (bytes) of a command; fails loudly."""
+    start = time.perf_counter()
+    proc = subprocess.Popen(cmd, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+    peak = [0]
+    stop = threading.Event()
+
+    def watch():
+        while not stop.is_set():
+            peak[0] = max(peak[0], _tree_rss(proc.pid))
+            stop.wait(0.25)
+
+    t = threading.Thread(target=watch, daemon=True)
+    t.start()
+    output, _ = proc.communicate()
+    stop.set()
+    t.join()
+    seconds = time.perf_counter() - start
+    if proc.returncode != 0:
+        sys.stderr.write(output[-4000:])
+        raise SystemExit(f"command failed ({proc.returncode}): {' '.join(cmd)}")
+    return seconds, peak[0]
+
+
+BASELINE = r'''
+import json, sys, time
+import arviz as az
+import numpy as np
+import stan
+from contenders.candidates import builtin_folder, discover, inputs_for
+from contenders.config import load
+from contenders.runner import load_design
+
+cfg = load(sys.argv[1])
+only = sys.argv[2].split(",") if sys.argv[2] else None
+design = load_design(cfg)
+loos = {}
+for c in discover(builtin_folder()):
+    if only and c.id not in only:
+        continue
+    data = dict(inputs_for(c, design, None, cfg.hyperparameters.get(c.id)))
+    model = stan.build(c.code, data=data, random_seed=cfg.seed)
+    fit = model.sample(num_chains=cfg.chains, num_warmup=cfg.warmup, num_samples=cfg.draws)
+    idata = az.from_pystan(posterior=fit, posterior_model=model, posterior_predictive=["y_rep"],
+                           log_likelihood=["log_lik"], observed_data=["y"])
+    del fit
+    loos[c.id] = az.loo(idata, pointwise=True)
+    del idata
+print(az.compare(loos, method="stacking").to_string())
+'''
+
+
+def write_config(folder: Path, participants: int, draws: int, rows: int | None) -> Path:
+    sys.path.insert(0, str(ROOT / "src"))
+    from contenders import demo
+
+    demo.write(folder)
+    table = demo.generate(participants=participants)
+    if rows:
+        table = table.head(rows)
+    table.to_csv(folder / "icon_search.csv", index=False)
+    cfg = (folder / "demo.toml").read_text()
+    cfg = cfg.replace('[run]\nout = "../reports/demo"',
+                      f'[sampler]\nwarmup = {draws}\ndraws = {draws}\n\n[run]\nout = "out"')
+    (folder / "bench.toml").write_text(cfg)
+    return folder / "bench.toml"
+
+
+def contenders(*args: str) -> list[str]:
+    return [sys.executable, "-m", "contenders.cli", *args]
+
+
+def speed(args) -> dict:
+    work = Path(tempfile.mkdtemp(prefix="contenders-bench-"))
+    try:
+        cfg = write_config(work, args.participants, args.draws, None)
+        only = ["--only", args.only] if args.only else []
+        print(f"compiling (not timed) ...", flush=True)
+        subprocess.run(contenders("check", *(args.only.split(",") if args.only else [])), check=True,
+                       stdout=subprocess.DEVNULL)
+        env = dict(os.environ, PYTHONHASHSEED="0")
+        base_script = work / "baseline.py"
+        base_script.write_text(BASELINE)
+        res = {}
+        print("baseline ...", flush=True)
+        res["baseline"] = timed([sys.executable, str(base_script), str(cfg), args.only or ""], env)
+        print(f"  {res['baseline'][0]:.1f} s", flush=True)
+        print("contenders, cold (jobs = all cores) ...", flush=True)
+        res["cold"] = timed(contenders("run", "--config", str(cfg), "--quiet", "--out", str(work / "a"), *only), env)
+        print(f"  {res['cold'][0]:.1f} s", flush=True)
+        print("contenders, warm rerun ...", flush=True)
+        res["warm"] = timed(contenders("run", "--config", str(cfg), "--quiet", "--out", str(work / "a"), *only), env)
+        print(f"  {res['warm'][0]:.1f} s", flush=True)
+        print("contenders, cold, jobs = 1 ...", flush=True)
+        res["jobs1"] = timed(contenders("run", "--config", str(cfg), "--quiet", "--jobs", "1",
+                                        "--out", str(work / "b"), *only), env)
+        print(f"  {res['jobs1'][0]:.1f} s", flush=True)
+        a = json.loads((work / "a" / "summary.json").read_text())
+        b = json.loads((work / "b" / "summary.json").read_text())
+        same = all(x["elpd_loo"] == y["elpd_loo"] for x, y in zip(a["candidates"], b["candidates"]))
+        out = {
+            "n": a["data"]["n"], "candidates": len(a["candidates"]), "cores": os.cpu_count(),
+            "seconds": {k: round(v[0], 1) for k, v in res.items()},
+            "peak_gb": {k: round(v[1] / 2**30, 2) for k, v in res.items()},
+            "warm_speedup_vs_baseline": round(res["baseline"][0] / res["warm"][0], 1),
+            "cold_over_baseline": round(res["cold"][0] / res["baseline"][0], 2),
+            "jobs_all_speedup_vs_jobs1": round(res["jobs1"][0] / res["cold"][0], 2),
+            "jobs1_and_jobs_all_give_equal_elpd": same,
+        }
+        return out
+    finally:
+        if not args.keep:
+            shutil.rmtree(work, ignore_errors=True)
+
+
+def memory(args) -> dict:
+    work = Path(tempfile.mkdtemp(prefix="contenders-mem-"))
+    try:
+        cfg = write_config(work, 417, 1000, args.memory_n)
+        only = ["--only", args.memory_only] if args.memory_only else []
+        subprocess.run(contenders("check", *(args.memory_only.split(",") if args.memory_only else [])),
+                       check=True, stdout=subprocess.DEVNULL)
+        seconds, peak = timed(contenders("run", "--config", str(cfg), "--quiet", "--jobs", "2",
+                                         "--out", str(work / "m"), *only))
+        s = json.loads((work / "m" / "summary.json").read_text())
+        return {"n": s["data"]["n"], "candidates": [c["id"] for c in s["candidates"]],
+                "statuses": [c["status"] for c in s["candidates"]], "jobs": 2,
+                "seconds": round(seconds, 1), "peak_rss_gb_process_tree": round(peak / 2**30, 2),
+                "engine": s["sampler"]["engine"]}
+    finally:
+        if not args.keep:
+            shutil.rmtree(work, ignore_errors=True)
+
+
+def main() -> None:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--only", default="", help="candidate ids, comma-separated (default: all built-ins)")
+    p.add_argument("--participants", type=int, default=30, help="demo design size (30: N = 1,440)")
+    p.add_argument("--draws", type=int, default=1000, help="warmup and draws per chain")
+    p.add_argument("--memory", action="store_true", help="run the N = 20,000 memory measurement instead")
+    p.add_argument("--memory-n", type=int, default=20000)
+    p.add_argument("--memory-only", default="", help="candidates for the memory run (default: all)")
+    p.add_argument("--keep", action="store_true", help="keep the temporary folders")
+    args = p.parse_args()
+    result = memory(args) if args.memory else speed(args)
+    print(json.dumps(result, indent=2))
+
+
+if __name__ == "__main__":
+    main()
