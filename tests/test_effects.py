@@ -183,3 +183,101 @@ def test_compare_effects_orders_by_elpd_and_combines_ranked_only(rng):
     assert (from_fast, from_slow) == (320, 80)
     again = compare_effects(results, rows, seed=3)[0]
     assert np.array_equal(again.combined_draws, e.combined_draws)
+
+
+# --- recovery of a known effect from a fitted candidate -----------------------------------
+
+#: Generating process of the simulation: latencies in ms, N = 1000 rows alternating
+#: cue = off, on. Under off, y ~ lognormal(6.3, 0.45); under on, y ~ lognormal(mu_on,
+#: 0.45) with mu_on = log(m_off + 80) - 0.45^2 / 2, where m_off = exp(6.3 + 0.45^2 / 2)
+#: is the mean under off. The lognormal mean is exp(mu + sigma^2 / 2), so the mean
+#: under on is exactly m_off + 80: a condition effect of 80 ms added on the natural
+#: scale. The built-in lognormal candidate with cue as predictor is this family.
+SIGMA, MU_OFF, EFFECT, N_SIM = 0.45, 6.3, 80.0, 1000
+M_OFF = float(np.exp(MU_OFF + SIGMA**2 / 2))
+MU_ON = float(np.log(M_OFF + EFFECT) - SIGMA**2 / 2)
+
+
+def _lognormal_var(mean, sigma):
+    """Variance of a lognormal with this mean: (exp(sigma^2) - 1) mean^2 (closed form)."""
+    return (np.exp(sigma**2) - 1.0) * mean**2
+
+
+@pytest.fixture(scope="module")
+def known_effect(tmp_path_factory, programs):
+    from contenders.config import RunConfig
+    from contenders.runner import run
+
+    rng = np.random.default_rng(20261212)
+    cue = np.tile(["off", "on"], N_SIM // 2)
+    y = rng.lognormal(np.where(cue == "on", MU_ON, MU_OFF), SIGMA)
+    folder = tmp_path_factory.mktemp("effect")
+    pd.DataFrame({"rt": y, "cue": cue}).to_csv(folder / "rt.csv", index=False)
+    # Short chains keep the test fast; the ESS threshold is relaxed to match.
+    cfg = RunConfig(data=folder / "rt.csv", outcome="rt", predictors=("cue",), conditions=("cue",),
+                    only=("lognormal", "normal"), out=folder / "out", chains=2, warmup=300, draws=300,
+                    prior_draws=200, engine="pystan", ess_per_chain_min=50.0, rhat_max=1.05, quiet=True)
+    return run(cfg)
+
+
+def _posterior_of(result, cid, effect):
+    """The stored posterior fit of a candidate: the one whose y_rep gives exactly the
+    candidate's replicated effect draws."""
+    import arviz as az
+
+    r = next(r for r in result.candidates if r.id == cid)
+    labels = result.design.table["cue"].to_numpy()
+    for path in r.fit_files:
+        idata = az.from_netcdf(path)
+        if "posterior" not in idata.groups():
+            continue
+        y_rep = idata.posterior_predictive["y_rep"].values.reshape(-1, result.design.N)
+        reps = level_differences(y_rep, labels, "mean")["on"]
+        if reps.shape == effect.draws.shape and np.array_equal(reps, effect.draws):
+            return idata.posterior
+    raise AssertionError(f"no stored fit of {cid} reproduces its effect draws")
+
+
+def test_generating_candidate_recovers_the_80_ms_effect(known_effect):
+    r = next(r for r in known_effect.candidates if r.id == "lognormal")
+    assert r.status == "ok", r.reason
+    e = next(e for e in r.effects if e.key == "cue=on-off:mean_difference")
+    assert e.n_draws == 600 and e.n_missing == 0
+    assert e.lower < EFFECT < e.upper, (e.lower, e.upper)
+    # The replicated mean difference against the generating difference of 80 ms. Its
+    # error is that of one simulated dataset of this size: the SE of a difference of
+    # two sample means, sqrt(V_on / 500 + V_off / 500) = 19.2 ms with the lognormal
+    # variances in closed form (exact computation), plus Monte Carlo error of 600
+    # draws (below 1 ms); 3 SE is the tolerance (common practice, no source).
+    se_data = np.sqrt((_lognormal_var(M_OFF + EFFECT, SIGMA) + _lognormal_var(M_OFF, SIGMA)) / (N_SIM / 2))
+    assert abs(e.mean - EFFECT) < 3 * se_data, (e.mean, se_data)
+
+
+def test_replicated_difference_equals_analytic_difference_of_candidate_means(known_effect):
+    """Per posterior draw s the lognormal candidate's means are exp(eta + sigma^2 / 2)
+    (closed form), so the analytic difference D_s is known; the replicated difference
+    R_s from y_rep has expectation D_s and variance V_s = var_on / 500 + var_off / 500.
+    The mean of R over S draws equals the mean of D within the Monte Carlo SE
+    sqrt(mean(V_s) / S) (replicated datasets are independent given the parameters);
+    tolerance 4 MC SE (common practice, no source). The same for medians: median
+    exp(eta), asymptotic variance of a sample median pi m^2 sigma^2 / (2 n) from
+    p (1 - p) / (n f(m)^2) with the lognormal density at its median (common practice,
+    no source)."""
+    r = next(r for r in known_effect.candidates if r.id == "lognormal")
+    e_mean = next(e for e in r.effects if e.key == "cue=on-off:mean_difference")
+    e_med = next(e for e in r.effects if e.key == "cue=on-off:median_difference")
+    post = _posterior_of(known_effect, "lognormal", e_mean)
+    center = known_effect.design.coding[0].center      # mean of the centred indicator
+    intercept = post["intercept"].values.reshape(-1)
+    coef = post["coef"].values.reshape(-1)
+    sigma = post["sigma"].values.reshape(-1)
+    eta_off, eta_on = intercept - coef * center, intercept + coef * (1 - center)
+    m_off, m_on = np.exp(eta_off + sigma**2 / 2), np.exp(eta_on + sigma**2 / 2)
+    n = N_SIM / 2
+    d_mean = m_on - m_off
+    mcse = np.sqrt(np.mean((_lognormal_var(m_on, sigma) + _lognormal_var(m_off, sigma)) / n) / d_mean.size)
+    assert abs(e_mean.draws.mean() - d_mean.mean()) < 4 * mcse, (e_mean.draws.mean(), d_mean.mean(), mcse)
+    med_off, med_on = np.exp(eta_off), np.exp(eta_on)
+    d_med = med_on - med_off
+    mcse_med = np.sqrt(np.mean(np.pi * sigma**2 * (med_on**2 + med_off**2) / (2 * n)) / d_med.size)
+    assert abs(e_med.draws.mean() - d_med.mean()) < 4 * mcse_med, (e_med.draws.mean(), d_med.mean(), mcse_med)

@@ -28,6 +28,7 @@ from .engines.base import SamplerSettings
 from .store import FitStore, StoredEngine
 from .errors import UserError
 from .trials.checks import PredictiveChecks, predictive_checks, thin_draws
+from .trials.effects import compare_effects, effect_draws, effects_summary
 from .trials.posterior import Health, fit_with_health
 from .trials.prior import PriorTrial, summarise_prior
 
@@ -56,6 +57,7 @@ class CandidateResult:
     seconds: dict[str, float] = field(default_factory=dict)
     fit_files: list[str] = field(default_factory=list)   # stored fits (NetCDF) of this candidate
     stage: str = ""                    # stage reached (or failed at)
+    effects: list = field(default_factory=list)   # replicated effects (trials/effects.py)
 
 
 @dataclass
@@ -71,6 +73,7 @@ class RunResult:
     out: Path
     fits_sampled: int = 0
     fits_reused: int = 0
+    effects: list = field(default_factory=list)   # effects across candidates (trials/effects.py)
 
 
 def _file_hash(path: Path) -> str:
@@ -172,6 +175,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig)
         conditions = {col: design.table[col].to_numpy() for col in cfg.conditions}
         res.checks = predictive_checks(design.y, y_rep[keep], log_lik[keep], cfg.thresholds, conditions)
         res.y_rep_sample = y_rep[thin_draws(y_rep.shape[0], FIGURE_DRAWS)].astype(np.float32)
+        res.effects = effect_draws(y_rep, design.y, design.table, cfg.conditions, cfg.predictors)
         del y_rep, log_lik
         # 4. out-of-sample: PSIS-LOO, exact refits of high-k observations, or K-fold
         res.stage = "out-of-sample"
@@ -255,6 +259,7 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
         versions=versions(engine), data_hash=_file_hash(cfg.data) if cfg.data else "",
         seconds=time.perf_counter() - start, out=out, fits_sampled=engine.sampled, fits_reused=engine.reused,
     )
+    result.effects = compare_effects(results, comparison.rows, cfg.seed)
     write_summary(result)
     return result
 
@@ -349,6 +354,7 @@ def summary_dict(result: RunResult) -> dict[str, Any]:
         "preferred": result.comparison.preferred,
         "verdict": " ".join(result.comparison.verdict),
         "candidates": [candidate_summary(r, result.comparison) for r in result.candidates],
+        "effects": effects_summary(result.effects),
     })
 
 
