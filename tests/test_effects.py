@@ -281,3 +281,48 @@ def test_replicated_difference_equals_analytic_difference_of_candidate_means(kno
     d_med = med_on - med_off
     mcse_med = np.sqrt(np.mean(np.pi * sigma**2 * (med_on**2 + med_off**2) / (2 * n)) / d_med.size)
     assert abs(e_med.draws.mean() - d_med.mean()) < 4 * mcse_med, (e_med.draws.mean(), d_med.mean(), mcse_med)
+
+
+# --- summary.json, CSV and report ---------------------------------------------------------
+
+def test_summary_csv_and_report_carry_the_effects(known_effect, tmp_path):
+    import csv
+    import dataclasses
+    import json
+
+    from contenders.report import SECTIONS, write_report
+
+    result = known_effect
+    summary = json.loads((result.out / "summary.json").read_text())["effects"]
+    assert [e["key"] for e in summary] == ["cue=on-off:mean_difference", "cue=on-off:median_difference"]
+    ranking = result.comparison.ranking
+    for s, e in zip(summary, result.effects):
+        assert [c["id"] for c in s["candidates"]] == ranking          # best elpd first
+        assert s["observed"] == pytest.approx(e.observed)
+        assert s["reading"] in ("agree", "depends", "single") and s["sentence"] == e.sentence
+        lognormal = next(c for c in s["candidates"] if c["id"] == "lognormal")
+        own = next(x for x in result.candidates[0].effects if x.key == s["key"])
+        assert (lognormal["mean"], lognormal["lower"], lognormal["upper"]) == pytest.approx(
+            (own.mean, own.lower, own.upper))
+        weights = [c["weight"] for c in s["candidates"]]
+        assert sum(weights) == pytest.approx(1.0) and s["stacking_combined"]["n_draws"] == 600
+    # observed difference of means: pandas groupby (exact computation)
+    t = result.design.table
+    by = t.groupby("cue")["rt"].mean()
+    assert summary[0]["observed"] == pytest.approx(by["on"] - by["off"], rel=1e-12)
+
+    write_report(result, tmp_path)
+    html = (tmp_path / "report.html").read_text()
+    assert '<section id="effects">' in html and "Effects across candidates" in html
+    assert result.effects[0].sentence.replace("'", "&#39;") in html
+    with open(tmp_path / "effects.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 2 * (len(ranking) + 1)            # per effect: each candidate and the mix
+    mix = next(r for r in rows if r["id"] == "stacking_combined")
+    assert float(mix["replicated_mean"]) == pytest.approx(result.effects[0].combined["mean"])
+
+    # without effects the section stays, says why, and a stale effects.csv is removed
+    write_report(dataclasses.replace(result, effects=[]), tmp_path)
+    html = (tmp_path / "report.html").read_text()
+    assert html.count("<section id=") == len(SECTIONS) and "No effects:" in html
+    assert not (tmp_path / "effects.csv").exists()

@@ -294,13 +294,18 @@ def agreement(title: str, rows: Sequence[Mapping], observed: float, combined: Ma
             f"{_iv(combined['lower'], combined['upper'])})") if combined else ""
     if overlap and len(sides) == 1:
         side = sides.pop()
-        what = ("every 95 % interval includes zero, so none of them separates this effect from zero"
-                if side == "includes zero" else f"every 95 % interval lies {side}")
+        if side == "includes zero":
+            what = ("agree only in that none of them separates this effect from zero: every 95 % interval "
+                    "includes zero")
+            after = ("The data leave the direction open under each of these candidates; that is not "
+                     "evidence that the effect is absent.")
+        else:
+            what = f"agree: every 95 % interval lies {side}"
+            after = ("The conclusion does not hinge on the choice among these candidates; that is not "
+                     "proof of the effect, since all of them may share the same blind spots.")
         return Agreement("agree", (
             f"{title}: the {len(use)} candidates with stacking weight of at least {min_weight:g} "
-            f"({names}) agree: {what}, and the intervals overlap{comb}. The conclusion does not hinge "
-            "on the choice among these candidates; that is not proof of the effect, since all of "
-            "them may share the same blind spots." + miss))
+            f"({names}) {what}, and the intervals overlap{comb}. {after}" + miss))
     parts = "; ".join(f"{r['label']} {_iv(r['lower'], r['upper'])} ({direction(r['lower'], r['upper'])})"
                       for r in use)
     why = []
