@@ -294,9 +294,10 @@ def test_summary_csv_and_report_carry_the_effects(known_effect, tmp_path):
 
     result = known_effect
     summary = json.loads((result.out / "summary.json").read_text())["effects"]
+    effects = compare_effects(result.candidates, result.comparison.rows, result.config.seed)
     assert [e["key"] for e in summary] == ["cue=on-off:mean_difference", "cue=on-off:median_difference"]
     ranking = result.comparison.ranking
-    for s, e in zip(summary, result.effects):
+    for s, e in zip(summary, effects):
         assert [c["id"] for c in s["candidates"]] == ranking          # best elpd first
         assert s["observed"] == pytest.approx(e.observed)
         assert s["reading"] in ("agree", "depends", "single") and s["sentence"] == e.sentence
@@ -314,15 +315,18 @@ def test_summary_csv_and_report_carry_the_effects(known_effect, tmp_path):
     write_report(result, tmp_path)
     html = (tmp_path / "report.html").read_text()
     assert '<section id="effects">' in html and "Effects across candidates" in html
-    assert result.effects[0].sentence.replace("'", "&#39;") in html
+    assert effects[0].sentence.replace("'", "&#39;") in html
     with open(tmp_path / "effects.csv", newline="") as fh:
         rows = list(csv.DictReader(fh))
     assert len(rows) == 2 * (len(ranking) + 1)            # per effect: each candidate and the mix
     mix = next(r for r in rows if r["id"] == "stacking_combined")
-    assert float(mix["replicated_mean"]) == pytest.approx(result.effects[0].combined["mean"])
+    assert float(mix["replicated_mean"]) == pytest.approx(effects[0].combined["mean"])
 
-    # without effects the section stays, says why, and a stale effects.csv is removed
-    write_report(dataclasses.replace(result, effects=[]), tmp_path)
+    # without effects the section stays, says why, and a stale effects.csv is removed;
+    # a failed candidate's effects are never shown
+    gone = [dataclasses.replace(c, effects=[]) if c.id == "normal" else dataclasses.replace(c, status="failed")
+            for c in result.candidates]
+    write_report(dataclasses.replace(result, candidates=gone), tmp_path)
     html = (tmp_path / "report.html").read_text()
     assert html.count("<section id=") == len(SECTIONS) and "No effects:" in html
     assert not (tmp_path / "effects.csv").exists()

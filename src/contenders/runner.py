@@ -73,7 +73,6 @@ class RunResult:
     out: Path
     fits_sampled: int = 0
     fits_reused: int = 0
-    effects: list = field(default_factory=list)   # effects across candidates (trials/effects.py)
 
 
 def _file_hash(path: Path) -> str:
@@ -259,7 +258,6 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
         versions=versions(engine), data_hash=_file_hash(cfg.data) if cfg.data else "",
         seconds=time.perf_counter() - start, out=out, fits_sampled=engine.sampled, fits_reused=engine.reused,
     )
-    result.effects = compare_effects(results, comparison.rows, cfg.seed)
     write_summary(result)
     return result
 
@@ -354,7 +352,7 @@ def summary_dict(result: RunResult) -> dict[str, Any]:
         "preferred": result.comparison.preferred,
         "verdict": " ".join(result.comparison.verdict),
         "candidates": [candidate_summary(r, result.comparison) for r in result.candidates],
-        "effects": effects_summary(result.effects),
+        "effects": effects_summary(compare_effects(result.candidates, result.comparison.rows, cfg.seed)),
     })
 
 

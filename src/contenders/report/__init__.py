@@ -23,7 +23,7 @@ import numpy as np
 from jinja2 import Environment, FileSystemLoader, StrictUndefined
 
 from ..compare import SMALL_DIFFERENCE
-from ..trials.effects import MIN_WEIGHT, direction
+from ..trials.effects import MIN_WEIGHT, compare_effects, direction
 from ..trials.statistics import describe
 from . import figures
 from . import format as fmt
@@ -725,7 +725,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
 
     lineups = _lineups(result, cands)
 
-    effects = list(getattr(result, "effects", []) or [])
+    effects = compare_effects(result.candidates, result.comparison.rows, cfg.seed)
     effects_table = _effects_table(result, effects) if effects else None
     figs["effects"] = figures.effects_across(effects, {e.key: _effect_units(e, d.outcome) for e in effects})
 

@@ -38,6 +38,10 @@ LEVEL = 0.95
 #: candidates agree (the verdict's rule in compare.py; common practice, no source).
 MIN_WEIGHT = 0.05
 
+#: Statuses of candidates whose effects are shown: ranked, or sampled but unhealthy
+#: (shown for information, never weighted). Failed and skipped ones are left out.
+SAMPLED = ("ok", "unhealthy")
+
 KINDS = {"mean_difference": "difference in mean", "median_difference": "difference in median",
          "slope": "least-squares slope"}
 
@@ -343,13 +347,15 @@ def compare_effects(results: Sequence, comparison_rows: Sequence[Mapping], seed:
     stacking weight, and read whether they agree.
 
     ``results`` are candidate results with ``id``, ``label``, ``status`` and
-    ``effects`` (lists of :class:`Effect`); ``comparison_rows`` the ranked rows
-    (``id``, ``rank``, ``stacking_weight``), best first. Rows of the output come in
-    that order, then candidates that were not ranked (weight None). The combination
+    ``effects`` (lists of :class:`Effect`); only those whose status is in ``SAMPLED``
+    (ranked, or sampled but unhealthy) are shown. ``comparison_rows`` are the ranked
+    rows (``id``, ``rank``, ``stacking_weight``), best first. Rows of the output come
+    in that order, then candidates that were not ranked (weight None). The combination
     uses the generator ``numpy.random.default_rng([seed, k])`` for the k-th effect."""
     ranked = {row["id"]: row for row in comparison_rows}
+    results = [r for r in results if r.status in SAMPLED and getattr(r, "effects", None)]
     order = [r for row in comparison_rows for r in results if r.id == row["id"]]
-    order += [r for r in results if r.id not in ranked and getattr(r, "effects", None)]
+    order += [r for r in results if r.id not in ranked]
     keys: dict[str, Effect] = {}
     for r in order:
         for e in r.effects or []:
