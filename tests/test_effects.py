@@ -76,8 +76,10 @@ def test_non_finite_replicates_are_counted_not_used(rng):
     t = _table(rng, 40)
     reps = rng.gamma(4.0, 120.0, size=(10, 40))
     reps[3, 0] = np.inf
-    (e,) = effect_draws(reps, t["rt"].to_numpy(), t, predictors=("load",))
-    assert e.n_missing == 1 and e.n_draws == 9
+    effects = effect_draws(reps, t["rt"].to_numpy(), t, conditions=("cue",), predictors=("load",))
+    # one infinite value spoils every effect of that dataset, medians included
+    assert [(e.n_missing, e.n_draws) for e in effects] == [(1, 9)] * 5
+    assert np.isfinite(effects[2].draws).all()
 
 
 def test_observed_slope_of_sleepstudy_matches_published_value():

@@ -61,25 +61,27 @@ def level_differences(y: np.ndarray, labels: Sequence, statistic: str = "mean") 
 
     Returns ``{level: values}``; ``values`` has the shape of ``y`` without its last
     axis. Medians use NumPy's default linear interpolation (type 7 of Hyndman & Fan
-    1996), as the checks do. A dataset holding a non-finite value in either level gives
-    NaN."""
+    1996), as the checks do. A dataset holding a non-finite value anywhere gives NaN
+    (as in ``statistics.compute``), even where a median would stay finite."""
     y = np.asarray(y, dtype=float)
     text = np.asarray(labels).astype(str)
     ref, others = reference_and_levels(text)
     fn = {"mean": np.mean, "median": np.median}[statistic]
+    finite = np.all(np.isfinite(y), axis=-1)
     with np.errstate(invalid="ignore", over="ignore"):
         base = fn(y[..., text == ref], axis=-1)
         out = {}
         for level in others:
             d = fn(y[..., text == level], axis=-1) - base
-            out[level] = np.where(np.isfinite(d), d, np.nan)
+            out[level] = np.where(finite & np.isfinite(d), d, np.nan)
     return out
 
 
 def slope(y: np.ndarray, x: Sequence[float]) -> np.ndarray:
     """Least-squares slope of ``y`` on ``x`` (with an intercept) along the last axis:
     sum((x - mean x) y) / sum((x - mean x)^2), the ordinary least-squares estimate of a
-    straight line. It is the marginal slope, not adjusted for other predictors."""
+    straight line. It is the marginal slope, not adjusted for other predictors. A
+    dataset holding a non-finite value gives NaN."""
     y = np.asarray(y, dtype=float)
     x = np.asarray(x, dtype=float)
     dx = x - x.mean()
