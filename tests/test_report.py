@@ -174,14 +174,14 @@ def test_report_has_every_section_candidate_and_embedded_figure(report):
 
     # Every figure is inside the page: inline SVG or a data URI.
     plots = [a for t, a in page.tags if t == "figure" and "plot" in (a.get("class") or "").split()]
-    assert len(plots) == 6     # elpd, prior, Pareto k, densities, statistics, LOO-PIT
+    assert len(plots) == 7     # elpd, prior, Pareto k, densities, statistics, LOO-PIT, effects
     for img in page.find("img"):
         assert img["src"].startswith("data:image/png;base64,")
     n_svg = len(page.find("svg"))
     n_img = len(page.find("img"))
     n_lineups = min(3, len(result.comparison.preferred))
     assert n_lineups >= 1
-    assert n_svg + n_img == 6 + 20 * n_lineups
+    assert n_svg + n_img == 7 + 20 * n_lineups
 
 
 def test_lineups_hide_the_observed_data_among_replicates(report):

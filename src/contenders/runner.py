@@ -30,6 +30,7 @@ from .progress import Progress
 from .store import FitStore, StoredEngine, trials_key
 from .errors import UserError
 from .trials.checks import PredictiveChecks, predictive_checks, thin_draws
+from .trials.effects import compare_effects, effect_draws, effects_summary
 from .trials.posterior import Health, fit_with_health
 from .trials.prior import PriorTrial, summarise_prior
 
@@ -62,6 +63,7 @@ class CandidateResult:
     fits_reused: int = 0               # fits loaded from the fit store
     from_store: bool = False           # the whole result was read from the fit store
     posterior_file: str = ""           # stored NetCDF of the accepted posterior fit
+    effects: list = field(default_factory=list)   # replicated effects (trials/effects.py)
 
 
 @dataclass
@@ -184,6 +186,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig)
         conditions = {col: design.table[col].to_numpy() for col in cfg.conditions}
         res.checks = predictive_checks(design.y, y_rep[keep], log_lik[keep], cfg.thresholds, conditions)
         res.y_rep_sample = y_rep[thin_draws(y_rep.shape[0], FIGURE_DRAWS)].astype(np.float32)
+        res.effects = effect_draws(y_rep, design.y, design.table, cfg.conditions, cfg.predictors)
         del y_rep, log_lik
         # 4. out-of-sample: PSIS-LOO, exact refits of high-k observations, or K-fold
         res.stage = "out-of-sample"
@@ -471,6 +474,7 @@ def summary_dict(result: RunResult) -> dict[str, Any]:
         "preferred": result.comparison.preferred,
         "verdict": " ".join(result.comparison.verdict),
         "candidates": [candidate_summary(r, result.comparison) for r in result.candidates],
+        "effects": effects_summary(compare_effects(result.candidates, result.comparison.rows, cfg.seed)),
     })
 
 

@@ -23,6 +23,7 @@ import numpy as np
 from jinja2 import Environment, FileSystemLoader, StrictUndefined
 
 from ..compare import SMALL_DIFFERENCE
+from ..trials.effects import MIN_WEIGHT, compare_effects, direction
 from ..trials.statistics import describe
 from . import figures
 from . import format as fmt
@@ -49,6 +50,7 @@ SECTIONS = [
     ("health", "Sampler health"),
     ("out-of-sample", "Out-of-sample comparison"),
     ("checks", "Predictive checks"),
+    ("effects", "Effects across candidates"),
     ("candidates", "Candidates"),
     ("reproducibility", "Reproducibility"),
 ]
@@ -56,7 +58,7 @@ SECTIONS = [
 CSV_FILES = (
     "ranking.csv", "verdict_certainty.csv", "prior_plausibility.csv", "prior_trial.csv",
     "sampler_health.csv", "out_of_sample.csv", "predictive_checks.csv", "grouped_checks.csv",
-    "loo_pit.csv", "hyperparameters.csv", "parameters.csv", "run_settings.csv", "candidate_files.csv",
+    "loo_pit.csv", "effects.csv", "hyperparameters.csv", "parameters.csv", "run_settings.csv", "candidate_files.csv",
 )
 
 
@@ -109,6 +111,8 @@ def write_report(result, out_dir: str | Path, command_line: str | Sequence[str] 
         _write_atomic(out / table.csv_name, _csv_text(table))
     if not result.config.conditions and (out / "grouped_checks.csv").exists():
         (out / "grouped_checks.csv").unlink()   # left by an earlier run with conditions
+    if ctx["effects_table"] is None and (out / "effects.csv").exists():
+        (out / "effects.csv").unlink()          # left by an earlier run with effects
     html = _environment().get_template("report.html.j2").render(**ctx)
     path = out / "report.html"
     _write_atomic(path, html)
@@ -464,6 +468,66 @@ def _pit_table(cands) -> Table:
     return t
 
 
+def _effect_units(e, outcome: str) -> str:
+    return f"{outcome} per unit of {e.column}" if e.kind == "slope" else outcome
+
+
+def _estimate(mean: float, lo: float, hi: float) -> str:
+    return f"{fmt.num(mean)} ({fmt.interval(lo, hi)})"
+
+
+READING_TEXT = {"agree": "agree", "depends": "◆ depends on the candidate",
+                "single": "one candidate carries the weight", "none": "no ranked candidate"}
+
+
+def _effects_table(result, effects) -> Table:
+    """Effects as rows, candidates as columns (ranked first, by elpd): the mean of the
+    replicated effect with its 95 % interval; ◇ where the observed value lies outside."""
+    outcome = result.design.outcome
+    heads: list[tuple[str, str]] = []
+    for e in effects:
+        for row in e.rows:
+            if row["id"] not in [h[0] for h in heads]:
+                w = f", weight {fmt.fixed(row['weight'], 2)}" if row["weight"] is not None else ", not ranked"
+                heads.append((row["id"], f"{row['label']}{w}"))
+    t = Table("effects.csv",
+              ["Effect", "Units", "Observed"] + [h for _, h in heads]
+              + ["Stacking-weighted mix", "Do the weighted candidates agree?"],
+              csv_headers=["effect", "description", "kind", "column", "level", "reference", "units", "id",
+                           "label", "status", "rank", "stacking_weight", "observed", "replicated_mean",
+                           "replicated_q025", "replicated_q975", "direction", "observed_inside",
+                           "n_draws", "n_missing", "reading"],
+              numeric=[False, False, True] + [True] * len(heads) + [True, False])
+    for e in effects:
+        units = _effect_units(e, outcome)
+        by_id = {row["id"]: row for row in e.rows}
+        cells = [Cell(e.title), Cell(units), n(fmt.num(e.observed, 4))]
+        for cid, _ in heads:
+            row = by_id.get(cid)
+            if row is None or not row["n_draws"]:
+                cells.append(n(fmt.MISSING, "muted"))
+                continue
+            outside = row["observed_inside"] is False
+            cells.append(n(("◇ " if outside else "") + _estimate(row["mean"], row["lower"], row["upper"]),
+                           ("watch " if outside else "") + ("" if row["weight"] is not None else "muted")))
+        c = e.combined
+        cells.append(n(_estimate(c["mean"], c["lower"], c["upper"]) if c else fmt.MISSING))
+        cells.append(Cell(READING_TEXT[e.reading], "flag" if e.reading == "depends" else ""))
+        t.add(cells, cls="flagged" if e.reading == "depends" else "")
+        common = [e.key, e.title, e.kind, e.column, e.level, e.reference, units]
+        for row in e.rows:
+            t.csv_rows.append(common + [row["id"], row["label"], row["status"], row["rank"], row["weight"],
+                                        e.observed, row["mean"], row["lower"], row["upper"], row["direction"],
+                                        row["observed_inside"], row["n_draws"], row["n_missing"], e.reading])
+        if c:
+            t.csv_rows.append(common + ["stacking_combined", "stacking-weighted mix", None, None, None,
+                                        e.observed, c["mean"], c["lower"], c["upper"],
+                                        direction(c["lower"], c["upper"]),
+                                        bool(c["lower"] <= e.observed <= c["upper"]), c["n_draws"], 0,
+                                        e.reading])
+    return t
+
+
 def _hyper_table(r) -> Table:
     t = Table("", ["Input", "Value used"], numeric=[False, True])
     for k, v in r.hyperparameters.items():
@@ -661,6 +725,10 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
 
     lineups = _lineups(result, cands)
 
+    effects = compare_effects(result.candidates, result.comparison.rows, cfg.seed)
+    effects_table = _effects_table(result, effects) if effects else None
+    figs["effects"] = figures.effects_across(effects, {e.key: _effect_units(e, d.outcome) for e in effects})
+
     preferred = [{"id": cid, "label": by_id[cid].label} for cid in result.comparison.preferred if cid in by_id]
     n_status = {s: sum(r.status == s for r in cands) for s in ("ok", "unhealthy", "failed", "skipped")}
     counts = ", ".join(f"{v} {k if k != 'ok' else 'ranked'}" for k, v in n_status.items() if v)
@@ -668,6 +736,8 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     csv_tables = [ranking, certainty, prior_plausibility_table, prior_long, health, oos, checks_long, pit, settings, files]
     if cfg.conditions and grouped_long is not None:
         csv_tables.append(grouped_long)
+    if effects_table is not None:
+        csv_tables.append(effects_table)
     csv_tables.append(_long_csv("hyperparameters.csv", ["id", "input", "value"],
                                 [[r.id, k, v] for r in cands for k, v in r.hyperparameters.items()]))
     csv_tables.append(_long_csv(
@@ -724,6 +794,9 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "pit": pit,
         "pit_alpha": fmt.num(PIT_ALPHA),
         "lineups": lineups,
+        "effects_table": effects_table,
+        "effect_sentences": [e.sentence for e in effects],
+        "effects_min_weight": fmt.num(MIN_WEIGHT),
         "candidates": views,
         "settings": settings,
         "files": files,

@@ -807,3 +807,85 @@ def lineup(y: np.ndarray, y_rep: np.ndarray, seed: int, n_bins: int = 24) -> Lin
         ax.spines["left"].set_visible(False)
         panels.append(render(fig, f"panel {k + 1}"))
     return Lineup(panels, position + 1, rows, edges, counts)
+
+
+# --- 8. effects across candidates ---------------------------------------------------------
+
+def _effect_range(values: Sequence[float]) -> tuple[float, float]:
+    """x-range of one effect's panel: every interval end and the observed value, with
+    zero taken in when it lies within half the span of them (so the side of zero shows
+    without squeezing effects far from zero)."""
+    v = np.asarray([x for x in values if x is not None and np.isfinite(x)], dtype=float)
+    if v.size == 0:
+        return -1.0, 1.0
+    lo, hi = float(v.min()), float(v.max())
+    span = hi - lo or abs(hi) * 0.2 or 1.0
+    if lo - 0.5 * span <= 0 <= hi + 0.5 * span:
+        lo, hi = min(lo, 0.0), max(hi, 0.0)
+        span = hi - lo
+    return lo - 0.06 * span, hi + 0.06 * span
+
+
+@_styled
+def effects_across(effects: Sequence[object], units: dict[str, str]) -> Rendered | None:
+    """One panel per effect. Each candidate is a row, ranked candidates first by elpd
+    with their stacking weight: a dot at the mean of its replicated effect and a line
+    over the 95 % interval (solid blue; dotted grey and a hollow dot for candidates
+    that are not ranked). The bottom row is the stacking-weighted mixture (a black
+    diamond on a thick black line). The observed value is a thick black vertical line;
+    zero a thin dashed grey one. A panel whose candidates disagree has an orange frame
+    and a ◆ in its title. ``units`` maps an effect's key to its units."""
+    effects = [e for e in effects if e.rows]
+    if not effects:
+        return None
+    heights = [len(e.rows) + (1 if e.combined else 0) + 0.9 for e in effects]
+    width = 7.4
+    height = 0.35 + 0.2 * sum(heights) + 0.32 * len(effects)
+    fig = _new(width, height)
+    fig.subplots_adjust(left=1.9 / width, right=0.98, top=1 - 0.3 / height, bottom=0.55 / height, hspace=0.9)
+    axes = fig.subplots(len(effects), 1, squeeze=False, gridspec_kw={"height_ratios": heights})[:, 0]
+    for ax, e in zip(axes, effects):
+        rows = list(e.rows)
+        n = len(rows) + (1 if e.combined else 0)
+        ypos = np.arange(n)[::-1].astype(float)
+        labels = []
+        ends = [e.observed]
+        for y, row in zip(ypos, rows):
+            ranked = row["weight"] is not None
+            if np.isfinite(row["lower"]):
+                ends += [row["lower"], row["upper"]]
+                ax.hlines(y, row["lower"], row["upper"], color=POSTERIOR if ranked else MUTED,
+                          linewidth=1.8 if ranked else 1.2, linestyles="solid" if ranked else (0, (1, 1.5)))
+                ax.plot([row["mean"]], [y], marker="o", markersize=4.2, color=INK if ranked else MUTED,
+                        markerfacecolor=INK if ranked else "white", zorder=3)
+            head = f"{row['rank']}. " if ranked else ""
+            tail = f"  w {row['weight']:.2f}" if ranked else "  not ranked"
+            labels.append(plain(head + str(row["label"]), 24) + tail)
+        if e.combined:
+            c = e.combined
+            ends += [c["lower"], c["upper"]]
+            ax.hlines(ypos[-1], c["lower"], c["upper"], color=INK, linewidth=3.0)
+            ax.plot([c["mean"]], [ypos[-1]], marker="D", markersize=5.2, color=INK, markerfacecolor="white",
+                    markeredgewidth=1.4, zorder=4)
+            labels.append("stacking-weighted mix")
+        lo, hi = _effect_range(ends)
+        if lo < 0 < hi:
+            ax.axvline(0, color=MUTED, linewidth=0.8, linestyle=(0, (3, 2)), zorder=0)
+        if np.isfinite(e.observed):
+            ax.axvline(e.observed, color=INK, linewidth=2.2, zorder=2)
+        ax.set_xlim(lo, hi)
+        ax.set_ylim(-0.7, n - 0.3)
+        ax.set_yticks(ypos, labels)
+        ax.tick_params(axis="y", length=0, labelsize=6.8)
+        ax.spines["left"].set_visible(False)
+        ax.xaxis.set_major_locator(MaxNLocator(nbins=5))
+        flagged = e.reading == "depends"
+        title = plain(f"{e.title} ({units.get(e.key, '')})", 90)
+        ax.set_title(("◆ " if flagged else "") + title + ("  (depends on the candidate)" if flagged else ""),
+                     fontweight="bold" if flagged else "normal")
+        if flagged:
+            _flag_frame(ax)
+    axes[-1].set_xlabel("replicated effect (dot: mean; line: 95 % interval); thick black line: observed value",
+                        fontsize=6.8)
+    return render(fig, "each effect under each candidate with 95 % intervals, the stacking-weighted mix "
+                       "and the observed value")
