@@ -82,10 +82,12 @@ def _worker_init(engine_name: str, chain_workers: int, events) -> None:
     _set_chain_workers(engine_name, chain_workers)
     # Stan's chain processes are children of this worker; a worker's exit waits for its
     # children, so close their pool first (multiprocessing runs finalisers with an exit
-    # priority before it joins children).
+    # priority before it joins children). The priority must be above 10, the one of each
+    # multiprocessing Queue's own finaliser, which stops the queue's feeder thread: run
+    # after it, the pool's shutdown sentinels are never sent and the worker hangs.
     from multiprocessing.util import Finalize
 
-    Finalize(None, _close_chain_pool, exitpriority=10)
+    Finalize(None, _close_chain_pool, exitpriority=20)
     _REPORT[0] = lambda cid, stage: events.put((cid, stage))
 
 
