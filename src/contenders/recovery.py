@@ -173,9 +173,11 @@ def recovery_matrix(winners: Mapping[str, Sequence[str | None]], ids: Sequence[s
 
 
 def reading(matrix: Matrix, labels: Mapping[str, str], observed_winner: str | None = None,
-            threshold: float = CONFUSED) -> list[str]:
+            threshold: float = CONFUSED, clear: Mapping[str, tuple[int, int]] | None = None) -> list[str]:
     """Plain-language sentences: which pairs this design cannot tell apart, which data
-    are often taken for another candidate's, and how the observed winner fares."""
+    are often taken for another candidate's, how the observed winner fares, and (given
+    ``clear``: generating id -> (clear wins, decided datasets)) where fewer than half of
+    the wins were clear."""
     ids = matrix.ids
     name = lambda m: labels.get(m, m)  # noqa: E731
     out: list[str] = []
@@ -218,6 +220,11 @@ def reading(matrix: Matrix, labels: Mapping[str, str], observed_winner: str | No
             f"{own.low:.2f} to {own.high:.2f})"
             + (f"; rivals won: {', '.join(rivals)}" if rivals else "; no rival won any")
             + (f"; {row[NO_DECISION].wins} had no decision" if row[NO_DECISION].wins else "") + ".")
+    narrow = [g for g, (k, decided) in (clear or {}).items() if decided and k < decided / 2]
+    if narrow:
+        out.append("On data simulated from " + ", ".join(name(g) for g in narrow) + ", most wins were within two "
+                   "standard errors of the paired elpd difference: one dataset of this size rarely separates the "
+                   "candidates clearly, whichever wins.")
     if undecided:
         total = sum(matrix.cells[g][NO_DECISION].n for g in ids)
         out.append(f"{undecided} of {total} simulated datasets had no decision because a fit failed or did "
@@ -450,7 +457,9 @@ def recover(result, replicates: int = DEFAULT_REPLICATES, progress: Callable[[st
     rec.by_elpd = recovery_matrix({g: [r.winner for r in rec.runs if r.generator == g] for g in ids}, ids)
     rec.by_weight = recovery_matrix({g: [r.weight_winner for r in rec.runs if r.generator == g] for g in ids},
                                     ids)
-    rec.reading = reading(rec.by_elpd, labels, rec.observed_winner, threshold)
+    clear = {g: (sum(r.clear for r in rec.runs if r.generator == g and r.winner),
+                 sum(1 for r in rec.runs if r.generator == g and r.winner)) for g in ids}
+    rec.reading = reading(rec.by_elpd, labels, rec.observed_winner, threshold, clear)
     rec.seconds = time.perf_counter() - start
     return rec
 
