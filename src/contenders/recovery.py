@@ -410,7 +410,7 @@ def recover(result, replicates: int = DEFAULT_REPLICATES, progress: Callable[[st
     jobs = cfg.jobs or cores()
     rec.n_fits = len(tasks)
     rec.stored_before = sum(t[5] for t in tasks)
-    workers, _chains = share(jobs, max(1, len(tasks) - rec.stored_before))
+    workers, _chains = share(jobs, max(1, len(tasks)))   # as make_executor below
     rec.workers = workers
     todo_seconds = sum(by_id[m].seconds.get("posterior", math.nan) for _g, _i, m, _d, _s, stored in tasks
                        if not stored)

@@ -25,12 +25,11 @@ def verdict(result) -> list[str]:
     rec: Recovery | None = getattr(result, "recovery", None)
     if rec is None or rec.by_elpd is None:
         return []
-    confused = [s for s in rec.reading if s.startswith(("With this design", "Data simulated from"))]
-    if not confused:
-        return [f"Model recovery ({rec.replicates} simulated datasets per candidate): the design can tell the "
-                "ranked candidates apart (see Model recovery)."]
-    return [f"Model recovery ({rec.replicates} simulated datasets per candidate): " + s[0].lower() + s[1:]
-            for s in confused]
+    picked = [s for s in rec.reading if s.startswith(("With this design", "Data simulated from"))] \
+        or rec.reading[:1]
+    picked += [s for s in rec.reading if "most wins were within two standard errors" in s]
+    return [f"Model recovery ({rec.replicates} simulated datasets per candidate; see Model recovery): "
+            + s[0].lower() + s[1:] for s in picked]
 
 
 def _matrix_table(mat: Matrix, rec: Recovery, rule: str, clear: dict[str, int] | None) -> Table:
@@ -63,7 +62,7 @@ def _matrix_table(mat: Matrix, rec: Recovery, rule: str, clear: dict[str, int] |
 
 
 def _problems(rec: Recovery) -> Table | None:
-    t = Table("recovery.json", ["Candidate fitted", "fits", "healthy", "unhealthy", "failed",
+    t = Table("recovery.json", ["Candidate fitted", "datasets", "healthy", "unhealthy", "failed",
                                 "outside its support (not fitted)", "Pareto k above threshold"],
               numeric=[False, True, True, True, True, True, True])
     if not any(f.status != "ok" or f.high_k for f in rec.fits):
