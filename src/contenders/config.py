@@ -58,6 +58,7 @@ class RunConfig:
     folds: int = 10
     hyperparameters: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
     quiet: bool = False
+    replicates: int = 0                     # model recovery: datasets per candidate (0: none)
 
     def with_(self, **changes: Any) -> "RunConfig":
         return replace(self, **changes)
@@ -78,6 +79,7 @@ _LAYOUT: dict[str, dict[str, str]] = {
     "health": {"rhat_max": "rhat_max", "ess_per_chain_min": "ess_per_chain_min",
                "ebfmi_min": "ebfmi_min"},
     "run": {"out": "out", "store": "store", "jobs": "jobs", "engine": "engine", "quiet": "quiet"},
+    "recovery": {"replicates": "replicates"},
 }
 _SECTIONS = tuple(_LAYOUT) + ("hyperparameters",)
 
@@ -90,6 +92,7 @@ _TYPES: dict[str, str] = {
     "rhat_max": "posfloat", "ess_per_chain_min": "posfloat", "ebfmi_min": "posfloat",
     "implausible_share": "prob", "check_draws": "posint", "quiet": "bool", "ppp_extreme": "prob",
     "cross_validation": "cv", "refit_cap": "int0", "folds": "folds",
+    "replicates": "reps",
 }
 
 _DESCRIBE = {
@@ -101,6 +104,7 @@ _DESCRIBE = {
     "bounds": "a table statistic = [low, high] (use -inf or inf for an open end)",
     "bool": "true or false",
     "cv": "one of loo, kfold, leave_group_out", "folds": "a whole number >= 2",
+    "reps": "0 (no model recovery) or a whole number >= 2",
 }
 
 
@@ -173,6 +177,10 @@ def _convert(key: str, value: Any, base: Path) -> Any:
         return value
     if kind == "folds":
         if isinstance(value, bool) or not isinstance(value, int) or value < 2:
+            raise bad()
+        return int(value)
+    if kind == "reps":
+        if isinstance(value, bool) or not isinstance(value, int) or value < 0 or value == 1:
             raise bad()
         return int(value)
     if kind == "bool":
@@ -301,6 +309,8 @@ HELP: dict[str, str] = {
     "folds": "number of folds K for K-fold cross-validation",
     "hyperparameters": "prior hyperparameter overrides, e.g. lognormal.sigma_scale=0.5 (repeatable)",
     "quiet": "print nothing but errors",
+    "replicates": "model recovery: datasets simulated from each ranked candidate, each fitted by every "
+                  "candidate (0: none with run; recovery uses 20)",
 }
 
 

@@ -79,6 +79,7 @@ class RunResult:
     out: Path
     fits_sampled: int = 0
     fits_reused: int = 0
+    recovery: Any = None               # recovery.Recovery when model recovery was run
 
 
 def _file_hash(path: Path) -> str:

@@ -25,7 +25,7 @@ from jinja2 import Environment, FileSystemLoader, StrictUndefined
 from ..compare import SMALL_DIFFERENCE
 from ..trials.effects import MIN_WEIGHT, compare_effects, direction
 from ..trials.statistics import describe
-from . import figures
+from . import figures, recovery_section
 from . import format as fmt
 from .tables import MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, n, p_cell, pit_reading
 
@@ -762,8 +762,9 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "run_time": fmt.seconds(result.seconds) + (
             f"; {result.fits_reused} of {result.fits_reused + result.fits_sampled} fits loaded from the fit store"
             if getattr(result, "fits_reused", 0) else ""),
-        "sections": SECTIONS,
-        "verdict": list(result.comparison.verdict),
+        "sections": SECTIONS + recovery_section.nav(result),
+        "verdict": list(result.comparison.verdict) + recovery_section.verdict(result),
+        "recovery": recovery_section.context(result),
         "preferred": preferred,
         "any_ranked": bool(rows),
         "ranking": ranking,
