@@ -26,6 +26,7 @@ from ..compare import SMALL_DIFFERENCE
 from ..trials.statistics import describe
 from . import figures
 from . import format as fmt
+from .sensitivity import sensitivity_context
 from .tables import MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, n, p_cell, pit_reading
 
 __all__ = ["write_report", "build_context", "CSV_FILES"]
@@ -57,6 +58,7 @@ CSV_FILES = (
     "ranking.csv", "verdict_certainty.csv", "prior_plausibility.csv", "prior_trial.csv",
     "sampler_health.csv", "out_of_sample.csv", "predictive_checks.csv", "grouped_checks.csv",
     "loo_pit.csv", "hyperparameters.csv", "parameters.csv", "run_settings.csv", "candidate_files.csv",
+    "sensitivity.csv",
 )
 
 
@@ -625,6 +627,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     settings = _settings(result, command_line)
     files = _files(result, cands)
     views = _candidate_views(result, cands)
+    sensitivity = sensitivity_context(cands)
 
     stats = [row["statistic"] for row in with_prior[0].prior.rows] if with_prior else []
     observed = {row["statistic"]: row["observed"] for row in with_prior[0].prior.rows} if with_prior else {}
@@ -666,6 +669,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     counts = ", ".join(f"{v} {k if k != 'ok' else 'ranked'}" for k, v in n_status.items() if v)
 
     csv_tables = [ranking, certainty, prior_plausibility_table, prior_long, health, oos, checks_long, pit, settings, files]
+    csv_tables.append(sensitivity["csv"])
     if cfg.conditions and grouped_long is not None:
         csv_tables.append(grouped_long)
     csv_tables.append(_long_csv("hyperparameters.csv", ["id", "input", "value"],
@@ -703,6 +707,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "implausible_share": fmt.share(cfg.implausible_share),
         "prior_edge": fmt.share(PRIOR_EDGE),
         "prior_draws": fmt.integer(cfg.prior_draws),
+        "sensitivity": sensitivity,
         "health": health,
         "health_advice": health_advice,
         "health_rules": {
