@@ -33,8 +33,8 @@ def sensitivity_context(cands: Sequence[Any]) -> dict[str, Any]:
     overview = Table("", ["Candidate", "Parameters", "Possible prior-data conflict", "Prior decides, data weak",
                           "Weak likelihood only", "Reliability"],
                      numeric=[False, True, False, False, False, False])
-    detail = Table("", ["Candidate", "Parameter", "Prior sensitivity (one chain at a time)",
-                        "Likelihood sensitivity (one chain at a time)", "Reading"],
+    detail = Table("", ["Candidate", "Parameter", "Prior sensitivity (range over single chains)",
+                        "Likelihood sensitivity (range over single chains)", "Reading"],
                    numeric=[False, False, True, True, False])
     full = Table("sensitivity.csv", [], csv_headers=[
         "id", "parameter", "prior_sensitivity", "prior_low_one_chain", "prior_high_one_chain",
