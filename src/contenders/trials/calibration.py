@@ -295,12 +295,12 @@ def measured_fit_seconds(out: Path) -> dict[str, float]:
     return found
 
 
-def _outside_bounds(y: np.ndarray, bounds) -> bool:
+def _outside_bounds(y: np.ndarray, bounds, thresholds: Sequence[float]) -> bool:
     if not bounds:
         return False
     from . import statistics as st
 
-    stats = st.compute(y[None, :], ())
+    stats = st.compute(y[None, :], thresholds)
     return any(not (low <= float(stats[name][0]) <= high) for name, (low, high) in bounds.items() if name in stats)
 
 
@@ -394,7 +394,7 @@ def calibrate(cfg: RunConfig, simulations: int = 100, progress: Callable[[str], 
             if why:
                 cal.not_fitted.append(f"simulation {s + 1}: {why}")
                 continue
-            cal.implausible += _outside_bounds(y_s, cfg.bounds)
+            cal.implausible += _outside_bounds(y_s, cfg.bounds, cfg.thresholds)
             fittable.append(s)
         plan.append((c, tuple(names), flat, theta, y_sims, fittable, cal))
         del prior, every, y_rep_all
