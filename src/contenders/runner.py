@@ -33,6 +33,7 @@ from .trials.checks import PredictiveChecks, predictive_checks, thin_draws
 from .trials.effects import compare_effects, effect_draws, effects_summary
 from .trials.posterior import Health, fit_with_health
 from .trials.prior import PriorTrial, summarise_prior
+from .trials.sensitivity import Sensitivity, power_scaling, summary as sensitivity_summary
 
 #: Replicated datasets kept per candidate for figures (the checks use ``check_draws``).
 FIGURE_DRAWS = 100
@@ -64,6 +65,7 @@ class CandidateResult:
     from_store: bool = False           # the whole result was read from the fit store
     posterior_file: str = ""           # stored NetCDF of the accepted posterior fit
     effects: list = field(default_factory=list)   # replicated effects (trials/effects.py)
+    sensitivity: Sensitivity | None = None   # power-scaling of prior and likelihood (needs lprior)
 
 
 @dataclass
@@ -178,6 +180,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig)
         res.seconds["posterior"] = sum(a.seconds for a in health.attempts)
         stored = getattr(engine, "paths", {}).get(c.id)
         res.posterior_file = str(stored[-1]) if stored else ""
+        res.sensitivity = power_scaling(draws.idata, c.parameter_names)   # None without lprior
         # 3. posterior predictive checks on a thinned set of draws
         res.stage = "checks"
         report(c.id, "checks")
@@ -447,6 +450,7 @@ def candidate_summary(r: CandidateResult, comparison: Comparison) -> dict[str, A
         "elpd_method": o.method if o else None,
         "elpd_mcse": o.mcse if o else None,
         "tied_with": r.tied_with,
+        "power_scaling": sensitivity_summary(r.sensitivity),
         "rank": row.get("rank"),
         "hyperparameters": r.hyperparameters,
         "code_sha256": r.code_hash,

@@ -27,6 +27,7 @@ from ..trials.effects import MIN_WEIGHT, compare_effects, direction
 from ..trials.statistics import describe
 from . import figures, recovery_section
 from . import format as fmt
+from .sensitivity import sensitivity_context
 from .tables import MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, n, p_cell, pit_reading
 
 __all__ = ["write_report", "build_context", "CSV_FILES"]
@@ -59,6 +60,7 @@ CSV_FILES = (
     "ranking.csv", "verdict_certainty.csv", "prior_plausibility.csv", "prior_trial.csv",
     "sampler_health.csv", "out_of_sample.csv", "predictive_checks.csv", "grouped_checks.csv",
     "loo_pit.csv", "effects.csv", "hyperparameters.csv", "parameters.csv", "run_settings.csv", "candidate_files.csv",
+    "sensitivity.csv",
 )
 
 
@@ -689,6 +691,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     settings = _settings(result, command_line)
     files = _files(result, cands)
     views = _candidate_views(result, cands)
+    sensitivity = sensitivity_context(cands)
 
     stats = [row["statistic"] for row in with_prior[0].prior.rows] if with_prior else []
     observed = {row["statistic"]: row["observed"] for row in with_prior[0].prior.rows} if with_prior else {}
@@ -734,6 +737,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     counts = ", ".join(f"{v} {k if k != 'ok' else 'ranked'}" for k, v in n_status.items() if v)
 
     csv_tables = [ranking, certainty, prior_plausibility_table, prior_long, health, oos, checks_long, pit, settings, files]
+    csv_tables.append(sensitivity["csv"])
     if cfg.conditions and grouped_long is not None:
         csv_tables.append(grouped_long)
     if effects_table is not None:
@@ -774,6 +778,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "implausible_share": fmt.share(cfg.implausible_share),
         "prior_edge": fmt.share(PRIOR_EDGE),
         "prior_draws": fmt.integer(cfg.prior_draws),
+        "sensitivity": sensitivity,
         "health": health,
         "health_advice": health_advice,
         "health_rules": {

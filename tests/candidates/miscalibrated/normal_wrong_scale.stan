@@ -1,0 +1,74 @@
+/*
+[candidate]
+label   = "Normal with a wrong y_rep scale"
+about   = "Test fixture: y_rep is drawn with twice the likelihood's sigma, so it fails calibration"
+support = "real"
+
+[candidate.defaults]
+intercept_sd   = 2.0   # prior SD of the intercept, in units of y_scale, centred at y_center
+coef_sd        = 1.0   # prior SD of each coefficient, in units of y_scale per predictor SD
+group_sd_scale = 1.0   # half-normal scale of the group-intercept SD, in units of y_scale
+sigma_scale    = 1.0   # half-normal scale of sigma, in units of y_scale
+*/
+// Deliberately wrong copy of stan/normal.stan (test fixture): only the scale of y_rep differs.
+// Reference: SciPy norm(loc = eta, scale = sigma).
+functions {
+  vector linear_predictor(real intercept, matrix X, vector coef,
+                          array[] int group, vector group_z, vector group_sd) {
+    vector[rows(X)] eta = intercept + X * coef;
+    if (num_elements(group_sd) > 0) {
+      eta += group_sd[1] * group_z[group];
+    }
+    return eta;
+  }
+}
+data {
+  int<lower=0> N;
+  vector[N] y;
+  int<lower=0> K;
+  matrix[N, K] X;
+  int<lower=0> J;
+  array[N] int<lower=0, upper=J> group;
+  int<lower=0, upper=N> N_fit;
+  array[N_fit] int<lower=1, upper=N> fit_idx;
+  real y_center;
+  real<lower=0> y_scale;
+  real<lower=0> intercept_sd;
+  real<lower=0> coef_sd;
+  real<lower=0> group_sd_scale;
+  real<lower=0> sigma_scale;
+}
+transformed data {
+  int has_group = J > 0;
+}
+parameters {
+  real intercept;
+  vector[K] coef;
+  vector[J] group_z;                       // non-centred group intercepts
+  vector<lower=0>[has_group] group_sd;
+  real<lower=0> sigma;
+}
+model {
+  vector[N] eta = linear_predictor(intercept, X, coef, group, group_z, group_sd);
+  intercept ~ normal(y_center, intercept_sd * y_scale);
+  coef ~ normal(0, coef_sd * y_scale);
+  group_sd ~ normal(0, group_sd_scale * y_scale);
+  sigma ~ normal(0, sigma_scale * y_scale);
+  group_z ~ std_normal();
+  y[fit_idx] ~ normal(eta[fit_idx], sigma);
+}
+generated quantities {
+  vector[N] log_lik;
+  array[N] real y_rep;
+  real lprior = normal_lpdf(intercept | y_center, intercept_sd * y_scale)
+                + normal_lpdf(coef | 0, coef_sd * y_scale)
+                + normal_lpdf(group_sd | 0, group_sd_scale * y_scale)
+                + normal_lpdf(sigma | 0, sigma_scale * y_scale);
+  {
+    vector[N] eta = linear_predictor(intercept, X, coef, group, group_z, group_sd);
+    for (n in 1:N) {
+      log_lik[n] = normal_lpdf(y[n] | eta[n], sigma);
+    }
+    y_rep = normal_rng(eta, 2 * sigma);   // deliberately wrong: the likelihood uses sigma
+  }
+}
