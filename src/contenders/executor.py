@@ -82,10 +82,13 @@ def _worker_init(engine_name: str, chain_workers: int, events) -> None:
     _set_chain_workers(engine_name, chain_workers)
     # Stan's chain processes are children of this worker; a worker's exit waits for its
     # children, so close their pool first (multiprocessing runs finalisers with an exit
-    # priority before it joins children).
+    # priority before it joins children). The priority is above 10, the priority of the
+    # finalisers that stop each multiprocessing queue's feeder thread: those are
+    # registered when a queue is first used (after this one) and so would run first,
+    # leaving the chain pool's stop signals unsent and the worker waiting forever.
     from multiprocessing.util import Finalize
 
-    Finalize(None, _close_chain_pool, exitpriority=10)
+    Finalize(None, _close_chain_pool, exitpriority=20)
     _REPORT[0] = lambda cid, stage: events.put((cid, stage))
 
 
