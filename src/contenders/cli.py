@@ -77,6 +77,7 @@ RUN_FLAGS = (
     "only", "out", "store", "chains", "warmup", "draws", "prior_draws", "seed", "jobs", "engine", "adapt_delta",
     "escalation", "max_treedepth", "thresholds", "bounds", "rhat_max", "ess_per_chain_min", "ebfmi_min",
     "implausible_share", "check_draws", "ppp_extreme", "cross_validation", "refit_cap", "folds",
+    "cluster",
 )
 #: Shorter spellings the issue tracker and README use.
 ALIASES = {"conditions": ["--condition"], "thresholds": ["--threshold"]}
@@ -87,7 +88,8 @@ def _add_run_flags(p: argparse.ArgumentParser) -> None:
 
     metavars = {"path": "DIR", "str": "COL", "strs": "A,B", "float": "X", "posfloat": "X", "posint": "N",
                 "int0": "N", "prob": "P", "probs": "P,P", "floats": "T,T", "engine": "NAME",
-                "bounds": "STAT=LOW:HIGH,...", "cv": "METHOD", "folds": "K", "bool": ""}
+                "bounds": "STAT=LOW:HIGH,...", "cv": "METHOD", "folds": "K", "bool": "",
+                "address": "tcp://HOST:PORT"}
     p.add_argument("--config", metavar="FILE", help="TOML configuration file; flags override its keys")
     for name in RUN_FLAGS:
         flag = "--" + name.replace("_", "-")

@@ -58,6 +58,7 @@ class RunConfig:
     folds: int = 10
     hyperparameters: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
     quiet: bool = False
+    cluster: str = ""                       # Dask scheduler address; empty: this machine
 
     def with_(self, **changes: Any) -> "RunConfig":
         return replace(self, **changes)
@@ -77,7 +78,8 @@ _LAYOUT: dict[str, dict[str, str]] = {
     "comparison": {"cross_validation": "cross_validation", "refit_cap": "refit_cap", "folds": "folds"},
     "health": {"rhat_max": "rhat_max", "ess_per_chain_min": "ess_per_chain_min",
                "ebfmi_min": "ebfmi_min"},
-    "run": {"out": "out", "store": "store", "jobs": "jobs", "engine": "engine", "quiet": "quiet"},
+    "run": {"out": "out", "store": "store", "jobs": "jobs", "engine": "engine", "quiet": "quiet",
+            "cluster": "cluster"},
 }
 _SECTIONS = tuple(_LAYOUT) + ("hyperparameters",)
 
@@ -90,6 +92,7 @@ _TYPES: dict[str, str] = {
     "rhat_max": "posfloat", "ess_per_chain_min": "posfloat", "ebfmi_min": "posfloat",
     "implausible_share": "prob", "check_draws": "posint", "quiet": "bool", "ppp_extreme": "prob",
     "cross_validation": "cv", "refit_cap": "int0", "folds": "folds",
+    "cluster": "address",
 }
 
 _DESCRIBE = {
@@ -101,6 +104,7 @@ _DESCRIBE = {
     "bounds": "a table statistic = [low, high] (use -inf or inf for an open end)",
     "bool": "true or false",
     "cv": "one of loo, kfold, leave_group_out", "folds": "a whole number >= 2",
+    "address": "a Dask scheduler address such as tcp://HOST:PORT, or empty for this machine",
 }
 
 
@@ -175,6 +179,10 @@ def _convert(key: str, value: Any, base: Path) -> Any:
         if isinstance(value, bool) or not isinstance(value, int) or value < 2:
             raise bad()
         return int(value)
+    if kind == "address":
+        if not isinstance(value, str) or (value and "://" not in value and ":" not in value):
+            raise bad()
+        return value.strip()
     if kind == "bool":
         if not isinstance(value, bool):
             raise bad()
@@ -301,6 +309,8 @@ HELP: dict[str, str] = {
     "folds": "number of folds K for K-fold cross-validation",
     "hyperparameters": "prior hyperparameter overrides, e.g. lognormal.sigma_scale=0.5 (repeatable)",
     "quiet": "print nothing but errors",
+    "cluster": "run the fits on an existing Dask cluster at this scheduler address, e.g. tcp://HOST:PORT "
+               "(default: worker processes on this machine)",
 }
 
 
@@ -318,7 +328,7 @@ def section_of(name: str) -> str:
 def parse_flag(name: str, text: str) -> Any:
     """A command-line value as the TOML value it spells, for the named setting."""
     kind = _TYPES.get(name)
-    if kind in ("path", "str", "engine", "cv"):
+    if kind in ("path", "str", "engine", "cv", "address"):
         return text
     if kind in ("strs",):
         return [v.strip() for v in text.split(",") if v.strip()]
