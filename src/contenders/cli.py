@@ -147,6 +147,29 @@ def cmd_run(args: argparse.Namespace) -> int:
     return _run_and_report(cfg, " ".join(["contenders", *sys.argv[1:]]))
 
 
+def cmd_batch(args: argparse.Namespace) -> int:
+    """Compare the same candidates on many datasets with one configuration: DATASETS is a
+    folder (every .csv in it) or a list of CSV files. Writes OUT/NAME/report.html and
+    summary.json per dataset and OUT/index.html, index.csv and index.json across them;
+    a dataset that cannot be run is listed with its reason and the others go on."""
+    from .batch import run_batch
+    from .config import RunConfig
+
+    cfg = _config_from_args(args, None)
+    if args.out is None and cfg.out == RunConfig().out:
+        cfg = cfg.with_(out=Path("reports/batch"))
+    items = args.datasets or ([str(cfg.data)] if cfg.data else [])
+    say = (lambda _t: None) if cfg.quiet else (lambda t: print(t, flush=True))
+    batch = run_batch(cfg, items, progress=say, command_line=" ".join(["contenders", *sys.argv[1:]]))
+    if not cfg.quiet:
+        print()
+        for r in batch.rows:
+            print(f"{r.name}: " + (r.winner or r.outcome if r.status == "ok" else f"not run: {r.reason}"))
+        print()
+        print(f"index: {(batch.out / 'index.html').resolve()}")
+    return 0 if any(r.status == "ok" for r in batch.rows) else 1
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     """Generate the invented demo data into demo_data/ and run every built-in on it,
     writing reports/demo/report.html. The first run compiles all programs."""
@@ -213,6 +236,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("data", nargs="?", metavar="DATA.csv", help="CSV data file (or [data] file in --config)")
     _add_run_flags(p)
     p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser("batch", help="compare the candidates on many datasets and write an index",
+                       description=cmd_batch.__doc__)
+    p.add_argument("datasets", nargs="*", metavar="DATASETS",
+                   help="a folder of CSV files, or CSV files (default: [data] file in --config)")
+    _add_run_flags(p)
+    p.set_defaults(func=cmd_batch)
 
     p = sub.add_parser("demo", help="run every built-in on the invented demo study",
                        description=cmd_demo.__doc__)
