@@ -224,7 +224,8 @@ def _context(batch: BatchResult) -> dict[str, Any]:
             wins[key] = wins.get(key, 0) + 1
         rows.append({
             "name": r.name, "file": Path(r.file).name, "status": r.status, "reason": r.reason,
-            "n": fmt.integer(r.n), "outcome": r.outcome, "winner": r.winner, "close": ", ".join(r.close),
+            "n": fmt.integer(r.n), "outcome": r.outcome, "winner": r.winner,
+            "close": ", ".join(r.close) or (r.best if r.outcome == "only one candidate ranked" else ""),
             "best": r.best,
             "lead": (f"{fmt.fixed(r.lead)} (SE {fmt.fixed(r.lead_se)})" if r.lead is not None else fmt.MISSING),
             "weights": [fmt.fixed(r.weights.get(cid), 2) if cid in r.weights else fmt.MISSING
