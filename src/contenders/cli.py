@@ -77,7 +77,7 @@ RUN_FLAGS = (
     "only", "out", "store", "chains", "warmup", "draws", "prior_draws", "seed", "jobs", "engine", "adapt_delta",
     "escalation", "max_treedepth", "thresholds", "bounds", "rhat_max", "ess_per_chain_min", "ebfmi_min",
     "implausible_share", "check_draws", "ppp_extreme", "cross_validation", "refit_cap", "folds",
-    "replicates",
+    "replicates", "cluster",
 )
 #: Shorter spellings the issue tracker and README use.
 ALIASES = {"conditions": ["--condition"], "thresholds": ["--threshold"]}
@@ -88,7 +88,8 @@ def _add_run_flags(p: argparse.ArgumentParser) -> None:
 
     metavars = {"path": "DIR", "str": "COL", "strs": "A,B", "float": "X", "posfloat": "X", "posint": "N",
                 "int0": "N", "prob": "P", "probs": "P,P", "floats": "T,T", "engine": "NAME",
-                "bounds": "STAT=LOW:HIGH,...", "cv": "METHOD", "folds": "K", "bool": "", "reps": "R"}
+                "bounds": "STAT=LOW:HIGH,...", "cv": "METHOD", "folds": "K", "bool": "", "reps": "R",
+                "address": "tcp://HOST:PORT"}
     p.add_argument("--config", metavar="FILE", help="TOML configuration file; flags override its keys")
     for name in RUN_FLAGS:
         flag = "--" + name.replace("_", "-")
@@ -191,6 +192,28 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
         print(f"calibration: {Path(page).resolve()}")
     return 1 if any(cal.status == "failed" for cal in study.candidates) else 0
 
+def cmd_batch(args: argparse.Namespace) -> int:
+    """Compare the same candidates on many datasets with one configuration: DATASETS is a
+    folder (every .csv in it) or a list of CSV files. Writes OUT/NAME/report.html and
+    summary.json per dataset and OUT/index.html, index.csv and index.json across them;
+    a dataset that cannot be run is listed with its reason and the others go on."""
+    from .batch import run_batch
+    from .config import RunConfig
+
+    cfg = _config_from_args(args, None)
+    if args.out is None and cfg.out == RunConfig().out:
+        cfg = cfg.with_(out=Path("reports/batch"))
+    items = args.datasets or ([str(cfg.data)] if cfg.data else [])
+    say = (lambda _t: None) if cfg.quiet else (lambda t: print(t, flush=True))
+    batch = run_batch(cfg, items, progress=say, command_line=" ".join(["contenders", *sys.argv[1:]]))
+    if not cfg.quiet:
+        print()
+        for r in batch.rows:
+            print(f"{r.name}: " + (r.winner or r.outcome if r.status == "ok" else f"not run: {r.reason}"))
+        print()
+        print(f"index: {(batch.out / 'index.html').resolve()}")
+    return 0 if any(r.status == "ok" for r in batch.rows) else 1
+
 
 def cmd_demo(args: argparse.Namespace) -> int:
     """Generate the invented demo data into demo_data/ and run every built-in on it,
@@ -273,6 +296,13 @@ def build_parser() -> argparse.ArgumentParser:
                    help="simulated datasets (and fits) per candidate (default 100)")
     _add_run_flags(p)
     p.set_defaults(func=cmd_calibrate)
+
+    p = sub.add_parser("batch", help="compare the candidates on many datasets and write an index",
+                       description=cmd_batch.__doc__)
+    p.add_argument("datasets", nargs="*", metavar="DATASETS",
+                   help="a folder of CSV files, or CSV files (default: [data] file in --config)")
+    _add_run_flags(p)
+    p.set_defaults(func=cmd_batch)
 
     p = sub.add_parser("demo", help="run every built-in on the invented demo study",
                        description=cmd_demo.__doc__)

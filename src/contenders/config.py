@@ -59,6 +59,7 @@ class RunConfig:
     hyperparameters: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
     quiet: bool = False
     replicates: int = 0                     # model recovery: datasets per candidate (0: none)
+    cluster: str = ""                       # Dask scheduler address; empty: this machine
 
     def with_(self, **changes: Any) -> "RunConfig":
         return replace(self, **changes)
@@ -78,7 +79,8 @@ _LAYOUT: dict[str, dict[str, str]] = {
     "comparison": {"cross_validation": "cross_validation", "refit_cap": "refit_cap", "folds": "folds"},
     "health": {"rhat_max": "rhat_max", "ess_per_chain_min": "ess_per_chain_min",
                "ebfmi_min": "ebfmi_min"},
-    "run": {"out": "out", "store": "store", "jobs": "jobs", "engine": "engine", "quiet": "quiet"},
+    "run": {"out": "out", "store": "store", "jobs": "jobs", "engine": "engine", "quiet": "quiet",
+            "cluster": "cluster"},
     "recovery": {"replicates": "replicates"},
 }
 _SECTIONS = tuple(_LAYOUT) + ("hyperparameters",)
@@ -93,6 +95,7 @@ _TYPES: dict[str, str] = {
     "implausible_share": "prob", "check_draws": "posint", "quiet": "bool", "ppp_extreme": "prob",
     "cross_validation": "cv", "refit_cap": "int0", "folds": "folds",
     "replicates": "reps",
+    "cluster": "address",
 }
 
 _DESCRIBE = {
@@ -105,6 +108,7 @@ _DESCRIBE = {
     "bool": "true or false",
     "cv": "one of loo, kfold, leave_group_out", "folds": "a whole number >= 2",
     "reps": "0 (no model recovery) or a whole number >= 2",
+    "address": "a Dask scheduler address such as tcp://HOST:PORT, or empty for this machine",
 }
 
 
@@ -183,6 +187,10 @@ def _convert(key: str, value: Any, base: Path) -> Any:
         if isinstance(value, bool) or not isinstance(value, int) or value < 0 or value == 1:
             raise bad()
         return int(value)
+    if kind == "address":
+        if not isinstance(value, str) or (value and "://" not in value and ":" not in value):
+            raise bad()
+        return value.strip()
     if kind == "bool":
         if not isinstance(value, bool):
             raise bad()
@@ -311,6 +319,8 @@ HELP: dict[str, str] = {
     "quiet": "print nothing but errors",
     "replicates": "model recovery: datasets simulated from each ranked candidate, each fitted by every "
                   "candidate (0: none with run; recovery uses 20)",
+    "cluster": "run the fits on an existing Dask cluster at this scheduler address, e.g. tcp://HOST:PORT "
+               "(default: worker processes on this machine)",
 }
 
 
@@ -328,7 +338,7 @@ def section_of(name: str) -> str:
 def parse_flag(name: str, text: str) -> Any:
     """A command-line value as the TOML value it spells, for the named setting."""
     kind = _TYPES.get(name)
-    if kind in ("path", "str", "engine", "cv"):
+    if kind in ("path", "str", "engine", "cv", "address"):
         return text
     if kind in ("strs",):
         return [v.strip() for v in text.split(",") if v.strip()]

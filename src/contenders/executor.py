@@ -203,8 +203,13 @@ class ProcessExecutor(Executor):
 
 
 def make_executor(engine_name: str, jobs: int, tasks: int,
-                  on_event: Callable[[str, str], None] | None = None) -> Executor:
-    """The executor for ``tasks`` tasks on ``jobs`` cores (0: all cores)."""
+                  on_event: Callable[[str, str], None] | None = None, cluster: str = "") -> Executor:
+    """The executor for ``tasks`` tasks on ``jobs`` cores (0: all cores), or on the Dask
+    cluster whose scheduler is at ``cluster`` (see :mod:`contenders.executor_dask`)."""
+    if cluster:
+        from .executor_dask import DaskExecutor
+
+        return DaskExecutor(cluster, engine_name, on_event)
     jobs = jobs or cores()
     workers, chain_workers = share(jobs, tasks)
     if workers == 1:

@@ -344,7 +344,8 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
     shown = Progress([c.id for c in cands], workers=workers, quiet=progress is None or cfg.quiet)
     for cid, r in results.items():
         shown.event(cid, "stored" if getattr(r, "from_store", False) else r.status)
-    executor = make_executor(engine.name, jobs or cores(), len(todo), on_event=shown.event)
+    executor = make_executor(engine.name, jobs or cores(), len(todo), on_event=shown.event,
+                             cluster=cfg.cluster if todo else "")
     try:
         with shown.ticker():
             futures = {executor.submit(candidate_task, c, design, cfg, engine.name, str(store.folder)): c
