@@ -427,7 +427,7 @@ def recover(result, replicates: int = DEFAULT_REPLICATES, progress: Callable[[st
     shown = Progress(ids, workers=workers, quiet=progress is None or cfg.quiet)
     per_g = {g: sum(t[0] == g for t in tasks) for g in ids}
     done_g = {g: 0 for g in ids}
-    executor = make_executor(result.engine, jobs, len(tasks))
+    executor = make_executor(result.engine, jobs, len(tasks), cluster=cfg.cluster)
     try:
         with shown.ticker():
             futures = {}

@@ -44,7 +44,7 @@ import concurrent.futures as cf
 import json
 import math
 import time
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import asdict, dataclass, field
 from functools import partial
 from pathlib import Path
 from typing import Callable, Sequence
@@ -403,7 +403,7 @@ def calibrate(cfg: RunConfig, simulations: int = 100, progress: Callable[[str], 
     for cid, cal in results.items():
         if cal.status == "not run" and cal.reason:
             shown.event(cid, "failed")
-    executor = make_executor(engine.name, jobs, total, on_event=shown.event)
+    executor = make_executor(engine.name, jobs, total, on_event=shown.event, cluster=cfg.cluster)
     kept_by: dict[str, dict[int, np.ndarray]] = {p[0].id: {} for p in plan}
     left = {p[0].id: len(p[5]) for p in plan}
     n_fits_of = dict(left)
