@@ -142,16 +142,12 @@ def run_batch(cfg: RunConfig, datasets: Sequence[str | Path], progress: Callable
     """Run every dataset with ``cfg`` (its ``data`` and ``out`` replaced per dataset) and
     write the index files into ``cfg.out``."""
     from .report import write_report
-    from .runner import run
+    from .runner import output_folder, run
 
     say = progress or (lambda _text: None)
     start = time.perf_counter()
     paths = find_datasets(datasets)
-    out = Path(cfg.out)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise UserError(f"{out}: cannot create the output folder ({exc.strerror}); choose another with --out")
+    out = output_folder(cfg.out)
     store = cfg.store or out / "fits"
     rows: list[DatasetRow] = []
     seen: list[str] = []

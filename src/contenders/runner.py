@@ -108,6 +108,18 @@ def load_design(cfg: RunConfig) -> Design:
     )
 
 
+def output_folder(path) -> Path:
+    """Create the output folder if needed; a user error if it cannot be created or written."""
+    out = Path(path)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise UserError(f"{out}: cannot create the output folder ({exc.strerror}); choose another with --out")
+    if not os.access(out, os.W_OK):
+        raise UserError(f"{out}: the output folder is not writable; choose another with --out")
+    return out
+
+
 def select_candidates(cfg: RunConfig) -> list[Candidate]:
     cands = discover(cfg.candidates or builtin_folder())
     every_id = [c.id for c in cands]
@@ -294,13 +306,7 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
     if cfg.cross_validation == "leave_group_out" and design.J == 0:
         raise UserError("cross_validation = leave_group_out needs a group column; set group under [data] or --group")
     cands = select_candidates(cfg)
-    out = Path(cfg.out)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise UserError(f"{out}: cannot create the output folder ({exc.strerror}); choose another with --out")
-    if not os.access(out, os.W_OK):
-        raise UserError(f"{out}: the output folder is not writable; choose another with --out")
+    out = output_folder(cfg.out)
     store = FitStore(cfg.store or out / "fits")
     engine = StoredEngine(get_engine(cfg.engine), store)
     for c in cands:

@@ -312,7 +312,7 @@ def calibrate(cfg: RunConfig, simulations: int = 100, progress: Callable[[str], 
     from ..engines import compile_all, get_engine
     from ..executor import cores, make_executor, share
     from ..progress import Progress
-    from ..runner import load_design, select_candidates, with_outcome
+    from ..runner import load_design, output_folder, select_candidates, with_outcome
     from ..store import FitStore, StoredEngine
 
     if simulations < 1:
@@ -321,11 +321,7 @@ def calibrate(cfg: RunConfig, simulations: int = 100, progress: Callable[[str], 
     start = time.perf_counter()
     design = load_design(cfg)
     cands = select_candidates(cfg)
-    out = Path(cfg.out)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise UserError(f"{out}: cannot create the output folder ({exc.strerror}); choose another with --out")
+    out = output_folder(cfg.out)
     store = FitStore(cfg.store or out / "fits")
     engine = StoredEngine(get_engine(cfg.engine), store)
     results: dict[str, Calibration] = {}

@@ -37,6 +37,8 @@ import arviz as az
 import numpy as np
 import xarray as xr
 
+from .posterior import _flatten
+
 #: The paper's threshold for a sensitivity worth a look.
 THRESHOLD = 0.05
 
@@ -103,18 +105,6 @@ def power_scaled_mean(values: np.ndarray, log_component: np.ndarray, alpha: floa
     return float(np.sum(w * np.asarray(values, dtype=float).reshape(-1)) / np.sum(w)), k
 
 
-def _flat(ds: xr.Dataset, names: Sequence[str]) -> dict[str, float]:
-    out = {}
-    for name in names:
-        values = np.asarray(ds[name].values, dtype=float)
-        if values.ndim == 0:
-            out[name] = float(values)
-        else:
-            for idx in np.ndindex(values.shape):
-                out[f"{name}[{','.join(str(i + 1) for i in idx)}]"] = float(values[idx])
-    return out
-
-
 def _reading(prior: float, likelihood: float, threshold: float) -> str:
     if not (np.isfinite(prior) and np.isfinite(likelihood)):
         return ""
@@ -148,7 +138,7 @@ def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
         def sens(data) -> dict[str, dict[str, float]]:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                return {comp: _flat(az.psens(data, component=comp, delta=DELTA), names)
+                return {comp: _flatten(az.psens(data, component=comp, delta=DELTA), names)
                         for comp in ("prior", "likelihood")}
 
         pooled = sens(base)
