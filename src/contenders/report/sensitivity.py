@@ -31,8 +31,8 @@ def _value(x: float, rng: tuple[float, float]) -> str:
 def sensitivity_context(cands: Sequence[Any]) -> dict[str, Any]:
     """Overview per candidate, the flagged parameters in detail, and the full CSV."""
     overview = Table("", ["Candidate", "Parameters", "Possible prior-data conflict", "Prior decides, data weak",
-                          "Weak likelihood only", "Reliability"],
-                     numeric=[False, True, False, False, False, False])
+                          "Reliability"],
+                     numeric=[False, True, False, False, False])
     detail = Table("", ["Candidate", "Parameter", "Prior sensitivity (range over single chains)",
                         "Likelihood sensitivity (range over single chains)", "Reading"],
                    numeric=[False, False, True, True, False])
@@ -49,7 +49,7 @@ def sensitivity_context(cands: Sequence[Any]) -> dict[str, Any]:
             without.append(f"{r.label} ({r.id})")
             continue
         if s.problem:
-            overview.add([Cell(r.label, "name", r.id), n(fmt.MISSING), Cell(s.problem, "wrap muted"), "", "", ""])
+            overview.add([Cell(r.label, "name", r.id), n(fmt.MISSING), Cell(s.problem, "wrap muted"), "", ""])
             continue
         by = {key: [row for row in s.rows if row["reading"] == key] for key in READINGS}
         k = max(s.pareto_k.values()) if s.pareto_k else float("nan")
@@ -61,7 +61,6 @@ def sensitivity_context(cands: Sequence[Any]) -> dict[str, Any]:
                            "wrap flag" if by["conflict"] else "wrap"),
                       Cell(("◆ " if by["prior_dominates"] else "") + _names(by["prior_dominates"]),
                            "wrap flag" if by["prior_dominates"] else "wrap"),
-                      Cell(_names(by["weak_likelihood"]), "wrap"),
                       Cell(reliable, "wrap" if s.reliable else "wrap flag")],
                      cls="muted" if r.status == "unhealthy" else "")
         for row in s.rows:

@@ -21,10 +21,9 @@ does:
 * prior and likelihood sensitivity both at least 0.05: the prior and the data pull
   the parameter in different directions (possible prior-data conflict);
 * prior sensitivity at least 0.05, likelihood sensitivity below: the prior decides
-  the parameter and the data say little about it;
-* likelihood sensitivity below 0.05 with an insensitive prior: the data say little
-  about the parameter either (a weak likelihood, for example a parameter identified
-  only through others).
+  the parameter and the data say little about it (strong prior, weak likelihood).
+
+The paper gives no reading for a parameter insensitive to both; none is made here.
 """
 
 from __future__ import annotations
@@ -51,7 +50,6 @@ K_RELIABLE = 0.7
 READINGS = {
     "conflict": "prior and data disagree: possible prior-data conflict",
     "prior_dominates": "the prior decides it; the data say little (weak likelihood)",
-    "weak_likelihood": "the data say little about it (weak likelihood)",
     "": "",
 }
 
@@ -112,8 +110,6 @@ def _reading(prior: float, likelihood: float, threshold: float) -> str:
         return "conflict"
     if prior >= threshold:
         return "prior_dominates"
-    if likelihood < threshold:
-        return "weak_likelihood"
     return ""
 
 
