@@ -52,7 +52,7 @@ TRIAL_SETTINGS = (
     "check_draws", "conditions", "cross_validation", "refit_cap", "folds",
 )
 #: Bumped whenever the stored trial results change shape.
-TRIALS_FORMAT = 2
+TRIALS_FORMAT = 3
 
 
 def trials_key(candidate, design, cfg, engine_version: str) -> str:

@@ -336,10 +336,11 @@ class PyStanEngine(Engine):
     name = "pystan"
 
     def version(self) -> str:
-        import httpstan
-        import stan
+        # from the installed packages' metadata: importing PyStan costs a second, which a
+        # rerun that reads every result from the fit store does not otherwise pay
+        from importlib.metadata import version
 
-        return f"pystan {stan.__version__} (httpstan {httpstan.__version__})"
+        return f"pystan {version('pystan')} (httpstan {version('httpstan')})"
 
     def is_cached(self, candidate: Candidate) -> bool:
         import httpstan.models
