@@ -93,6 +93,10 @@ def _worker_init(engine_name: str, chain_workers: int, events) -> None:
             from .engines.pystan_engine import stop_workers
 
             stop_workers()
+        with contextlib.suppress(Exception):
+            from .store import remove_partial_files
+
+            remove_partial_files()
         os._exit(143)
 
     signal.signal(signal.SIGTERM, on_term)

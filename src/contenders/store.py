@@ -12,6 +12,7 @@ with ``arviz.from_netcdf``.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import os
@@ -107,17 +108,11 @@ class FitStore:
     def save(self, key: str, draws: Draws) -> Path:
         self.folder.mkdir(parents=True, exist_ok=True)
         path = self.path(key)
-        tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
         attrs = draws.idata.sample_stats.attrs
         attrs["contenders_key"] = key
         attrs["contenders_sample_seconds"] = draws.sample_seconds
         attrs["contenders_messages"] = draws.messages[:10000]
-        try:
-            draws.idata.to_netcdf(str(tmp))
-            os.replace(tmp, path)
-        finally:
-            if tmp.exists():
-                tmp.unlink()
+        _write_whole(path, lambda tmp: draws.idata.to_netcdf(str(tmp)))
         return path
 
 
@@ -143,15 +138,37 @@ class FitStore:
 
         self.folder.mkdir(parents=True, exist_ok=True)
         path = self.trials_path(key)
-        tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-        try:
+
+        def write(tmp: Path) -> None:
             with tmp.open("wb") as fh:
                 pickle.dump((key, result), fh, protocol=pickle.HIGHEST_PROTOCOL)
-            os.replace(tmp, path)
-        finally:
-            if tmp.exists():
-                tmp.unlink()
+
+        _write_whole(path, write)
         return path
+
+
+#: Temporary files being written by this process; a worker stopped by SIGTERM (Ctrl-C in
+#: the parent) removes them before it exits (see ``executor._worker_init``).
+WRITING: set[Path] = set()
+
+
+def _write_whole(path: Path, write) -> None:
+    """Write through a temporary file renamed into place: readers see whole files only."""
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    WRITING.add(tmp)
+    try:
+        write(tmp)
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+        WRITING.discard(tmp)
+
+
+def remove_partial_files() -> None:
+    for tmp in list(WRITING):
+        with contextlib.suppress(OSError):
+            tmp.unlink()
 
 
 class StoredEngine(Engine):

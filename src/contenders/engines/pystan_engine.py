@@ -1,14 +1,16 @@
 """PyStan 3 engine (httpstan underneath; installs from PyPI alone).
 
 PyStan compiles each program once into httpstan's cache (under the user's cache
-folder) and reuses it for every dataset. With a random seed httpstan also caches each
-fit on disk; this engine deletes those files once the draws are read, because a fit
-with ``y_rep`` and ``log_lik`` for every observation can take hundreds of megabytes.
-"""
+folder) and reuses it for every dataset. Sampling calls httpstan's compiled program
+directly, one chain per forked process, and parses its output as it is written (see
+``_sample_direct``); the draws are exactly PyStan's for the same seed. The one-draw
+evaluations (``single_draw``) still go through PyStan, which caches each fit on disk;
+this engine deletes those files once read."""
 
 from __future__ import annotations
 
 import asyncio
+import concurrent.futures
 import contextlib
 import io
 import os
@@ -119,73 +121,254 @@ def _init_chain_process() -> None:
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
 
 
-async def _sample_lean(model, settings: SamplerSettings):
-    """NUTS through httpstan's API, chain by chain, without PyStan's ``Fit``.
+def _sample_direct(model, settings: SamplerSettings):
+    """NUTS with httpstan's compiled program, one chain per forked process, read directly.
 
-    The same requests as PyStan's ``model.sample`` (chain ids 1..chains, the model's
-    seed), so the draws are identical; but each chain's output is parsed as soon as it
-    is read and its text released, and the fit files httpstan caches are deleted. PyStan
-    keeps every chain's raw JSON text and a float64 copy of all draws at once, which at
-    N = 10,000 peaked at 4.7 GB for one fit. ``log_lik`` stays float64 (LOO needs it);
-    ``y_rep`` is kept as float32, which holds any latency to 7 significant digits.
+    The same stan::services call with the same arguments as PyStan's ``model.sample``
+    (chain ids 1..chains, the model's seed, httpstan's defaults for everything else), so
+    the draws are identical; but httpstan's server is not involved. Each chain process
+    runs the sampler in one thread and, in another, reads the sampler's JSON lines from
+    its socket as they are written, parsing each draw into arrays at once; it hands the
+    arrays back through a raw file that this process reads into place. Through PyStan's
+    server the same output is compressed, cached, decompressed and sent over HTTP, which
+    cost about 40 % of a core beside each chain; PyStan also keeps every chain's raw JSON
+    text and a float64 copy of all draws at once (4.7 GB for one fit at N = 10,000).
+    ``log_lik`` stays float64 (LOO needs it); ``y_rep`` is kept as float32, which holds
+    any latency to 7 significant digits.
 
     Returns ``(arrays, stats)``: per variable an array (chains, draws, *dims), and per
     sampler statistic an array (chains, draws)."""
-    import stan.common
-
-    payloads = []
-    for chain in range(1, settings.chains + 1):
-        payloads.append({
-            "function": _SAMPLE_FUNCTION, "chain": chain, "data": model.data, "init": {},
-            "random_seed": model.random_seed, "num_warmup": settings.warmup,
-            "num_samples": settings.draws, "delta": settings.adapt_delta,
-            "max_depth": settings.max_treedepth,
-        })
     import json as _json
 
+    import httpstan.services_stub as stub
     from stan.model import DataJSONEncoder
 
-    payloads = _json.loads(DataJSONEncoder().encode(payloads))
+    # the data exactly as httpstan's server would receive it (JSON: lists, ints, floats)
+    data = _json.loads(DataJSONEncoder().encode(dict(model.data)))
+    kwargs = _service_arguments(model, settings)
     layout = _layout(model)
     arrays = {name: np.empty((settings.chains, settings.draws, *shape), dtype=dtype, order="C")
               for name, (shape, dtype, _lo, _hi) in layout.items()}
     stats: dict[str, np.ndarray] = {}
     logged: list[str] = []
-    async with stan.common.HttpstanClient() as client:
-        operations = []
-        for payload in payloads:
-            resp = await client.post(f"/{model.model_name}/fits", json=payload)
-            if resp.status == 422:
-                raise ValueError(str(resp.json()))
-            if resp.status != 201:
-                raise RuntimeError(resp.json()["message"])
-            operations.append(resp.json())
-        pending = list(range(len(operations)))
-        while pending:
-            for i in list(pending):
-                resp = await client.get(f"/{operations[i]['name']}")
-                operations[i].update(resp.json())
-                if not operations[i]["done"]:
+    with tempfile.TemporaryDirectory(prefix="contenders_chains_") as folder:
+        futures = [stub.executor.submit(_run_chain, model.model_name, data, dict(kwargs, chain=chain),
+                                        layout, settings.draws, folder)
+                   for chain in range(1, settings.chains + 1)]
+        errors = []
+        try:
+            for i, future in enumerate(futures):
+                answer = future.result()
+                logged.extend(answer["logged"])
+                if answer["error"] or errors:
+                    errors.append(answer["error"])
+                    for later in futures[i + 1:]:
+                        later.cancel()
                     continue
-                pending.remove(i)
-                result = operations[i]["result"]
-                fit_name = result.get("name")
-                if fit_name is None:
-                    message = result.get("message", "")
-                    if "Initialization failed" in message:
-                        raise RuntimeError("Initialization failed.")
-                    raise RuntimeError(message)
-                resp = await client.get(f"/{fit_name}")
-                if resp.status != 200:
-                    raise RuntimeError(resp.json()["message"])
-                text = resp.content
-                await client.delete(f"/{fit_name}")
-                _parse_chain(text, i, layout, arrays, stats, settings, logged)
-                del text
-            if pending:
-                await asyncio.sleep(0.05)
-    _LOGGED[id(model)] = "\n".join(logged)
+                for k in answer["stats"]:
+                    stats.setdefault(k, np.empty((settings.chains, settings.draws)))
+                    _read_into(stats[k][i], os.path.join(folder, f"{i + 1}.{k}"))
+                for name in layout:
+                    _read_into(arrays[name][i], os.path.join(folder, f"{i + 1}.{name}"))
+        except concurrent.futures.CancelledError:
+            pass
+        finally:
+            # the folder holds the chains' sockets: leave no chain running when it goes
+            for future in futures:
+                future.cancel()
+            concurrent.futures.wait(futures)
+        if errors:
+            raise RuntimeError(next(e for e in errors if e))
+    _LOGGED[id(model)] = "\n".join(dict.fromkeys(logged))
     return arrays, stats
+
+
+def _service_arguments(model, settings: SamplerSettings) -> dict[str, Any]:
+    """Arguments of the sampler call, filled with httpstan's defaults as its server does."""
+    import httpstan.models
+    import httpstan.services.arguments as arguments
+
+    given = {"init": {}, "random_seed": model.random_seed, "num_warmup": settings.warmup,
+             "num_samples": settings.draws, "delta": settings.adapt_delta,
+             "max_depth": settings.max_treedepth, "chain": 1}
+    module = httpstan.models.import_services_extension_module(model.model_name)
+    names = arguments.function_arguments(_SAMPLE_FUNCTION.rsplit("::", 1)[1], module)
+    del module
+    for name in names:
+        if name not in given and name != "data":
+            given[name] = arguments.lookup_default(arguments.Method.SAMPLE, name)
+    return given
+
+
+def _read_into(target: np.ndarray, path: str) -> None:
+    """Fill a C-contiguous array from a raw file written by ``ndarray.tofile``."""
+    if target.size == 0:  # e.g. log_lik when no observation is fitted
+        return
+    with open(path, "rb") as fh:
+        got = fh.readinto(memoryview(target).cast("B"))
+    os.unlink(path)
+    if got != target.nbytes:
+        raise RuntimeError(f"a chain's output file held {got} bytes, expected {target.nbytes}")
+
+
+def _run_chain(model_name: str, data: dict, kwargs: dict, layout, draws: int, folder: str) -> dict:
+    """In a chain process: run one chain and parse its output while it is written.
+
+    The sampler (C++, which releases the GIL) runs in a thread and writes JSON lines to
+    a Unix socket; this thread reads them and fills one chain's arrays, then writes each
+    array to ``folder/<chain>.<name>`` for the parent to read."""
+    import select
+    import socket
+    import threading
+
+    import httpstan.models
+
+    module = httpstan.models.import_services_extension_module(model_name)
+    function = getattr(module, _SAMPLE_FUNCTION.rsplit("::", 1)[1] + "_wrapper")
+    chain = kwargs["chain"]
+    reader = _ChainReader(layout, draws)
+    outcome: dict[str, Any] = {}
+    path = os.path.join(folder, f"{chain}.sock")
+
+    finished = threading.Event()
+    failure: list[BaseException] = []
+
+    def read(server: socket.socket) -> None:
+        pending: dict[socket.socket, bytearray] = {}
+        quiet = 0
+        try:
+            while True:
+                readable, _, _ = select.select([server, *pending], [], [], 0.05)
+                for s in readable:
+                    if s is server:
+                        conn, _ = server.accept()
+                        pending[conn] = bytearray()
+                        continue
+                    chunk = s.recv(1 << 20)
+                    buf = pending[s]
+                    if not chunk:
+                        if buf:
+                            reader.line(bytes(buf))
+                        del pending[s]
+                        s.close()
+                        continue
+                    buf += chunk
+                    end = buf.rfind(b"\n")
+                    if end >= 0:
+                        block = bytes(buf[:end])
+                        del buf[:end + 1]
+                        for line in block.split(b"\n"):
+                            reader.line(line)
+                if not readable and finished.is_set():
+                    quiet += 1
+                    # every writer closes its connection when the sampler returns; one
+                    # left open (a writer leaked by a C++ exception) must not hang us
+                    if not pending or quiet > 20:
+                        break
+                else:
+                    quiet = 0
+        except BaseException as exc:  # noqa: BLE001 - handed to the calling thread
+            failure.append(exc)
+        finally:
+            for s in pending:
+                s.close()
+
+    # the sampler runs in this (the main) thread: Stan's C++ needs its larger stack
+    with socket.socket(socket.AF_UNIX, socket.SOCK_STREAM) as server:
+        server.bind(path)
+        server.listen(8)
+        thread = threading.Thread(target=read, args=(server,), daemon=True)
+        thread.start()
+        try:
+            outcome["code"] = function(path, data, **kwargs)
+        except Exception as exc:  # Stan's exceptions reach here as RuntimeError
+            outcome["error"] = str(exc)
+        finally:
+            finished.set()
+            thread.join()
+    if failure:
+        raise failure[0]
+    error = outcome.get("error")
+    if error is None and outcome.get("code", 0) != 0:
+        error = " ".join(reader.errors) or f"the sampler returned error code {outcome.get('code')}"
+    elif error is not None and reader.errors:
+        error = f"{error} {' '.join(reader.errors[:4])}"
+    if error is None and reader.draw != draws:
+        error = f"chain {chain} returned {reader.draw} draws, expected {draws}"
+    if error is None:
+        for name, values in {**reader.arrays, **reader.stats}.items():
+            if values.size:
+                values.tofile(os.path.join(folder, f"{chain}.{name}"))
+    return {"stats": list(reader.stats), "logged": reader.logged, "error": error}
+
+
+class _ChainReader:
+    """Parses one chain's JSON lines (httpstan's writer format) into arrays."""
+
+    def __init__(self, layout, draws: int):
+        import simdjson
+
+        self.layout = layout
+        self.draws = draws
+        self.arrays = {name: np.empty((draws, *shape), dtype=dtype)
+                       for name, (shape, dtype, _lo, _hi) in layout.items()}
+        self.stats: dict[str, np.ndarray] = {}
+        self.logged: list[str] = []
+        self.errors: list[str] = []
+        self.draw = 0
+        self._parser = simdjson.Parser()
+
+    def line(self, line: bytes) -> None:
+        import json as _json
+
+        import simdjson
+
+        head = line[:48]
+        if b'"logger"' in head:
+            if b"info:Iteration" in line or b"Elapsed Time" in line or b'"info:"' in line:
+                return
+            try:
+                value = str(_json.loads(line)["values"][0])
+            except Exception:
+                return
+            if value.startswith(("error:", "warn:")):
+                self.errors.append(value.split(":", 1)[1].strip())
+            value = value.replace("info:", "").replace("error:", "").replace("warn:", "").strip()
+            if value and not value.startswith(_BOILERPLATE) and not value.startswith("seconds"):
+                self.logged.append(value)
+            return
+        if b'"sample"' not in head:
+            return
+        try:
+            values = self._parser.parse(line)["values"]
+            if not isinstance(values, simdjson.Object):
+                return
+            keys = None if self.stats else tuple(values.keys())
+            row = np.fromiter(values.values(), dtype=np.float64)
+            del values
+        except ValueError:  # nan or infinity, which simdjson does not parse
+            values = _json.loads(line)["values"]
+            if not isinstance(values, dict):
+                return
+            keys = None if self.stats else tuple(values.keys())
+            row = np.asarray([float(v) for v in values.values()], dtype=np.float64)
+        if not self.stats:
+            for k in keys:
+                if k.endswith("__"):
+                    self.stats[k] = np.empty(self.draws)
+        if self.draw >= self.draws:
+            raise RuntimeError("a chain returned more draws than asked for")
+        n_stats = len(self.stats)
+        for j, values in enumerate(self.stats.values()):
+            values[self.draw] = row[j]
+        params = row[n_stats:]
+        for name, (shape, _dtype, lo, hi) in self.layout.items():
+            if shape:
+                # Stan writes arrays in column-major order
+                self.arrays[name][self.draw] = params[lo:hi].reshape(shape, order="F")
+            else:
+                self.arrays[name][self.draw] = params[lo]
+        self.draw += 1
 
 
 def _layout(model) -> dict[str, tuple[tuple[int, ...], Any, int, int]]:
@@ -205,66 +388,6 @@ _BOILERPLATE = ("Gradient evaluation took", "1000 transitions using", "Adjust yo
 _STAT_NAMES = {"lp__": "lp", "accept_stat__": "acceptance_rate", "stepsize__": "step_size",
                "treedepth__": "tree_depth", "n_leapfrog__": "n_steps", "divergent__": "diverging",
                "energy__": "energy"}
-
-
-def _parse_chain(text: bytes, chain: int, layout, arrays, stats, settings, logged) -> None:
-    """Fill one chain's slot of ``arrays`` and ``stats`` from httpstan's JSON lines."""
-    import json as _json
-
-    import simdjson
-
-    parser = simdjson.Parser()
-    draw = 0
-    n_stats = None
-    for line in text.splitlines():
-        if b'"logger"' in line:
-            if b'info:Iteration' in line or b'Elapsed Time' in line or b'"info:"' in line:
-                continue
-            try:
-                msg = _json.loads(line)
-                value = str(msg["values"][0]).replace("info:", "").replace("error:", "").strip()
-                if value and not value.startswith(_BOILERPLATE) and not value.startswith("seconds"):
-                    logged.append(value)
-            except Exception:
-                pass
-            continue
-        if b'"sample"' not in line[:40]:
-            continue
-        try:
-            msg = parser.parse(line)
-            values = msg["values"]
-            if not isinstance(values, simdjson.Object):
-                del msg, values
-                continue
-            keys = None if n_stats is not None else tuple(values.keys())
-            row = np.fromiter(values.values(), dtype=np.float64)
-            del msg, values
-        except ValueError:  # nan or infinity, which simdjson does not parse
-            msg = _json.loads(line)
-            values = msg["values"]
-            if not isinstance(values, dict):
-                continue
-            keys = None if n_stats is not None else tuple(values.keys())
-            row = np.asarray([float(v) for v in values.values()], dtype=np.float64)
-        if n_stats is None:
-            stat_keys = [k for k in keys if k.endswith("__")]
-            n_stats = len(stat_keys)
-            for k in stat_keys:
-                stats.setdefault(k, np.empty((settings.chains, settings.draws)))
-        if draw >= settings.draws:
-            raise RuntimeError(f"chain {chain + 1} returned more draws than asked for")
-        for j, k in enumerate(list(stats)[:n_stats]):
-            stats[k][chain, draw] = row[j]
-        params = row[n_stats:]
-        for name, (shape, _dtype, lo, hi) in layout.items():
-            if shape:
-                # Stan writes arrays in column-major order
-                arrays[name][chain, draw] = params[lo:hi].reshape(shape, order="F")
-            else:
-                arrays[name][chain, draw] = params[lo]
-        draw += 1
-    if draw != settings.draws:
-        raise RuntimeError(f"chain {chain + 1} returned {draw} draws, expected {settings.draws}")
 
 
 def _to_inference_data(model, arrays, stats, data) -> az.InferenceData:
@@ -388,7 +511,7 @@ class PyStanEngine(Engine):
         start = time.perf_counter()
         with _quiet() as buf:
             try:
-                arrays, stats = _interrupted_if_none(asyncio.run(_sample_lean(model, settings)))
+                arrays, stats = _sample_direct(model, settings)
             except (RuntimeError, ValueError) as exc:
                 raise SamplingError(
                     f"{program.candidate_id}: sampling failed: {_short(exc, file_name=program.candidate_id + '.stan')}\n{_stan_message(buf.getvalue())}"
