@@ -19,7 +19,6 @@ from dataclasses import asdict
 from pathlib import Path
 from typing import Any, Mapping
 
-import arviz as az
 import numpy as np
 
 from .engines.base import Draws, Engine, Program, SamplerSettings, raise_if_interrupted
@@ -51,8 +50,9 @@ TRIAL_SETTINGS = (
     "rhat_max", "ess_per_chain_min", "ebfmi_min", "thresholds", "bounds", "implausible_share",
     "check_draws", "conditions", "cross_validation", "refit_cap", "folds",
 )
-#: Bumped whenever the stored trial results change shape.
-TRIALS_FORMAT = 3
+#: Bumped whenever the stored trial results change shape. Format 4: plain data only (no
+#: ArviZ objects), so reading them back imports neither ArviZ nor xarray.
+TRIALS_FORMAT = 4
 
 
 def trials_key(candidate, design, cfg, engine_version: str) -> str:
@@ -93,6 +93,8 @@ class FitStore:
         path = self.path(key)
         if not path.exists():
             return None
+        import arviz as az
+
         try:
             with az.rc_context({"data.load": "eager"}):
                 idata = az.from_netcdf(path)
@@ -126,32 +128,55 @@ class FitStore:
 
     def load_trials(self, key: str):
         """A candidate's stored trial results, or None (missing, damaged or stale)."""
-        import pickle
-
-        path = self.trials_path(key)
-        if not path.exists():
-            return None
-        try:
-            with path.open("rb") as fh:
-                stored_key, result = pickle.load(fh)
-        except Exception:   # a damaged or outdated file is recomputed, never trusted
-            return None
-        return result if stored_key == key else None
+        return _load_pickle(self.trials_path(key), key)
 
     def save_trials(self, key: str, result) -> Path:
-        import pickle
+        return _save_pickle(self.trials_path(key), key, result)
 
-        self.folder.mkdir(parents=True, exist_ok=True)
-        path = self.trials_path(key)
-        tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    def value_path(self, kind: str, key: str) -> Path:
+        return self.folder / kind / f"{key[:32]}.pickle"
+
+    def load_value(self, kind: str, key: str):
+        """A value computed before from inputs whose hash is ``key`` (``kind`` names what
+        it is: ``weights``, ``figures``), or None. Values hold plain data only."""
+        return _load_pickle(self.value_path(kind, key), key)
+
+    def save_value(self, kind: str, key: str, value) -> Path | None:
+        """Store ``value`` under ``key``; a store that cannot be written is not an error
+        (the value is computed again next time)."""
         try:
-            with tmp.open("wb") as fh:
-                pickle.dump((key, result), fh, protocol=pickle.HIGHEST_PROTOCOL)
-            os.replace(tmp, path)
-        finally:
-            if tmp.exists():
-                tmp.unlink()
-        return path
+            return _save_pickle(self.value_path(kind, key), key, value)
+        except OSError:
+            return None
+
+
+def _load_pickle(path: Path, key: str):
+    import pickle
+
+    if not path.exists():
+        return None
+    try:
+        with path.open("rb") as fh:
+            stored_key, value = pickle.load(fh)
+    except Exception:   # a damaged or outdated file is recomputed, never trusted
+        return None
+    return value if stored_key == key else None
+
+
+def _save_pickle(path: Path, key: str, value) -> Path:
+    """Write ``(key, value)`` to a temporary file beside ``path``, then rename it."""
+    import pickle
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        with tmp.open("wb") as fh:
+            pickle.dump((key, value), fh, protocol=pickle.HIGHEST_PROTOCOL)
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+    return path
 
 
 class StoredEngine(Engine):
