@@ -110,10 +110,13 @@ _SOURCE: list[str] = []
 
 
 def source_digest() -> str:
-    """SHA-256 of every source file of this package (a code change redraws figures)."""
+    """SHA-256 of every source file of this package (a code change redraws figures) and
+    of the matplotlib and NumPy versions; computed once per process."""
     if not _SOURCE:
+        from importlib.metadata import version
+
         root = Path(__file__).resolve().parents[1]
-        h = hashlib.sha256()
+        h = hashlib.sha256(f"matplotlib {version('matplotlib')}|numpy {np.__version__}|".encode())
         for path in sorted(root.rglob("*.py")):
             h.update(str(path.relative_to(root)).encode())
             h.update(path.read_bytes())
@@ -122,10 +125,7 @@ def source_digest() -> str:
 
 
 def figure_key(name: str, args: tuple, kwargs: dict, first_id: int) -> str:
-    from importlib.metadata import version
-
-    h = hashlib.sha256(f"figures {FIGURES_FORMAT}|{name}|first id {first_id}|matplotlib "
-                       f"{version('matplotlib')}|numpy {np.__version__}|{source_digest()}|".encode())
+    h = hashlib.sha256(f"figures {FIGURES_FORMAT}|{name}|first id {first_id}|{source_digest()}|".encode())
     _digest(list(args), h)
     _digest(dict(sorted(kwargs.items())), h)
     return h.hexdigest()
