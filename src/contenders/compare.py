@@ -115,8 +115,8 @@ def make_folds(n: int, k: int, strata: np.ndarray | None = None, seed: int = 0) 
 
 
 def _totals(pointwise: np.ndarray, lppd: float) -> dict:
-    """elpd, its SE (sqrt(N) times the SD of the pointwise values, Vehtari, Gelman &
-    Gabry 2017, eq. 23) and p = lppd - elpd."""
+    """SE of the elpd (sqrt(N) times the SD of the pointwise values, as ArviZ's ``loo``
+    computes it after Vehtari, Gelman & Gabry 2017) and p = lppd - elpd."""
     n = pointwise.size
     return {"se": float(np.sqrt(n * np.var(pointwise))), "p": float(lppd - pointwise.sum())}
 
