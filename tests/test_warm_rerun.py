@@ -193,6 +193,13 @@ def test_stored_figure_is_the_figure_drawn_afresh(tmp_path):
         figure_store.figure_key("elpd_differences", (rows,), {}, start)
 
 
+def test_figure_keys_tell_numpy_scalars_by_value():
+    key = lambda *args: figure_store.figure_key("f", args, {}, 1)  # noqa: E731
+    assert key(np.float64(0.1), np.bool_(True), np.int64(3)) == key(0.1, True, 3)
+    assert key(np.float64(0.1)) != key(np.nextafter(0.1, 1))
+    assert key(np.arange(3)) != key(np.arange(3).astype(float))   # dtype is part of the input
+
+
 def test_unknown_argument_types_are_drawn_not_stored(tmp_path):
     class Opaque:
         pass

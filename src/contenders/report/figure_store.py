@@ -71,6 +71,10 @@ def _digest(value: Any, h) -> None:
     """Feed a canonical description of ``value`` to the hash ``h``."""
     if value is None or isinstance(value, (bool, str)):
         h.update(f"{type(value).__name__}:{value!r};".encode())
+    elif isinstance(value, np.bool_):
+        h.update(f"bool:{bool(value)!r};".encode())
+    elif isinstance(value, Path):
+        h.update(f"path:{str(value)!r};".encode())
     elif isinstance(value, (int, np.integer)):
         h.update(f"int:{int(value)};".encode())
     elif isinstance(value, (float, np.floating)):
