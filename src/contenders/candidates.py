@@ -269,11 +269,16 @@ def discover(folder: str | Path) -> list[Candidate]:
     paths = sorted(folder.glob("*.stan"))
     if not paths:
         raise UserError(f"{folder}: no .stan files in the candidates folder; add at least one candidate.")
+    import concurrent.futures as cf
+
+    # each file is checked by a run of the Stan compiler (``stanc --info``, a few hundredths
+    # of a second each): run them side by side
+    with cf.ThreadPoolExecutor(max_workers=min(8, len(paths))) as pool:
+        loaded = list(pool.map(load_candidate, paths))
     seen: dict[str, Path] = {}
     out = []
-    for path in paths:
+    for path, c in zip(paths, loaded):
         key = path.stem.lower()
-        c = load_candidate(path)
         if key in seen:
             c.problems.append(
                 f"{path.name}: id '{path.stem}' clashes with {seen[key].name} (ids ignore case); rename one."

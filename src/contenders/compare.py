@@ -19,13 +19,14 @@ Sources:
 
 from __future__ import annotations
 
-import copy
+import hashlib
 from dataclasses import dataclass, field
 from typing import Callable, Sequence
 
-import arviz as az
 import numpy as np
-from scipy.special import logsumexp
+
+# ArviZ and SciPy are imported inside the functions that compute with them: a rerun
+# whose results all come from the fit store (see ``weights``) never needs them.
 
 #: elpd differences below this are "small" (Sivula et al.).
 SMALL_DIFFERENCE = 4.0
@@ -46,7 +47,7 @@ class OutOfSample:
     n_refits: int = 0
     elpd_psis: float = float("nan")                     # plain PSIS-LOO before any refit
     mcse: float = float("nan")                          # Monte Carlo SE of elpd (chains as batches)
-    elpd_object: object = field(default=None, repr=False)   # ArviZ ELPDData for compare
+    n_samples: int = 0                                  # posterior draws behind the PSIS estimate
 
     @property
     def k_max(self) -> float:
@@ -60,6 +61,8 @@ class OutOfSample:
 
 def log_mean_exp(log_lik: np.ndarray, axis: int = 0) -> np.ndarray:
     """log of the mean of exp(x) along ``axis``, computed stably."""
+    from scipy.special import logsumexp
+
     n = log_lik.shape[axis]
     return logsumexp(log_lik, axis=axis) - np.log(n)
 
@@ -83,6 +86,9 @@ def _chain_mcse(per_chain_totals: np.ndarray) -> float:
 
 def _psis_by_chain(log_lik: np.ndarray) -> np.ndarray:
     """PSIS-LOO pointwise elpd computed on each chain alone; ``log_lik`` is (C, S, N)."""
+    import arviz as az
+    from scipy.special import logsumexp
+
     out = []
     for ll in log_lik:
         lw, _ = az.psislw(-ll.T)
@@ -108,16 +114,31 @@ def make_folds(n: int, k: int, strata: np.ndarray | None = None, seed: int = 0) 
     return folds
 
 
-def _with_pointwise(base, pointwise: np.ndarray, lppd: float):
-    """Copy of an ArviZ ELPDData with new pointwise values and the totals that follow."""
-    out = copy.deepcopy(base)
+def _totals(pointwise: np.ndarray, lppd: float) -> dict:
+    """SE of the elpd (sqrt(N) times the SD of the pointwise values, as ArviZ's ``loo``
+    computes it after Vehtari, Gelman & Gabry 2017) and p = lppd - elpd."""
     n = pointwise.size
-    out["loo_i"].values[:] = pointwise
-    out["elpd_loo"] = float(pointwise.sum())
-    out["se"] = float(np.sqrt(n * np.var(pointwise)))
-    out["p_loo"] = float(lppd - pointwise.sum())
-    out["warning"] = False
-    return out
+    return {"se": float(np.sqrt(n * np.var(pointwise))), "p": float(lppd - pointwise.sum())}
+
+
+def elpd_data(e: OutOfSample):
+    """The ArviZ ``ELPDData`` of one estimate, built from its plain fields (for
+    ``arviz.compare``, which reads elpd, SE, p, the pointwise values, the warning flag
+    and the scale)."""
+    import xarray as xr
+    from arviz.stats.stats_utils import ELPDData
+
+    n = e.pointwise.size
+    obs = np.arange(n)
+    return ELPDData(
+        data=[float(e.elpd), float(e.se), float(e.p), int(e.n_samples), n, False,
+              xr.DataArray(np.asarray(e.pointwise, dtype=float), dims=["obs"], coords={"obs": obs},
+                           name="loo_i"),
+              xr.DataArray(np.asarray(e.pareto_k, dtype=float), dims=["obs"], coords={"obs": obs}),
+              "log", float(e.k_threshold)],
+        index=["elpd_loo", "se", "p_loo", "n_samples", "n_data_points", "warning", "loo_i", "pareto_k",
+               "scale", "good_k"],
+    )
 
 
 RefitFn = Callable[[np.ndarray], np.ndarray]
@@ -143,6 +164,8 @@ def estimate(
     """
     import warnings
 
+    import arviz as az
+
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # ArviZ warns on high k; handled below, not ignored
         loo = az.loo(idata, pointwise=True, var_name="log_lik")
@@ -155,7 +178,8 @@ def estimate(
     psis = np.asarray(loo["loo_i"].values, dtype=float)
     k = np.asarray(loo["pareto_k"].values, dtype=float)
     threshold = float(loo["good_k"])
-    base = dict(pareto_k=k, k_threshold=threshold, elpd_psis=float(loo["elpd_loo"]))
+    base = dict(pareto_k=k, k_threshold=threshold, elpd_psis=float(loo["elpd_loo"]),
+                n_samples=int(loo["n_samples"]))
 
     def exact(draws: np.ndarray, idx: np.ndarray, pointwise: np.ndarray, per_chain: np.ndarray) -> None:
         """Exact held-out elpd of observations ``idx`` from refit draws (S, N)."""
@@ -170,9 +194,9 @@ def estimate(
         for f in np.unique(fold_of):
             exact(refit(np.flatnonzero(fold_of != f)), np.flatnonzero(fold_of == f), pointwise, per_chain)
             n_fits += 1
-        obj = _with_pointwise(loo, pointwise, lppd)
-        return OutOfSample(float(pointwise.sum()), float(obj["se"]), float(obj["p_loo"]), pointwise,
-                           method=label, n_refits=n_fits, elpd_object=obj,
+        t = _totals(pointwise, lppd)
+        return OutOfSample(float(pointwise.sum()), t["se"], t["p"], pointwise,
+                           method=label, n_refits=n_fits,
                            mcse=_chain_mcse(per_chain.sum(axis=1)), **base)
 
     if strategy == "leave_group_out":
@@ -183,9 +207,9 @@ def estimate(
         return held_out(make_folds(n, folds, groups, seed), f"{folds}-fold cross-validation")
     high = np.flatnonzero(k > threshold)
     if high.size == 0:
-        obj = _with_pointwise(loo, psis, lppd)
-        return OutOfSample(float(psis.sum()), float(obj["se"]), float(obj["p_loo"]), psis,
-                           method="PSIS-LOO", elpd_object=obj, mcse=_chain_mcse(by_chain.sum(axis=1)),
+        t = _totals(psis, lppd)
+        return OutOfSample(float(psis.sum()), t["se"], t["p"], psis,
+                           method="PSIS-LOO", mcse=_chain_mcse(by_chain.sum(axis=1)),
                            **base)
     if high.size > refit_cap:
         est = held_out(make_folds(n, folds, groups, seed), f"{folds}-fold cross-validation")
@@ -197,10 +221,10 @@ def estimate(
     everyone = np.arange(n)
     for i in high:
         exact(refit(everyone[everyone != i]), np.array([i]), pointwise, per_chain)
-    obj = _with_pointwise(loo, pointwise, lppd)
-    return OutOfSample(float(pointwise.sum()), float(obj["se"]), float(obj["p_loo"]), pointwise,
+    t = _totals(pointwise, lppd)
+    return OutOfSample(float(pointwise.sum()), t["se"], t["p"], pointwise,
                        method=f"PSIS-LOO with {high.size} exact refit{'s' if high.size > 1 else ''}",
-                       refitted=[int(i) for i in high], n_refits=int(high.size), elpd_object=obj,
+                       refitted=[int(i) for i in high], n_refits=int(high.size),
                        mcse=_chain_mcse(per_chain.sum(axis=1)), **base)
 
 
@@ -212,18 +236,51 @@ class Comparison:
     preferred: list[str]
 
 
-def weights(estimates: dict[str, OutOfSample], seed: int = 0) -> tuple[dict, dict, dict]:
+#: Bumped whenever the stored weights change meaning (see ``weights``).
+WEIGHTS_FORMAT = 1
+
+
+def weights_key(estimates: dict[str, OutOfSample], seed: int = 0) -> str:
+    """SHA-256 of everything ``arviz.compare`` reads of the given estimates (ids in
+    order, elpd, SE, p, draws, pointwise values), the seed of the Bayesian bootstrap and
+    the installed ArviZ version: equal keys give equal weights."""
+    from importlib.metadata import version
+
+    h = hashlib.sha256(f"weights {WEIGHTS_FORMAT}|arviz {version('arviz')}|seed {seed}".encode())
+    for cid, e in estimates.items():
+        h.update(f"|{cid}|{e.elpd!r}|{e.se!r}|{e.p!r}|{int(e.n_samples)}|".encode())
+        pointwise = np.ascontiguousarray(np.asarray(e.pointwise, dtype=np.float64))
+        h.update(str(pointwise.shape).encode())
+        h.update(pointwise.tobytes())
+    return h.hexdigest()
+
+
+def weights(estimates: dict[str, OutOfSample], seed: int = 0, store=None) -> tuple[dict, dict, dict]:
     """Stacking weights, pseudo-BMA+ weights (Bayesian bootstrap) and the ArviZ table
-    (elpd_diff, dse) for the given candidates."""
+    (elpd_diff, dse) for the given candidates.
+
+    With ``store`` (a :class:`contenders.store.FitStore`) the answer is read from it
+    when these exact estimates were compared before (``weights_key``), and stored
+    otherwise, so a rerun from the fit store does not import ArviZ."""
     if len(estimates) == 1:
         (cid,) = estimates
         return {cid: 1.0}, {cid: 1.0}, {cid: (0.0, 0.0)}
-    objs = {cid: e.elpd_object for cid, e in estimates.items()}
+    key = weights_key(estimates, seed) if store is not None else ""
+    if store is not None:
+        found = store.load_value("weights", key)
+        if found is not None:
+            return found
+    import arviz as az
+
+    objs = {cid: elpd_data(e) for cid, e in estimates.items()}
     stacked = az.compare(objs, ic="loo", method="stacking")
     bma = az.compare(objs, ic="loo", method="BB-pseudo-BMA", seed=seed)
     diffs = {cid: (float(stacked.loc[cid, "elpd_diff"]), float(stacked.loc[cid, "dse"])) for cid in objs}
-    return ({cid: float(stacked.loc[cid, "weight"]) for cid in objs},
-            {cid: float(bma.loc[cid, "weight"]) for cid in objs}, diffs)
+    answer = ({cid: float(stacked.loc[cid, "weight"]) for cid in objs},
+              {cid: float(bma.loc[cid, "weight"]) for cid in objs}, diffs)
+    if store is not None:
+        store.save_value("weights", key, answer)
+    return answer
 
 
 def order_with_ties(ranked: list) -> list:
@@ -268,7 +325,7 @@ def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
 
 
 def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.01,
-                       pit_alpha: float = 0.01) -> Comparison:
+                       pit_alpha: float = 0.01, store=None) -> Comparison:
     """Rank healthy candidates by elpd and write the verdict.
 
     Rules: a difference below 4 elpd is small (Sivula et al.); a difference within two
@@ -277,7 +334,7 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
     or above 1 - ``ppp_extreme`` for any statistic, or a LOO-PIT uniformity p-value
     below ``pit_alpha``, is named as misfitting even when it ranks well (the
     thresholds are common practice, no source); unhealthy, failed and skipped
-    candidates are not ranked.
+    candidates are not ranked. ``store``: see ``weights``.
     """
     ranked = [r for r in results if r.status == "ok" and r.oos is not None]
     verdict: list[str] = []
@@ -285,7 +342,7 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
     preferred: list[str] = []
     if ranked:
         est = {r.id: r.oos for r in ranked}
-        stack_w, bma_w, diffs = weights(est, seed)
+        stack_w, bma_w, diffs = weights(est, seed, store)
         ranked = order_with_ties(ranked)
         best = ranked[0]
         preferred.append(best.id)

@@ -131,11 +131,13 @@ class InlineExecutor(Executor):
                  on_event: Callable[[str, str], None] | None = None) -> None:
         self.workers, self.chain_workers = 1, chain_workers
         self._engine = engine_name
-        self._previous_chains = _set_chain_workers(engine_name, chain_workers)
+        self._previous_chains: int | None = None   # chains are limited at the first task
         self._previous = _REPORT[0]
         _REPORT[0] = on_event or (lambda _cid, _stage: None)
 
     def submit(self, fn: Callable, *args: Any) -> cf.Future:
+        if self._previous_chains is None:   # not before: a run without tasks loads no engine
+            self._previous_chains = _set_chain_workers(self._engine, self.chain_workers)
         future: cf.Future = cf.Future()
         try:
             future.set_result(fn(*args))
@@ -148,7 +150,8 @@ class InlineExecutor(Executor):
     def close(self, cancel: bool = False) -> None:
         _REPORT[0] = self._previous
         # this process goes on (a library caller, a test session): give back its cores
-        _set_chain_workers(self._engine, self._previous_chains or cores())
+        if self._previous_chains is not None:
+            _set_chain_workers(self._engine, self._previous_chains or cores())
 
 
 class ProcessExecutor(Executor):

@@ -25,6 +25,7 @@ from .config import RunConfig
 from .data import Design, build_design, read_table
 from .engines import SamplingError, compile_all, get_engine
 from .engines.base import SamplerSettings
+from .engines.lazy import LazyEngine
 from .executor import make_executor, report
 from .progress import Progress
 from .store import FitStore, StoredEngine, trials_key
@@ -308,7 +309,7 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
     cands = select_candidates(cfg)
     out = output_folder(cfg.out)
     store = FitStore(cfg.store or out / "fits")
-    engine = StoredEngine(get_engine(cfg.engine), store)
+    engine = StoredEngine(LazyEngine(cfg.engine), store)   # loaded only if something must be fitted
     for c in cands:
         check_against_data(c, design, cfg.hyperparameters.get(c.id))
     runnable = [c for c in cands if c.valid and not c.skip_reason]
@@ -375,7 +376,7 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
     for r in ordered:
         if r.status in ("failed", "skipped"):
             say(f"  {r.id}: {r.status}: {r.reason.splitlines()[0][:160] if r.reason else ''}")
-    comparison = compare_candidates(ordered, cfg.seed, cfg.ppp_extreme)
+    comparison = compare_candidates(ordered, cfg.seed, cfg.ppp_extreme, store=store)
     sampled = sum(r.fits_sampled for r in ordered if not r.from_store)
     reused = sum(r.fits_reused for r in ordered if not r.from_store) + sum(
         len(r.fit_files) for r in ordered if r.from_store)
@@ -396,13 +397,11 @@ def _as_completed(futures):
 
 
 def versions(engine) -> dict[str, str]:
-    import arviz
-    import numpy
-    import scipy
+    from importlib.metadata import version   # no import of ArviZ or SciPy for their versions
 
     return {
-        "contenders": __version__, "engine": engine.version(), "arviz": arviz.__version__,
-        "numpy": numpy.__version__, "scipy": scipy.__version__, "python": platform.python_version(),
+        "contenders": __version__, "engine": engine.version(), "arviz": version("arviz"),
+        "numpy": np.__version__, "scipy": version("scipy"), "python": platform.python_version(),
     }
 
 

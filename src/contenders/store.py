@@ -20,7 +20,6 @@ from dataclasses import asdict
 from pathlib import Path
 from typing import Any, Mapping
 
-import arviz as az
 import numpy as np
 
 from .engines.base import Draws, Engine, Program, SamplerSettings, raise_if_interrupted
@@ -52,8 +51,9 @@ TRIAL_SETTINGS = (
     "rhat_max", "ess_per_chain_min", "ebfmi_min", "thresholds", "bounds", "implausible_share",
     "check_draws", "conditions", "cross_validation", "refit_cap", "folds",
 )
-#: Bumped whenever the stored trial results change shape.
-TRIALS_FORMAT = 3
+#: Bumped whenever the stored trial results change shape. Format 4: plain data only (no
+#: ArviZ objects), so reading them back imports neither ArviZ nor xarray.
+TRIALS_FORMAT = 4
 
 
 def trials_key(candidate, design, cfg, engine_version: str) -> str:
@@ -94,6 +94,8 @@ class FitStore:
         path = self.path(key)
         if not path.exists():
             return None
+        import arviz as az
+
         try:
             with az.rc_context({"data.load": "eager"}):
                 idata = az.from_netcdf(path)
@@ -115,36 +117,58 @@ class FitStore:
         _write_whole(path, lambda tmp: draws.idata.to_netcdf(str(tmp)))
         return path
 
-
     def trials_path(self, key: str) -> Path:
         return self.folder / f"{key[:32]}.trials.pickle"
 
     def load_trials(self, key: str):
         """A candidate's stored trial results, or None (missing, damaged or stale)."""
-        import pickle
-
-        path = self.trials_path(key)
-        if not path.exists():
-            return None
-        try:
-            with path.open("rb") as fh:
-                stored_key, result = pickle.load(fh)
-        except Exception:   # a damaged or outdated file is recomputed, never trusted
-            return None
-        return result if stored_key == key else None
+        return _load_pickle(self.trials_path(key), key)
 
     def save_trials(self, key: str, result) -> Path:
-        import pickle
+        return _save_pickle(self.trials_path(key), key, result)
 
-        self.folder.mkdir(parents=True, exist_ok=True)
-        path = self.trials_path(key)
+    def value_path(self, kind: str, key: str) -> Path:
+        return self.folder / kind / f"{key[:32]}.pickle"
 
-        def write(tmp: Path) -> None:
-            with tmp.open("wb") as fh:
-                pickle.dump((key, result), fh, protocol=pickle.HIGHEST_PROTOCOL)
+    def load_value(self, kind: str, key: str):
+        """A value computed before from inputs whose hash is ``key`` (``kind`` names what
+        it is: ``weights``, ``figures``), or None. Values hold plain data only."""
+        return _load_pickle(self.value_path(kind, key), key)
 
-        _write_whole(path, write)
-        return path
+    def save_value(self, kind: str, key: str, value) -> Path | None:
+        """Store ``value`` under ``key``; a store that cannot be written is not an error
+        (the value is computed again next time)."""
+        try:
+            return _save_pickle(self.value_path(kind, key), key, value)
+        except OSError:
+            return None
+
+
+def _load_pickle(path: Path, key: str):
+    import pickle
+
+    if not path.exists():
+        return None
+    try:
+        with path.open("rb") as fh:
+            stored_key, value = pickle.load(fh)
+    except Exception:   # a damaged or outdated file is recomputed, never trusted
+        return None
+    return value if stored_key == key else None
+
+
+def _save_pickle(path: Path, key: str, value) -> Path:
+    """Write ``(key, value)`` to a temporary file beside ``path``, then rename it."""
+    import pickle
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+
+    def write(tmp: Path) -> None:
+        with tmp.open("wb") as fh:
+            pickle.dump((key, value), fh, protocol=pickle.HIGHEST_PROTOCOL)
+
+    _write_whole(path, write)
+    return path
 
 
 #: Temporary files being written by this process; a worker stopped by SIGTERM (Ctrl-C in

@@ -5,12 +5,14 @@ from __future__ import annotations
 import abc
 import threading
 from dataclasses import dataclass
-from typing import Any, Mapping
+from typing import TYPE_CHECKING, Any, Mapping
 
-import arviz as az
 import numpy as np
 
 from ..candidates import Candidate
+
+if TYPE_CHECKING:   # ArviZ is imported where draws are made or read, not here
+    import arviz as az
 
 
 #: Set when the user interrupts (Ctrl-C) while an engine call is running; engines check it

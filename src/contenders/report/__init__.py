@@ -25,7 +25,8 @@ from jinja2 import Environment, FileSystemLoader, StrictUndefined
 from ..compare import SMALL_DIFFERENCE
 from ..trials.effects import MIN_WEIGHT, compare_effects, direction
 from ..trials.statistics import describe
-from . import figures, recovery_section
+from . import recovery_section
+from .figure_store import drawn
 from . import format as fmt
 from .sensitivity import sensitivity_context
 from .tables import MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, n, p_cell, pit_reading
@@ -656,6 +657,15 @@ def _files(result, cands) -> Table:
     return t
 
 
+def _store(result):
+    """The run's fit store, which also keeps drawn figures (see :mod:`.figure_store`)."""
+    from ..store import FitStore
+
+    cfg, out = getattr(result, "config", None), getattr(result, "out", None)
+    folder = getattr(cfg, "store", None) or (Path(out) / "fits" if out is not None else None)
+    return FitStore(folder) if folder else None
+
+
 def _lineups(result, cands) -> list[dict]:
     by_id = {r.id: r for r in cands}
     out = []
@@ -663,7 +673,8 @@ def _lineups(result, cands) -> list[dict]:
         r = by_id.get(cid)
         if r is None or r.y_rep_sample is None:
             continue
-        lu = figures.lineup(result.design.y, r.y_rep_sample, seed=int(result.config.seed) + 7919 * (k + 1))
+        lu = drawn(_store(result), "lineup", result.design.y, r.y_rep_sample,
+                   seed=int(result.config.seed) + 7919 * (k + 1))
         if lu is None:
             continue
         out.append({"id": r.id, "label": r.label, "panels": lu.panels, "answer": lu.answer,
@@ -696,13 +707,14 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     stats = [row["statistic"] for row in with_prior[0].prior.rows] if with_prior else []
     observed = {row["statistic"]: row["observed"] for row in with_prior[0].prior.rows} if with_prior else {}
 
+    store = _store(result)
     figs: dict[str, Any] = {
-        "elpd": figures.elpd_differences(result.comparison.rows),
-        "prior": figures.prior_grid([(r.label, r.prior) for r in with_prior], stats, observed),
-        "pareto": figures.pareto_k_grid([(r.label, r.oos) for r in with_oos]),
-        "density": figures.replicate_density_grid(d.y, [(r.label, r.y_rep_sample) for r in with_checks]),
-        "stats": figures.statistic_grid([(r.label, r.checks) for r in with_checks], cfg.ppp_extreme),
-        "pit": figures.loo_pit_grid([(r.label, r.checks) for r in with_checks], PIT_ALPHA),
+        "elpd": drawn(store, "elpd_differences", result.comparison.rows),
+        "prior": drawn(store, "prior_grid", [(r.label, r.prior) for r in with_prior], stats, observed),
+        "pareto": drawn(store, "pareto_k_grid", [(r.label, r.oos) for r in with_oos]),
+        "density": drawn(store, "replicate_density_grid", d.y, [(r.label, r.y_rep_sample) for r in with_checks]),
+        "stats": drawn(store, "statistic_grid", [(r.label, r.checks) for r in with_checks], cfg.ppp_extreme),
+        "pit": drawn(store, "loo_pit_grid", [(r.label, r.checks) for r in with_checks], PIT_ALPHA),
     }
 
     checks_long = _checks_long(result, with_checks)
@@ -730,7 +742,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
 
     effects = compare_effects(result.candidates, result.comparison.rows, cfg.seed)
     effects_table = _effects_table(result, effects) if effects else None
-    figs["effects"] = figures.effects_across(effects, {e.key: _effect_units(e, d.outcome) for e in effects})
+    figs["effects"] = drawn(store, "effects_across", effects, {e.key: _effect_units(e, d.outcome) for e in effects})
 
     preferred = [{"id": cid, "label": by_id[cid].label} for cid in result.comparison.preferred if cid in by_id]
     n_status = {s: sum(r.status == s for r in cands) for s in ("ok", "unhealthy", "failed", "skipped")}

@@ -24,7 +24,6 @@ from __future__ import annotations
 
 import base64
 import io
-import itertools
 import re
 from dataclasses import dataclass
 from typing import Sequence
@@ -40,6 +39,7 @@ import numpy as np  # noqa: E402
 
 from ..compare import SMALL_DIFFERENCE  # noqa: E402
 from ..trials.statistics import describe  # noqa: E402
+from .figure_store import Lineup, Rendered, next_prefix  # noqa: E402  (records readable without matplotlib)
 
 # --- palette and style ------------------------------------------------------------
 
@@ -90,21 +90,6 @@ SVG_BUDGET = 450_000
 PNG_DPI = 110
 RASTER_DPI = 130
 
-_counter = itertools.count(1)
-
-
-@dataclass
-class Rendered:
-    """One figure, ready to place in the page."""
-
-    html: Markup
-    kind: str          # "svg" or "png"
-    size: int          # bytes of markup
-
-    def __html__(self) -> str:  # lets the template print it directly
-        return str(self.html)
-
-
 def plain(text: str, limit: int = 34) -> str:
     """User text for a figure: shortened, with mathtext's dollar signs disarmed."""
     text = str(text)
@@ -139,7 +124,7 @@ def _svg(fig: Figure, alt: str) -> str:
     text = text[text.index("<svg"):]
     text = re.sub(r"<metadata>.*?</metadata>\s*", "", text, flags=re.S)
     text = re.sub(r"<style type=\"text/css\">.*?</style>", "", text, flags=re.S)
-    prefix = f"f{next(_counter)}-"
+    prefix = next_prefix()
     text = re.sub(r'\bid="([^"]+)"', lambda m: f'id="{prefix}{m.group(1)}"', text)
     text = re.sub(r'href="#([^"]+)"', lambda m: f'href="#{prefix}{m.group(1)}"', text)
     text = re.sub(r"url\(#([^)]+)\)", lambda m: f"url(#{prefix}{m.group(1)})", text)
@@ -755,15 +740,6 @@ def loo_pit_grid(cands: Sequence[tuple[str, object]], alpha: float = 0.01, ncols
 
 
 # --- 7. lineup -------------------------------------------------------------------------
-
-@dataclass
-class Lineup:
-    panels: list[Rendered]      # 20 small histograms, in reading order
-    answer: int                 # 1-based position of the observed data
-    replicate_rows: list[int]   # rows of y_rep_sample used, in panel order (observed skipped)
-    edges: np.ndarray           # the bins shared by every panel
-    counts: list[np.ndarray]    # the histogram of each panel, in reading order
-
 
 def lineup_layout(n_replicates: int, seed: int, n_panels: int = 20) -> tuple[int, list[int]]:
     """Where the observed data go (0-based panel) and which replicated datasets fill the

@@ -5,9 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Mapping, Sequence
 
-import arviz as az
 import numpy as np
-from scipy import stats as sps
 
 from . import statistics as st
 
@@ -35,6 +33,8 @@ def loo_pit(y: np.ndarray, y_rep: np.ndarray, log_lik: np.ndarray, reff: float =
     ``y_rep`` and ``log_lik`` have shape (draws, N). Computed with ArviZ's
     ``psislw`` and ``loo_pit`` (Vehtari, Gelman & Gabry 2017, Statistics and
     Computing 27, section 2.1, and Gabry et al. 2019, JRSS A 182, section 5)."""
+    import arviz as az
+
     lw, _ = az.psislw(-np.asarray(log_lik, dtype=float).T, reff=reff)
     return np.asarray(az.loo_pit(y=np.asarray(y, dtype=float), y_hat=np.asarray(y_rep, dtype=float).T,
                                  log_weights=lw))
@@ -44,6 +44,8 @@ def uniformity_test(pit: np.ndarray) -> dict:
     """One-sample Kolmogorov-Smirnov test of the LOO-PIT values against uniform(0, 1)
     (SciPy ``kstest``). Approximate: LOO-PIT values are not independent, so read the
     p-value as a screen, together with the figure."""
+    from scipy import stats as sps
+
     pit = np.asarray(pit, dtype=float)
     pit = pit[np.isfinite(pit)]
     res = sps.kstest(pit, "uniform")

@@ -20,7 +20,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field, replace
 from typing import Any, Mapping, Sequence
 
-import arviz as az
 import numpy as np
 
 from ..engines.base import Draws, Engine, Program, SamplerSettings
@@ -80,6 +79,8 @@ def diagnose(
     attempts: Sequence[Attempt] = (),
 ) -> Health:
     """Compute every diagnostic of one run and decide whether it is healthy."""
+    import arviz as az
+
     idata = draws.idata
     settings = draws.settings
     names = [p for p in parameters if p in idata.posterior]

@@ -32,9 +32,7 @@ import warnings
 from dataclasses import dataclass, field
 from typing import Sequence
 
-import arviz as az
 import numpy as np
-import xarray as xr
 
 from .posterior import _flatten
 
@@ -88,6 +86,8 @@ def power_scale_log_weights(log_component: np.ndarray, alpha: float) -> tuple[np
     draw) raised to the power ``alpha``: ``log w_s = (alpha - 1) log p(theta_s)``,
     Pareto-smoothed with :func:`arviz.psislw`. Returns the weights and Pareto k
     (Kallioinen et al. 2023, Section 2.3)."""
+    import arviz as az
+
     log_component = np.asarray(log_component, dtype=float).reshape(-1)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")   # a high k is returned and reported, not hidden
@@ -122,6 +122,9 @@ def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
     variable and the pointwise ``log_lik``; returns ``None`` when the program has no
     ``lprior``. A failure of the computation is returned in ``problem``, never raised,
     so it cannot stop the candidate's other trials."""
+    import arviz as az
+    import xarray as xr
+
     post = idata.posterior
     if lprior not in post:
         return None
