@@ -145,6 +145,91 @@ RefitFn = Callable[[np.ndarray], np.ndarray]
 """Given 0-based indices of the observations to fit, returns log_lik draws (S, N)."""
 
 
+@dataclass
+class Plan:
+    """An out-of-sample estimate up to its refits: ``fits`` lists, for each refit still to
+    run, the 0-based observations to fit and those held out. ``finish`` takes each
+    refit's ``log_lik`` draws of its held-out observations, (S, held out), in the same
+    order, so the refits can run anywhere (one after the other, or as separate tasks on
+    the run's executor) and only those columns travel back."""
+
+    fits: list[tuple[np.ndarray, np.ndarray]]
+    pointwise: np.ndarray            # PSIS values, replaced where refits give exact ones
+    per_chain: np.ndarray            # the same per batch of draws (for the MC SE)
+    lppd: float
+    n_chains: int
+    method: str
+    base: dict
+    refitted: list[int] = field(default_factory=list)
+
+    def finish(self, held_out: Sequence[np.ndarray] = ()) -> OutOfSample:
+        if len(held_out) != len(self.fits):
+            raise ValueError(f"{len(self.fits)} refits planned, {len(held_out)} results given")
+        pointwise, per_chain = self.pointwise.copy(), self.per_chain.copy()
+        for (_fitted, idx), draws in zip(self.fits, held_out):
+            draws = np.asarray(draws, dtype=float).reshape(-1, idx.size)
+            pointwise[idx] = log_mean_exp(draws)
+            per_chain[:, idx] = log_mean_exp(draws.reshape(self.n_chains, -1, idx.size), axis=1)
+        t = _totals(pointwise, self.lppd)
+        return OutOfSample(float(pointwise.sum()), t["se"], t["p"], pointwise, method=self.method,
+                           refitted=list(self.refitted), n_refits=len(self.fits),
+                           mcse=_chain_mcse(per_chain.sum(axis=1)), **self.base)
+
+
+def plan_estimate(
+    idata,
+    strategy: str = "loo",
+    refit_cap: int = 10,
+    folds: int = 10,
+    groups: np.ndarray | None = None,
+    seed: int = 0,
+) -> Plan:
+    """PSIS-LOO of one candidate and the refits the estimate needs (see ``estimate``)."""
+    import warnings
+
+    import arviz as az
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # ArviZ warns on high k; handled below, not ignored
+        loo = az.loo(idata, pointwise=True, var_name="log_lik")
+        chains_ll = np.asarray(idata.log_likelihood["log_lik"].values, dtype=float)
+        n_chains = chains_ll.shape[0] * _batches(chains_ll.shape[1])
+        by_chain = _psis_by_chain(chains_ll.reshape(n_chains, -1, chains_ll.shape[-1]))
+    log_lik = chains_ll.reshape(-1, chains_ll.shape[-1])
+    n = log_lik.shape[1]
+    lppd = float(log_mean_exp(log_lik).sum())
+    del log_lik, chains_ll
+    psis = np.asarray(loo["loo_i"].values, dtype=float)
+    k = np.asarray(loo["pareto_k"].values, dtype=float)
+    threshold = float(loo["good_k"])
+    base = dict(pareto_k=k, k_threshold=threshold, elpd_psis=float(loo["elpd_loo"]),
+                n_samples=int(loo["n_samples"]))
+
+    def held_out(fold_of: np.ndarray, label: str) -> Plan:
+        fits = [(np.flatnonzero(fold_of != f), np.flatnonzero(fold_of == f)) for f in np.unique(fold_of)]
+        return Plan(fits, np.full(n, np.nan), np.full((n_chains, n), np.nan), lppd, n_chains, label, base)
+
+    if strategy == "leave_group_out":
+        if groups is None:
+            raise ValueError("leave-one-group-out needs a group column")
+        return held_out(np.asarray(groups), f"leave-one-group-out ({len(np.unique(groups))} groups)")
+    if strategy == "kfold":
+        return held_out(make_folds(n, folds, groups, seed), f"{folds}-fold cross-validation")
+    high = np.flatnonzero(k > threshold)
+    if high.size == 0:
+        return Plan([], psis, by_chain, lppd, n_chains, "PSIS-LOO", base)
+    if high.size > refit_cap:
+        plan = held_out(make_folds(n, folds, groups, seed), f"{folds}-fold cross-validation")
+        plan.method += (f" ({high.size} observations had Pareto k above {threshold:.2f}, more "
+                        f"than the {refit_cap} exact refits allowed)")
+        return plan
+    everyone = np.arange(n)
+    fits = [(everyone[everyone != i], np.array([i])) for i in high]
+    return Plan(fits, psis, by_chain, lppd, n_chains,
+                f"PSIS-LOO with {high.size} exact refit{'s' if high.size > 1 else ''}", base,
+                refitted=[int(i) for i in high])
+
+
 def estimate(
     idata,
     refit: RefitFn,
@@ -160,72 +245,12 @@ def estimate(
     are refitted exactly with that observation held out, up to ``refit_cap``; above
     the cap the whole estimate falls back to K-fold. ``kfold``: K-fold for every
     candidate. ``leave_group_out``: each level of ``groups`` held out in turn
-    (predicting new groups, a different quantity from LOO).
+    (predicting new groups, a different quantity from LOO). ``refit(fitted)`` returns
+    log_lik draws (S, N) of a fit to the observations ``fitted``; here the refits run
+    one after the other (the runner sends them to its executor instead).
     """
-    import warnings
-
-    import arviz as az
-
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # ArviZ warns on high k; handled below, not ignored
-        loo = az.loo(idata, pointwise=True, var_name="log_lik")
-        chains_ll = np.asarray(idata.log_likelihood["log_lik"].values, dtype=float)
-        n_chains = chains_ll.shape[0] * _batches(chains_ll.shape[1])
-        by_chain = _psis_by_chain(chains_ll.reshape(n_chains, -1, chains_ll.shape[-1]))
-    log_lik = chains_ll.reshape(-1, chains_ll.shape[-1])
-    n = log_lik.shape[1]
-    lppd = float(log_mean_exp(log_lik).sum())
-    psis = np.asarray(loo["loo_i"].values, dtype=float)
-    k = np.asarray(loo["pareto_k"].values, dtype=float)
-    threshold = float(loo["good_k"])
-    base = dict(pareto_k=k, k_threshold=threshold, elpd_psis=float(loo["elpd_loo"]),
-                n_samples=int(loo["n_samples"]))
-
-    def exact(draws: np.ndarray, idx: np.ndarray, pointwise: np.ndarray, per_chain: np.ndarray) -> None:
-        """Exact held-out elpd of observations ``idx`` from refit draws (S, N)."""
-        pointwise[idx] = log_mean_exp(draws[:, idx])
-        split = draws.reshape(n_chains, -1, n)
-        per_chain[:, idx] = log_mean_exp(split[:, :, idx], axis=1)
-
-    def held_out(fold_of: np.ndarray, label: str) -> OutOfSample:
-        pointwise = np.empty(n)
-        per_chain = np.empty((n_chains, n))
-        n_fits = 0
-        for f in np.unique(fold_of):
-            exact(refit(np.flatnonzero(fold_of != f)), np.flatnonzero(fold_of == f), pointwise, per_chain)
-            n_fits += 1
-        t = _totals(pointwise, lppd)
-        return OutOfSample(float(pointwise.sum()), t["se"], t["p"], pointwise,
-                           method=label, n_refits=n_fits,
-                           mcse=_chain_mcse(per_chain.sum(axis=1)), **base)
-
-    if strategy == "leave_group_out":
-        if groups is None:
-            raise ValueError("leave-one-group-out needs a group column")
-        return held_out(np.asarray(groups), f"leave-one-group-out ({len(np.unique(groups))} groups)")
-    if strategy == "kfold":
-        return held_out(make_folds(n, folds, groups, seed), f"{folds}-fold cross-validation")
-    high = np.flatnonzero(k > threshold)
-    if high.size == 0:
-        t = _totals(psis, lppd)
-        return OutOfSample(float(psis.sum()), t["se"], t["p"], psis,
-                           method="PSIS-LOO", mcse=_chain_mcse(by_chain.sum(axis=1)),
-                           **base)
-    if high.size > refit_cap:
-        est = held_out(make_folds(n, folds, groups, seed), f"{folds}-fold cross-validation")
-        est.method += (f" ({high.size} observations had Pareto k above {threshold:.2f}, more "
-                       f"than the {refit_cap} exact refits allowed)")
-        return est
-    pointwise = psis.copy()
-    per_chain = by_chain.copy()
-    everyone = np.arange(n)
-    for i in high:
-        exact(refit(everyone[everyone != i]), np.array([i]), pointwise, per_chain)
-    t = _totals(pointwise, lppd)
-    return OutOfSample(float(pointwise.sum()), t["se"], t["p"], pointwise,
-                       method=f"PSIS-LOO with {high.size} exact refit{'s' if high.size > 1 else ''}",
-                       refitted=[int(i) for i in high], n_refits=int(high.size),
-                       mcse=_chain_mcse(per_chain.sum(axis=1)), **base)
+    plan = plan_estimate(idata, strategy, refit_cap, folds, groups, seed)
+    return plan.finish([refit(fitted)[:, idx] for fitted, idx in plan.fits])
 
 
 @dataclass
