@@ -118,6 +118,30 @@ def test_refits_of_high_k_observations_agree_with_brute_force_loo(tmp_path, engi
     assert abs(c.oos.elpd_psis - brute.sum()) > abs(c.oos.elpd - brute.sum())  # the refit helped
 
 
+def test_psis_loo_in_blocks_of_observations_equals_arviz_on_the_whole(monkeypatch):
+    """Large data are handed to ArviZ's PSIS-LOO a block of observations at a time (to
+    bound memory); the values must equal ``arviz.loo`` on all observations at once
+    (ArviZ as the reference), with a posterior whose draws differ between chains."""
+    import contenders.compare as compare
+
+    rng = np.random.default_rng(12)
+    mu = rng.normal(0, 0.2, (3, 400)) + np.array([[0.0], [0.05], [-0.05]])
+    y = rng.standard_t(4, 101)
+    ll = sps.norm.logpdf(y[None, None, :], mu[..., None], 1.0)
+    idata = az.from_dict(posterior={"mu": mu}, log_likelihood={"log_lik": ll})
+    ref = az.loo(idata, pointwise=True, var_name="log_lik")
+    monkeypatch.setattr(compare, "LOO_BLOCK_VALUES", 1200 * 25)   # 25 observations a block
+    assert len(compare._blocks(101, 1200)) == 5
+    plan = compare.plan_estimate(idata)
+    np.testing.assert_allclose(plan.pointwise, ref["loo_i"].values, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(plan.base["pareto_k"], ref["pareto_k"].values, rtol=0, atol=1e-12)
+    assert plan.base["elpd_psis"] == pytest.approx(float(ref["elpd_loo"]), abs=1e-9)
+    monkeypatch.setattr(compare, "LOO_BLOCK_VALUES", 10**9)
+    whole = compare.plan_estimate(idata)
+    np.testing.assert_allclose(plan.per_chain, whole.per_chain, rtol=0, atol=1e-12)
+    assert plan.lppd == pytest.approx(whole.lppd, abs=1e-9)
+
+
 # --- folds -------------------------------------------------------------------------
 
 def test_folds_are_balanced_and_stratified():

@@ -176,6 +176,30 @@ class Plan:
                            mcse=_chain_mcse(per_chain.sum(axis=1)), **self.base)
 
 
+#: Most log_lik values (draws x observations) handed to ArviZ's PSIS-LOO at once. PSIS
+#: treats each observation on its own, so splitting the observations into blocks gives
+#: the same values; it bounds the memory of the copies ArviZ makes (several of the
+#: block's size): one block of 4,000 draws x 20,000 observations took 3 GB more.
+LOO_BLOCK_VALUES = 20_000_000
+
+
+def _blocks(n: int, draws: int) -> list[slice]:
+    size = max(1, LOO_BLOCK_VALUES // max(1, draws))
+    return [slice(start, min(n, start + size)) for start in range(0, n, size)]
+
+
+def _observations(idata, block: slice):
+    """``idata`` restricted to some observations of ``log_lik`` (posterior kept whole: ArviZ
+    computes the relative efficiency from it)."""
+    if block.start == 0 and block.stop == idata.log_likelihood["log_lik"].shape[-1]:
+        return idata
+    import arviz as az
+
+    dim = idata.log_likelihood["log_lik"].dims[-1]
+    return az.InferenceData(posterior=idata.posterior,
+                            log_likelihood=idata.log_likelihood[["log_lik"]].isel({dim: block}))
+
+
 def plan_estimate(
     idata,
     strategy: str = "loo",
@@ -189,21 +213,25 @@ def plan_estimate(
 
     import arviz as az
 
+    chains_ll = np.asarray(idata.log_likelihood["log_lik"].values, dtype=float)
+    n = chains_ll.shape[-1]
+    n_chains = chains_ll.shape[0] * _batches(chains_ll.shape[1])
+    log_lik = chains_ll.reshape(-1, n)
+    blocks = _blocks(n, log_lik.shape[0])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # ArviZ warns on high k; handled below, not ignored
-        loo = az.loo(idata, pointwise=True, var_name="log_lik")
-        chains_ll = np.asarray(idata.log_likelihood["log_lik"].values, dtype=float)
-        n_chains = chains_ll.shape[0] * _batches(chains_ll.shape[1])
-        by_chain = _psis_by_chain(chains_ll.reshape(n_chains, -1, chains_ll.shape[-1]))
-    log_lik = chains_ll.reshape(-1, chains_ll.shape[-1])
-    n = log_lik.shape[1]
-    lppd = float(log_mean_exp(log_lik).sum())
+        parts = [az.loo(_observations(idata, block), pointwise=True, var_name="log_lik")
+                 for block in blocks]
+        by_chain = np.concatenate([_psis_by_chain(chains_ll[..., block].reshape(n_chains, -1, block.stop - block.start))
+                                   for block in blocks], axis=1)
+    lppd = float(sum(log_mean_exp(log_lik[:, block]).sum() for block in blocks))
     del log_lik, chains_ll
-    psis = np.asarray(loo["loo_i"].values, dtype=float)
-    k = np.asarray(loo["pareto_k"].values, dtype=float)
-    threshold = float(loo["good_k"])
-    base = dict(pareto_k=k, k_threshold=threshold, elpd_psis=float(loo["elpd_loo"]),
-                n_samples=int(loo["n_samples"]))
+    psis = np.concatenate([np.asarray(p["loo_i"].values, dtype=float) for p in parts])
+    k = np.concatenate([np.asarray(p["pareto_k"].values, dtype=float) for p in parts])
+    threshold = float(parts[0]["good_k"])
+    base = dict(pareto_k=k, k_threshold=threshold,
+                elpd_psis=float(sum(float(p["elpd_loo"]) for p in parts)),
+                n_samples=int(parts[0]["n_samples"]))
 
     def held_out(fold_of: np.ndarray, label: str) -> Plan:
         fits = [(np.flatnonzero(fold_of != f), np.flatnonzero(fold_of == f)) for f in np.unique(fold_of)]

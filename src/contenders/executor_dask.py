@@ -131,8 +131,9 @@ def _relocate(result: Any, local: str, store: str) -> Any:
     def moved(name: str) -> str:
         return str(Path(store) / Path(name).name) if name and Path(name).parent == Path(local) else name
 
-    if hasattr(result, "fit_files") and hasattr(result, "posterior_file"):
+    if hasattr(result, "fit_files"):   # a candidate's result, or one refit's
         result.fit_files = [moved(f) for f in result.fit_files]
+    if hasattr(result, "posterior_file"):
         result.posterior_file = moved(result.posterior_file)
     return result
 

@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 
 from . import __version__
-from .compare import Comparison, OutOfSample, compare_candidates, estimate
+from .compare import Comparison, OutOfSample, Plan, compare_candidates, plan_estimate
 from .candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for
 from .config import RunConfig
 from .data import Design, build_design, read_table
@@ -67,6 +67,7 @@ class CandidateResult:
     posterior_file: str = ""           # stored NetCDF of the accepted posterior fit
     effects: list = field(default_factory=list)   # replicated effects (trials/effects.py)
     sensitivity: Sensitivity | None = None   # power-scaling of prior and likelihood (needs lprior)
+    pending: Any = field(default=None, repr=False)   # RefitsDue while refits run elsewhere
 
 
 @dataclass
@@ -155,8 +156,12 @@ def _stack(idata_group, name: str) -> np.ndarray:
     return values.reshape(-1, values.shape[-1])
 
 
-def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig) -> CandidateResult:
-    """All trials of one candidate; exceptions are recorded, never raised."""
+def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
+                  defer_refits: bool = False) -> CandidateResult:
+    """All trials of one candidate; exceptions are recorded, never raised. With
+    ``defer_refits`` the exact refits of the out-of-sample estimate are not run here:
+    ``res.pending`` lists them (``RefitsDue``) for the run to send to its executor, and
+    ``res.oos`` is set when they are finished (``finish_refits``)."""
     res = CandidateResult(c.id, c.label, c.about, c.support, status="ok", code=c.code,
                           code_hash=c.code_hash)
     try:
@@ -208,10 +213,16 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig)
         # 4. out-of-sample: PSIS-LOO, exact refits of high-k observations, or K-fold
         res.stage = "out-of-sample"
         report(c.id, "out-of-sample")
-        res.oos = _out_of_sample(res, c, engine, program, design, cfg, draws, health.adapt_delta)
-        res.seconds["refits"] = res.seconds.pop("_refits", 0.0)
+        groups = design.group if design.J > 0 else None
+        plan = plan_estimate(draws.idata, cfg.cross_validation, cfg.refit_cap, cfg.folds, groups, cfg.seed)
         del draws
-        if not health.healthy:
+        due = RefitsDue(plan, health.adapt_delta)
+        if plan.fits and defer_refits:
+            res.pending = due
+        else:
+            outcomes = [refit_held_out(c, engine, program, design, cfg, due, j) for j in range(len(plan.fits))]
+            finish_refits(res, due, outcomes)
+        if not health.healthy and res.status == "ok":
             res.status, res.reason = "unhealthy", "; ".join(health.problems)
         res.stage = "done"
     except (SamplingError, UserError) as exc:
@@ -221,22 +232,70 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig)
     return res
 
 
-def _out_of_sample(res: CandidateResult, c: Candidate, engine, program, design: Design, cfg: RunConfig,
-                   draws, adapt_delta: float) -> OutOfSample:
-    """elpd of one candidate; refits go through the same engine and compiled program."""
-    counter = [0]
+@dataclass
+class RefitsDue:
+    """The refits an out-of-sample estimate still needs (``plan.fits``) and the
+    ``adapt_delta`` the accepted posterior fit used."""
 
-    def refit(fit_idx: np.ndarray) -> np.ndarray:
-        counter[0] += 1
-        report(c.id, f"out-of-sample: refit {counter[0]}")
-        settings = replace(_settings(cfg), adapt_delta=adapt_delta, seed=cfg.seed + 1000 + counter[0])
-        d = engine.sample(program, inputs_for(c, design, fit_idx, cfg.hyperparameters.get(c.id)), settings)
-        res.refit_divergences += int(np.asarray(d.idata.sample_stats["diverging"].values).sum())
-        res.seconds["_refits"] = res.seconds.get("_refits", 0.0) + d.sample_seconds
-        return _stack(d.idata.log_likelihood, "log_lik")
+    plan: Plan
+    adapt_delta: float
 
-    groups = design.group if design.J > 0 else None
-    return estimate(draws.idata, refit, cfg.cross_validation, cfg.refit_cap, cfg.folds, groups, cfg.seed)
+
+@dataclass
+class RefitOutcome:
+    """One refit's held-out ``log_lik`` draws, (S, held out), and what it cost."""
+
+    held_out: np.ndarray | None
+    divergences: int = 0
+    seconds: float = 0.0
+    fit_files: list[str] = field(default_factory=list)
+    sampled: int = 0
+    reused: int = 0
+    error: str = ""
+
+
+def refit_held_out(c: Candidate, engine, program, design: Design, cfg: RunConfig, due: RefitsDue,
+                   j: int) -> RefitOutcome:
+    """Refit ``j`` of ``due``: the candidate fitted without its held-out observations.
+    The seed depends on ``j`` only, so the refits give the same draws wherever they run."""
+    fitted, held = due.plan.fits[j]
+    report(c.id, f"out-of-sample: refit {j + 1} of {len(due.plan.fits)}")
+    settings = replace(_settings(cfg), adapt_delta=due.adapt_delta, seed=cfg.seed + 1001 + j)
+    d = engine.sample(program, inputs_for(c, design, fitted, cfg.hyperparameters.get(c.id)), settings)
+    return RefitOutcome(_stack(d.idata.log_likelihood, "log_lik")[:, held].copy(),
+                        int(np.asarray(d.idata.sample_stats["diverging"].values).sum()), d.sample_seconds)
+
+
+def refit_task(c: Candidate, design: Design, cfg: RunConfig, engine_name: str, store_folder: str,
+               due: RefitsDue, j: int) -> RefitOutcome:
+    """One exact refit as a task of its own on the run's executor (any process)."""
+    engine = StoredEngine(get_engine(engine_name), FitStore(store_folder))
+    try:
+        out = refit_held_out(c, engine, engine.compile(c), design, cfg, due, j)
+    except (SamplingError, UserError) as exc:
+        return RefitOutcome(None, error=str(exc))
+    out.fit_files = [str(p) for p in dict.fromkeys(engine.paths.get(c.id, []))]
+    out.sampled, out.reused = engine.sampled, engine.reused
+    return out
+
+
+def finish_refits(res: CandidateResult, due: RefitsDue, outcomes: list[RefitOutcome]) -> None:
+    """Complete ``res`` with its out-of-sample estimate once every refit is back."""
+    failed = next((o.error for o in outcomes if o.error), "")
+    if failed:
+        res.status, res.reason = "failed", f"out-of-sample: {failed}"
+        return
+    res.oos = due.plan.finish([o.held_out for o in outcomes])
+    res.refit_divergences += sum(o.divergences for o in outcomes)
+    spent = sum(o.seconds for o in outcomes)
+    res.seconds["refits"] = res.seconds.get("refits", 0.0) + spent
+    if "total" in res.seconds:   # refits run as tasks of their own after the candidate's
+        res.seconds["total"] += spent
+    for o in outcomes:
+        res.fit_files.extend(f for f in o.fit_files if f not in res.fit_files)
+        res.fits_sampled += o.sampled
+        res.fits_reused += o.reused
+    res.pending = None
 
 
 def candidate_task(c: Candidate, design: Design, cfg: RunConfig, engine_name: str,
@@ -251,7 +310,7 @@ def candidate_task(c: Candidate, design: Design, cfg: RunConfig, engine_name: st
     except SamplingError as exc:
         return CandidateResult(c.id, c.label, c.about, c.support, "failed", f"compile: {exc}",
                                c.code, c.code_hash, stage="compile")
-    res = run_candidate(c, engine, program, design, cfg)
+    res = run_candidate(c, engine, program, design, cfg, defer_refits=True)
     res.fit_files = [str(p) for p in dict.fromkeys(engine.paths.get(c.id, []))]
     res.seconds["total"] = time.perf_counter() - t0
     res.fits_sampled, res.fits_reused = engine.sampled, engine.reused
@@ -355,19 +414,7 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
                              cluster=cfg.cluster if todo else "")
     try:
         with shown.ticker():
-            futures = {executor.submit(candidate_task, c, design, cfg, engine.name, str(store.folder)): c
-                       for c in todo}
-            for future in _as_completed(futures):
-                c = futures[future]
-                try:
-                    r = future.result()
-                except Exception as exc:   # a worker died: recorded, the others go on
-                    r = CandidateResult(c.id, c.label, c.about, c.support, "failed",
-                                        f"worker: {type(exc).__name__}: {exc}", c.code, c.code_hash)
-                results[c.id] = r
-                if r.status in ("ok", "unhealthy"):
-                    store.save_trials(keys[c.id], r)
-                shown.event(c.id, "done" if r.status == "ok" else r.status)
+            _run_tasks(executor, todo, design, cfg, engine.name, store, keys, results, shown)
         executor.close()
     except BaseException:
         executor.close(cancel=True)
@@ -389,11 +436,59 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
     return result
 
 
-def _as_completed(futures):
-    """Futures in the order they finish (inline futures are already finished)."""
+def _run_tasks(executor, todo: list[Candidate], design: Design, cfg: RunConfig, engine_name: str,
+               store: FitStore, keys: dict[str, str], results: dict, shown: Progress) -> None:
+    """Every candidate's trials as one task each; the exact refits a candidate's
+    out-of-sample estimate needs then go to the same executor as tasks of their own, so a
+    candidate with many refits spreads over the free workers. A candidate is finished
+    (and its results stored) when its last refit is back."""
     import concurrent.futures as cf
 
-    return cf.as_completed(list(futures))
+    folder = str(store.folder)
+    running: dict[cf.Future, tuple] = {}
+    refits: dict[str, list] = {}         # candidate id -> outcomes (None while running)
+
+    def finished(c: Candidate, r: CandidateResult) -> None:
+        results[c.id] = r
+        if r.status in ("ok", "unhealthy"):
+            store.save_trials(keys[c.id], r)
+        shown.event(c.id, "done" if r.status == "ok" else r.status)
+
+    for c in todo:
+        running[executor.submit(candidate_task, c, design, cfg, engine_name, folder)] = ("trials", c, 0)
+    while running:
+        done, _ = cf.wait(list(running), return_when=cf.FIRST_COMPLETED)
+        for future in done:
+            kind, c, j = running.pop(future)
+            try:
+                answer = future.result()
+            except Exception as exc:   # a worker died: recorded, the others go on
+                answer = exc
+            if kind == "trials":
+                r = answer if not isinstance(answer, Exception) else CandidateResult(
+                    c.id, c.label, c.about, c.support, "failed",
+                    f"worker: {type(answer).__name__}: {answer}", c.code, c.code_hash)
+                results[c.id] = r
+                if r.pending is None:
+                    finished(c, r)
+                    continue
+                refits[c.id] = [None] * len(r.pending.plan.fits)
+                shown.event(c.id, f"out-of-sample: {len(refits[c.id])} refit(s)")
+                for k in range(len(refits[c.id])):
+                    f = executor.submit(refit_task, c, design, cfg, engine_name, folder, r.pending, k)
+                    running[f] = ("refit", c, k)
+                continue
+            if isinstance(answer, Exception):
+                answer = RefitOutcome(None, error=f"worker: {type(answer).__name__}: {answer}")
+            outcomes = refits[c.id]
+            outcomes[j] = answer
+            left = sum(o is None for o in outcomes)
+            if left:
+                shown.event(c.id, f"out-of-sample: {left} refit(s) to go")
+                continue
+            r = results[c.id]
+            finish_refits(r, r.pending, outcomes)
+            finished(c, r)
 
 
 def versions(engine) -> dict[str, str]:

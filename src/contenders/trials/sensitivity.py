@@ -130,7 +130,15 @@ def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
         return None
     try:
         names = [p for p in parameters if p in post and p != lprior and post[p].size > 0]
-        base = az.InferenceData(posterior=post[names], log_likelihood=idata.log_likelihood[[log_lik]],
+        # the likelihood component is the sum of log_lik over observations at each draw
+        # (ArviZ sums it the same way); summed here once, ArviZ makes no copies of the
+        # whole pointwise array (1.9 GB more at 4,000 draws x 20,000 observations)
+        pointwise = idata.log_likelihood[log_lik]
+        values = np.asarray(pointwise.values, dtype=float)
+        total = xr.DataArray(values.reshape(values.shape[0], values.shape[1], -1).sum(axis=-1),
+                             dims=("chain", "draw"),
+                             coords={d: pointwise.coords[d] for d in ("chain", "draw") if d in pointwise.coords})
+        base = az.InferenceData(posterior=post[names], log_likelihood=xr.Dataset({log_lik: total}),
                                 log_prior=xr.Dataset({lprior: post[lprior]}))
         n_chains = post.sizes["chain"]
 
@@ -155,8 +163,7 @@ def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
             rows.append(row)
         components = {
             "prior": np.asarray(post[lprior].values, dtype=float).reshape(-1),
-            "likelihood": np.asarray(idata.log_likelihood[log_lik].values, dtype=float)
-            .reshape(post.sizes["chain"] * post.sizes["draw"], -1).sum(axis=1),
+            "likelihood": np.asarray(total.values, dtype=float).reshape(-1),
         }
         pareto_k = {comp: max(power_scale_log_weights(values, alpha)[1]
                               for alpha in (1 / (1 + DELTA), 1 + DELTA))
