@@ -124,6 +124,14 @@ print(az.compare(loos, method="stacking").to_string())
 '''
 
 
+def _httpstan_fits() -> set[Path]:
+    """Fit files in httpstan's cache (PyStan writes one per chain of a seeded fit)."""
+    import httpstan.cache
+
+    root = httpstan.cache.cache_directory() / "models"
+    return set(root.glob("*/fits/*")) if root.exists() else set()
+
+
 def write_config(folder: Path, participants: int, draws: int, rows: int | None) -> Path:
     sys.path.insert(0, str(ROOT / "src"))
     from contenders import demo
@@ -157,7 +165,10 @@ def speed(args) -> dict:
         base_script.write_text(BASELINE)
         res = {}
         print("baseline ...", flush=True)
+        before = _httpstan_fits()
         res["baseline"] = timed([sys.executable, str(base_script), str(cfg), args.only or ""], env)
+        for path in _httpstan_fits() - before:   # PyStan caches every seeded fit; not ours to keep
+            path.unlink(missing_ok=True)
         print(f"  {res['baseline'][0]:.1f} s", flush=True)
         print("contenders, cold (jobs = all cores) ...", flush=True)
         res["cold"] = timed(contenders("run", "--config", str(cfg), "--quiet", "--out", str(work / "a"), *only), env)

@@ -80,8 +80,12 @@ def _close_chain_pool() -> None:
             proc.join(timeout=5)
 
 
-def _worker_init(engine_name: str, chain_workers: int, events) -> None:
-    """Runs once in each worker process."""
+def _worker_init(engine_name: str, chain_workers: int, events, slots=None) -> None:
+    """Runs once in each worker process. ``slots``, a semaphore shared by all workers,
+    holds one slot per core: with it a worker may run up to ``chain_workers`` chains at
+    once but only while cores are free, so a worker left alone (the last candidate, or
+    its refits) uses every core, and all workers together never run more chains than
+    there are slots."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)   # the parent handles Ctrl-C and stops us
 
     me = os.getpid()
@@ -101,6 +105,10 @@ def _worker_init(engine_name: str, chain_workers: int, events) -> None:
 
     signal.signal(signal.SIGTERM, on_term)
     _set_chain_workers(engine_name, chain_workers)
+    if slots is not None and engine_name == "pystan":
+        from .engines import pystan_engine
+
+        pystan_engine.CHAIN_SLOTS[0] = slots
     # Stan's chain processes are children of this worker; a worker's exit waits for its
     # children, so stop them first. multiprocessing runs finalisers with an exit priority
     # before it joins children, highest first; queues close their feeder threads at
@@ -156,16 +164,21 @@ class InlineExecutor(Executor):
 
 class ProcessExecutor(Executor):
     """A pool of ``workers`` local processes (started fresh, not forked, so no state of
-    this process leaks into them), each running ``chain_workers`` chains at once."""
+    this process leaks into them), each running ``chain_workers`` chains at once. With
+    ``cores`` (PyStan), the workers instead share that many chain slots: each may run up
+    to ``cores`` chains, all of them together no more than ``cores``."""
 
     def __init__(self, engine_name: str, workers: int, chain_workers: int,
-                 on_event: Callable[[str, str], None] | None = None) -> None:
-        self.workers, self.chain_workers = workers, chain_workers
+                 on_event: Callable[[str, str], None] | None = None, cores: int = 0) -> None:
         ctx = mp.get_context("spawn")
+        slots = None
+        if cores and engine_name == "pystan":
+            slots, chain_workers = ctx.Semaphore(cores), cores
+        self.workers, self.chain_workers = workers, chain_workers
         self._events = ctx.Queue()
         self._pool = cf.ProcessPoolExecutor(
             max_workers=workers, mp_context=ctx, initializer=_worker_init,
-            initargs=(engine_name, chain_workers, self._events),
+            initargs=(engine_name, chain_workers, self._events, slots),
         )
         self._on_event = on_event or (lambda _cid, _stage: None)
         self._stop = threading.Event()
@@ -221,4 +234,4 @@ def make_executor(engine_name: str, jobs: int, tasks: int,
     workers, chain_workers = share(jobs, tasks)
     if workers == 1:
         return InlineExecutor(engine_name, chain_workers, on_event)
-    return ProcessExecutor(engine_name, workers, chain_workers, on_event)
+    return ProcessExecutor(engine_name, workers, chain_workers, on_event, cores=jobs)

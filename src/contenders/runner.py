@@ -405,7 +405,8 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
                                             "; ".join(c.problems), c.code, c.code_hash, stage="compile")
     todo = [c for c in todo if c.id in programs]
     if todo:
-        say(f"fitting {len(todo)} candidate(s) on {workers} worker(s) x {chain_workers} chain(s) at once"
+        say(f"fitting {len(todo)} candidate(s) on {workers} worker(s), at most "
+            f"{chain_workers if workers == 1 else jobs or cores()} chain(s) at once in all"
             + (f"; {len(runnable) - len(todo)} from the fit store" if len(runnable) > len(todo) else ""))
     shown = Progress([c.id for c in cands], workers=workers, quiet=progress is None or cfg.quiet)
     for cid, r in results.items():

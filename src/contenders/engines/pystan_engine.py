@@ -89,6 +89,10 @@ def _quiet():
 _SAMPLE_FUNCTION = "stan::services::sample::hmc_nuts_diag_e_adapt"
 _LOGGED: dict[int, str] = {}
 CHAIN_WORKERS = [0]   # 0: httpstan's default (one per core)
+#: A semaphore shared by the run's worker processes (one slot per core), or None: each
+#: chain takes a slot while it runs, so workers together never run more chains than
+#: cores, yet a worker left alone runs as many as its pool allows.
+CHAIN_SLOTS: list = [None]
 
 
 def set_chain_workers(n: int) -> None:
@@ -152,11 +156,23 @@ def _sample_direct(model, settings: SamplerSettings):
     stats: dict[str, np.ndarray] = {}
     logged: list[str] = []
     with tempfile.TemporaryDirectory(prefix="contenders_chains_") as folder:
-        futures = [stub.executor.submit(_run_chain, model.model_name, data, dict(kwargs, chain=chain),
-                                        layout, settings.draws, folder)
-                   for chain in range(1, settings.chains + 1)]
+        slots = CHAIN_SLOTS[0]
+        futures = []
         errors = []
         try:
+            for chain in range(1, settings.chains + 1):
+                if slots is not None:
+                    slots.acquire()
+                try:
+                    future = stub.executor.submit(_run_chain, model.model_name, data,
+                                                  dict(kwargs, chain=chain), layout, settings.draws, folder)
+                except BaseException:
+                    if slots is not None:
+                        slots.release()
+                    raise
+                if slots is not None:
+                    future.add_done_callback(lambda _f: slots.release())
+                futures.append(future)
             for i, future in enumerate(futures):
                 answer = future.result()
                 logged.extend(answer["logged"])
