@@ -200,6 +200,19 @@ def _observations(idata, block: slice):
                             log_likelihood=idata.log_likelihood[["log_lik"]].isel({dim: block}))
 
 
+def _relative_efficiency(idata) -> float:
+    """ESS / draws of the posterior, computed once for all blocks exactly as ``arviz.loo``
+    computes it when not given (the mean of every parameter's mean-ESS, over the draws)."""
+    import arviz as az
+
+    post = idata.posterior
+    if post.sizes["chain"] == 1:
+        return 1.0
+    ess = az.ess(post, method="mean")
+    values = np.hstack([ess[v].values.flatten() for v in ess.data_vars])
+    return float(values.mean() / (post.sizes["chain"] * post.sizes["draw"]))
+
+
 def plan_estimate(
     idata,
     strategy: str = "loo",
@@ -220,7 +233,8 @@ def plan_estimate(
     blocks = _blocks(n, log_lik.shape[0])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # ArviZ warns on high k; handled below, not ignored
-        parts = [az.loo(_observations(idata, block), pointwise=True, var_name="log_lik")
+        reff = _relative_efficiency(idata) if len(blocks) > 1 else None
+        parts = [az.loo(_observations(idata, block), pointwise=True, var_name="log_lik", reff=reff)
                  for block in blocks]
         by_chain = np.concatenate([_psis_by_chain(chains_ll[..., block].reshape(n_chains, -1, block.stop - block.start))
                                    for block in blocks], axis=1)
