@@ -128,3 +128,41 @@ def test_unknown_engine_and_missing_cmdstan_are_user_errors():
         with pytest.raises(UserError, match="engine 'cmdstanpy' cannot run: no CmdStan installation found"):
             get_engine("cmdstanpy")
         assert get_engine("auto").name == "pystan"
+
+
+def _state(pid: int) -> str:
+    """The process's state letter from /proc (Linux), or "" when it is gone."""
+    try:
+        with open(f"/proc/{pid}/stat") as f:
+            return f.read().rsplit(")", 1)[1].split()[0]
+    except OSError:
+        return ""
+
+
+def test_chain_processes_end_when_their_parent_is_killed(tmp_path):
+    # A worker killed outright (a cluster does this) must not leave its idle chain
+    # processes behind waiting on a queue for ever.
+    import subprocess
+    import sys
+    import time
+
+    script = tmp_path / "parent.py"
+    script.write_text(
+        "import os\n"
+        "import httpstan.services_stub as stub\n"
+        "from contenders.engines import pystan_engine as pe\n"
+        "pe.PARENT_CHECK_SECONDS = 0.2\n"
+        "pe.set_chain_workers(1)\n"
+        "print(stub.executor.submit(os.getpid).result(), flush=True)\n"
+        "os._exit(0)\n")
+    # read the one line, not to end of file: a surviving chain process keeps the pipe open
+    proc = subprocess.Popen([sys.executable, str(script)], stdout=subprocess.PIPE, text=True)
+    try:
+        chain = int(proc.stdout.readline())
+        assert proc.wait(timeout=120) == 0
+    finally:
+        proc.stdout.close()
+    deadline = time.monotonic() + 15
+    while _state(chain) not in ("", "Z") and time.monotonic() < deadline:
+        time.sleep(0.1)
+    assert _state(chain) in ("", "Z"), f"chain process {chain} outlived its parent"

@@ -118,11 +118,26 @@ def set_chain_workers(n: int) -> None:
 
 def _init_chain_process() -> None:
     """Chain processes ignore Ctrl-C (their parent handles it, as in httpstan) and die
-    at once on SIGTERM, whatever handler the forking process had installed."""
+    at once on SIGTERM, whatever handler the forking process had installed. They also
+    end when the process that forked them is gone (a worker killed outright, say by a
+    cluster), instead of waiting on its queue for ever: a thread looks every
+    ``PARENT_CHECK_SECONDS`` whether the parent changed."""
     import signal
+    import threading
 
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    parent = os.getppid()
+
+    def watch() -> None:
+        while os.getppid() == parent:
+            time.sleep(PARENT_CHECK_SECONDS)
+        os._exit(1)
+
+    threading.Thread(target=watch, name="parent-watch", daemon=True).start()
+
+
+PARENT_CHECK_SECONDS = 2.0
 
 
 def _sample_direct(model, settings: SamplerSettings):
