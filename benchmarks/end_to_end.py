@@ -18,7 +18,10 @@ compiling is not timed):
 * jobs=1: ``contenders run`` with ``jobs`` = 1 and an empty fit store.
 
 Printed as ratios: warm / baseline (target: at least 20x faster), cold / baseline (target:
-at most 1.15x), jobs=1 / jobs=all (target: at least 1.6x on two cores).
+at most 1.15x), jobs=1 / jobs=all (target: at least 1.6x on two cores). With ``--repeat K``
+the baseline, cold and jobs=1 phases run K times in turn and each ratio is printed per
+repeat and as a median, with the CPU seconds of each phase: on a shared host the same
+work can take a third longer from one run to the next, so one run does not settle a ratio.
 
 Memory part: the whole run at N = 20,000 (the demo design with more participants) with
 ``jobs`` = 2; peak resident memory of the process tree (the command and every process
@@ -31,7 +34,9 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import resource
 import shutil
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -72,16 +77,27 @@ def _tree_rss(pid: int) -> int:
     return total
 
 
-def timed(cmd: list[str], env: dict | None = None) -> tuple[float, int]:
-    """Wall seconds and peak process-tree RSS (bytes) of a command; fails loudly."""
+def timed(cmd: list[str], env: dict | None = None, log: Path | None = None) -> tuple[float, int, float]:
+    """Wall seconds, peak process-tree RSS (bytes) and CPU seconds (user + system of every
+    process the command started and waited for) of a command; fails loudly. With ``log``,
+    a line every 30 s (elapsed, tree RSS now, peak so far) is appended there, so a run cut
+    short still leaves its figures."""
     start = time.perf_counter()
+    cpu0 = resource.getrusage(resource.RUSAGE_CHILDREN)
     proc = subprocess.Popen(cmd, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
     peak = [0]
     stop = threading.Event()
 
     def watch():
+        next_line = 0.0
         while not stop.is_set():
-            peak[0] = max(peak[0], _tree_rss(proc.pid))
+            now = _tree_rss(proc.pid)
+            peak[0] = max(peak[0], now)
+            elapsed = time.perf_counter() - start
+            if log is not None and elapsed >= next_line:
+                with open(log, "a") as f:
+                    f.write(f"{elapsed:8.0f} s  rss {now / 2**30:6.2f} GiB  peak {peak[0] / 2**30:6.2f} GiB\n")
+                next_line = elapsed + 30
             stop.wait(0.25)
 
     t = threading.Thread(target=watch, daemon=True)
@@ -90,10 +106,12 @@ def timed(cmd: list[str], env: dict | None = None) -> tuple[float, int]:
     stop.set()
     t.join()
     seconds = time.perf_counter() - start
+    cpu1 = resource.getrusage(resource.RUSAGE_CHILDREN)
+    cpu = (cpu1.ru_utime - cpu0.ru_utime) + (cpu1.ru_stime - cpu0.ru_stime)
     if proc.returncode != 0:
         sys.stderr.write(output[-4000:])
         raise SystemExit(f"command failed ({proc.returncode}): {' '.join(cmd)}")
-    return seconds, peak[0]
+    return seconds, peak[0], cpu
 
 
 BASELINE = r'''
@@ -157,41 +175,59 @@ def speed(args) -> dict:
     try:
         cfg = write_config(work, args.participants, args.draws, None)
         only = ["--only", args.only] if args.only else []
-        print(f"compiling (not timed) ...", flush=True)
+        print("compiling (not timed) ...", flush=True)
         subprocess.run(contenders("check", *(args.only.split(",") if args.only else [])), check=True,
                        stdout=subprocess.DEVNULL)
         env = dict(os.environ, PYTHONHASHSEED="0")
         base_script = work / "baseline.py"
         base_script.write_text(BASELINE)
-        res = {}
-        print("baseline ...", flush=True)
-        before = _httpstan_fits()
-        res["baseline"] = timed([sys.executable, str(base_script), str(cfg), args.only or ""], env)
-        for path in _httpstan_fits() - before:   # PyStan caches every seeded fit; not ours to keep
-            path.unlink(missing_ok=True)
-        print(f"  {res['baseline'][0]:.1f} s", flush=True)
-        print("contenders, cold (jobs = all cores) ...", flush=True)
-        res["cold"] = timed(contenders("run", "--config", str(cfg), "--quiet", "--out", str(work / "a"), *only), env)
-        print(f"  {res['cold'][0]:.1f} s", flush=True)
-        print("contenders, warm rerun (median of 3) ...", flush=True)
-        warm = sorted(timed(contenders("run", "--config", str(cfg), "--quiet", "--out", str(work / "a"), *only),
-                            env) for _ in range(3))
-        res["warm"] = warm[1]
-        print(f"  {res['warm'][0]:.1f} s (runs: {', '.join(f'{w[0]:.1f}' for w in warm)})", flush=True)
-        print("contenders, cold, jobs = 1 ...", flush=True)
-        res["jobs1"] = timed(contenders("run", "--config", str(cfg), "--quiet", "--jobs", "1",
-                                        "--out", str(work / "b"), *only), env)
-        print(f"  {res['jobs1'][0]:.1f} s", flush=True)
-        a = json.loads((work / "a" / "summary.json").read_text())
-        b = json.loads((work / "b" / "summary.json").read_text())
-        same = all(x["elpd_loo"] == y["elpd_loo"] for x, y in zip(a["candidates"], b["candidates"]))
+
+        def run(label: str, cmd: list[str]) -> tuple[float, int, float]:
+            print(f"{label} ...", flush=True)
+            before = _httpstan_fits()
+            out = timed(cmd, env)
+            for path in _httpstan_fits() - before:   # PyStan caches every seeded fit; not ours to keep
+                path.unlink(missing_ok=True)
+            print(f"  {out[0]:.1f} s wall, {out[2]:.1f} s CPU", flush=True)
+            return out
+
+        # The phases of one repeat run back to back, and repeats follow each other, so a
+        # change in the machine's speed (a shared host) shows up as spread between repeats
+        # instead of as a bias in one ratio.
+        rounds, warm, same = [], [], True
+        for r in range(args.repeat):
+            tag = f"[{r + 1}/{args.repeat}] "
+            res = {"baseline": run(tag + "baseline", [sys.executable, str(base_script), str(cfg), args.only or ""])}
+            a, b = work / f"a{r}", work / f"b{r}"
+            res["cold"] = run(tag + "contenders, cold (jobs = all cores)",
+                              contenders("run", "--config", str(cfg), "--quiet", "--out", str(a), *only))
+            if r == 0:
+                print("contenders, warm rerun (median of 3) ...", flush=True)
+                warm = sorted(timed(contenders("run", "--config", str(cfg), "--quiet", "--out", str(a), *only),
+                                    env) for _ in range(3))
+                print(f"  {warm[1][0]:.1f} s (runs: {', '.join(f'{w[0]:.1f}' for w in warm)})", flush=True)
+            res["jobs1"] = run(tag + "contenders, cold, jobs = 1",
+                               contenders("run", "--config", str(cfg), "--quiet", "--jobs", "1",
+                                          "--out", str(b), *only))
+            sa = json.loads((a / "summary.json").read_text())
+            sb = json.loads((b / "summary.json").read_text())
+            same = same and all(x["elpd_loo"] == y["elpd_loo"] for x, y in zip(sa["candidates"], sb["candidates"]))
+            rounds.append(res)
+
+        def ratios(f) -> dict:
+            values = [round(f(res), 2) for res in rounds]
+            return {"each": values, "median": round(statistics.median(values), 2)}
+
         out = {
-            "n": a["data"]["n"], "candidates": len(a["candidates"]), "cores": os.cpu_count(),
-            "seconds": {k: round(v[0], 1) for k, v in res.items()},
-            "peak_gb": {k: round(v[1] / 2**30, 2) for k, v in res.items()},
-            "warm_speedup_vs_baseline": round(res["baseline"][0] / res["warm"][0], 1),
-            "cold_over_baseline": round(res["cold"][0] / res["baseline"][0], 2),
-            "jobs_all_speedup_vs_jobs1": round(res["jobs1"][0] / res["cold"][0], 2),
+            "n": sa["data"]["n"], "candidates": len(sa["candidates"]), "cores": os.cpu_count(),
+            "repeats": args.repeat,
+            "seconds": [{k: round(v[0], 1) for k, v in res.items()} for res in rounds],
+            "cpu_seconds": [{k: round(v[2], 1) for k, v in res.items()} for res in rounds],
+            "peak_gb": [{k: round(v[1] / 2**30, 2) for k, v in res.items()} for res in rounds],
+            "warm_seconds": round(warm[1][0], 2),
+            "warm_speedup_vs_baseline": ratios(lambda res: res["baseline"][0] / warm[1][0]),
+            "cold_over_baseline": ratios(lambda res: res["cold"][0] / res["baseline"][0]),
+            "jobs_all_speedup_vs_jobs1": ratios(lambda res: res["jobs1"][0] / res["cold"][0]),
             "jobs1_and_jobs_all_give_equal_elpd": same,
         }
         return out
@@ -207,12 +243,12 @@ def memory(args) -> dict:
         only = ["--only", args.memory_only] if args.memory_only else []
         subprocess.run(contenders("check", *(args.memory_only.split(",") if args.memory_only else [])),
                        check=True, stdout=subprocess.DEVNULL)
-        seconds, peak = timed(contenders("run", "--config", str(cfg), "--quiet", "--jobs", "2",
-                                         "--out", str(work / "m"), *only))
+        seconds, peak, cpu = timed(contenders("run", "--config", str(cfg), "--quiet", "--jobs", "2",
+                                              "--out", str(work / "m"), *only), log=args.log)
         s = json.loads((work / "m" / "summary.json").read_text())
         return {"n": s["data"]["n"], "candidates": [c["id"] for c in s["candidates"]],
                 "statuses": [c["status"] for c in s["candidates"]], "jobs": 2,
-                "seconds": round(seconds, 1), "peak_rss_gb_process_tree": round(peak / 2**30, 2),
+                "seconds": round(seconds, 1), "cpu_seconds": round(cpu, 1), "peak_rss_gb_process_tree": round(peak / 2**30, 2),
                 "engine": s["sampler"]["engine"]}
     finally:
         if not args.keep:
@@ -227,6 +263,9 @@ def main() -> None:
     p.add_argument("--memory", action="store_true", help="run the N = 20,000 memory measurement instead")
     p.add_argument("--memory-n", type=int, default=20000)
     p.add_argument("--memory-only", default="", help="candidates for the memory run (default: all)")
+    p.add_argument("--repeat", type=int, default=1, help="speed: repeats of baseline, cold and jobs = 1")
+    p.add_argument("--log", type=Path, default=None,
+                   help="memory: append elapsed time, tree RSS and peak so far here every 30 s")
     p.add_argument("--keep", action="store_true", help="keep the temporary folders")
     args = p.parse_args()
     result = memory(args) if args.memory else speed(args)
