@@ -4,7 +4,7 @@ column, key or candidate; no traceback for user errors; nothing lost."""
 from __future__ import annotations
 
 import json
-import math
+import os
 import shutil
 import subprocess
 import sys
@@ -240,7 +240,10 @@ def test_ctrl_c_keeps_finished_fits_and_the_rerun_resumes(tmp_path, data, progra
     out = tmp_path / "out"
     args = [*EXE, "run", str(good), "--outcome", "rt", "--only", "gamma,lognormal,weibull", "--out", str(out),
             "--chains", "2", "--warmup", "300", "--draws", "300", "--prior-draws", "100", "--engine", "pystan"]
-    proc = subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    scratch = tmp_path / "scratch"   # the run's temporary directory
+    scratch.mkdir()
+    proc = subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            env=dict(os.environ, TMPDIR=str(scratch)))
     deadline = time.time() + 300
     while time.time() < deadline and len(list((out / "fits").glob("*.nc"))) < 2:
         time.sleep(0.2)
@@ -253,6 +256,7 @@ def test_ctrl_c_keeps_finished_fits_and_the_rerun_resumes(tmp_path, data, progra
     for path in kept:  # whole files only
         assert "posterior" in az.from_netcdf(path).groups()
     assert not list((out / "fits").glob(".*.tmp"))
+    assert not list(scratch.glob("contenders_chains_*")), "a stopped worker left its chains' folder"
     assert not (out / "report.html").exists()
     again = subprocess.run(args, capture_output=True, text=True, timeout=600)
     assert again.returncode == 0, again.stderr

@@ -171,6 +171,7 @@ def _sample_direct(model, settings: SamplerSettings):
     stats: dict[str, np.ndarray] = {}
     logged: list[str] = []
     with tempfile.TemporaryDirectory(prefix="contenders_chains_") as folder:
+        _CHAIN_FOLDERS.add(folder)   # removed by stop_workers if this process is stopped
         slots = CHAIN_SLOTS[0]
         futures = []
         errors = []
@@ -208,10 +209,15 @@ def _sample_direct(model, settings: SamplerSettings):
             for future in futures:
                 future.cancel()
             concurrent.futures.wait(futures)
+            _CHAIN_FOLDERS.discard(folder)
         if errors:
             raise RuntimeError(next(e for e in errors if e))
     _LOGGED[id(model)] = "\n".join(dict.fromkeys(logged))
     return arrays, stats
+
+
+#: Temporary folders of chains sampling now in this process (sockets, raw draw files).
+_CHAIN_FOLDERS: set[str] = set()
 
 
 def _service_arguments(model, settings: SamplerSettings) -> dict[str, Any]:
@@ -442,21 +448,26 @@ def _to_inference_data(model, arrays, stats, data) -> az.InferenceData:
 
 
 def stop_workers() -> None:
-    """Terminate httpstan's sampling worker processes (forked once per Python process).
-    Called on Ctrl-C: without it, workers whose parent has gone stay behind, holding the
-    parent's output pipes open."""
+    """Terminate httpstan's sampling worker processes (forked once per Python process)
+    and remove the temporary folders of the chains they were running. Called on Ctrl-C:
+    without it, workers whose parent has gone stay behind, holding the parent's output
+    pipes open, and a worker stopped outright leaves its chains' folder in the
+    temporary directory."""
+    import shutil
     import sys
 
     stub = sys.modules.get("httpstan.services_stub")
     executor = getattr(stub, "executor", None)
-    if executor is None:
-        return
-    processes = list(getattr(executor, "_processes", {}).values())
-    with contextlib.suppress(Exception):
-        executor.shutdown(wait=False, cancel_futures=True)
-    for proc in processes:
+    if executor is not None:
+        processes = list(getattr(executor, "_processes", {}).values())
         with contextlib.suppress(Exception):
-            proc.terminate()
+            executor.shutdown(wait=False, cancel_futures=True)
+        for proc in processes:
+            with contextlib.suppress(Exception):
+                proc.terminate()
+    for folder in list(_CHAIN_FOLDERS):
+        shutil.rmtree(folder, ignore_errors=True)
+        _CHAIN_FOLDERS.discard(folder)
 
 
 def _interrupted_if_none(value):
