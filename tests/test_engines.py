@@ -166,3 +166,77 @@ def test_chain_processes_end_when_their_parent_is_killed(tmp_path):
     while _state(chain) not in ("", "Z") and time.monotonic() < deadline:
         time.sleep(0.1)
     assert _state(chain) in ("", "Z"), f"chain process {chain} outlived its parent"
+
+
+def test_compile_waits_while_another_process_builds_the_same_program(engine, programs, builtins):
+    # Two runs started at once must not build one program into httpstan's cache side by
+    # side: httpstan empties the folder before it builds, and loading a half-linked module
+    # fails (a reply that is not JSON) or kills the process (bus error). Another process
+    # holds the program's lock for 3 s; compiling the same program here must wait for it,
+    # where a program already in the cache otherwise returns at once.
+    import subprocess
+    import sys
+    import time
+
+    import httpstan.models
+
+    from contenders.engines.pystan_engine import _lock_key
+
+    candidate = builtins["normal"]
+    key = _lock_key(httpstan.models.calculate_model_name(candidate.code))
+    holder = subprocess.Popen(
+        [sys.executable, "-c",
+         "import sys, time\n"
+         "from contenders.engines.base import compile_lock\n"
+         f"with compile_lock({key!r}):\n"
+         "    print('held', flush=True)\n"
+         "    time.sleep(3)\n"],
+        stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        start = time.monotonic()
+        program = engine.compile(candidate)
+        waited = time.monotonic() - start
+    finally:
+        holder.stdout.close()
+        holder.wait(timeout=30)
+    assert program.from_cache
+    assert waited > 2.0, f"compile returned after {waited:.2f} s while another process held the program"
+    start = time.monotonic()
+    engine.compile(candidate)
+    assert time.monotonic() - start < 2.0   # lock free: from the cache at once
+
+
+def test_a_cache_entry_left_half_built_is_not_taken_as_compiled(engine, programs, builtins, tmp_path):
+    # A compile killed while linking leaves a truncated module in httpstan's cache; two
+    # processes that built one program at once can leave a module without the compiler
+    # logs that httpstan's server reads back. httpstan only rebuilds a missing module; on
+    # these its server fails with a reply that is not JSON, for ever. The engine must
+    # report such an entry as not compiled and remove it, so the next compile builds it.
+    import uuid
+
+    import httpstan.cache
+    import httpstan.models
+
+    from contenders.candidates import load_candidate
+
+    real = next(httpstan.cache.model_directory(programs["normal"].handle).glob("*.so"))
+    path = tmp_path / "normal_copy.stan"
+    cases = {"module cut off": (real.read_bytes()[:64], ["stanc.log", "stderr.log"]),
+             "logs missing": (real.read_bytes(), ["stderr.log"])}
+    for case, (module, logs) in cases.items():
+        path.write_text(builtins["normal"].code + f"\n// copy for a cache test, {uuid.uuid4().hex}\n")
+        candidate = load_candidate(path)
+        name = httpstan.models.calculate_model_name(candidate.code)
+        folder = httpstan.cache.model_directory(name)
+        folder.mkdir(parents=True)
+        try:
+            (folder / real.name.replace(real.parent.name, folder.name)).write_bytes(module)
+            for log in logs:
+                (folder / log).write_text("")
+            assert engine.is_cached(candidate) is False, case
+            assert not folder.exists(), case
+        finally:
+            httpstan.cache.delete_model_directory(name)
+    # the real entry, with its logs, is compiled
+    assert engine.is_cached(builtins["normal"]) is True

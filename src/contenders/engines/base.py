@@ -3,8 +3,12 @@
 from __future__ import annotations
 
 import abc
+import contextlib
+import fcntl
+import os
 import threading
 from dataclasses import dataclass
+from pathlib import Path
 from typing import TYPE_CHECKING, Any, Mapping
 
 import numpy as np
@@ -23,6 +27,31 @@ INTERRUPTED = threading.Event()
 def raise_if_interrupted() -> None:
     if INTERRUPTED.is_set():
         raise KeyboardInterrupt
+
+
+def _lock_folder() -> Path:
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(base) / "contenders" / "compile-locks"
+
+
+@contextlib.contextmanager
+def compile_lock(key: str):
+    """Hold an exclusive lock, across all processes of this user, on one program in an
+    engine's on-disk cache while it is checked or compiled.
+
+    Two runs started at once (two terminals, a test session beside a run) would otherwise
+    build the same program into the same cache folder at the same time: httpstan empties
+    the folder before it builds, and a process that loads the module while another is
+    still linking it reads a half-written file. The lock is released by the system if
+    its holder dies. Not re-entrant: take it once per call chain."""
+    folder = _lock_folder()
+    folder.mkdir(parents=True, exist_ok=True)
+    with open(folder / f"{key}.lock", "a+") as handle:
+        fcntl.flock(handle, fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(handle, fcntl.LOCK_UN)
 
 
 class SamplingError(RuntimeError):

@@ -20,7 +20,7 @@ import arviz as az
 import numpy as np
 
 from ..candidates import Candidate
-from .base import OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError
+from .base import OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError, compile_lock
 
 
 def _cache_root() -> Path:
@@ -54,17 +54,18 @@ class CmdStanPyEngine(Engine):
         from cmdstanpy import CmdStanModel
 
         folder = _cache_root() / candidate.code_hash[:16]
-        folder.mkdir(parents=True, exist_ok=True)
-        stan_file = folder / f"{candidate.id}.stan"
-        if not stan_file.exists() or stan_file.read_text() != candidate.code:
-            stan_file.write_text(candidate.code)
-        exe = stan_file.with_suffix("")
-        cached = exe.exists()
         start = time.perf_counter()
-        try:
-            model = CmdStanModel(stan_file=str(stan_file))
-        except Exception as exc:
-            raise SamplingError(f"{candidate.path.name}: compiling failed:\n{str(exc)[:4000]}") from None
+        # one process at a time builds a program into the shared cache (see compile_lock)
+        with compile_lock(f"cmdstan-{candidate.code_hash[:16]}-{candidate.id}"):
+            folder.mkdir(parents=True, exist_ok=True)
+            stan_file = folder / f"{candidate.id}.stan"
+            if not stan_file.exists() or stan_file.read_text() != candidate.code:
+                stan_file.write_text(candidate.code)
+            cached = stan_file.with_suffix("").exists()
+            try:
+                model = CmdStanModel(stan_file=str(stan_file))
+            except Exception as exc:
+                raise SamplingError(f"{candidate.path.name}: compiling failed:\n{str(exc)[:4000]}") from None
         return Program(candidate.id, candidate.code, model, time.perf_counter() - start, cached)
 
     def sample(self, program: Program, data: Mapping[str, Any], settings: SamplerSettings) -> Draws:

@@ -24,7 +24,8 @@ import arviz as az
 import numpy as np
 
 from ..candidates import Candidate
-from .base import OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError, raise_if_interrupted
+from .base import (OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError, compile_lock,
+                   raise_if_interrupted)
 
 
 @contextlib.contextmanager
@@ -447,6 +448,35 @@ def _to_inference_data(model, arrays, stats, data) -> az.InferenceData:
     )
 
 
+def _lock_key(model_name: str) -> str:
+    return "pystan-" + model_name.split("/")[1]
+
+
+def _module_ready(model_name: str) -> bool:
+    """Whether httpstan's cache holds a whole build of ``model_name``: its module, which
+    loads, with the compiler logs that httpstan's server reads back (``stanc.log``, and
+    ``stderr.log``, which httpstan writes only once the module is built).
+
+    An entry with some of these but not all (a compile cut off, or two processes that
+    built the same program at once) is removed, so that the next compile builds it
+    again: httpstan itself only rebuilds a missing module, and on such an entry its
+    server fails with a reply that is not JSON. Call it holding ``compile_lock``."""
+    import httpstan.cache
+    import httpstan.models
+
+    folder = httpstan.cache.model_directory(model_name)
+    if not folder.exists():
+        return False
+    if (folder / "stanc.log").exists() and (folder / "stderr.log").exists():
+        try:
+            httpstan.models.import_services_extension_module(model_name)
+            return True
+        except (KeyError, ImportError, OSError):
+            pass
+    httpstan.cache.delete_model_directory(model_name)
+    return False
+
+
 def stop_workers() -> None:
     """Terminate httpstan's sampling worker processes (forked once per Python process)
     and remove the temporary folders of the chains they were running. Called on Ctrl-C:
@@ -510,19 +540,15 @@ class PyStanEngine(Engine):
     def is_cached(self, candidate: Candidate) -> bool:
         import httpstan.models
 
-        try:
-            httpstan.models.import_services_extension_module(
-                httpstan.models.calculate_model_name(candidate.code))
-        except KeyError:
-            return False
-        return True
+        model_name = httpstan.models.calculate_model_name(candidate.code)
+        with compile_lock(_lock_key(model_name)):
+            return _module_ready(model_name)
 
     def compile(self, candidate: Candidate) -> Program:
         import httpstan.models
         import stan.common
 
         model_name = httpstan.models.calculate_model_name(candidate.code)
-        cached = self.is_cached(candidate)
 
         async def build() -> None:
             async with stan.common.HttpstanClient() as client:
@@ -533,8 +559,15 @@ class PyStanEngine(Engine):
                     )
 
         start = time.perf_counter()
-        with _quiet():
-            asyncio.run(build())
+        with compile_lock(_lock_key(model_name)):
+            cached = _module_ready(model_name)
+            with _quiet():
+                asyncio.run(build())
+            try:
+                httpstan.models.import_services_extension_module(model_name)
+            except (KeyError, ImportError, OSError) as exc:
+                raise SamplingError(f"{candidate.path.name}: compiled, but the compiled program "
+                                    f"cannot be loaded: {exc}") from None
         return Program(candidate.id, candidate.code, model_name, time.perf_counter() - start, cached)
 
     def _build(self, program: Program, data: Mapping[str, Any], seed: int):
