@@ -3,10 +3,8 @@
 from __future__ import annotations
 
 import json
-import shutil
 import subprocess
 import sys
-from pathlib import Path
 
 import numpy as np
 import pandas as pd

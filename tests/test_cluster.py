@@ -22,7 +22,6 @@ from contenders.candidates import check_against_data
 from contenders.errors import UserError
 from contenders.executor_dask import DaskExecutor
 from contenders.runner import candidate_task, fit_task, load_design, select_candidates
-from contenders.store import FitStore
 
 # helpers defined here travel to the workers by value (the workers cannot import this file)
 cloudpickle.register_pickle_by_value(sys.modules[__name__])

@@ -12,7 +12,7 @@ import pytest
 from scipy import optimize, stats as sps
 
 from contenders.compare import (
-    OutOfSample, compare_candidates, estimate, log_mean_exp, make_folds, weights,
+    compare_candidates, estimate, log_mean_exp, make_folds, weights,
 )
 from contenders.config import RunConfig
 from contenders.runner import CandidateResult, load_design, run

@@ -361,9 +361,11 @@ def main(argv: list[str] | None = None) -> int:
         print(f"contenders: {exc.message}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
+        from .cleanup import remove_all
         from .engines.pystan_engine import stop_workers
 
         stop_workers()
+        remove_all()
         print("contenders: interrupted; every fit finished so far is kept in the fit store "
               "(OUT/fits), so running the same command again resumes where this run stopped",
               file=sys.stderr)

@@ -98,9 +98,9 @@ def _worker_init(engine_name: str, chain_workers: int, events, slots=None) -> No
 
             stop_workers()
         with contextlib.suppress(Exception):
-            from .store import remove_partial_files
+            from .cleanup import remove_all
 
-            remove_partial_files()
+            remove_all()
         os._exit(143)
 
     signal.signal(signal.SIGTERM, on_term)

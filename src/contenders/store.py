@@ -12,7 +12,6 @@ with ``arviz.from_netcdf``.
 
 from __future__ import annotations
 
-import contextlib
 import hashlib
 import json
 import os
@@ -22,6 +21,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
+from .cleanup import while_writing
 from .engines.base import Draws, Engine, Program, SamplerSettings, raise_if_interrupted
 
 
@@ -171,28 +171,17 @@ def _save_pickle(path: Path, key: str, value) -> Path:
     return path
 
 
-#: Temporary files being written by this process; a worker stopped by SIGTERM (Ctrl-C in
-#: the parent) removes them before it exits (see ``executor._worker_init``).
-WRITING: set[Path] = set()
-
-
 def _write_whole(path: Path, write) -> None:
-    """Write through a temporary file renamed into place: readers see whole files only."""
+    """Write through a temporary file renamed into place: readers see whole files only.
+    A worker stopped while writing removes the temporary file (``cleanup``)."""
     tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    WRITING.add(tmp)
-    try:
-        write(tmp)
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-        WRITING.discard(tmp)
-
-
-def remove_partial_files() -> None:
-    for tmp in list(WRITING):
-        with contextlib.suppress(OSError):
-            tmp.unlink()
+    with while_writing(tmp):
+        try:
+            write(tmp)
+            os.replace(tmp, path)
+        finally:
+            if tmp.exists():
+                tmp.unlink()
 
 
 class StoredEngine(Engine):

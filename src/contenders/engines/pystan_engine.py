@@ -24,6 +24,7 @@ import arviz as az
 import numpy as np
 
 from ..candidates import Candidate
+from ..cleanup import while_writing
 from .base import (OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError, compile_lock,
                    raise_if_interrupted)
 
@@ -171,8 +172,8 @@ def _sample_direct(model, settings: SamplerSettings):
               for name, (shape, dtype, _lo, _hi) in layout.items()}
     stats: dict[str, np.ndarray] = {}
     logged: list[str] = []
-    with tempfile.TemporaryDirectory(prefix="contenders_chains_") as folder:
-        _CHAIN_FOLDERS.add(folder)   # removed by stop_workers if this process is stopped
+    # the folder is removed by cleanup.remove_all if this process is stopped meanwhile
+    with tempfile.TemporaryDirectory(prefix="contenders_chains_") as folder, while_writing(folder):
         slots = CHAIN_SLOTS[0]
         futures = []
         errors = []
@@ -210,15 +211,10 @@ def _sample_direct(model, settings: SamplerSettings):
             for future in futures:
                 future.cancel()
             concurrent.futures.wait(futures)
-            _CHAIN_FOLDERS.discard(folder)
         if errors:
             raise RuntimeError(next(e for e in errors if e))
     _LOGGED[id(model)] = "\n".join(dict.fromkeys(logged))
     return arrays, stats
-
-
-#: Temporary folders of chains sampling now in this process (sockets, raw draw files).
-_CHAIN_FOLDERS: set[str] = set()
 
 
 def _service_arguments(model, settings: SamplerSettings) -> dict[str, Any]:
@@ -478,12 +474,10 @@ def _module_ready(model_name: str) -> bool:
 
 
 def stop_workers() -> None:
-    """Terminate httpstan's sampling worker processes (forked once per Python process)
-    and remove the temporary folders of the chains they were running. Called on Ctrl-C:
-    without it, workers whose parent has gone stay behind, holding the parent's output
-    pipes open, and a worker stopped outright leaves its chains' folder in the
-    temporary directory."""
-    import shutil
+    """Terminate httpstan's sampling worker processes (forked once per Python process).
+    Called on Ctrl-C: without it, workers whose parent has gone stay behind, holding the
+    parent's output pipes open. The callers then remove the chains' temporary folders
+    (``cleanup.remove_all``)."""
     import sys
 
     stub = sys.modules.get("httpstan.services_stub")
@@ -495,9 +489,6 @@ def stop_workers() -> None:
         for proc in processes:
             with contextlib.suppress(Exception):
                 proc.terminate()
-    for folder in list(_CHAIN_FOLDERS):
-        shutil.rmtree(folder, ignore_errors=True)
-        _CHAIN_FOLDERS.discard(folder)
 
 
 def _interrupted_if_none(value):
