@@ -244,3 +244,15 @@ def test_a_cache_entry_left_half_built_is_not_taken_as_compiled(engine, programs
             httpstan.cache.delete_model_directory(name)
     # the real entry, with its logs, is compiled
     assert engine.is_cached(builtins["normal"]) is True
+
+
+def test_one_draw_evaluations_leave_no_socket_files(engine, programs, builtins, design, tmp_path, monkeypatch):
+    # httpstan binds a Unix socket file in the temporary folder for each sampler call it
+    # serves and never removes it; the engine removes it once the call is over.
+    import tempfile
+
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
+    data = inputs_for(builtins["normal"], design, None)
+    values = engine.single_draw(programs["normal"], data, seed=5)
+    assert values["y_rep"].shape == (design.N,)
+    assert not list(tmp_path.glob("httpstan_*.sock")), "a socket file was left behind"

@@ -12,6 +12,7 @@ from __future__ import annotations
 import asyncio
 import concurrent.futures
 import contextlib
+import contextvars
 import io
 import os
 import re
@@ -29,13 +30,58 @@ from .base import (OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingEr
                    raise_if_interrupted)
 
 
+#: Socket files made by the httpstan call running in the current asyncio task.
+_CALL_SOCKETS: contextvars.ContextVar[list | None] = contextvars.ContextVar("call_sockets", default=None)
+
+
+def _removing_call_sockets() -> None:
+    """Make httpstan remove the Unix socket file each sampler call creates: its
+    ``services_stub.call`` binds one in the temporary folder and never unlinks it, so
+    every one-draw evaluation left an empty ``httpstan_*.sock`` behind. The call's own
+    ``mkstemp`` names are recorded (a context variable, so concurrent calls keep theirs
+    apart) and unlinked once the call has closed its socket. Installed once."""
+    import tempfile as real_tempfile
+    import types
+
+    import httpstan.services_stub as stub
+
+    if getattr(stub.call, "_removes_sockets", False):
+        return
+    original = stub.call
+
+    def mkstemp(*args, **kwargs):
+        handle, name = real_tempfile.mkstemp(*args, **kwargs)
+        made = _CALL_SOCKETS.get()
+        if made is not None:
+            made.append(name)
+        return handle, name
+
+    async def call(*args, **kwargs):
+        made: list[str] = []
+        token = _CALL_SOCKETS.set(made)
+        try:
+            return await original(*args, **kwargs)
+        finally:
+            _CALL_SOCKETS.reset(token)
+            for name in made:
+                with contextlib.suppress(OSError):
+                    os.unlink(name)
+
+    call._removes_sockets = True
+    stub.tempfile = types.SimpleNamespace(mkstemp=mkstemp)   # the module's only use of it
+    stub.call = call                                         # httpstan looks it up per call
+
+
 @contextlib.contextmanager
 def _forgetting_fits():
     """Run PyStan calls while noting the names of the fits its httpstan client reads,
     then delete exactly those cached fit files (the client class is swapped for the
-    duration; PyStan looks it up at call time)."""
+    duration; PyStan looks it up at call time). The calls' socket files go too
+    (``_removing_call_sockets``)."""
     import httpstan.cache
     import stan.common
+
+    _removing_call_sockets()
 
     original = stan.common.HttpstanClient
     names: list[str] = []
