@@ -97,6 +97,39 @@ def test_scaffolded_candidate_passes_check_and_can_be_fitted(small, tmp_path, en
     assert summary["candidates"][0]["elpd_loo"] is not None
 
 
+def _folder_state(folder):
+    import hashlib
+
+    return {f.name: hashlib.sha256(f.read_bytes()).hexdigest() for f in sorted(folder.iterdir())}
+
+
+def test_new_writes_where_the_user_stands_and_never_into_the_builtin_folder(tmp_path):
+    before = _folder_state(builtin_folder())
+    here = tmp_path / "empty"
+    here.mkdir()
+    res = cli("new", "my_candidate", cwd=here)
+    assert res.returncode == 0, res.stderr
+    assert (here / "my_candidate.stan").is_file()
+    assert str((here / "my_candidate.stan").resolve()) in res.stdout
+    assert "contenders check my_candidate --candidates ." in res.stdout
+    # a second call refuses and leaves the file as it was
+    text = (here / "my_candidate.stan").read_text()
+    res = cli("new", "my_candidate", "--label", "Other", cwd=here)
+    assert res.returncode == 2 and "already exists" in res.stderr and "nothing was overwritten" in res.stderr
+    assert (here / "my_candidate.stan").read_text() == text
+    # --candidates FOLDER is created if missing
+    res = cli("new", "other_one", "--candidates", "sub/folder", cwd=here)
+    assert res.returncode == 0, res.stderr
+    assert (here / "sub" / "folder" / "other_one.stan").is_file()
+    assert "contenders check other_one --candidates sub/folder" in res.stdout
+    # the built-in folder is refused, whether named or stood in
+    res = cli("new", "stray", "--candidates", builtin_folder(), cwd=here)
+    assert res.returncode == 2 and "built-in candidates folder" in res.stderr
+    res = cli("new", "stray", cwd=builtin_folder())
+    assert res.returncode == 2 and "built-in candidates folder" in res.stderr
+    assert _folder_state(builtin_folder()) == before
+
+
 def test_demo_generator_is_reproducible_and_documented(tmp_path):
     a = demo.generate()
     assert a.equals(demo.generate())

@@ -242,22 +242,39 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 
 def cmd_new(args: argparse.Namespace) -> int:
-    """Write a new candidate file that already keeps the contract, ready to edit."""
+    """Write a new candidate file that already keeps the contract, ready to edit. It goes
+    into the current folder, or into --candidates FOLDER (created if missing); never into
+    the built-in candidates folder, and never over an existing file."""
     import re
 
+    from .candidates import builtin_folder
     from .scaffold import TEMPLATE
 
     if not re.fullmatch(r"[A-Za-z][A-Za-z0-9_]*", args.name):
         raise UserError(f"'{args.name}' is not a plain id; use letters, digits and underscores, starting with a letter")
-    folder = _candidates_folder(args.candidates)
-    folder.mkdir(parents=True, exist_ok=True)
+    folder = Path(args.candidates) if args.candidates else Path.cwd()
+    if folder.resolve() == builtin_folder().resolve():
+        raise UserError(f"{folder} is the built-in candidates folder, which contenders new never writes into; "
+                        "pass --candidates FOLDER with a folder of your own (it is created if missing)")
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise UserError(f"{folder}: cannot create the candidates folder ({exc.strerror}); "
+                        "choose another with --candidates FOLDER")
     path = folder / f"{args.name}.stan"
-    if path.exists():
-        raise UserError(f"{path} already exists; choose another name (nothing was overwritten)")
     label = args.label or args.name.replace("_", " ").capitalize()
-    path.write_text(TEMPLATE.replace("@LABEL@", label.replace('"', "'")))
-    print(f"wrote {path}: a lognormal starting point; edit the likelihood and priors, then run "
-          f"'contenders check {args.name}" + (f" --candidates {args.candidates}'" if args.candidates else "'"))
+    try:
+        with path.open("x") as fh:   # "x": fails when the file exists, so nothing is overwritten
+            fh.write(TEMPLATE.replace("@LABEL@", label.replace('"', "'")))
+    except FileExistsError:
+        raise UserError(f"{path} already exists; choose another name or folder (nothing was overwritten)")
+    except OSError as exc:
+        raise UserError(f"{path}: cannot write the file ({exc.strerror}); choose another folder with --candidates")
+    shown = args.candidates if args.candidates else "."
+    print(f"wrote {path.resolve()}: a lognormal starting point; edit the likelihood and priors")
+    print(f"next:  contenders check {args.name} --candidates {shown}")
+    print(f"then:  contenders run DATA.csv --outcome COL --candidates {shown}   (runs the candidates "
+          "in that folder only; copy built-ins from the built-in folder to compare with them)")
     return 0
 
 
@@ -318,7 +335,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("name", metavar="NAME", help="id of the new candidate (the file name without .stan)")
     p.add_argument("--label", help="label in the header (default: from the name)")
     p.add_argument("--candidates", metavar="DIR",
-                   help="folder to write into (default: the built-in candidates folder)")
+                   help="folder to write into, created if missing (default: the current folder; "
+                        "never the built-in candidates folder)")
     p.set_defaults(func=cmd_new)
 
     p = sub.add_parser("check", help="compile candidates and check the contract without sampling",
