@@ -28,7 +28,7 @@ from .engines.base import SamplerSettings
 from .engines.lazy import LazyEngine
 from .executor import make_executor, report
 from .progress import Progress
-from .store import FitStore, StoredEngine, trials_key
+from .store import FitStore, StoredEngine, data_origin, trials_key
 from .errors import UserError
 from .trials.checks import PredictiveChecks, predictive_checks, thin_draws
 from .trials.effects import compare_effects, effect_draws, effects_summary
@@ -38,6 +38,22 @@ from .trials.sensitivity import Sensitivity, power_scaling, summary as sensitivi
 
 #: Replicated datasets kept per candidate for figures (the checks use ``check_draws``).
 FIGURE_DRAWS = 100
+
+
+def y_rep_draws(cfg: RunConfig) -> int:
+    """Replicated datasets a posterior fit keeps in the store: as many as the predictive
+    checks (``check_draws``), the effects (``effects.MAX_DRAWS``), the figures and a
+    model recovery (``replicates``) use, whichever is most. Every one of them reads
+    its draws from this set, whether the fit was sampled now or loaded."""
+    from .trials.effects import MAX_DRAWS
+
+    return max(int(cfg.check_draws), MAX_DRAWS, FIGURE_DRAWS, int(cfg.replicates or 0))
+
+
+def stored_engine(engine_name: str, store_folder: str, cfg: RunConfig) -> StoredEngine:
+    """The engine a task samples with: answers from the fit store at ``store_folder``
+    and stores every new fit, recording the run's data file in the store's index."""
+    return StoredEngine(get_engine(engine_name), FitStore(store_folder, data_origin(cfg)), y_rep_draws(cfg))
 
 
 @dataclass
@@ -202,8 +218,11 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         # 3. posterior predictive checks on a thinned set of draws
         res.stage = "checks"
         report(c.id, "checks")
-        y_rep = _stack(draws.idata.posterior_predictive, "y_rep")
-        log_lik = _stack(draws.idata.log_likelihood, "log_lik")
+        # y_rep holds the draws the store keeps (``y_rep_draws``); LOO-PIT pairs each with
+        # the log_lik of the same draw
+        pp = draws.idata.posterior_predictive
+        y_rep = _stack(pp, "y_rep")
+        log_lik = _stack(draws.idata.log_likelihood.sel(draw=pp["draw"].values), "log_lik")
         keep = thin_draws(y_rep.shape[0], cfg.check_draws)
         conditions = {col: design.table[col].to_numpy() for col in cfg.conditions}
         res.checks = predictive_checks(design.y, y_rep[keep], log_lik[keep], cfg.thresholds, conditions)
@@ -262,14 +281,16 @@ def refit_held_out(c: Candidate, engine, program, design: Design, cfg: RunConfig
     report(c.id, f"out-of-sample: refit {j + 1} of {len(due.plan.fits)}")
     settings = replace(_settings(cfg), adapt_delta=due.adapt_delta, seed=cfg.seed + 1001 + j)
     d = engine.sample(program, inputs_for(c, design, fitted, cfg.hyperparameters.get(c.id)), settings)
-    return RefitOutcome(_stack(d.idata.log_likelihood, "log_lik")[:, held].copy(),
+    # the store keeps a refit's held-out observations only: pick them by label
+    held_ll = d.idata.log_likelihood.sel(obs=np.asarray(held))
+    return RefitOutcome(_stack(held_ll, "log_lik").copy(),
                         int(np.asarray(d.idata.sample_stats["diverging"].values).sum()), d.sample_seconds)
 
 
 def refit_task(c: Candidate, design: Design, cfg: RunConfig, engine_name: str, store_folder: str,
                due: RefitsDue, j: int) -> RefitOutcome:
     """One exact refit as a task of its own on the run's executor (any process)."""
-    engine = StoredEngine(get_engine(engine_name), FitStore(store_folder))
+    engine = stored_engine(engine_name, store_folder, cfg)
     try:
         out = refit_held_out(c, engine, engine.compile(c), design, cfg, due, j)
     except (SamplingError, UserError) as exc:
@@ -303,7 +324,7 @@ def candidate_task(c: Candidate, design: Design, cfg: RunConfig, engine_name: st
     """All trials of one candidate, in whichever process the executor chose. The compiled
     program comes from the engine's cache (compiled before the tasks start); every fit is
     written to the fit store as it finishes. Returns the compact result only."""
-    engine = StoredEngine(get_engine(engine_name), FitStore(store_folder))
+    engine = stored_engine(engine_name, store_folder, cfg)
     t0 = time.perf_counter()
     try:
         program = engine.compile(c)
@@ -337,7 +358,7 @@ def fit_task(c: Candidate, design: Design, cfg: RunConfig, engine_name: str, sto
     the fit, and returns ``(health, keep(draws, health))`` where ``keep`` is a
     module-level function that extracts the little the study needs, so the full draws
     never travel back. A failure returns ``(None, message)``."""
-    engine = StoredEngine(get_engine(engine_name), FitStore(store_folder))
+    engine = stored_engine(engine_name, store_folder, cfg)
     try:
         program = engine.compile(c)
         settings = replace(_settings(cfg), seed=cfg.seed if seed is None else seed)
@@ -367,7 +388,13 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
         raise UserError("cross_validation = leave_group_out needs a group column; set group under [data] or --group")
     cands = select_candidates(cfg)
     out = output_folder(cfg.out)
-    store = FitStore(cfg.store or out / "fits")
+    store = FitStore(cfg.store or out / "fits", data_origin(cfg))
+    with store.in_use():   # contenders store --prune waits for the run to end
+        return _run(cfg, progress, say, start, design, cands, out, store)
+
+
+def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: list[Candidate], out: Path,
+         store: FitStore) -> RunResult:
     engine = StoredEngine(LazyEngine(cfg.engine), store)   # loaded only if something must be fitted
     for c in cands:
         check_against_data(c, design, cfg.hyperparameters.get(c.id))

@@ -8,13 +8,25 @@ a candidate, editing one program or changing one data value only samples what ch
 Files are written to a temporary name and renamed, so an interrupted run leaves only
 whole fits behind, and the next run resumes from them. Users can open any stored fit
 with ``arviz.from_netcdf``.
+
+A fit keeps what later steps read and no more (``slim``): ``log_lik`` as float32 (all
+observations for a posterior fit, the held-out ones only for a refit, none for a prior
+predictive run), ``y_rep`` thinned to the replicated datasets the checks and figures use
+(none for a refit), NetCDF with zlib and byte shuffling. What a run computes from a fit
+it has just sampled is computed from this slim copy, so a later run that loads the file
+gives the same numbers. ``index.jsonl`` records, per file written, the candidate, its
+code hash, the data file and its hash, the engine and the settings, for ``contenders
+store`` (sizes, pruning); files written before the index existed are "unknown".
 """
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
+import math
 import os
+import time
 from dataclasses import asdict
 from pathlib import Path
 from typing import Any, Mapping
@@ -80,12 +92,160 @@ def trials_key(candidate, design, cfg, engine_version: str) -> str:
     return h.hexdigest()
 
 
+#: Replicated datasets (``y_rep`` draws) a posterior fit keeps unless more are asked for:
+#: the predictive checks' default ``check_draws``, which is also the most the effects use.
+DEFAULT_Y_REP_DRAWS = 1000
+#: The file of ``index.jsonl`` records in a store folder.
+INDEX_NAME = "index.jsonl"
+#: Format of the stored fits. 2: slim (see the module docstring).
+FIT_FORMAT = 2
+
+
+def fit_mode(data: Mapping[str, Any]) -> str:
+    """``prior`` (empty fit subset), ``posterior`` (every observation) or ``refit``."""
+    n_fit = int(np.asarray(data.get("N_fit", data.get("N", 0))))
+    return "prior" if n_fit == 0 else "posterior" if n_fit == int(np.asarray(data.get("N", 0))) else "refit"
+
+
+def y_rep_positions(draws_per_chain: int, chains: int, keep: int | None) -> np.ndarray:
+    """Positions within each chain of the ``y_rep`` draws a posterior fit keeps: ``keep``
+    in all, spread over the chains as ``ceil(keep / chains)`` evenly spaced draws per
+    chain (every draw when that is more than a chain has)."""
+    from .trials.checks import thin_draws
+
+    if not keep:
+        return np.arange(draws_per_chain)
+    return thin_draws(draws_per_chain, math.ceil(keep / max(1, chains)))
+
+
+def slim(idata, data: Mapping[str, Any], y_rep_draws: int | None = DEFAULT_Y_REP_DRAWS):
+    """The InferenceData a fit store keeps of ``idata``, a fit to ``data``: ``log_lik``
+    rounded to float32 (held-out observations only for a refit; dropped for a prior
+    predictive run, which nothing reads it from) and returned as float64 values;
+    ``y_rep`` thinned to ``y_rep_positions`` for a posterior fit, dropped for a refit.
+    Also accepts a fit already slimmed to at least as much (a stored file); raises
+    ``KeyError`` when it holds fewer ``y_rep`` draws than asked for."""
+    import arviz as az
+
+    mode = fit_mode(data)
+    groups = {g: getattr(idata, g) for g in idata.groups()}
+    ll = groups.pop("log_likelihood", None)
+    if ll is not None and mode != "prior":
+        if mode == "refit":
+            n = int(np.asarray(data["N"]))
+            held = np.setdiff1d(np.arange(n), np.asarray(data["fit_idx"], dtype=int) - 1)
+            ll = ll.sel(obs=held)
+        groups["log_likelihood"] = ll.astype(np.float32).astype(np.float64)
+    pp = groups.pop("posterior_predictive", None)
+    if pp is not None and mode != "refit":
+        if mode == "posterior":
+            full = next((groups[g] for g in ("sample_stats", "posterior") if g in groups), pp)
+            keep = y_rep_positions(int(full.sizes["draw"]), int(pp.sizes["chain"]), y_rep_draws)
+            pp = pp.sel(draw=keep)   # KeyError when a stored fit lacks some
+        groups["posterior_predictive"] = pp
+    return az.InferenceData(**groups)
+
+
+def write_netcdf(idata, path: Path) -> None:
+    """Write ``idata`` as ArviZ does (one NetCDF group per InferenceData group), with zlib
+    and byte shuffling (about a quarter smaller for float32 draws, measured) and
+    ``log_lik`` stored as float32."""
+    import xarray as xr
+
+    mode = "w"
+    if idata._attrs:   # pylint: disable=protected-access
+        xr.Dataset(attrs=idata._attrs).to_netcdf(path, mode=mode, engine="h5netcdf")
+        mode = "a"
+    for group in idata._groups_all:
+        data = getattr(idata, group)
+        encoding = {}
+        for name, values in data.variables.items():
+            if values.dtype.kind in "biuf":
+                encoding[name] = {"zlib": True, "shuffle": True}
+                if name == "log_lik":
+                    encoding[name]["dtype"] = "float32"
+        data.to_netcdf(path, mode=mode, group=group, engine="h5netcdf", encoding=encoding)
+        mode = "a"
+
+
+def code_sha256(code: str) -> str:
+    return hashlib.sha256(code.encode()).hexdigest()
+
+
+def data_origin(cfg) -> dict[str, str]:
+    """The data file a run reads and its SHA-256, for the store's index."""
+    if getattr(cfg, "data", None) is None:
+        return {}
+    path = Path(cfg.data)
+    try:
+        digest = hashlib.sha256(path.read_bytes()).hexdigest()
+    except OSError:
+        digest = ""
+    return {"data_file": str(path.resolve()), "data_sha256": digest}
+
+
 class FitStore:
     """A folder of stored fits, ``<key>.nc``, and of computed trial results,
-    ``<key>.trials.pickle`` (this package's own cache; the NetCDF fits are for users)."""
+    ``<key>.trials.pickle`` (this package's own cache; the NetCDF fits are for users).
 
-    def __init__(self, folder: str | Path) -> None:
+    ``origin`` (the data file and its hash, ``data_origin``) goes into the index record
+    of every file written."""
+
+    def __init__(self, folder: str | Path, origin: Mapping[str, str] | None = None) -> None:
         self.folder = Path(folder)
+        self.origin = dict(origin or {})
+
+    # -- the index ---------------------------------------------------------------------
+    def record(self, path: Path, about: Mapping[str, Any]) -> None:
+        """Append one index record for ``path`` (one ``write`` of one line on a file
+        opened for appending, so records of processes writing at once do not mix). An
+        index that cannot be written is not an error: the file is then "unknown"."""
+        line = json.dumps({"file": Path(path).name, "written": time.time(), **self.origin, **about},
+                          sort_keys=True, default=str) + "\n"
+        self.append_index(line.encode())
+
+    def append_index(self, lines: bytes) -> None:
+        with contextlib.suppress(OSError):
+            fd = os.open(self.folder / INDEX_NAME, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+            try:
+                os.write(fd, lines)
+            finally:
+                os.close(fd)
+
+    def index(self) -> dict[str, dict]:
+        """The latest index record of each file name (damaged lines are skipped)."""
+        out: dict[str, dict] = {}
+        try:
+            text = (self.folder / INDEX_NAME).read_text()
+        except OSError:
+            return out
+        for line in text.splitlines():
+            try:
+                rec = json.loads(line)
+                out[str(rec["file"])] = rec
+            except (ValueError, KeyError, TypeError):
+                continue
+        return out
+
+    @contextlib.contextmanager
+    def in_use(self):
+        """Hold a shared lock on the store while a run reads and writes it; ``contenders
+        store --prune`` takes the lock exclusively, so it never deletes what a run is
+        using (the lock goes with its holder if that process dies)."""
+        import fcntl
+
+        try:
+            self.folder.mkdir(parents=True, exist_ok=True)
+            handle = open(self.folder / ".in-use.lock", "a+")
+        except OSError:   # a store that cannot be written fails later with its own message
+            yield
+            return
+        with handle:
+            fcntl.flock(handle, fcntl.LOCK_SH)
+            try:
+                yield
+            finally:
+                fcntl.flock(handle, fcntl.LOCK_UN)
 
     def path(self, key: str) -> Path:
         return self.folder / f"{key[:32]}.nc"
@@ -102,19 +262,23 @@ class FitStore:
             attrs = idata.sample_stats.attrs
             if attrs.get("contenders_key") != key:
                 return None
+            with contextlib.suppress(OSError):
+                os.utime(path)   # "last used", for contenders store --prune --older-than
             return Draws(idata, engine, 0.0, float(attrs.get("contenders_sample_seconds", 0.0)), settings,
                          str(attrs.get("contenders_messages", "")))
         except Exception:  # a damaged file is refitted, never trusted
             return None
 
-    def save(self, key: str, draws: Draws) -> Path:
+    def save(self, key: str, draws: Draws, about: Mapping[str, Any] | None = None) -> Path:
         self.folder.mkdir(parents=True, exist_ok=True)
         path = self.path(key)
         attrs = draws.idata.sample_stats.attrs
         attrs["contenders_key"] = key
         attrs["contenders_sample_seconds"] = draws.sample_seconds
         attrs["contenders_messages"] = draws.messages[:10000]
-        _write_whole(path, lambda tmp: draws.idata.to_netcdf(str(tmp)))
+        attrs["contenders_fit_format"] = FIT_FORMAT
+        _write_whole(path, lambda tmp: write_netcdf(draws.idata, tmp))
+        self.record(path, {"kind": "fit", **(about or {})})
         return path
 
     def trials_path(self, key: str) -> Path:
@@ -124,8 +288,14 @@ class FitStore:
         """A candidate's stored trial results, or None (missing, damaged or stale)."""
         return _load_pickle(self.trials_path(key), key)
 
-    def save_trials(self, key: str, result) -> Path:
-        return _save_pickle(self.trials_path(key), key, result)
+    def save_trials(self, key: str, result, about: Mapping[str, Any] | None = None) -> Path:
+        from . import __version__
+
+        path = _save_pickle(self.trials_path(key), key, result)
+        self.record(path, {"kind": "trials", "candidate": getattr(result, "id", ""),
+                           "code_sha256": getattr(result, "code_hash", ""), "contenders": __version__,
+                           "trials_format": TRIALS_FORMAT, **(about or {})})
+        return path
 
     def value_path(self, kind: str, key: str) -> Path:
         return self.folder / kind / f"{key[:32]}.pickle"
@@ -139,9 +309,11 @@ class FitStore:
         """Store ``value`` under ``key``; a store that cannot be written is not an error
         (the value is computed again next time)."""
         try:
-            return _save_pickle(self.value_path(kind, key), key, value)
+            path = _save_pickle(self.value_path(kind, key), key, value)
         except OSError:
             return None
+        self.record(path, {"kind": kind})
+        return path
 
 
 def _load_pickle(path: Path, key: str):
@@ -187,11 +359,14 @@ def _write_whole(path: Path, write) -> None:
 class StoredEngine(Engine):
     """An engine that answers from the fit store when it can and stores every new fit.
 
-    ``sampled`` and ``reused`` count the runs that were sampled and loaded."""
+    ``sampled`` and ``reused`` count the runs that were sampled and loaded. Every fit is
+    returned as the store keeps it (``slim``), with ``y_rep_draws`` replicated datasets
+    kept for a posterior fit, whether it was sampled now or loaded."""
 
-    def __init__(self, inner: Engine, store: FitStore) -> None:
+    def __init__(self, inner: Engine, store: FitStore, y_rep_draws: int | None = DEFAULT_Y_REP_DRAWS) -> None:
         self.inner = inner
         self.store = store
+        self.y_rep_draws = y_rep_draws
         self.name = inner.name
         self._version = inner.version()
         self.sampled = 0
@@ -214,13 +389,22 @@ class StoredEngine(Engine):
         key = fit_key(program.code, data, settings, self._version)
         found = self.store.load(key, settings, self.name)
         if found is not None:
+            try:
+                found.idata = slim(found.idata, data, self.y_rep_draws)
+            except KeyError:   # stored with fewer y_rep draws than asked for now: sample again
+                found = None
+        if found is not None:
             self.reused += 1
             found.compile_seconds = program.compile_seconds
             found.from_store = True
             self.paths.setdefault(program.candidate_id, []).append(self.store.path(key))
             return found
         draws = self.inner.sample(program, data, settings)
+        draws.idata = slim(draws.idata, data, self.y_rep_draws)
         self.sampled += 1
-        self.paths.setdefault(program.candidate_id, []).append(self.store.save(key, draws))
+        about = {"candidate": program.candidate_id, "code_sha256": code_sha256(program.code),
+                 "engine": self._version, "mode": fit_mode(data), "settings": asdict(settings),
+                 "n": int(np.asarray(data.get("N", 0))), "y_rep_draws": self.y_rep_draws}
+        self.paths.setdefault(program.candidate_id, []).append(self.store.save(key, draws, about))
         raise_if_interrupted()  # a whole fit is kept; then stop
         return draws
