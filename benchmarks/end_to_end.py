@@ -4,6 +4,7 @@ Not a test. Run it from the repository root with the project installed:
 
     python benchmarks/end_to_end.py                     # speed: demo design, all built-ins
     python benchmarks/end_to_end.py --memory            # memory: N = 20,000, jobs = 2
+    python benchmarks/end_to_end.py --store-size        # fit store size at N = 20,000
 
 Speed part (each phase starts from an empty fit store; programs are compiled first, so
 compiling is not timed):
@@ -27,6 +28,18 @@ Memory part: the whole run at N = 20,000 (the demo design with more participants
 ``jobs`` = 2; peak resident memory of the process tree (the command and every process
 it starts), sampled every 0.25 s from /proc (Linux). Sum of RSS, so shared pages are
 counted more than once: an upper bound.
+
+Store-size part: ``contenders run`` at N = 20,000 for the candidates of
+``--store-only`` (default: lognormal) with the default 4 chains x 1,000 draws (warmup
+``--store-warmup``; the draws count, not the warmup, sets the size), then the store's
+files by kind from its index: measured. The store of the whole ten-candidate run is
+then computed from those sizes (ten times one candidate's prior fit, posterior fit and
+trial results, plus ``--refits`` refits each at the measured refit size or at the
+held-out share of a posterior fit's log_lik) and printed as "computed", not measured.
+It also samples the same posterior fit again directly with the engine (same seed, so
+the same draws) to compare PSIS-LOO (ArviZ) on float64 ``log_lik`` with the float32
+values the store keeps, and the size of the same fit written the old way (float64
+``log_lik``, every ``y_rep`` draw, ArviZ's default NetCDF).
 """
 
 from __future__ import annotations
@@ -255,6 +268,110 @@ def memory(args) -> dict:
             shutil.rmtree(work, ignore_errors=True)
 
 
+SIZE_CHECK = r'''
+import json, os, sys, tempfile
+import arviz as az
+import numpy as np
+from contenders.candidates import builtin_folder, discover, inputs_for
+from contenders.config import load
+from contenders.engines import get_engine
+from contenders.runner import _settings, load_design
+from contenders.store import slim
+
+cfg = load(sys.argv[1]).with_(warmup=int(sys.argv[3]))
+cid, stored = sys.argv[2], sys.argv[4]
+design = load_design(cfg)
+c = next(c for c in discover(builtin_folder()) if c.id == cid)
+engine = get_engine("pystan")
+program = engine.compile(c)
+data = inputs_for(c, design, None, cfg.hyperparameters.get(c.id))
+draws = engine.sample(program, data, _settings(cfg))
+old = os.path.join(tempfile.mkdtemp(prefix="contenders-old-"), "old.nc")
+draws.idata.to_netcdf(old)   # as the store wrote fits before: float64 log_lik, every y_rep draw
+old_bytes = os.path.getsize(old)
+os.remove(old)
+ll64 = np.asarray(draws.idata.log_likelihood["log_lik"].values)
+kept = az.from_netcdf(stored)
+ll_stored = np.asarray(kept.log_likelihood["log_lik"].values)
+loo64 = az.loo(draws.idata, var_name="log_lik")
+loo32 = az.loo(slim(draws.idata, data), var_name="log_lik")
+print(json.dumps({
+    "stored_log_lik_dtype": str(ll_stored.dtype),
+    "stored_equals_float32_of_resampled": bool(np.array_equal(ll_stored, ll64.astype(np.float32))),
+    "elpd_float64": float(loo64["elpd_loo"]), "elpd_float32": float(loo32["elpd_loo"]),
+    "elpd_change": abs(float(loo64["elpd_loo"]) - float(loo32["elpd_loo"])),
+    "old_format_posterior_fit_bytes": old_bytes,
+}))
+'''
+
+
+def store_size(args) -> dict:
+    work = Path(tempfile.mkdtemp(prefix="contenders-store-"))
+    try:
+        cfg = write_config(work, 417, 1000, args.memory_n)
+        ids = args.store_only.split(",")
+        subprocess.run(contenders("check", *ids), check=True, stdout=subprocess.DEVNULL)
+        seconds, peak, cpu = timed(contenders("run", "--config", str(cfg), "--quiet", "--jobs", "2",
+                                              "--warmup", str(args.store_warmup), "--out", str(work / "s"),
+                                              "--only", args.store_only))
+        sys.path.insert(0, str(ROOT / "src"))
+        from contenders.store import FitStore
+
+        store = FitStore(work / "s" / "fits")
+        index = store.index()
+        per = {}   # candidate -> kind -> [bytes]
+        shared = 0
+        for f in store.folder.rglob("*"):
+            if not f.is_file() or f.name.startswith("."):
+                continue
+            rec = index.get(f.name, {})
+            kind = rec.get("mode") or rec.get("kind") or "unknown"
+            if rec.get("candidate"):
+                per.setdefault(rec["candidate"], {}).setdefault(kind, []).append(f.stat().st_size)
+            else:
+                shared += f.stat().st_size
+        s = json.loads((work / "s" / "summary.json").read_text())
+        n = s["data"]["n"]
+        check_script = work / "size_check.py"
+        check_script.write_text(SIZE_CHECK)
+        first = ids[0]
+        posterior_file = next(str(store.folder / name) for name, rec in index.items()
+                              if rec.get("candidate") == first and rec.get("mode") == "posterior")
+        out = subprocess.run([sys.executable, str(check_script), str(cfg), first, str(args.store_warmup),
+                              posterior_file], check=True, capture_output=True, text=True)
+        precision = json.loads(out.stdout.strip().splitlines()[-1])
+        gb = 1e9
+        measured = {cid: {kind: [round(b / gb, 3) for b in sizes] for kind, sizes in kinds.items()}
+                    for cid, kinds in per.items()}
+        one = {cid: sum(sum(v) for v in kinds.values()) for cid, kinds in per.items()}
+        mean_candidate = statistics.mean(sum(sum(kinds.get(k, [])) for k in ("prior", "posterior", "trials"))
+                                         for kinds in per.values())
+        posterior = statistics.mean(sum(kinds.get("posterior", [0])) for kinds in per.values())
+        refits = [b for kinds in per.values() for b in kinds.get("refit", [])]
+        # an exact refit keeps one held-out column of log_lik: 1/n of a posterior fit's log_lik
+        refit_size = statistics.mean(refits) if refits else posterior / n
+        total = 10 * mean_candidate + args.refits * refit_size + shared
+        return {
+            "n": n, "chains": s["sampler"]["chains"], "draws_per_chain": s["sampler"]["draws"],
+            "warmup": s["sampler"]["warmup"], "engine": s["sampler"]["engine"],
+            "statuses": {c["id"]: c["status"] for c in s["candidates"]},
+            "run_seconds": round(seconds, 1), "run_cpu_seconds": round(cpu, 1),
+            "measured_gb_by_candidate_and_kind": measured,
+            "measured_gb_per_candidate": {k: round(v / gb, 3) for k, v in one.items()},
+            "measured_gb_shared_files": round(shared / gb, 4),
+            "measured_old_format_posterior_fit_gb": round(precision.pop("old_format_posterior_fit_bytes") / gb, 3),
+            "precision": precision,
+            "computed_gb_ten_candidates": round(total / gb, 2),
+            "computed_from": (f"10 x the measured prior + posterior + trial results of one candidate (mean of "
+                              f"{', '.join(per)}), + {args.refits} refits at "
+                              + ("the measured refit size" if refits else "1/N of a posterior fit")
+                              + ", + the measured shared files (weights, figures)"),
+        }
+    finally:
+        if not args.keep:
+            shutil.rmtree(work, ignore_errors=True)
+
+
 def main() -> None:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--only", default="", help="candidate ids, comma-separated (default: all built-ins)")
@@ -263,12 +380,18 @@ def main() -> None:
     p.add_argument("--memory", action="store_true", help="run the N = 20,000 memory measurement instead")
     p.add_argument("--memory-n", type=int, default=20000)
     p.add_argument("--memory-only", default="", help="candidates for the memory run (default: all)")
+    p.add_argument("--store-size", action="store_true", help="measure the fit store at N = 20,000 instead")
+    p.add_argument("--store-only", default="lognormal", help="store size: candidates run (default lognormal)")
+    p.add_argument("--store-warmup", type=int, default=200, help="store size: warmup per chain (default 200)")
+    p.add_argument("--refits", type=int, default=100,
+                   help="store size: refits assumed in the computed ten-candidate total (default 100: "
+                        "refit_cap 10 for each of ten candidates)")
     p.add_argument("--repeat", type=int, default=1, help="speed: repeats of baseline, cold and jobs = 1")
     p.add_argument("--log", type=Path, default=None,
                    help="memory: append elapsed time, tree RSS and peak so far here every 30 s")
     p.add_argument("--keep", action="store_true", help="keep the temporary folders")
     args = p.parse_args()
-    result = memory(args) if args.memory else speed(args)
+    result = store_size(args) if args.store_size else memory(args) if args.memory else speed(args)
     print(json.dumps(result, indent=2))
 
 
