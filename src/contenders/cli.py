@@ -130,7 +130,10 @@ def _run_and_report(cfg, command_line: str) -> int:
     if cfg.replicates:   # model recovery (contenders recovery, or [recovery] replicates)
         from .recovery import recover, write as write_recovery
 
-        result.recovery = recover(result, cfg.replicates, progress=say)
+        from .store import FitStore
+
+        with FitStore(cfg.store or Path(cfg.out) / "fits").in_use():   # prune waits for it
+            result.recovery = recover(result, cfg.replicates, progress=say)
         write_recovery(result.recovery, result.out)
     report = write_report(result, result.out, command_line=command_line)
     if not cfg.quiet:
@@ -184,7 +187,10 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
     if args.names:
         cfg = cfg.with_(only=tuple(args.names))
     say = (lambda _t: None) if cfg.quiet else (lambda t: print(t, flush=True))
-    study = calibrate(cfg, args.simulations, progress=say)
+    from .store import FitStore
+
+    with FitStore(cfg.store or Path(cfg.out) / "fits").in_use():   # prune waits for it
+        study = calibrate(cfg, args.simulations, progress=say)
     page = write_calibration(study, cfg.out, command_line=" ".join(["contenders", *sys.argv[1:]]))
     if not cfg.quiet:
         for cal in study.candidates:
@@ -278,6 +284,62 @@ def cmd_new(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_store(args: argparse.Namespace) -> int:
+    """Show the size of a fit store by candidate, by data file and by kind of file; with
+    --prune, remove the files no run can reach any more: their candidate's program
+    changed or is gone, their engine version is no longer installed, their data file is
+    gone or changed, or (with --older-than DAYS) they were not used for that long. Asks
+    before deleting unless --yes; never runs while a run uses the store."""
+    from . import store_contents as sc
+    from .candidates import builtin_folder, discover
+    from .config import RunConfig
+
+    folder = Path(args.store) if args.store else RunConfig().out / "fits"
+    contents = sc.read(folder)
+    print(f"fit store {folder.resolve()}: {sc.human(contents.size)} in {len(contents.files)} file(s)")
+    for title, attribute in (("by candidate", "candidate"), ("by data file", "dataset"), ("by kind", "kind")):
+        print(f"{title}:")
+        for name, size, count in contents.by(attribute):
+            print(f"  {sc.human(size):>10}  {count:>5} file(s)  {name}")
+    if any(f.record is None for f in contents.files):
+        print("unknown: files written before the store kept an index (pruned only with --older-than)")
+    if contents.busy:
+        print(f"{len(contents.busy)} file(s) being written by a run now (never touched)")
+    if not args.prune:
+        if args.older_than is not None or args.yes:
+            raise UserError("--older-than and --yes go with --prune; add --prune to remove files")
+        return 0
+    if args.older_than is not None and args.older_than < 0:
+        raise UserError(f"--older-than {args.older_than}: give a number of days >= 0")
+    codes = {c.code_hash for c in discover(builtin_folder())}
+    for extra in args.candidates:
+        codes |= {c.code_hash for c in discover(extra)}
+    with sc.exclusive(contents.folder):
+        contents = sc.read(folder)   # as it is now that no run can change it
+        doomed = sc.mark_unreachable(contents, codes, older_than_days=args.older_than)
+        if not doomed and not contents.debris:
+            print("nothing to prune: every file can still be reached by a run")
+            return 0
+        print(f"to remove: {len(doomed)} file(s), {sc.human(sum(f.size for f in doomed))}"
+              + (f", and {len(contents.debris)} temporary file(s) of runs that are gone" if contents.debris else ""))
+        reasons: dict[str, list] = {}
+        for f in doomed:
+            reasons.setdefault(f.why[0], []).append(f)
+        for why, files in sorted(reasons.items()):
+            print(f"  {sc.human(sum(f.size for f in files)):>10}  {len(files):>5} file(s)  {why}")
+        if not args.yes:
+            if not sys.stdin.isatty():
+                raise UserError("contenders store --prune asks before deleting; pass --yes to delete without "
+                                "asking (nothing was deleted)")
+            answer = input("delete these files? [y/N] ").strip().lower()
+            if answer not in ("y", "yes"):
+                print("nothing was deleted")
+                return 0
+        removed, freed = sc.remove(contents, doomed)
+    print(f"removed {removed} file(s), {sc.human(freed)}")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="contenders",
@@ -338,6 +400,19 @@ def build_parser() -> argparse.ArgumentParser:
                    help="folder to write into, created if missing (default: the current folder; "
                         "never the built-in candidates folder)")
     p.set_defaults(func=cmd_new)
+
+    p = sub.add_parser("store", help="size of the fit store by candidate and data file; --prune removes "
+                       "what no run can reach", description=cmd_store.__doc__)
+    p.add_argument("--store", metavar="DIR", help="folder of stored fits (default: reports/run/fits, "
+                   "where a run with the default --out keeps them)")
+    p.add_argument("--prune", action="store_true", help="remove the files no run can reach any more")
+    p.add_argument("--older-than", type=float, metavar="DAYS", default=None,
+                   help="with --prune: also remove files not used for DAYS days")
+    p.add_argument("--candidates", metavar="DIR", action="append", default=[],
+                   help="with --prune: a folder of your own candidates whose fits are kept "
+                        "(repeatable; the built-in candidates always count)")
+    p.add_argument("--yes", action="store_true", help="with --prune: delete without asking")
+    p.set_defaults(func=cmd_store)
 
     p = sub.add_parser("check", help="compile candidates and check the contract without sampling",
                        description=cmd_check.__doc__)

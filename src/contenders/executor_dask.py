@@ -34,6 +34,7 @@ from typing import Any, Callable
 
 from .errors import UserError
 from .executor import _REPORT, Executor, cores
+from .store import INDEX_NAME, FitStore
 
 #: Seconds to wait for the scheduler before giving up.
 CONNECT_TIMEOUT = 5
@@ -96,6 +97,9 @@ def _on_worker(fn: Callable, args: tuple, store_pos: int | None, engine_name: st
         if local is not None:
             for path in sorted(Path(local).glob("*.nc")):
                 files[path.name] = path.read_bytes()
+            index = Path(local) / INDEX_NAME
+            if index.exists():   # what the fits were made from, for contenders store
+                files[INDEX_NAME] = index.read_bytes()
         return result, local, files
     finally:
         _LOCAL.topic = None
@@ -116,6 +120,9 @@ def _write_into(folder: Path, files: dict[str, bytes]) -> None:
     """Write fits into the client's store: temporary name, then rename into place."""
     folder.mkdir(parents=True, exist_ok=True)
     for name, data in files.items():
+        if name == INDEX_NAME:   # records are appended to the client's index
+            FitStore(folder).append_index(data)
+            continue
         path = folder / name
         tmp = path.with_name(f".{name}.{os.getpid()}.{threading.get_ident()}.tmp")
         try:
