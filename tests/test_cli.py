@@ -130,6 +130,37 @@ def test_new_writes_where_the_user_stands_and_never_into_the_builtin_folder(tmp_
     assert _folder_state(builtin_folder()) == before
 
 
+def test_quick_look_is_marked_never_stored_as_a_full_result_and_never_over_one(small, tmp_path, engine):
+    out = tmp_path / "q"
+    res = cli("run", small, "--outcome", "rt", "--only", "lognormal", "--quick", "--out", out, "--engine", "pystan")
+    assert res.returncode == 0, res.stderr
+    assert res.stdout.count("Quick look, not a full result: 4 chains x 250 draws") == 1
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["profile"] == "quick look"
+    assert summary["verdict"].startswith("Quick look, not a full result")
+    assert (summary["sampler"]["chains"], summary["sampler"]["warmup"], summary["sampler"]["draws"]) == (4, 250, 250)
+    c = summary["candidates"][0]
+    assert c["status"] == "ok" and c["elpd_method"].startswith("PSIS-LOO without refits (quick look)")
+    assert c["n_refits"] == 0 and c["adapt_delta_attempts"][0]["adapt_delta"] == 0.8
+    assert "Quick look" in (out / "report.html").read_text()
+    # flags given with --quick win; a full run on the same store does not read the quick result back
+    res = cli("run", small, "--outcome", "rt", "--only", "lognormal", "--quick", "--draws", 300, "--out", out,
+              "--engine", "pystan", "--quiet")
+    assert res.returncode == 0, res.stderr
+    assert json.loads((out / "summary.json").read_text())["sampler"]["draws"] == 300
+    full = tmp_path / "full"
+    res = cli("run", small, "--outcome", "rt", "--only", "lognormal", "--out", full, "--store", out / "fits",
+              "--warmup", 250, "--draws", 300, "--prior-draws", 200, "--escalation", "0.95", "--rhat-max", 1.05,
+              "--engine", "pystan", "--quiet")
+    assert res.returncode == 0, res.stderr
+    summary = json.loads((full / "summary.json").read_text())
+    assert summary["profile"] == "full" and not summary["verdict"].startswith("Quick look")
+    assert not summary["candidates"][0]["elpd_method"].startswith("PSIS-LOO without refits")
+    # a quick look never writes over a full run's output
+    res = cli("run", small, "--outcome", "rt", "--only", "lognormal", "--quick", "--out", full, "--engine", "pystan")
+    assert res.returncode == 2 and "holds the output of a full run" in res.stderr
+
+
 def test_demo_generator_is_reproducible_and_documented(tmp_path):
     a = demo.generate()
     assert a.equals(demo.generate())

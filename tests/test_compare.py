@@ -249,3 +249,24 @@ def test_strike_durations_ranking_is_the_same_under_two_seeds(strikes):
     first, second = ([cid for cid in r.comparison.ranking if cid in healthy] for r in strikes)
     assert len(first) >= 4, [r.comparison.verdict for r in strikes]
     assert first == second, [r.comparison.rows for r in strikes]
+
+
+def test_quick_look_estimate_is_plain_psis_loo_without_refits():
+    """A quick look (``strategy="psis"``) keeps ArviZ's PSIS-LOO (the reference) as it is,
+    even with observations of high Pareto k, where the full estimate plans refits."""
+    import contenders.compare as compare
+
+    rng = np.random.default_rng(3)
+    mu = rng.normal(0, 0.6, (2, 300))
+    y = np.r_[rng.normal(0, 1, 40), 14.0, -13.0]   # two far outliers: high Pareto k
+    ll = sps.norm.logpdf(y[None, None, :], mu[..., None], 1.0)
+    idata = az.from_dict(posterior={"mu": mu}, log_likelihood={"log_lik": ll})
+    ref = az.loo(idata, pointwise=True, var_name="log_lik")
+    full = compare.plan_estimate(idata, "loo", refit_cap=10)
+    assert len(full.fits) >= 1                   # the full estimate refits them
+    quick = compare.plan_estimate(idata, "psis", refit_cap=10)
+    assert quick.fits == []
+    est = quick.finish([])
+    assert est.elpd == pytest.approx(float(ref["elpd_loo"]), abs=1e-9)
+    assert "without refits (quick look)" in est.method and "not refitted" in est.method
+    assert est.n_refits == 0

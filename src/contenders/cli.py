@@ -99,12 +99,15 @@ def _add_run_flags(p: argparse.ArgumentParser) -> None:
     p.add_argument("--hyper", action="append", default=[], metavar="ID.NAME=VALUE",
                    help=HELP["hyperparameters"] + " (configuration: [hyperparameters.ID] NAME)")
     p.add_argument("--quiet", action="store_true", default=None, help=HELP["quiet"])
+    p.add_argument("--quick", action="store_true", default=None, help=HELP["quick"] + " (configuration: [run] quick)")
 
 
 def _config_from_args(args: argparse.Namespace, data: str | None):
-    from .config import RunConfig, apply_flags, load, parse_flag, parse_hyper_flags
+    from .config import RunConfig, apply_flags, load, parse_flag, parse_hyper_flags, quick_profile
 
     cfg = load(args.config) if args.config else RunConfig()
+    if getattr(args, "quick", None) or cfg.quick:   # the profile first, so flags given with it win
+        cfg = quick_profile(cfg)
     flags = {name: parse_flag(name, getattr(args, name)) for name in RUN_FLAGS
              if getattr(args, name) is not None}
     if data:
@@ -241,6 +244,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
         changes["warmup"] = args.draws
     if args.quiet:
         changes["quiet"] = True
+    if args.quick:
+        from .config import quick_profile
+
+        cfg = quick_profile(cfg).with_(out=Path(args.out) if args.out else root / "reports" / "demo-quick")
     cfg = apply_flags(cfg, changes)
     if not cfg.quiet:
         print(f"demo data: {folder / 'icon_search.csv'} (invented; see {folder / 'README.md'})")
@@ -390,6 +397,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--engine", choices=("auto", "pystan", "cmdstanpy"), help="Stan engine")
     p.add_argument("--draws", type=int, metavar="N", help="warmup and kept draws per chain (default 1000)")
     p.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    p.add_argument("--quick", action="store_true",
+                   help="a quick look (4 chains x 250 draws, PSIS-LOO without refits), written to reports/demo-quick")
     p.set_defaults(func=cmd_demo)
 
     p = sub.add_parser("new", help="write a new candidate file that keeps the contract",

@@ -258,6 +258,12 @@ def plan_estimate(
     if strategy == "kfold":
         return held_out(make_folds(n, folds, groups, seed), f"{folds}-fold cross-validation")
     high = np.flatnonzero(k > threshold)
+    if strategy == "psis":   # a quick look: PSIS-LOO as it is, never a refit
+        method = "PSIS-LOO without refits (quick look)"
+        if high.size:
+            method += (f"; {high.size} observation{'s' if high.size > 1 else ''} with Pareto k above "
+                       f"{threshold:.2f} not refitted, so this elpd may be off")
+        return Plan([], psis, by_chain, lppd, n_chains, method, base)
     if high.size == 0:
         return Plan([], psis, by_chain, lppd, n_chains, "PSIS-LOO", base)
     if high.size > refit_cap:

@@ -233,7 +233,8 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         res.stage = "out-of-sample"
         report(c.id, "out-of-sample")
         groups = design.group if design.J > 0 else None
-        plan = plan_estimate(draws.idata, cfg.cross_validation, cfg.refit_cap, cfg.folds, groups, cfg.seed)
+        plan = plan_estimate(draws.idata, "psis" if cfg.quick else cfg.cross_validation, cfg.refit_cap,
+                             cfg.folds, groups, cfg.seed)
         del draws
         due = RefitsDue(plan, health.adapt_delta)
         if plan.fits and defer_refits:
@@ -388,6 +389,8 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
         raise UserError("cross_validation = leave_group_out needs a group column; set group under [data] or --group")
     cands = select_candidates(cfg)
     out = output_folder(cfg.out)
+    if cfg.quick:
+        _never_over_a_full_result(out)
     store = FitStore(cfg.store or out / "fits", data_origin(cfg))
     with store.in_use():   # contenders store --prune waits for the run to end
         return _run(cfg, progress, say, start, design, cands, out, store)
@@ -452,6 +455,8 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
         if r.status in ("failed", "skipped"):
             say(f"  {r.id}: {r.status}: {r.reason.splitlines()[0][:160] if r.reason else ''}")
     comparison = compare_candidates(ordered, cfg.seed, cfg.ppp_extreme, store=store)
+    if cfg.quick:
+        comparison.verdict.insert(0, QUICK_LOOK.format(chains=cfg.chains, draws=cfg.draws, rhat=cfg.rhat_max))
     sampled = sum(r.fits_sampled for r in ordered if not r.from_store)
     reused = sum(r.fits_reused for r in ordered if not r.from_store) + sum(
         len(r.fit_files) for r in ordered if r.from_store)
@@ -462,6 +467,26 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
     )
     write_summary(result)
     return result
+
+
+#: The first sentence of a quick look's verdict.
+QUICK_LOOK = ("Quick look, not a full result: {chains} chains x {draws} draws, no adapt_delta escalation, "
+              "R-hat below {rhat:g} accepted, PSIS-LOO without refits. Use it to see which candidates are "
+              "worth a full run; run again without --quick before drawing conclusions.")
+
+
+def _never_over_a_full_result(out: Path) -> None:
+    """A quick look never writes over the report of a full run."""
+    path = out / "summary.json"
+    if not path.exists():
+        return
+    try:
+        profile = json.loads(path.read_text()).get("profile")
+    except (OSError, ValueError):
+        profile = None
+    if profile != "quick look":
+        raise UserError(f"{out} holds the output of a full run; a quick look never writes over it: "
+                        "choose another folder with --out (the default for --quick is reports/quick)")
 
 
 def _run_tasks(executor, todo: list[Candidate], design: Design, cfg: RunConfig, engine_name: str,
@@ -592,6 +617,7 @@ def summary_dict(result: RunResult) -> dict[str, Any]:
     cfg = result.config
     return _clean({
         "contenders_version": __version__,
+        "profile": "quick look" if cfg.quick else "full",
         "data": {"file": cfg.data, "sha256": result.data_hash, "outcome": cfg.outcome,
                  "n": result.design.N, "dropped_rows": result.design.dropped_rows,
                  "predictors": [c.name for c in result.design.coding], "group": cfg.group,

@@ -87,6 +87,8 @@ def trials_key(candidate, design, cfg, engine_version: str) -> str:
         h.update(value.tobytes())
     h.update(candidate.code.encode())
     settings = {k: getattr(cfg, k) for k in TRIAL_SETTINGS}
+    if getattr(cfg, "quick", False):   # a quick look is never read back as a full result
+        settings["quick"] = True
     h.update(json.dumps(settings, sort_keys=True, default=str).encode())
     h.update(f"{engine_version}|contenders {__version__}|format {TRIALS_FORMAT}".encode())
     return h.hexdigest()
