@@ -215,3 +215,17 @@ def test_readme_documents_every_configuration_key_and_both_commands():
     ci = (builtin_folder().parent / ".ci" / "run").read_text()
     assert ". .venv/bin/activate && python -m pytest -q" in readme
     assert ". .venv/bin/activate && python -m pytest -q" in ci
+
+
+def test_a_reader_that_stops_early_gets_no_traceback():
+    # `contenders list | head -1`: the reader closes the pipe before the listing is
+    # written. The command must stop quietly (status 141, as a shell reports SIGPIPE;
+    # common practice, no source), not print Python's BrokenPipeError.
+    child = subprocess.Popen([sys.executable, "-c",
+                              "import sys, time; time.sleep(1.0); from contenders.cli import main; "
+                              "sys.exit(main(['list']))"],
+                             stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    child.stdout.close()
+    err = child.stderr.read().decode()
+    assert child.wait(timeout=120) == 141, err
+    assert "Traceback" not in err and "BrokenPipeError" not in err, err

@@ -456,7 +456,16 @@ def main(argv: list[str] | None = None) -> int:
     if not getattr(args, "func", None):
         args = parser.parse_args(["list", *(argv or [])])
     try:
-        return args.func(args)
+        status = args.func(args)
+        sys.stdout.flush()
+        return status
+    except BrokenPipeError:
+        # The reader went away (`contenders store | head`): stop quietly, as other
+        # command-line tools do, and keep Python from complaining at exit.
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 141
     except UserError as exc:
         if args.debug:
             raise
