@@ -22,7 +22,7 @@ from . import __version__
 from .compare import Comparison, OutOfSample, Plan, compare_candidates, plan_estimate
 from .candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for
 from .config import RunConfig
-from .data import Design, build_design, read_table
+from .data import Design, build_design, check_reference, read_table
 from .engines import SamplingError, compile_all, get_engine
 from .engines.base import SamplerSettings
 from .engines.lazy import LazyEngine
@@ -120,9 +120,10 @@ def load_design(cfg: RunConfig) -> Design:
                 f"{cfg.data}: condition column '{cond}' not found; the columns are: "
                 + ", ".join(map(str, table.columns))
             )
+    check_reference(table, cfg.reference, cfg.predictors, cfg.conditions, source=str(cfg.data))
     return build_design(
         table, cfg.outcome, cfg.predictors, cfg.group, cfg.typical_value, cfg.typical_spread,
-        source=str(cfg.data),
+        source=str(cfg.data), reference=cfg.reference,
     )
 
 
@@ -227,7 +228,8 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         conditions = {col: design.table[col].to_numpy() for col in cfg.conditions}
         res.checks = predictive_checks(design.y, y_rep[keep], log_lik[keep], cfg.thresholds, conditions)
         res.y_rep_sample = y_rep[thin_draws(y_rep.shape[0], FIGURE_DRAWS)].astype(np.float32)
-        res.effects = effect_draws(y_rep, design.y, design.table, cfg.conditions, cfg.predictors)
+        res.effects = effect_draws(y_rep, design.y, design.table, cfg.conditions, cfg.predictors,
+                                   reference=cfg.reference)
         del y_rep, log_lik
         # 4. out-of-sample: PSIS-LOO, exact refits of high-k observations, or K-fold
         res.stage = "out-of-sample"

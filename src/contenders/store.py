@@ -61,7 +61,7 @@ def fit_key(code: str, data: Mapping[str, Any], settings: SamplerSettings, engin
 TRIAL_SETTINGS = (
     "chains", "warmup", "draws", "prior_draws", "seed", "adapt_delta", "max_treedepth", "escalation",
     "rhat_max", "ess_per_chain_min", "ebfmi_min", "thresholds", "bounds", "implausible_share",
-    "check_draws", "conditions", "cross_validation", "refit_cap", "folds",
+    "check_draws", "conditions", "reference", "cross_validation", "refit_cap", "folds",
 )
 #: Bumped whenever the stored trial results change shape. Format 4: plain data only (no
 #: ArviZ objects), so reading them back imports neither ArviZ nor xarray.
