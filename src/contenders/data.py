@@ -36,6 +36,8 @@ class PredictorCoding:
     source: str          # column of the table it came from
     center: float        # value subtracted
     scale: float         # value divided by (1.0 for indicators)
+    level: str | None = None       # indicators: the level coded 1
+    reference: str | None = None   # indicators: the reference level (coded 0)
 
 
 @dataclass(frozen=True)
@@ -244,11 +246,11 @@ def build_design(
             text = col.astype(str).to_numpy()
             if name in reference and reference[name] not in set(text):
                 check_reference(table, {name: reference[name]}, predictors, (), source)
-            _, others = levels_with_reference(text, reference.get(name))
+            ref, others = levels_with_reference(text, reference.get(name))
             for level in others:
                 ind = (text == level).astype(float)
                 center = float(ind.mean())
-                coding.append(PredictorCoding(f"{name}[{level}]", name, center, 1.0))
+                coding.append(PredictorCoding(f"{name}[{level}]", name, center, 1.0, level, ref))
                 blocks.append((ind - center)[:, None])
     X = np.hstack(blocks) if blocks else np.zeros((y.size, 0))
 

@@ -20,7 +20,7 @@ import numpy as np
 
 from . import __version__
 from .compare import Comparison, OutOfSample, Plan, compare_candidates, plan_estimate
-from .candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for
+from .candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for, link_of
 from .config import RunConfig
 from .data import Design, build_design, check_reference, read_table
 from .engines import SamplingError, compile_all, get_engine
@@ -31,6 +31,7 @@ from .progress import Progress
 from .store import FitStore, StoredEngine, data_origin, trials_key
 from .errors import UserError
 from .trials.checks import PredictiveChecks, predictive_checks, thin_draws
+from .trials.coefficients import Coefficients, coefficient_summary, summary as coefficients_summary
 from .trials.effects import compare_effects, effect_draws, effects_summary
 from .trials.posterior import Health, fit_with_health
 from .trials.prior import PriorTrial, summarise_prior
@@ -83,6 +84,7 @@ class CandidateResult:
     posterior_file: str = ""           # stored NetCDF of the accepted posterior fit
     effects: list = field(default_factory=list)   # replicated effects (trials/effects.py)
     sensitivity: Sensitivity | None = None   # power-scaling of prior and likelihood (needs lprior)
+    coefficients: Coefficients | None = None   # coefficients in the outcome's units, group terms
     pending: Any = field(default=None, repr=False)   # RefitsDue while refits run elsewhere
 
 
@@ -216,6 +218,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         stored = getattr(engine, "paths", {}).get(c.id)
         res.posterior_file = str(stored[-1]) if stored else ""
         res.sensitivity = power_scaling(draws.idata, c.parameter_names)   # None without lprior
+        res.coefficients = coefficient_summary(draws.idata.posterior, design, *link_of(c))
         # 3. posterior predictive checks on a thinned set of draws
         res.stage = "checks"
         report(c.id, "checks")
@@ -607,6 +610,7 @@ def candidate_summary(r: CandidateResult, comparison: Comparison) -> dict[str, A
         "elpd_mcse": o.mcse if o else None,
         "tied_with": r.tied_with,
         "power_scaling": sensitivity_summary(r.sensitivity),
+        "coefficients": coefficients_summary(r.coefficients),
         "rank": row.get("rank"),
         "hyperparameters": r.hyperparameters,
         "code_sha256": r.code_hash,
