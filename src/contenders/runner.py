@@ -175,6 +175,28 @@ def _stack(idata_group, name: str) -> np.ndarray:
     return values.reshape(-1, values.shape[-1])
 
 
+def prior_parameters(posterior, names, J: int, K: int) -> dict[str, np.ndarray]:
+    """Each scalar parameter's prior draws (vector elements as ``name[k]``), in the
+    order of the stacked ``y_rep`` draws; the group terms (one value per group) are
+    left out, since a prior on each group's term is the group SD's business."""
+    from .trials.coefficients import group_terms
+
+    flat = {}
+    for name in names:
+        if name not in posterior:
+            continue
+        values = np.asarray(posterior[name].values, dtype=float)
+        flat[name] = values.reshape(values.shape[0] * values.shape[1], -1)
+    skip = group_terms({k: v.shape[1] for k, v in flat.items()}, J, K)
+    out = {}
+    for name, v in flat.items():
+        if name in skip or v.shape[1] == 0:
+            continue
+        for j in range(v.shape[1]):
+            out[name if posterior[name].ndim == 2 else f"{name}[{j + 1}]"] = v[:, j]
+    return out
+
+
 def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
                   defer_refits: bool = False) -> CandidateResult:
     """All trials of one candidate; exceptions are recorded, never raised. With
@@ -203,6 +225,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         res.prior = summarise_prior(
             _stack(pdraws.idata.posterior_predictive, "y_rep"), design.y, cfg.bounds,
             cfg.thresholds, cfg.implausible_share,
+            parameters=prior_parameters(pdraws.idata.posterior, c.parameter_names, design.J, design.K),
         )
         del pdraws
         # 2. posterior fit with sampler health

@@ -253,7 +253,7 @@ def _prior_plausibility(result, cands) -> Table:
               ["Candidate", "Prior datasets", "Plausible (inside every bound)", "Datasets with non-finite values",
                "Reading and what to do next"],
               csv_headers=["id", "label", "prior_draws", "plausible_share", "nonfinite_datasets", "flagged",
-                           "message"],
+                           "message", "failing_bounds", "fixable_by_narrower_priors"],
               numeric=[False, True, True, True, False])
     for r in cands:
         p = r.prior
@@ -272,7 +272,10 @@ def _prior_plausibility(result, cands) -> Table:
                  "flag" if p.flagged else ""),
                n(fmt.integer(p.n_nonfinite), "flag" if p.n_nonfinite else ""),
                Cell(msg, "wrap")],
-              [r.id, r.label, p.n_draws, p.plausible_share, p.n_nonfinite, p.flagged, p.message],
+              [r.id, r.label, p.n_draws, p.plausible_share, p.n_nonfinite, p.flagged, p.message,
+               " ".join(f["statistic"] for f in getattr(p, "failing", [])) or None,
+               " ".join(f"{f['statistic']}={'unknown' if f['fixable'] is None else str(f['fixable']).lower()}"
+                        for f in getattr(p, "failing", [])) or None],
               "flagged" if p.flagged else "")
     return t
 
