@@ -108,3 +108,45 @@ def test_support_problems():
     assert support_problem(y, "positive").startswith("1 outcome value(s) are zero or negative")
     assert support_problem(y, "count").startswith("1 outcome value(s) are not whole numbers")
     assert support_problem(np.array([0.0, 1.0]), "binary") is None
+
+
+# --- the reference level of a text column ------------------------------------------------
+
+def test_reference_level_chosen_by_the_user_changes_the_indicators():
+    """With cue = "on" as the reference, the indicator is for "off" (hand computation:
+    4 of the 10 kept rows are "off", so it is centred at 0.4)."""
+    d = build_design(_table(), "rt", ["cue"], reference={"cue": "on"})
+    assert [c.name for c in d.coding] == ["cue[off]"]
+    off = np.array([0, 1, 0, 1, 0, 1, 0, 1, 0, 0], dtype=float)
+    np.testing.assert_allclose(d.X[:, 0], off - 0.4)
+
+
+def test_bad_reference_level_is_one_error_naming_the_column_and_its_levels():
+    from contenders.data import check_reference
+
+    with pytest.raises(UserError) as err:
+        check_reference(_table(), {"cue": "maybe"}, ["cue"], (), source="t.csv")
+    msg = err.value.message
+    assert "t.csv" in msg and "'cue'" in msg and "'maybe'" in msg and "off, on" in msg
+    with pytest.raises(UserError, match="neither a predictor nor a condition"):
+        check_reference(_table(), {"who": "p1"}, ["cue"], (), source="t.csv")
+    with pytest.raises(UserError, match="numeric"):
+        check_reference(_table(), {"load": "3"}, ["load"], (), source="t.csv")
+    check_reference(_table(), {"who": "p2"}, ["cue"], ("who",))   # a condition column: fine
+    with pytest.raises(UserError, match="off, on"):
+        build_design(_table(), "rt", ["cue"], reference={"cue": "maybe"})
+
+
+def test_reference_level_from_toml_and_from_the_flag():
+    from pathlib import Path
+
+    from contenders.config import apply_flags, from_mapping, parse_flag
+
+    cfg = from_mapping({"data": {"reference": {"density": "dense", "cue": "off"}}}, Path("."))
+    assert dict(cfg.reference) == {"density": "dense", "cue": "off"}
+    flagged = apply_flags(cfg, {"reference": parse_flag("reference", "density=sparse")})
+    assert dict(flagged.reference) == {"density": "sparse"}
+    with pytest.raises(UserError, match="--reference must look like"):
+        parse_flag("reference", "density")
+    with pytest.raises(UserError, match="reference"):
+        from_mapping({"data": {"reference": {"density": 1.5}}}, Path("."))

@@ -362,3 +362,21 @@ def test_replicated_slope_of_sleepstudy_under_the_normal_candidate(engine, built
     mcse = np.sqrt(np.mean(sigma**2) / np.sum((days - days.mean()) ** 2) / expected.size)
     assert abs(e.draws.mean() - expected.mean()) < 4 * mcse, (e.draws.mean(), expected.mean(), mcse)
     assert e.lower < 10.467 < e.upper, (e.lower, e.upper)
+
+
+def test_condition_reference_level_set_by_the_user_flips_the_difference():
+    """cue with reference "on": the difference is off minus on, the negative of the
+    default on minus off (hand computation on the observed data)."""
+    t = pd.DataFrame({"rt": [500.0, 520.0, 610.0, 650.0, 480.0, 700.0],
+                      "cue": ["off", "off", "on", "on", "off", "on"]})
+    y = t["rt"].to_numpy()
+    default = level_differences(y, t["cue"], "mean")
+    flipped = level_differences(y, t["cue"], "mean", reference="on")
+    assert list(default) == ["on"] and list(flipped) == ["off"]
+    assert float(default["on"]) == pytest.approx((610 + 650 + 700) / 3 - (500 + 520 + 480) / 3)
+    assert float(flipped["off"]) == pytest.approx(-float(default["on"]))
+    reps = np.tile(y, (3, 1))
+    (mean_e, median_e) = effect_draws(reps, y, t, conditions=("cue",), reference={"cue": "on"})
+    assert mean_e.level == "off" and mean_e.reference == "on"
+    assert mean_e.title == "cue: off minus on, difference in mean"
+    assert mean_e.observed == pytest.approx(float(flipped["off"]))

@@ -188,3 +188,61 @@ def test_sleepstudy_slope_matches_published_value(tmp_path, programs):
     # the coefficient is per SD of Days; divide by that SD for ms per day
     slope = c.health.posterior_means["coef[1]"] / coding.scale
     assert abs(slope - 10.47) < 1.0, slope
+
+
+# --- reading a failing plausibility bound ---------------------------------------------
+
+def test_failing_bound_that_a_narrower_prior_fixes_names_the_parameter_and_range():
+    """Datasets normal(500, sigma) with sigma drawn half-normal(0, 300): the minimum of
+    200 values falls below 100 ms for large sigma only. The lowest tenth of sigma's draws
+    keeps every minimum inside (500 - 3.5 * sigma > 100 for sigma below about 110), so
+    the reading names sigma and its lowest tenth (checked against a direct count)."""
+    from contenders.trials.prior import summarise_prior
+
+    rng = np.random.default_rng(4)
+    sigma = np.abs(rng.normal(0, 300, 1000))
+    y_rep = rng.normal(500, sigma[:, None], (1000, 200))
+    p = summarise_prior(y_rep, rng.normal(500, 50, 200), {"min": (100.0, np.inf)}, (), 0.5,
+                        parameters={"sigma": sigma, "noise": rng.normal(size=1000)})
+    assert p.flagged
+    (r,) = p.failing
+    assert r["statistic"] == "min" and r["reading"] == "narrow_one" and r["best_parameter"] == "sigma"
+    low, high = np.quantile(sigma, [0.0, 0.1])
+    assert r["best_range"] == pytest.approx((low, high))
+    inside = y_rep.min(axis=1) >= 100
+    assert r["best_share"] == pytest.approx(inside[sigma <= high].mean())
+    assert r["below"] == pytest.approx(1 - inside.mean())
+    assert "narrower priors can fix this" in p.message and "sigma between" in p.message
+
+
+def test_failing_bound_from_the_family_structure_says_priors_will_not_fix_it():
+    """A lognormal mixed with a uniform share on (0, max y), as the contaminated built-in
+    does, with its default prior widths (log-scale location sd 1.5, sigma half-normal
+    with scale 1, share beta(1, 19)) and 1,440 observations: a dataset stays above
+    100 only when the share of guesses is near 0, P(min >= 100) = (1 - stray * 100 /
+    2000)^1440 (exact computation), and the lognormal part is narrow and high at once,
+    so no tenth of any one parameter's draws gives even a quarter of plausible datasets
+    under the demo's bounds."""
+    from contenders.trials.prior import summarise_prior
+
+    rng = np.random.default_rng(5)
+    S, N = 1000, 1440
+    stray = rng.beta(1, 19, S)
+    sigma = np.abs(rng.normal(0, 1.0, S))
+    mu = rng.normal(np.log(600), 1.5, S)
+    # participant intercepts (30 of them, SD half-normal with scale 0.5), as in the demo design
+    offsets = np.abs(rng.normal(0, 0.5, S))[:, None] * rng.normal(size=(S, 30))
+    y_rep = np.exp(rng.normal(mu[:, None] + np.repeat(offsets, N // 30, axis=1), sigma[:, None], (S, N)))
+    guess = rng.uniform(size=(S, N)) < stray[:, None]
+    y_rep[guess] = rng.uniform(0, 2000, guess.sum())
+    # the demo's bounds (demo_data/demo.toml)
+    bounds = {"mean": (200.0, 3000.0), "min": (100.0, np.inf), "max": (0.0, 20000.0)}
+    p = summarise_prior(y_rep, np.full(N, 600.0), bounds, (), 0.5,
+                        parameters={"stray": stray, "sigma": sigma, "mu": mu})
+    r = p.failing[0]
+    assert r["reading"] == "structure" and r["below"] > 0.8 and r["best_share"] < 0.25, r
+    assert "narrower priors will not fix this" in p.message
+    assert "tighten this candidate's priors" not in p.message
+    # without the parameters' draws the reading says which side fails and nothing more
+    bare = summarise_prior(y_rep, np.full(N, 600.0), {"min": (100.0, np.inf)}, (), 0.5)
+    assert bare.failing[0]["fixable"] is None and f"{100 * r['below']:.0f} % below 100" in bare.message

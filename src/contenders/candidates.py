@@ -307,6 +307,58 @@ def check_against_data(c: Candidate, design: Design, overrides: Mapping[str, Any
         c.problems.append(exc.message)
 
 
+@dataclass(frozen=True)
+class Link:
+    """How a built-in maps its linear predictor ``eta = intercept + X * coef (+ group
+    term)`` to the outcome: ``kind`` is ``identity`` (eta is in the outcome's units) or
+    ``log`` (exp(eta) is); ``sets`` names the quantity eta (or exp(eta)) is, and
+    ``moves`` what a coefficient moves, with every other parameter held fixed."""
+
+    kind: str
+    sets: str
+    moves: str
+
+
+#: The link of every built-in, read from its program in ``stan/`` (the comment at the top
+#: of each file and its likelihood line). With the other parameters fixed, a change in
+#: eta shifts the whole distribution under an identity link and scales it under a log
+#: link (for the gamma, Weibull and inverse Gaussian because their shape, or CV, is one
+#: parameter for all observations).
+BUILTIN_LINKS: dict[str, Link] = {
+    "normal": Link("identity", "mean", "the mean"),
+    "student_t": Link("identity", "location (the mean when nu > 1)", "the location"),
+    "skew_normal": Link("identity", "location (not the mean)", "the location and the mean alike"),
+    "exgaussian": Link("identity", "mean of the normal part (the mean is this plus tau)",
+                       "the mean"),
+    "lognormal": Link("log", "median", "every quantile (and the mean)"),
+    "shifted_lognormal": Link("log", "median of the outcome minus the shift",
+                              "every quantile of the outcome minus the shift"),
+    "lognormal_contaminated": Link("log", "median of the lognormal part",
+                                   "every quantile of the lognormal part (not the guesses)"),
+    "gamma": Link("log", "mean", "the mean (and every quantile)"),
+    "weibull": Link("log", "scale (the 63rd percentile)", "every quantile (and the mean)"),
+    "inverse_gaussian": Link("log", "mean", "the mean (and every quantile)"),
+}
+
+
+def link_of(c: "Candidate") -> tuple[Link | None, str]:
+    """The link of a candidate and, when it is not known, why: only an unchanged built-in
+    program has a known link (a user's program may map its linear predictor in any way)."""
+    link = BUILTIN_LINKS.get(c.id)
+    if link is None:
+        return None, ("not a built-in program, so how its linear predictor maps to the outcome is not "
+                      "known: only the internal values are shown")
+    shipped = builtin_folder() / f"{c.id}.stan"
+    try:
+        same = shipped.read_text(encoding="utf-8") == c.code
+    except OSError:
+        same = False
+    if not same:
+        return None, (f"its program differs from the built-in '{c.id}', so its link is not known: only the "
+                      "internal values are shown")
+    return link, ""
+
+
 def builtin_folder() -> Path:
     """The folder of built-in candidates shipped with the source tree (``stan/``)."""
     return Path(__file__).resolve().parents[2] / "stan"

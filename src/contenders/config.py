@@ -29,6 +29,7 @@ class RunConfig:
     predictors: tuple[str, ...] = ()
     group: str | None = None
     conditions: tuple[str, ...] = ()
+    reference: Mapping[str, str] = field(default_factory=dict)   # column -> reference level
     typical_value: float | None = None
     typical_spread: float | None = None
     candidates: Path | None = None          # None: the built-in candidates
@@ -69,7 +70,7 @@ class RunConfig:
 # TOML layout: section -> {key: field name}
 _LAYOUT: dict[str, dict[str, str]] = {
     "data": {"file": "data", "outcome": "outcome", "predictors": "predictors", "group": "group",
-             "conditions": "conditions", "typical_value": "typical_value",
+             "conditions": "conditions", "reference": "reference", "typical_value": "typical_value",
              "typical_spread": "typical_spread"},
     "candidates": {"folder": "candidates", "only": "only"},
     "sampler": {"chains": "chains", "warmup": "warmup", "draws": "draws",
@@ -87,7 +88,7 @@ _LAYOUT: dict[str, dict[str, str]] = {
 _SECTIONS = tuple(_LAYOUT) + ("hyperparameters",)
 
 _TYPES: dict[str, str] = {
-    "data": "path", "outcome": "str", "predictors": "strs", "group": "str", "conditions": "strs",
+    "data": "path", "outcome": "str", "predictors": "strs", "group": "str", "conditions": "strs", "reference": "levels",
     "typical_value": "float", "typical_spread": "posfloat", "candidates": "path", "only": "strs",
     "out": "path", "store": "path", "chains": "posint", "warmup": "int0", "draws": "posint", "prior_draws": "posint",
     "seed": "int0", "adapt_delta": "prob", "escalation": "probs", "max_treedepth": "posint",
@@ -110,6 +111,7 @@ _DESCRIBE = {
     "bool": "true or false",
     "cv": "one of loo, kfold, leave_group_out", "folds": "a whole number >= 2",
     "reps": "0 (no model recovery) or a whole number >= 2",
+    "levels": "a table column = \"level\", e.g. {density = \"dense\"}",
     "address": "a Dask scheduler address such as tcp://HOST:PORT, or empty for this machine",
 }
 
@@ -193,6 +195,16 @@ def _convert(key: str, value: Any, base: Path) -> Any:
         if not isinstance(value, str) or (value and "://" not in value and ":" not in value):
             raise bad()
         return value.strip()
+    if kind == "levels":
+        if not isinstance(value, Mapping):
+            raise bad()
+        out_levels = {}
+        for col, level in value.items():
+            if isinstance(level, bool) or not isinstance(level, (str, int)) or str(level) == "":
+                raise UserError(f"configuration key 'reference': the level of column '{col}' must be text "
+                                f"in quotes, e.g. {col} = \"dense\"; got {level!r}")
+            out_levels[str(col)] = str(level)
+        return out_levels
     if kind == "bool":
         if not isinstance(value, bool):
             raise bad()
@@ -311,6 +323,9 @@ HELP: dict[str, str] = {
     "predictors": "predictor columns, comma-separated (numeric: centred and scaled; text: indicators)",
     "group": "grouping column for varying intercepts (participants, items, machines)",
     "conditions": "columns whose levels get their own predictive checks, comma-separated",
+    "reference": "reference level of a text predictor or condition column, e.g. density=dense,cue=off "
+                 "(default: the first level in sorted order); coefficients and effects are each level "
+                 "minus the reference",
     "typical_value": "typical value of the outcome for default priors (default: its median)",
     "typical_spread": "typical spread of the outcome for default priors (default: its SD)",
     "candidates": "folder of .stan candidate files (default: the built-in candidates)",
@@ -373,6 +388,14 @@ def parse_flag(name: str, text: str) -> Any:
             return [_number(v) for v in text.split(",") if v.strip()]
         except ValueError:
             raise UserError(f"--{name.replace('_', '-')} must be {_DESCRIBE[kind]}; got {text!r}") from None
+    if kind == "levels":
+        levels = {}
+        for part in filter(None, (p.strip() for p in text.split(","))):
+            col, eq, level = part.partition("=")
+            if not eq or not col.strip() or not level.strip():
+                raise UserError(f"--reference must look like density=dense,cue=off; got {part!r}")
+            levels[col.strip()] = level.strip()
+        return levels
     if kind == "bounds":
         out = {}
         for part in filter(None, (p.strip() for p in text.split(","))):

@@ -6,9 +6,10 @@ Coding of predictors (documented in the README, relied on by the built-in priors
   standard deviation (ddof = 1), so a coefficient is the change in the linear
   predictor per standard deviation of that column;
 * a non-numeric predictor column (text, category or boolean) is expanded into one
-  0/1 indicator per level except the first level in sorted order (the reference
-  level), and each indicator is centred at its mean, so that the intercept stays
-  at the average of the data rather than at the reference level.
+  0/1 indicator per level except the reference level (the level the user named with
+  ``[data] reference``, else the first level in sorted order), and each indicator is
+  centred at its mean, so that the intercept stays at the average of the data rather
+  than at the reference level.
 
 The reference scale passed to every candidate as ``y_center`` and ``y_scale`` is the
 user's stated typical value and typical spread when given, else the median and the
@@ -19,7 +20,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Sequence
+from typing import Mapping, Sequence
 
 import numpy as np
 import pandas as pd
@@ -35,6 +36,8 @@ class PredictorCoding:
     source: str          # column of the table it came from
     center: float        # value subtracted
     scale: float         # value divided by (1.0 for indicators)
+    level: str | None = None       # indicators: the level coded 1
+    reference: str | None = None   # indicators: the reference level (coded 0)
 
 
 @dataclass(frozen=True)
@@ -97,6 +100,59 @@ class Design:
 SUPPLIED_INPUTS = ("N", "y", "K", "X", "J", "group", "N_fit", "fit_idx", "y_center", "y_scale")
 
 
+def levels_with_reference(labels: Sequence, reference: str | None = None) -> tuple[str, list[str]]:
+    """The reference level of a column and its other levels (sorted), from the text of
+    its values: ``reference`` when given (it must be one of the levels), else the first
+    level in sorted order. The one rule behind the predictors' indicators and the
+    effects' differences."""
+    levels = sorted(set(np.asarray(labels).astype(str)))
+    if reference is None:
+        return levels[0], levels[1:]
+    if reference not in levels:
+        raise ValueError(f"reference level {reference!r} is not one of {levels}")
+    return reference, [lev for lev in levels if lev != reference]
+
+
+def _is_numeric(col: pd.Series) -> bool:
+    return bool(pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col))
+
+
+def check_reference(
+    table: pd.DataFrame,
+    reference: Mapping[str, str],
+    predictors: Sequence[str] = (),
+    conditions: Sequence[str] = (),
+    source: str = "data",
+) -> None:
+    """One clear error for a reference level that cannot be used: its column is not a
+    text predictor or a condition column of the run, or the level is not one of the
+    column's levels (the message lists them)."""
+    for col, level in reference.items():
+        how = f'[data] reference = {{{col} = "LEVEL"}} or --reference {col}=LEVEL'
+        if col not in predictors and col not in conditions:
+            raise UserError(
+                f"{source}: a reference level is set for column '{col}', which is neither a predictor nor "
+                f"a condition of this run; the text predictors and conditions are: "
+                + (", ".join(c for c in (*predictors, *conditions) if c in table.columns
+                             and (c in conditions or not _is_numeric(table[c]))) or "(none)")
+                + "; remove it or add the column under predictors or conditions."
+            )
+        if col not in table.columns:
+            continue   # the missing column is reported with its role by the caller
+        if col in predictors and col not in conditions and _is_numeric(table[col]):
+            raise UserError(
+                f"{source}: a reference level is set for column '{col}', which is numeric: it enters the "
+                "candidates as a slope and has no reference level; remove it from [data] reference."
+            )
+        levels = sorted(set(table[col].dropna().astype(str)))
+        if str(level) not in levels:
+            shown = ", ".join(levels[:20]) + (f" and {len(levels) - 20} more" if len(levels) > 20 else "")
+            raise UserError(
+                f"{source}: reference level '{level}' of column '{col}' is not one of its levels: {shown}; "
+                f"set {how} to one of them."
+            )
+
+
 def read_table(path: str | Path) -> pd.DataFrame:
     """Read a CSV file with a header row, with messages a user can act on."""
     path = Path(path)
@@ -126,13 +182,17 @@ def build_design(
     typical_spread: float | None = None,
     source: str = "data",
     min_rows: int = 10,
+    reference: Mapping[str, str] | None = None,
 ) -> Design:
     """Check the table and build the :class:`Design` (see the module docstring).
 
     Rows whose outcome is missing or not finite are dropped and counted in
     ``dropped_rows``; missing values in a predictor or the group column are an error,
     because silently dropping them would change which rows every candidate sees.
+    ``reference`` maps a text predictor column to its reference level (checked with
+    :func:`check_reference`; by default the first level in sorted order).
     """
+    reference = dict(reference or {})
     columns = [str(c) for c in table.columns]
     for role, name in [("outcome", outcome), *[("predictor", p) for p in predictors],
                        *([("group", group)] if group else [])]:
@@ -183,12 +243,14 @@ def build_design(
             coding.append(PredictorCoding(name, name, center, scale))
             blocks.append(((x - center) / scale)[:, None])
         else:
-            levels = sorted(col.astype(str).unique())
             text = col.astype(str).to_numpy()
-            for level in levels[1:]:
+            if name in reference and reference[name] not in set(text):
+                check_reference(table, {name: reference[name]}, predictors, (), source)
+            ref, others = levels_with_reference(text, reference.get(name))
+            for level in others:
                 ind = (text == level).astype(float)
                 center = float(ind.mean())
-                coding.append(PredictorCoding(f"{name}[{level}]", name, center, 1.0))
+                coding.append(PredictorCoding(f"{name}[{level}]", name, center, 1.0, level, ref))
                 blocks.append((ind - center)[:, None])
     X = np.hstack(blocks) if blocks else np.zeros((y.size, 0))
 

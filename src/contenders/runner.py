@@ -20,9 +20,9 @@ import numpy as np
 
 from . import __version__
 from .compare import Comparison, OutOfSample, Plan, compare_candidates, plan_estimate
-from .candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for
+from .candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for, link_of
 from .config import RunConfig
-from .data import Design, build_design, read_table
+from .data import Design, build_design, check_reference, read_table
 from .engines import SamplingError, compile_all, get_engine
 from .engines.base import SamplerSettings
 from .engines.lazy import LazyEngine
@@ -31,6 +31,7 @@ from .progress import Progress
 from .store import FitStore, StoredEngine, data_origin, trials_key
 from .errors import UserError
 from .trials.checks import PredictiveChecks, predictive_checks, thin_draws
+from .trials.coefficients import Coefficients, coefficient_summary, summary as coefficients_summary
 from .trials.effects import compare_effects, effect_draws, effects_summary
 from .trials.posterior import Health, fit_with_health
 from .trials.prior import PriorTrial, summarise_prior
@@ -83,6 +84,7 @@ class CandidateResult:
     posterior_file: str = ""           # stored NetCDF of the accepted posterior fit
     effects: list = field(default_factory=list)   # replicated effects (trials/effects.py)
     sensitivity: Sensitivity | None = None   # power-scaling of prior and likelihood (needs lprior)
+    coefficients: Coefficients | None = None   # coefficients in the outcome's units, group terms
     pending: Any = field(default=None, repr=False)   # RefitsDue while refits run elsewhere
 
 
@@ -120,9 +122,10 @@ def load_design(cfg: RunConfig) -> Design:
                 f"{cfg.data}: condition column '{cond}' not found; the columns are: "
                 + ", ".join(map(str, table.columns))
             )
+    check_reference(table, cfg.reference, cfg.predictors, cfg.conditions, source=str(cfg.data))
     return build_design(
         table, cfg.outcome, cfg.predictors, cfg.group, cfg.typical_value, cfg.typical_spread,
-        source=str(cfg.data),
+        source=str(cfg.data), reference=cfg.reference,
     )
 
 
@@ -172,6 +175,28 @@ def _stack(idata_group, name: str) -> np.ndarray:
     return values.reshape(-1, values.shape[-1])
 
 
+def prior_parameters(posterior, names, J: int, K: int) -> dict[str, np.ndarray]:
+    """Each scalar parameter's prior draws (vector elements as ``name[k]``), in the
+    order of the stacked ``y_rep`` draws; the group terms (one value per group) are
+    left out, since a prior on each group's term is the group SD's business."""
+    from .trials.coefficients import group_terms
+
+    flat = {}
+    for name in names:
+        if name not in posterior:
+            continue
+        values = np.asarray(posterior[name].values, dtype=float)
+        flat[name] = values.reshape(values.shape[0] * values.shape[1], -1)
+    skip = group_terms({k: v.shape[1] for k, v in flat.items()}, J, K)
+    out = {}
+    for name, v in flat.items():
+        if name in skip or v.shape[1] == 0:
+            continue
+        for j in range(v.shape[1]):
+            out[name if posterior[name].ndim == 2 else f"{name}[{j + 1}]"] = v[:, j]
+    return out
+
+
 def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
                   defer_refits: bool = False) -> CandidateResult:
     """All trials of one candidate; exceptions are recorded, never raised. With
@@ -200,6 +225,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         res.prior = summarise_prior(
             _stack(pdraws.idata.posterior_predictive, "y_rep"), design.y, cfg.bounds,
             cfg.thresholds, cfg.implausible_share,
+            parameters=prior_parameters(pdraws.idata.posterior, c.parameter_names, design.J, design.K),
         )
         del pdraws
         # 2. posterior fit with sampler health
@@ -215,6 +241,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         stored = getattr(engine, "paths", {}).get(c.id)
         res.posterior_file = str(stored[-1]) if stored else ""
         res.sensitivity = power_scaling(draws.idata, c.parameter_names)   # None without lprior
+        res.coefficients = coefficient_summary(draws.idata.posterior, design, *link_of(c))
         # 3. posterior predictive checks on a thinned set of draws
         res.stage = "checks"
         report(c.id, "checks")
@@ -227,7 +254,8 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         conditions = {col: design.table[col].to_numpy() for col in cfg.conditions}
         res.checks = predictive_checks(design.y, y_rep[keep], log_lik[keep], cfg.thresholds, conditions)
         res.y_rep_sample = y_rep[thin_draws(y_rep.shape[0], FIGURE_DRAWS)].astype(np.float32)
-        res.effects = effect_draws(y_rep, design.y, design.table, cfg.conditions, cfg.predictors)
+        res.effects = effect_draws(y_rep, design.y, design.table, cfg.conditions, cfg.predictors,
+                                   reference=cfg.reference)
         del y_rep, log_lik
         # 4. out-of-sample: PSIS-LOO, exact refits of high-k observations, or K-fold
         res.stage = "out-of-sample"
@@ -605,6 +633,7 @@ def candidate_summary(r: CandidateResult, comparison: Comparison) -> dict[str, A
         "elpd_mcse": o.mcse if o else None,
         "tied_with": r.tied_with,
         "power_scaling": sensitivity_summary(r.sensitivity),
+        "coefficients": coefficients_summary(r.coefficients),
         "rank": row.get("rank"),
         "hyperparameters": r.hyperparameters,
         "code_sha256": r.code_hash,

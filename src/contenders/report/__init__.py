@@ -29,6 +29,7 @@ from . import recovery_section
 from .figure_store import drawn
 from . import format as fmt
 from .sensitivity import sensitivity_context
+from ..trials.coefficients import base_name, extremes, group_terms, sizes_of
 from .tables import MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, n, p_cell, pit_reading
 
 __all__ = ["write_report", "build_context", "CSV_FILES"]
@@ -61,7 +62,7 @@ CSV_FILES = (
     "ranking.csv", "verdict_certainty.csv", "prior_plausibility.csv", "prior_trial.csv",
     "sampler_health.csv", "out_of_sample.csv", "predictive_checks.csv", "grouped_checks.csv",
     "loo_pit.csv", "effects.csv", "hyperparameters.csv", "parameters.csv", "run_settings.csv", "candidate_files.csv",
-    "sensitivity.csv",
+    "sensitivity.csv", "coefficients.csv", "group_effects.csv",
 )
 
 
@@ -144,6 +145,9 @@ class CandidateView:
     checks: Table | None
     advice: list[str] = field(default_factory=list)
     fits: list[tuple[str, str]] = field(default_factory=list)   # (link relative to the report, name)
+    coefficients: Table | None = None
+    coefficients_note: str = ""
+    groups_note: str = ""
 
 
 def _name(r) -> str:
@@ -249,7 +253,7 @@ def _prior_plausibility(result, cands) -> Table:
               ["Candidate", "Prior datasets", "Plausible (inside every bound)", "Datasets with non-finite values",
                "Reading and what to do next"],
               csv_headers=["id", "label", "prior_draws", "plausible_share", "nonfinite_datasets", "flagged",
-                           "message"],
+                           "message", "failing_bounds", "fixable_by_narrower_priors"],
               numeric=[False, True, True, True, False])
     for r in cands:
         p = r.prior
@@ -268,7 +272,10 @@ def _prior_plausibility(result, cands) -> Table:
                  "flag" if p.flagged else ""),
                n(fmt.integer(p.n_nonfinite), "flag" if p.n_nonfinite else ""),
                Cell(msg, "wrap")],
-              [r.id, r.label, p.n_draws, p.plausible_share, p.n_nonfinite, p.flagged, p.message],
+              [r.id, r.label, p.n_draws, p.plausible_share, p.n_nonfinite, p.flagged, p.message,
+               " ".join(f["statistic"] for f in getattr(p, "failing", [])) or None,
+               " ".join(f"{f['statistic']}={'unknown' if f['fixable'] is None else str(f['fixable']).lower()}"
+                        for f in getattr(p, "failing", [])) or None],
               "flagged" if p.flagged else "")
     return t
 
@@ -539,14 +546,103 @@ def _hyper_table(r) -> Table:
     return t
 
 
-def _param_table(h) -> Table:
+def _group_names(r, design) -> set[str]:
+    """Base names of a candidate's group-level parameters (one value per group)."""
+    names = [row["parameter"] for row in r.health.table] if r.health is not None else []
+    return group_terms(sizes_of(names), design.J, design.K)
+
+
+def _param_table(h, groups: set[str] = frozenset(), design=None) -> Table:
+    """Posterior summaries; coefficients are named by their predictor, and the group
+    terms (one value per group) are folded into one row with their worst diagnostics."""
     t = Table("", ["Parameter", "Mean", "SD", "5 %", "95 %", "R-hat", "Bulk ESS", "Tail ESS"],
               numeric=[False] + [True] * 7)
+    names = {f"coef[{k + 1}]": c.name for k, c in enumerate(design.coding)} if design is not None else {}
+    folded: dict[str, list[dict]] = {}
     for row in h.table:
-        t.add([Cell(row["parameter"], "code"), n(fmt.num(row["mean"])), n(fmt.num(row["sd"], 2)),
+        base = base_name(row["parameter"])
+        if base in groups:
+            if base not in folded:
+                folded[base] = []
+                t.add([])   # placeholder, filled below at the first row's position
+                folded[base].append({"index": len(t.rows) - 1})
+            folded[base].append(row)
+            continue
+        label = row["parameter"] + (f" ({names[row['parameter']]})" if row["parameter"] in names else "")
+        t.add([Cell(label, "code"), n(fmt.num(row["mean"])), n(fmt.num(row["sd"], 2)),
                n(fmt.num(row["q05"])), n(fmt.num(row["q95"])), n(fmt.fixed(row["rhat"], 3)),
                n(fmt.integer(row["ess_bulk"])), n(fmt.integer(row["ess_tail"]))])
+    for base, (slot, *rows) in folded.items():
+        column = design.group_column if design is not None else "the group column"
+        t.rows[slot["index"]] = [
+            Cell(f"{base}[1] … {base}[{len(rows)}] ({len(rows)} groups of {column}; summarised below, "
+                 "every one in parameters.csv)", "code wrap"),
+            n(fmt.MISSING, "muted"), n(fmt.MISSING, "muted"), n(fmt.MISSING, "muted"), n(fmt.MISSING, "muted"),
+            n("largest " + fmt.fixed(max(r["rhat"] for r in rows), 3)),
+            n("smallest " + fmt.integer(min(r["ess_bulk"] for r in rows))),
+            n("smallest " + fmt.integer(min(r["ess_tail"] for r in rows)))]
     return t
+
+
+def _estimate95(values) -> str:
+    mean, lo, hi = values
+    return f"{fmt.num(mean)} ({fmt.interval(lo, hi)})"
+
+
+def _coefficient_table(c) -> Table | None:
+    """One candidate's coefficients: named, internal value and the value in the
+    outcome's units (ratio per unit under a log link), each with its 95 % interval."""
+    if c is None or not c.rows:
+        return None
+    t = Table("", ["Coefficient", "Internal (centred and scaled)", "In the outcome's units", "Meaning"],
+              numeric=[False, True, True, False])
+    for r in c.rows:
+        t.add([Cell(f"{r['name']} ({r['parameter']})", "code"), n(_estimate95(r["internal"])),
+               n(_estimate95(r["value"]) if c.link else fmt.MISSING, "" if c.link else "muted"),
+               Cell(r["units"] or "link not known", "wrap" if c.link else "wrap muted")])
+    return t
+
+
+def _coefficients_note(c) -> str:
+    if c is None or not c.rows:
+        return ""
+    if not c.link:
+        return f"Only the internal values: {c.reason}."
+    if c.link == "log":
+        return (f"Log link: exp(linear predictor) is the {c.sets}. A coefficient in the outcome's units is the "
+                f"ratio by which one unit of the predictor (or the level against the reference) multiplies "
+                f"{c.moves}; the intercept row is the {c.sets} at the predictors' zero, for a group at the "
+                "centre of the group distribution. Internal: per SD of a numeric predictor, on the log scale.")
+    return (f"Identity link: the linear predictor is the {c.sets}. A coefficient in the outcome's units is the "
+            f"change of {c.moves} per unit of the predictor (or between the level and the reference); the "
+            "intercept row is the value at the predictors' zero, for a group at the centre of the group "
+            "distribution. Internal: per SD of a numeric predictor.")
+
+
+def _groups_note(c) -> str:
+    """The group terms in one paragraph: count, SD parameter, the extreme groups."""
+    if c is None or not c.groups:
+        return ""
+    text = f"{len(c.groups)} groups of {c.group_column} ({c.group_parameter}[1] … {c.group_parameter}[{len(c.groups)}])"
+    if c.group_sd is not None:
+        unit = f" {c.outcome}" if c.link == "identity" else (" on the log scale" if c.link == "log" else "")
+        text += f"; their SD {c.group_sd_parameter} is {_estimate95(c.group_sd)}{unit}"
+    low, high = extremes(c)
+    known = bool(c.link) and np.isfinite(c.groups[0]["offset"][0])
+
+    def one(g) -> str:
+        if known and c.link == "log":
+            return f"{g['level']} (×{fmt.num(g['value'][0])}, {fmt.interval(g['value'][1], g['value'][2])})"
+        if known:
+            return f"{g['level']} ({fmt.num(g['offset'][0])} {c.outcome}, {fmt.interval(g['offset'][1], g['offset'][2])})"
+        return f"{g['level']} ({c.group_parameter} {fmt.num(g['internal'][0])})"
+
+    what = ("offset from the typical group, as a ratio" if known and c.link == "log" else
+            "offset from the typical group" if known else "internal value")
+    if low:
+        text += (f". Lowest, with their {what} and 95 % interval: " + "; ".join(one(g) for g in low)
+                 + ". Highest: " + "; ".join(one(g) for g in high))
+    return text + ". Every group is in group_effects.csv."
 
 
 def _fit_links(r, out) -> list[tuple[str, str]]:
@@ -575,11 +671,40 @@ def _candidate_views(result, cands) -> list[CandidateView]:
             rank=str(rows[r.id]["rank"]) if r.id in rows else fmt.MISSING,
             code=r.code, code_hash=r.code_hash, hyperparameters=_hyper_table(r),
             prior=_prior_table(r.prior) if r.prior is not None else None,
-            parameters=_param_table(r.health) if r.health is not None and r.health.table else None,
+            parameters=(_param_table(r.health, _group_names(r, result.design), result.design)
+                        if r.health is not None and r.health.table else None),
             checks=_check_table(r.checks, result.config.ppp_extreme) if r.checks is not None else None,
             advice=advice, fits=_fit_links(r, result.out),
+            coefficients=_coefficient_table(getattr(r, "coefficients", None)),
+            coefficients_note=_coefficients_note(getattr(r, "coefficients", None)),
+            groups_note=_groups_note(getattr(r, "coefficients", None)),
         ))
     return views
+
+
+def _coefficient_csvs(cands) -> list[Table]:
+    """coefficients.csv (every candidate's coefficients on both scales) and
+    group_effects.csv (every group's term and offset)."""
+    coefs = _long_csv("coefficients.csv", [
+        "id", "label", "link", "linear_predictor_sets", "parameter", "name", "column", "level", "reference",
+        "predictor_center", "predictor_scale", "internal_mean", "internal_q025", "internal_q975", "units",
+        "mean", "q025", "q975", "reason"], [])
+    groups = _long_csv("group_effects.csv", [
+        "id", "label", "link", "column", "level", "parameter", "internal_mean", "internal_q025", "internal_q975",
+        "offset_mean", "offset_q025", "offset_q975", "outcome_scale_mean", "outcome_scale_q025",
+        "outcome_scale_q975"], [])
+    for r in cands:
+        c = getattr(r, "coefficients", None)
+        if c is None:
+            continue
+        for row in c.rows:
+            coefs.csv_rows.append([r.id, r.label, c.link or None, c.sets or None, row["parameter"], row["name"],
+                                   row["column"], row["level"], row["reference"], row["center"], row["scale"],
+                                   *row["internal"], row["units"] or None, *row["value"], c.reason or None])
+        for g in c.groups:
+            groups.csv_rows.append([r.id, r.label, c.link or None, c.group_column, g["level"], g["parameter"],
+                                    *g["internal"], *g["offset"], *g["value"]])
+    return [coefs, groups]
 
 
 def _long_csv(name: str, headers: list[str], rows: list[list[Any]]) -> Table:
@@ -702,7 +827,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     settings = _settings(result, command_line)
     files = _files(result, cands)
     views = _candidate_views(result, cands)
-    sensitivity = sensitivity_context(cands)
+    sensitivity = sensitivity_context(cands, d.J, d.K)
 
     stats = [row["statistic"] for row in with_prior[0].prior.rows] if with_prior else []
     observed = {row["statistic"]: row["observed"] for row in with_prior[0].prior.rows} if with_prior else {}
@@ -760,6 +885,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "parameters.csv", ["id", "parameter", "mean", "sd", "q05", "q95", "rhat", "ess_bulk", "ess_tail"],
         [[r.id, row["parameter"], row["mean"], row["sd"], row["q05"], row["q95"], row["rhat"],
           row["ess_bulk"], row["ess_tail"]] for r in cands if r.health is not None for row in r.health.table]))
+    csv_tables.extend(_coefficient_csvs(cands))
     csv_tables = [t for t in csv_tables if t is not None]
 
     data_name = Path(str(cfg.data)).name if cfg.data else "data"

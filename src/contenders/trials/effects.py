@@ -48,14 +48,17 @@ KINDS = {"mean_difference": "difference in mean", "median_difference": "differen
 
 # --- one dataset's effects -------------------------------------------------------------
 
-def reference_and_levels(labels: Sequence) -> tuple[str, list[str]]:
-    """The reference level (first in sorted order of the text of the labels, as
-    ``data.build_design`` codes a text column) and the other levels, sorted."""
-    levels = sorted(set(np.asarray(labels).astype(str)))
-    return levels[0], levels[1:]
+def reference_and_levels(labels: Sequence, reference: str | None = None) -> tuple[str, list[str]]:
+    """The reference level (``reference`` when given, else the first in sorted order
+    of the text of the labels, as ``data.build_design`` codes a text column) and the
+    other levels, sorted."""
+    from ..data import levels_with_reference
+
+    return levels_with_reference(labels, reference)
 
 
-def level_differences(y: np.ndarray, labels: Sequence, statistic: str = "mean") -> dict[str, np.ndarray]:
+def level_differences(y: np.ndarray, labels: Sequence, statistic: str = "mean",
+                      reference: str | None = None) -> dict[str, np.ndarray]:
     """Difference of ``statistic`` (``mean`` or ``median``) of the outcome between each
     level of ``labels`` and the reference level, along the last axis of ``y``.
 
@@ -65,7 +68,7 @@ def level_differences(y: np.ndarray, labels: Sequence, statistic: str = "mean") 
     (as in ``statistics.compute``), even where a median would stay finite."""
     y = np.asarray(y, dtype=float)
     text = np.asarray(labels).astype(str)
-    ref, others = reference_and_levels(text)
+    ref, others = reference_and_levels(text, reference)
     fn = {"mean": np.mean, "median": np.median}[statistic]
     finite = np.all(np.isfinite(y), axis=-1)
     with np.errstate(invalid="ignore", over="ignore"):
@@ -149,6 +152,7 @@ def effect_draws(
     conditions: Sequence[str] = (),
     predictors: Sequence[str] = (),
     max_draws: int = MAX_DRAWS,
+    reference: Mapping[str, str] | None = None,
 ) -> list[Effect]:
     """Every effect of one candidate, from its replicated datasets.
 
@@ -158,7 +162,9 @@ def effect_draws(
     difference in median (level minus reference); each numeric column among
     ``predictors`` gives a least-squares slope in outcome units per unit of that
     column, from the raw column (not the centred and scaled one the candidates see).
-    At most ``max_draws`` evenly spaced draws are used."""
+    ``reference`` maps a condition column to its reference level (by default the
+    first level in sorted order). At most ``max_draws`` evenly spaced draws are used."""
+    reference = dict(reference or {})
     if table is None or y_rep is None or np.size(y_rep) == 0:
         return []
     y_rep = np.asarray(y_rep)
@@ -168,10 +174,10 @@ def effect_draws(
         if col not in table.columns:
             continue
         labels = table[col].astype(str).to_numpy()
-        ref, _ = reference_and_levels(labels)
+        ref, _ = reference_and_levels(labels, reference.get(col))
         for stat in ("mean", "median"):
-            obs = level_differences(y, labels, stat)
-            rep = level_differences(reps, labels, stat)
+            obs = level_differences(y, labels, stat, ref)
+            rep = level_differences(reps, labels, stat, ref)
             kind = f"{stat}_difference"
             for level in obs:
                 out.append(_effect(f"{col}={level}-{ref}:{kind}", kind, col, level, ref, obs[level], rep[level]))
