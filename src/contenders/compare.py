@@ -639,7 +639,7 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
                         f"the data ({', '.join(features)}): do not trust {'its' if len(missing) == 1 else 'their'} "
                         "predictions of these (details below).")
         else:
-            lead.append(("It fails" if len(preferred) == 1 else "None of them fails") + " a predictive check; "
+            lead.append(("It fails no" if len(preferred) == 1 else "None of them fails a") + " predictive check; "
                         "checks can reveal misfit, not prove fit.")
 
         # --- the details
