@@ -491,6 +491,7 @@ def _place(st: Standing, n: int) -> str:
 
 def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
     """Short descriptions of the predictive checks a candidate fails."""
+    from .report.format import pvalue_against
     from .trials.statistics import describe
 
     if r.checks is None:
@@ -502,10 +503,10 @@ def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
             # p = Pr(T(y_rep) >= T(y)): near 0, replicates fall short of the observed value
             side = "lower" if p < 0.5 else "higher"
             out.append(f"{describe(row['statistic'])} (replicates {side} than the observed "
-                       f"{row['observed']:.4g}; p = {p:.3f})")
+                       f"{row['observed']:.4g}; p = {pvalue_against(p, ppp_extreme, 1 - ppp_extreme)})")
     test = r.checks.loo_pit_test
     if np.isfinite(test["p_value"]) and test["p_value"] < pit_alpha:
-        out.append(f"calibration (LOO-PIT not uniform, p = {test['p_value']:.2g})")
+        out.append(f"calibration (LOO-PIT not uniform, p = {pvalue_against(test['p_value'], pit_alpha)})")
     return out
 
 
@@ -546,8 +547,8 @@ def _stacking_sentence(ranked, stack_w, st: dict[str, Standing], rows: dict[str,
     sentence = ("Stacking, which looks for the mixture of candidates that predicts best, puts its weight on "
                 + "; ".join(parts))
     if best.id not in {rid for _, rid in top}:
-        sentence += (f"; {best.label} gets almost none because the others together already predict what it "
-                     "predicts (candidates that complement each other can outweigh the single best one)")
+        sentence += (f"; {best.label} gets less than 0.05: a mixture of the others predicts better than one "
+                     "that adds it (candidates that complement each other can outweigh the single best one)")
     return sentence + "."
 
 
