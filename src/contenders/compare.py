@@ -489,6 +489,11 @@ def _place(st: Standing, n: int) -> str:
     return f"ranks {st.rank} of {n}" + (" (tied within Monte Carlo error)" if "–" in st.rank else "")
 
 
+def _p_is(text: str) -> str:
+    """"p = 0.004", or "p < 0.001" when the value is written as a bound."""
+    return "p " + text if text[:1] in "<>" else "p = " + text
+
+
 def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
     """Short descriptions of the predictive checks a candidate fails."""
     from .report.format import pvalue_against
@@ -503,10 +508,10 @@ def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
             # p = Pr(T(y_rep) >= T(y)): near 0, replicates fall short of the observed value
             side = "lower" if p < 0.5 else "higher"
             out.append(f"{describe(row['statistic'])} (replicates {side} than the observed "
-                       f"{row['observed']:.4g}; p = {pvalue_against(p, ppp_extreme, 1 - ppp_extreme)})")
+                       f"{row['observed']:.4g}; {_p_is(pvalue_against(p, ppp_extreme, 1 - ppp_extreme))})")
     test = r.checks.loo_pit_test
     if np.isfinite(test["p_value"]) and test["p_value"] < pit_alpha:
-        out.append(f"calibration (LOO-PIT not uniform, p = {pvalue_against(test['p_value'], pit_alpha)})")
+        out.append(f"calibration (LOO-PIT not uniform, {_p_is(pvalue_against(test['p_value'], pit_alpha))})")
     return out
 
 
@@ -550,6 +555,46 @@ def _stacking_sentence(ranked, stack_w, st: dict[str, Standing], rows: dict[str,
         sentence += (f"; {best.label} gets less than 0.05: a mixture of the others predicts better than one "
                      "that adds it (candidates that complement each other can outweigh the single best one)")
     return sentence + "."
+
+
+def _how_sure(ranked, st: dict[str, Standing], rows: dict[str, dict]) -> str:
+    """The lead's second sentence: how far behind the others are, group by standing."""
+    def are(group) -> str:
+        return "is" if len(group) == 1 else "are"
+
+    def span(group) -> str:
+        if len(group) == 1:
+            row = rows[group[0].id]
+            return f"{row['elpd_diff']:.1f} elpd behind (SE {row['elpd_diff_se']:.1f})"
+        lo, hi = (f"{f(rows[r.id]['elpd_diff'] for r in group):.1f}" for f in (min, max))
+        return f"{lo} elpd behind" if lo == hi else f"{lo} to {hi} elpd behind"
+
+    parts = []
+    others = ranked[1:]
+    for kind in ("tied", "close", "uncertain"):
+        group = [r for r in others if st[r.id].kind == kind]
+        if not group:
+            continue
+        names = _labels([r.label for r in group])
+        if kind == "tied":
+            parts.append(f"{names} {are(group)} tied with it within Monte Carlo error (the order would change "
+                         "with the seed)")
+        elif kind == "close":
+            parts.append(f"{names} {are(group)} {span(group)}, too little to separate (below "
+                         f"{SMALL_DIFFERENCE:g})")
+        else:
+            lifted = any(st[r.id].why for r in group)
+            parts.append(f"{names} {are(group)} {span(group)}, within two SE of the difference"
+                         + (" or tied with one that is" if lifted else "") + ": the order is uncertain")
+    worse = [r for r in others if st[r.id].kind == "worse"]
+    if worse and not parts:
+        parts.append(f"{_labels([r.label for r in worse[:1]])}, the next, is {span(worse[:1])}, more than "
+                     f"{SMALL_DIFFERENCE:g} elpd and two standard errors of the difference")
+        worse = worse[1:]
+    if worse:
+        parts.append(f"{len(worse)} other{'s are' if len(worse) > 1 else ' is'} clearly worse "
+                     f"({min(rows[r.id]['elpd_diff'] for r in worse):.1f} elpd behind or more)")
+    return "How sure: " + "; ".join(parts) + "."
 
 
 def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.01,
@@ -611,22 +656,7 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
             lead.append(f"Consider {best.label} first, together with {_labels(others)}: the data cannot "
                         "separate them by predictive accuracy.")
         if len(ranked) > 1:
-            second = ranked[1]
-            s2, row2 = st[second.id], by_row[second.id]
-            reason = {
-                "tied": "tied within Monte Carlo error, so their order would change with the seed",
-                "close": f"less than {SMALL_DIFFERENCE:g} elpd, too small to separate them",
-                "uncertain": ("less than two standard errors of the difference, so the order is uncertain"
-                              if not s2.why else s2.why),
-                "worse": "more than 4 elpd and two standard errors of the difference",
-            }[s2.kind]
-            how = (f"How sure: the next, {second.label}, is {row2['elpd_diff']:.1f} elpd behind "
-                   f"(SE {row2['elpd_diff_se']:.1f}), {reason}")
-            rest = [r for r in worse if r is not second]
-            if rest:
-                how += (f"; {len(rest)} other{'s are' if len(rest) > 1 else ' is'} clearly worse "
-                        f"({min(by_row[r.id]['elpd_diff'] for r in rest):.1f} elpd behind or more)")
-            lead.append(how + ".")
+            lead.append(_how_sure(ranked, st, by_row))
         missing = [cid for cid in preferred if misses[cid]]
         if missing:
             features = []
@@ -637,8 +667,8 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
                         features.append(f)
             who = ("it" if missing == [best.id] and len(preferred) == 1 else _labels([names[c] for c in missing]))
             lead.append(f"But {who} {'misses' if who == 'it' or len(missing) == 1 else 'miss'} features of "
-                        f"the data ({', '.join(features)}): do not trust {'its' if len(missing) == 1 else 'their'} "
-                        "predictions of these (details below).")
+                        f"the data ({', '.join(features)}); do not trust {'its' if len(missing) == 1 else 'their'} "
+                        "predictions of these.")
         else:
             lead.append(("It fails no" if len(preferred) == 1 else "None of them fails a") + " predictive check; "
                         "checks can reveal misfit, not prove fit.")
