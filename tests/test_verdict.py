@@ -272,6 +272,7 @@ def test_sentences_start_with_a_capital_and_reasons_are_not_doubled():
                             "only 3 % of prior datasets are plausible.", ""])
     assert joined == ("Misses minimum: treat its predictions with suspicion (see Predictive checks). "
                       "Only 3 % of prior datasets are plausible.")
+    assert fmt.sentence("broken.stan: no generated quantity 'log_lik'") == "broken.stan: no generated quantity 'log_lik'."
     reason = support_problem(np.array([0.0, 1.0, 2.0]), "positive")
     assert reason and not reason.startswith("skipped")
     skipped = CandidateResult("gamma", "Gamma", "", "positive", "skipped", reason)

@@ -645,9 +645,9 @@ def _settings(result, command_line) -> Table:
         cfg.candidates or "built-in")
     add("engine", result.engine, result.engine)
     add("seed", str(cfg.seed), cfg.seed)
-    add("chains, warmup, draws", f"{cfg.chains}, {cfg.warmup}, {cfg.draws}",
+    add("chains, warmup, draws", ", ".join(fmt.integer(v) for v in (cfg.chains, cfg.warmup, cfg.draws)),
         f"{cfg.chains} {cfg.warmup} {cfg.draws}")
-    add("prior predictive draws", str(cfg.prior_draws), cfg.prior_draws)
+    add("prior predictive draws", fmt.integer(cfg.prior_draws), cfg.prior_draws)
     add("adapt_delta and escalation", f"{cfg.adapt_delta:g}, then " + (", ".join(f"{v:g}" for v in cfg.escalation)
                                                                          or "none"),
         " ".join(f"{v:g}" for v in (cfg.adapt_delta, *cfg.escalation)))
@@ -655,7 +655,7 @@ def _settings(result, command_line) -> Table:
     add("health thresholds", f"R-hat below {cfg.rhat_max:g}; ESS at least {cfg.ess_per_chain_min:g} per chain; "
                              f"E-BFMI at least {cfg.ebfmi_min:g}",
         f"rhat_max={cfg.rhat_max!r} ess_per_chain_min={cfg.ess_per_chain_min!r} ebfmi_min={cfg.ebfmi_min!r}")
-    add("replicated datasets used by the checks", str(cfg.check_draws), cfg.check_draws)
+    add("replicated datasets used by the checks", fmt.integer(cfg.check_draws), cfg.check_draws)
     add("extreme posterior predictive p-value", f"below {cfg.ppp_extreme:g} or above {1 - cfg.ppp_extreme:g}",
         cfg.ppp_extreme)
     add("cross-validation", f"{cfg.cross_validation}; at most {cfg.refit_cap} exact refits; {cfg.folds} folds",
@@ -832,9 +832,9 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "health": health,
         "health_advice": health_advice,
         "health_rules": {
-            "rhat": fmt.fixed(cfg.rhat_max, 2),
-            "ess": fmt.integer(cfg.ess_per_chain_min),
-            "ebfmi": fmt.fixed(cfg.ebfmi_min, 1),
+            "rhat": fmt.limit(cfg.rhat_max),
+            "ess": fmt.limit(cfg.ess_per_chain_min),
+            "ebfmi": fmt.limit(cfg.ebfmi_min),
             "treedepth": str(cfg.max_treedepth),
         },
         "oos": oos,

@@ -158,11 +158,14 @@ def limit(threshold: float) -> str:
 
 def sentence(text: str) -> str:
     """``text`` as one sentence: first letter capital, one full stop at the end (a
-    question or exclamation mark kept); empty text stays empty."""
+    question or exclamation mark kept); empty text stays empty. A first word that is a
+    name from code or a file ("broken.stan:", "log_lik", "y_rep") keeps its case."""
     text = " ".join(str(text).split())
     if not text:
         return ""
-    text = text[:1].upper() + text[1:]
+    first = text.split(" ", 1)[0].rstrip(":,;")
+    if first.isalpha():
+        text = text[:1].upper() + text[1:]
     if text[-1] not in ".?!":
         text += "."
     return text
