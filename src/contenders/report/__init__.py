@@ -255,7 +255,7 @@ def _certainty(result) -> Table:
         row = rows[cid]
         st = standings.get(cid)
         kind = st.kind if st else ("best" if row["rank"] == 1 else "uncertain")
-        beyond = kind == "worse"
+        beyond = row["rank"] > 1 and row["elpd_diff"] > 2 * row["elpd_diff_se"]   # the raw fact, for the CSV
         text = STANDING_TEXT[kind].format(small=fmt.num(SMALL_DIFFERENCE))
         if st is not None and st.why:
             text += f" ({st.why})"
