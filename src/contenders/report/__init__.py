@@ -182,8 +182,8 @@ def _rank(row: dict | None) -> str:
 #: How the standing of a ranked candidate reads in the tables (compare.standings).
 STANDING_TEXT = {
     "best": "best",
-    "tied": "tied with the best within Monte Carlo error",
-    "close": "too close to tell apart (less than {small} elpd behind)",
+    "tied": "no: tied with the best within Monte Carlo error",
+    "close": "no: too close to tell apart (less than {small} elpd behind)",
     "uncertain": "no: the order is uncertain",
     "worse": "yes: clearly worse",
 }
@@ -245,7 +245,7 @@ def _ranking(result, cands) -> Table:
 def _certainty(result) -> Table:
     rows = _rows_by_id(result)
     t = Table("verdict_certainty.csv",
-              ["Candidate", "elpd (SE)", "Behind the best (SE of difference)", "Behind by more than 2 SE?",
+              ["Candidate", "elpd (SE)", "Behind the best (SE of difference)", "Told apart from the best?",
                "Stacking weight", "Pseudo-BMA+ weight"],
               csv_headers=["id", "label", "elpd", "elpd_se", "elpd_behind_best", "elpd_behind_best_se",
                            "beyond_two_se", "stacking_weight", "pseudo_bma_weight"],
