@@ -196,17 +196,18 @@ def test_verdict_rules():
         _result("gamma", base - rng.normal(0.05, 0.4, 200)),              # ~10 behind, SE ~6: uncertain
         _result("delta", base - 0.5, p_values={"skewness": 0.999}),       # 100 behind: clearly worse
         _result("eps", None, status="unhealthy", reason="R-hat 1.2 for sigma"),
-        _result("zeta", None, status="skipped", reason="skipped: 3 outcome value(s) are zero or negative"),
+        _result("zeta", None, status="skipped", reason="3 outcome value(s) are zero or negative"),
     ]
     comp = compare_candidates(results, seed=1)
     assert comp.ranking == ["alpha", "beta", "gamma", "delta"]
     text = " ".join(comp.verdict)
-    assert comp.verdict[0].startswith("Alpha predicts best")
+    assert comp.verdict[0].startswith("Consider Alpha first, together with Beta and Gamma")
+    assert comp.details[0].startswith("Alpha predicts best") and comp.verdict == comp.lead + comp.details
     assert "too close to tell apart by predictive accuracy: Beta (2.0 behind" in text
     assert "order is uncertain: Gamma" in text
     assert "Clearly worse at prediction (more than 4 elpd and two standard errors behind): Delta" in text
     assert "Alpha ranks first but its replicated data miss: maximum (replicates lower" in text
-    assert ("Lower-ranked candidates whose replicated data also miss features of the data: "
+    assert ("Clearly worse candidates whose replicated data also miss features of the data: "
             "Delta (skewness) (details under Predictive checks).") in text
     assert "Eps is not ranked because the sampler did not converge: R-hat 1.2 for sigma." in text
     assert "Zeta was skipped: 3 outcome value(s) are zero or negative." in text

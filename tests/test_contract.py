@@ -119,7 +119,7 @@ def test_positive_candidate_is_skipped_on_negative_data_with_reason(builtins, rn
     c = load_candidate(builtins["lognormal"].path)
     check_against_data(c, design)
     assert c.valid
-    assert c.skip_reason == "skipped: 1 outcome value(s) are zero or negative; this candidate needs y > 0"
+    assert c.skip_reason == "1 outcome value(s) are zero or negative; this candidate needs y > 0"
     n = load_candidate(builtins["normal"].path)
     check_against_data(n, design)
     assert n.skip_reason is None

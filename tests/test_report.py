@@ -306,7 +306,7 @@ def test_labels_and_column_names_are_shown_as_text_not_markup(tmp_path, programs
 # --- formatting -------------------------------------------------------------------------------
 
 def test_number_formatting():
-    assert fmt.num(1234.5678) == "1235"
+    assert fmt.num(1234.5678) == "1,235"      # thousands separated (changed with the report's number rules)
     assert fmt.num(0.012345) == "0.0123"
     assert fmt.num(-2.5e-6) == "−2.5 × 10⁻⁶"
     assert fmt.num(3.0e9) == "3 × 10⁹"

@@ -295,11 +295,11 @@ def check_against_data(c: Candidate, design: Design, overrides: Mapping[str, Any
         return
     reason = support_problem(design.y, c.support)
     if reason:
-        c.skip_reason = f"skipped: {reason}"
+        c.skip_reason = reason   # the reason alone: "skipped" is the status, shown beside it
         return
     assert c.info is not None
     if c.info.inputs["y"].get("type") == "int" and not np.all(design.y == np.round(design.y)):
-        c.skip_reason = "skipped: the program declares an integer outcome but the outcome has fractions"
+        c.skip_reason = "the program declares an integer outcome but the outcome has fractions"
         return
     try:
         c.hyperparameter_values(overrides)

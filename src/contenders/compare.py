@@ -303,10 +303,20 @@ def estimate(
 
 @dataclass
 class Comparison:
+    """The ranking and the verdict. ``lead`` is two or three sentences (what to use, how
+    sure that is, what the preferred candidates miss); ``details`` every other sentence,
+    most important first; ``verdict`` both, lead first."""
+
     ranking: list[str]
     rows: list[dict]              # per ranked candidate, best first
-    verdict: list[str]            # sentences, most important first
+    lead: list[str]
     preferred: list[str]
+    details: list[str] = field(default_factory=list)
+    standings: dict[str, "Standing"] = field(default_factory=dict)
+
+    @property
+    def verdict(self) -> list[str]:
+        return list(self.lead) + list(self.details)
 
 
 #: Bumped whenever the stored weights change meaning (see ``weights``).
@@ -377,8 +387,116 @@ def order_with_ties(ranked: list) -> list:
     return [r for tier in tiers for r in sorted(tier, key=lambda r: r.id)]
 
 
+#: The standings of a ranked candidate, most favourable first.
+STANDINGS = ("best", "tied", "close", "uncertain", "worse")
+
+
+@dataclass
+class Standing:
+    """Where one ranked candidate stands against the best, the one rule that every
+    sentence of the verdict and every table reads.
+
+    ``kind``: ``best``; ``tied`` (with the best, within Monte Carlo error); ``close``
+    (less than 4 elpd behind); ``uncertain`` (behind by less than two SE of the paired
+    difference, or not separable from a candidate that is); ``worse`` (clearly worse:
+    more than 4 elpd and two SE behind, and so is every candidate ranked below it).
+    ``rank``: its place, shared by candidates tied within Monte Carlo error ("4–5").
+    ``why``: a phrase when the kind comes from another candidate, not from its own
+    difference (for example "tied within Monte Carlo error with Weibull")."""
+
+    kind: str
+    rank: str
+    position: int
+    tied_with: list[str] = field(default_factory=list)
+    why: str = ""
+
+    @property
+    def preferred(self) -> bool:
+        return self.kind != "worse"
+
+
+def _own_kind(position: int, tied_with_best: bool, diff: float, diff_se: float) -> str:
+    if position == 1:
+        return "best"
+    if tied_with_best:
+        return "tied"
+    if diff < SMALL_DIFFERENCE:
+        return "close"
+    if diff < 2 * diff_se:
+        return "uncertain"
+    return "worse"
+
+
+def standings(rows: Sequence[dict]) -> dict[str, Standing]:
+    """The standing of every ranked candidate from the comparison's rows (best first,
+    candidates tied within Monte Carlo error next to each other, each row with ``id``,
+    ``label``, ``elpd_diff``, ``elpd_diff_se`` and ``tied_with``).
+
+    One rule: each candidate's own standing follows from its difference to the best
+    (below 4 elpd: close, Sivula et al.; below two SE of the paired difference:
+    uncertain, common practice, no source for the factor 2). Candidates tied within
+    Monte Carlo error share the most favourable standing among them and one rank (their
+    order would change with the seed). A candidate is clearly worse only when every
+    candidate ranked below it is too: one ranked above a candidate that cannot be
+    separated from the best is not called clearly worse either."""
+    rows = list(rows)
+    if not rows:
+        return {}
+    best = rows[0]["id"]
+    tiers: list[list[dict]] = []
+    for row in rows:
+        if tiers and row["id"] in tiers[-1][0]["tied_with"]:
+            tiers[-1].append(row)
+        else:
+            tiers.append([row])
+    labels = {row["id"]: row.get("label", row["id"]) for row in rows}
+    own = {}
+    for pos, row in enumerate(rows, 1):
+        own[row["id"]] = _own_kind(pos, best in row["tied_with"], float(row["elpd_diff"]),
+                                   float(row["elpd_diff_se"]))
+    out: dict[str, Standing] = {}
+    below: list[str] = []        # ids of not-clearly-worse candidates ranked below, nearest first
+    start = len(rows)
+    for tier in reversed(tiers):
+        start -= len(tier)
+        first, last = start + 1, start + len(tier)
+        rank = str(first) if first == last else f"{first}–{last}"
+        kinds = [STANDINGS.index(own[r["id"]]) for r in tier]
+        kind = STANDINGS[min(kinds)]
+        lifted_by = ""
+        if kind == "worse" and below:
+            kind, lifted_by = "uncertain", below[0]
+        for pos, r in enumerate(tier, first):
+            k = "best" if pos == 1 else ("tied" if kind == "best" else kind)
+            why = ""
+            if STANDINGS.index(own[r["id"]]) > STANDINGS.index(k) and k != "tied":
+                mates = [m["id"] for m in tier if m is not r and own[m["id"]] == kind]
+                if mates:
+                    why = "tied within Monte Carlo error with " + ", ".join(labels[m] for m in mates)
+                else:
+                    why = (f"ranked above {labels[lifted_by]}, which cannot be separated from the best, "
+                           "so not called clearly worse")
+            out[r["id"]] = Standing(k, rank, pos, [m["id"] for m in tier if m is not r], why)
+        if kind != "worse":
+            below.insert(0, tier[0]["id"])
+    return out
+
+
+def _place(st: Standing, n: int) -> str:
+    """"ranks first", "ranks 3 of 5", "ranks 4–5 of 5 (tied within Monte Carlo error)"."""
+    if st.rank == "1":
+        return "ranks first"
+    return f"ranks {st.rank} of {n}" + (" (tied within Monte Carlo error)" if "–" in st.rank else "")
+
+
+def _p_is(text: str) -> str:
+    """"p = 0.004", or "p < 0.001" when the value is written as a bound."""
+    return "p " + text if text[:1] in "<>" else "p = " + text
+
+
 def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
     """Short descriptions of the predictive checks a candidate fails."""
+    from .report.format import pvalue_against
     from .trials.statistics import describe
 
     if r.checks is None:
@@ -390,35 +508,123 @@ def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
             # p = Pr(T(y_rep) >= T(y)): near 0, replicates fall short of the observed value
             side = "lower" if p < 0.5 else "higher"
             out.append(f"{describe(row['statistic'])} (replicates {side} than the observed "
-                       f"{row['observed']:.4g}; p = {p:.3f})")
+                       f"{row['observed']:.4g}; {_p_is(pvalue_against(p, ppp_extreme, 1 - ppp_extreme))})")
     test = r.checks.loo_pit_test
     if np.isfinite(test["p_value"]) and test["p_value"] < pit_alpha:
-        out.append(f"calibration (LOO-PIT not uniform, p = {test['p_value']:.2g})")
+        out.append(f"calibration (LOO-PIT not uniform, {_p_is(pvalue_against(test['p_value'], pit_alpha))})")
     return out
+
+
+def _behind(row: dict) -> str:
+    return f"{row['elpd_diff']:.1f} behind, SE {row['elpd_diff_se']:.1f}"
+
+
+def _labels(names: Sequence[str]) -> str:
+    """"A", "A and B", "A, B and C"."""
+    names = list(names)
+    return names[0] if len(names) == 1 else ", ".join(names[:-1]) + " and " + names[-1]
+
+
+def _better_share(r, best) -> float:
+    """Share of observations whose out-of-sample density candidate ``r`` predicts better
+    than ``best`` does (pointwise elpd higher)."""
+    a, b = np.asarray(r.oos.pointwise, dtype=float), np.asarray(best.oos.pointwise, dtype=float)
+    ok = np.isfinite(a) & np.isfinite(b)
+    return float(np.mean(a[ok] > b[ok])) if ok.any() else float("nan")
+
+
+def _stacking_sentence(ranked, stack_w, st: dict[str, Standing], rows: dict[str, dict]) -> str:
+    """Where stacking puts its weight, and in one phrase why a weight surprises: a
+    candidate far behind in elpd with a real weight covers observations the best one
+    predicts poorly (the mixture uses it for those)."""
+    best = ranked[0]
+    by_id = {r.id: r for r in ranked}
+    top = sorted(((w, rid) for rid, w in stack_w.items() if w >= 0.05), key=lambda t: (-t[0], t[1]))
+    parts = []
+    for w, rid in top:
+        text = f"{by_id[rid].label} ({w:.2f}"
+        if rid != best.id and st[rid].kind in ("uncertain", "worse"):
+            share = _better_share(by_id[rid], best)
+            text += (f", though {rows[rid]['elpd_diff']:.1f} elpd behind: it predicts "
+                     f"{100 * share:.0f} % of the observations better than {best.label}, and the mixture "
+                     "uses it for those")
+        parts.append(text + ")")
+    sentence = ("Stacking, which looks for the mixture of candidates that predicts best, puts its weight on "
+                + "; ".join(parts))
+    if best.id not in {rid for _, rid in top}:
+        sentence += (f"; {best.label} gets less than 0.05: a mixture of the others predicts better than one "
+                     "that adds it (candidates that complement each other can outweigh the single best one)")
+    return sentence + "."
+
+
+def _how_sure(ranked, st: dict[str, Standing], rows: dict[str, dict]) -> str:
+    """The lead's second sentence: how far behind the others are, group by standing."""
+    def are(group) -> str:
+        return "is" if len(group) == 1 else "are"
+
+    def span(group) -> str:
+        if len(group) == 1:
+            row = rows[group[0].id]
+            return f"{row['elpd_diff']:.1f} elpd behind (SE {row['elpd_diff_se']:.1f})"
+        lo, hi = (f"{f(rows[r.id]['elpd_diff'] for r in group):.1f}" for f in (min, max))
+        return f"{lo} elpd behind" if lo == hi else f"{lo} to {hi} elpd behind"
+
+    parts = []
+    others = ranked[1:]
+    for kind in ("tied", "close", "uncertain"):
+        group = [r for r in others if st[r.id].kind == kind]
+        if not group:
+            continue
+        names = _labels([r.label for r in group])
+        if kind == "tied":
+            parts.append(f"{names} {are(group)} tied with it within Monte Carlo error (the order would change "
+                         "with the seed)")
+        elif kind == "close":
+            parts.append(f"{names} {are(group)} {span(group)}, too little to separate (below "
+                         f"{SMALL_DIFFERENCE:g})")
+        else:
+            lifted = any(st[r.id].why for r in group)
+            parts.append(f"{names} {are(group)} {span(group)}, within two SE of the difference"
+                         + (" or tied with one that is" if lifted else "") + ": the order is uncertain")
+    worse = [r for r in others if st[r.id].kind == "worse"]
+    if worse and not parts:
+        parts.append(f"{_labels([r.label for r in worse[:1]])}, the next, is {span(worse[:1])}, more than "
+                     f"{SMALL_DIFFERENCE:g} elpd and two standard errors of the difference")
+        worse = worse[1:]
+    if worse:
+        parts.append(f"{len(worse)} other{'s are' if len(worse) > 1 else ' is'} clearly worse "
+                     f"({min(rows[r.id]['elpd_diff'] for r in worse):.1f} elpd behind or more)")
+    return "How sure: " + "; ".join(parts) + "."
 
 
 def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.01,
                        pit_alpha: float = 0.01, store=None) -> Comparison:
     """Rank healthy candidates by elpd and write the verdict.
 
-    Rules: a difference below 4 elpd is small (Sivula et al.); a difference within two
-    SE of the paired difference is uncertain (common practice, no source, for the
-    factor 2); a candidate with a posterior predictive p-value below ``ppp_extreme``
-    or above 1 - ``ppp_extreme`` for any statistic, or a LOO-PIT uniformity p-value
-    below ``pit_alpha``, is named as misfitting even when it ranks well (the
-    thresholds are common practice, no source); unhealthy, failed and skipped
-    candidates are not ranked. ``store``: see ``weights``.
+    Rules (see ``standings``, the one rule every sentence and table reads): a
+    difference below 4 elpd is small (Sivula et al.); a difference within two SE of the
+    paired difference is uncertain (common practice, no source, for the factor 2);
+    candidates tied within Monte Carlo error share one standing and one rank; a
+    candidate with a posterior predictive p-value below ``ppp_extreme`` or above 1 -
+    ``ppp_extreme`` for any statistic, or a LOO-PIT uniformity p-value below
+    ``pit_alpha``, is named as misfitting even when it ranks well (the thresholds are
+    common practice, no source); unhealthy, failed and skipped candidates are not
+    ranked. ``store``: see ``weights``.
+
+    The verdict comes as a lead of two or three sentences (what to use, how sure,
+    what misses) and the details.
     """
     ranked = [r for r in results if r.status == "ok" and r.oos is not None]
-    verdict: list[str] = []
+    lead: list[str] = []
+    details: list[str] = []
     rows: list[dict] = []
     preferred: list[str] = []
+    st: dict[str, Standing] = {}
     if ranked:
         est = {r.id: r.oos for r in ranked}
         stack_w, bma_w, diffs = weights(est, seed, store)
         ranked = order_with_ties(ranked)
         best = ranked[0]
-        preferred.append(best.id)
         for pos, r in enumerate(ranked, 1):
             d, dse = diffs[r.id]
             rows.append({
@@ -428,81 +634,107 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
                 "n_high_k": r.oos.n_high_k, "n_refits": r.oos.n_refits, "method": r.oos.method,
                 "mcse": r.oos.mcse, "tied_with": list(r.tied_with),
             })
-        tied = [r for r in ranked if best.id in r.tied_with]
-        if tied:
-            names = ", ".join([best.label] + [r.label for r in tied])
-            verdict.append(
-                f"{names} predict best, tied within Monte Carlo error (elpd {best.oos.elpd:.1f}, SE "
-                f"{best.oos.se:.1f}; their order would change with the seed, so they are listed by id).")
-        elif len(ranked) == 1:
-            verdict.append(f"{best.label} is the only candidate that could be ranked "
-                           f"(elpd {best.oos.elpd:.1f}, SE {best.oos.se:.1f}); there is nothing to compare it with.")
+        st = standings(rows)
+        by_row = {row["id"]: row for row in rows}
+        for row in rows:
+            row["standing"] = st[row["id"]].kind
+            row["shared_rank"] = st[row["id"]].rank
+        preferred = [r.id for r in ranked if st[r.id].preferred]
+        names = {r.id: r.label for r in ranked}
+        misses = {r.id: _misfit(r, ppp_extreme, pit_alpha) for r in ranked}
+
+        # --- the lead: what to use, how sure, what misses
+        others = [names[cid] for cid in preferred if cid != best.id]
+        worse = [r for r in ranked if st[r.id].kind == "worse"]
+        if len(ranked) == 1:
+            lead.append(f"{best.label} is the only candidate that could be ranked, so there is nothing to "
+                        "compare it with; judge it on the predictive checks alone.")
+        elif not others:
+            lead.append(f"Use {best.label}: it predicts new data best of the {len(ranked)} ranked candidates "
+                        "and clearly ahead of every other.")
         else:
-            verdict.append(
+            lead.append(f"Consider {best.label} first, together with {_labels(others)}: the data cannot "
+                        "separate them by predictive accuracy.")
+        if len(ranked) > 1:
+            lead.append(_how_sure(ranked, st, by_row))
+        missing = [cid for cid in preferred if misses[cid]]
+        if missing:
+            features = []
+            for cid in missing:
+                for m in misses[cid]:
+                    f = m.split(" (")[0]
+                    if f not in features:
+                        features.append(f)
+            who = ("it" if missing == [best.id] and len(preferred) == 1 else _labels([names[c] for c in missing]))
+            lead.append(f"But {who} {'misses' if who == 'it' or len(missing) == 1 else 'miss'} features of "
+                        f"the data ({', '.join(features)}); do not trust {'its' if len(missing) == 1 else 'their'} "
+                        "predictions of these.")
+        else:
+            lead.append(("It fails no" if len(preferred) == 1 else "None of them fails a") + " predictive check; "
+                        "checks can reveal misfit, not prove fit.")
+
+        # --- the details
+        tied = [r for r in ranked if st[r.id].kind == "tied"]
+        if tied:
+            details.append(
+                f"{_labels([best.label] + [r.label for r in tied])} predict best, tied within Monte Carlo error "
+                f"(elpd {best.oos.elpd:.1f}, SE {best.oos.se:.1f}; their order would change with the seed, so "
+                "they are listed by id).")
+        elif len(ranked) == 1:
+            details.append(f"{best.label}: elpd {best.oos.elpd:.1f} (SE {best.oos.se:.1f}).")
+        else:
+            details.append(
                 f"{best.label} predicts best: elpd {best.oos.elpd:.1f} (SE {best.oos.se:.1f}), "
                 f"pseudo-BMA+ weight {bma_w[best.id]:.2f}.")
         if len(ranked) > 1:
-            top = sorted(((w, rid) for rid, w in stack_w.items() if w >= 0.05), reverse=True)
-            names = {r.id: r.label for r in ranked}
-            verdict.append(
-                "Stacking, which looks for the mixture of candidates that predicts best, puts its weight on "
-                + ", ".join(f"{names[rid]} ({w:.2f})" for w, rid in top)
-                + (" (candidates that complement each other can outweigh the single best one)."
-                   if best.id not in {rid for _, rid in top} else "."))
-        close, uncertain, worse = [], [], []
-        for r in ranked[1:]:
-            if r in tied:
-                preferred.append(r.id)
-                continue
-            d, dse = diffs[r.id]
-            if d < SMALL_DIFFERENCE:
-                close.append(f"{r.label} ({d:.1f} behind, SE {dse:.1f})")
-                preferred.append(r.id)
-            elif d < 2 * dse:
-                uncertain.append(f"{r.label} ({d:.1f} behind, SE {dse:.1f})")
-                preferred.append(r.id)
-            else:
-                worse.append(f"{r.label} ({d:.1f} behind, SE {dse:.1f})")
+            details.append(_stacking_sentence(ranked, stack_w, st, by_row))
+
+        def entry(r) -> str:
+            why = st[r.id].why
+            return f"{r.label} ({_behind(by_row[r.id])}{'; ' + why if why else ''})"
+
+        close = [entry(r) for r in ranked if st[r.id].kind == "close"]
+        uncertain = [entry(r) for r in ranked if st[r.id].kind == "uncertain"]
         if close:
-            verdict.append(
+            details.append(
                 "Within 4 elpd of it, too close to tell apart by predictive accuracy: " + "; ".join(close)
                 + ". Choose among these on the predictive checks, interpretability and theory.")
         if uncertain:
-            verdict.append("Behind it by less than two standard errors of the difference, so the order is "
-                           "uncertain: " + "; ".join(uncertain) + ".")
+            details.append("Behind it, but by less than two standard errors of the difference (or not separable "
+                           "from one that is), so the order is uncertain: " + "; ".join(uncertain) + ".")
         if worse:
-            verdict.append("Clearly worse at prediction (more than 4 elpd and two standard errors behind): "
-                           + "; ".join(worse) + ".")
-        others = []
-        for pos, r in enumerate(ranked, 1):
-            misses = _misfit(r, ppp_extreme, pit_alpha)
-            if not misses:
+            details.append("Clearly worse at prediction (more than 4 elpd and two standard errors behind): "
+                           + "; ".join(entry(r) for r in worse) + ".")
+        lower = []
+        for r in ranked:
+            if not misses[r.id]:
                 continue
-            if r.id in preferred:
-                where = "ranks first" if pos == 1 else f"ranks {pos} of {len(ranked)}"
-                verdict.append(f"{r.label} {where} but its replicated data miss: " + "; ".join(misses)
+            if st[r.id].preferred:
+                details.append(f"{r.label} {_place(st[r.id], len(ranked))} but its replicated data miss: "
+                               + "; ".join(misses[r.id])
                                + ". Do not trust its predictions of these features; a family that can "
                                  "produce them may do better.")
             else:
-                others.append(f"{r.label} ({', '.join(m.split(' (')[0] for m in misses)})")
-        if others:
-            verdict.append("Lower-ranked candidates whose replicated data also miss features of the data: "
-                           + "; ".join(others) + " (details under Predictive checks).")
+                lower.append(f"{r.label} ({', '.join(m.split(' (')[0] for m in misses[r.id])})")
+        if lower:
+            details.append("Clearly worse candidates whose replicated data also miss features of the data: "
+                           + "; ".join(lower) + " (details under Predictive checks).")
     else:
-        verdict.append("No candidate could be ranked: every candidate was skipped, failed or is unhealthy "
-                       "(see below). Fix the problems named there and run again.")
+        lead.append("No candidate could be ranked: every candidate was skipped, failed or is unhealthy "
+                    "(see below). Fix the problems named there and run again.")
     flagged = [r for r in results if r.prior is not None and r.prior.flagged]
     if flagged:
-        verdict.append(
+        details.append(
             "Priors that put most of their mass on implausible datasets (share of prior draws inside every "
             "plausibility bound): " + "; ".join(f"{r.label} {100 * r.prior.plausible_share:.0f} %" for r in flagged)
             + ". Tighten these candidates' priors under [hyperparameters.ID], or revisit the bounds; "
               "the prior predictive section shows which statistic is implausible.")
     for r in results:
+        reason = (r.reason or "").splitlines()[0] if r.reason else ""
         if r.status == "unhealthy":
-            verdict.append(f"{r.label} is not ranked because the sampler did not converge: {r.reason}.")
+            details.append(f"{r.label} is not ranked because the sampler did not converge: {reason.rstrip('.')}.")
         elif r.status == "failed":
-            verdict.append(f"{r.label} could not be run: {r.reason.splitlines()[0]}")
+            details.append(f"{r.label} could not be run: {reason.rstrip('.')}.")
         elif r.status == "skipped":
-            verdict.append(f"{r.label} was {r.reason}.")
-    return Comparison([row["id"] for row in rows], rows, verdict, preferred)
+            details.append(f"{r.label} was skipped: {reason.rstrip('.')}.")
+    return Comparison([row["id"] for row in rows], rows, lead, preferred, details, st)

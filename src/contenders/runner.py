@@ -484,7 +484,7 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
             say(f"  {r.id}: {r.status}: {r.reason.splitlines()[0][:160] if r.reason else ''}")
     comparison = compare_candidates(ordered, cfg.seed, cfg.ppp_extreme, store=store)
     if cfg.quick:
-        comparison.verdict.insert(0, QUICK_LOOK.format(chains=cfg.chains, draws=cfg.draws, rhat=cfg.rhat_max))
+        comparison.lead.insert(0, QUICK_LOOK.format(chains=cfg.chains, draws=cfg.draws, rhat=cfg.rhat_max))
     sampled = sum(r.fits_sampled for r in ordered if not r.from_store)
     reused = sum(r.fits_reused for r in ordered if not r.from_store) + sum(
         len(r.fit_files) for r in ordered if r.from_store)
@@ -635,6 +635,8 @@ def candidate_summary(r: CandidateResult, comparison: Comparison) -> dict[str, A
         "power_scaling": sensitivity_summary(r.sensitivity),
         "coefficients": coefficients_summary(r.coefficients),
         "rank": row.get("rank"),
+        "shared_rank": row.get("shared_rank"),     # "4–5" when tied within Monte Carlo error
+        "standing": row.get("standing"),           # best, tied, close, uncertain, worse (compare.standings)
         "hyperparameters": r.hyperparameters,
         "code_sha256": r.code_hash,
         "seconds": r.seconds,
@@ -662,6 +664,8 @@ def summary_dict(result: RunResult) -> dict[str, Any]:
         "ranking": result.comparison.ranking,
         "preferred": result.comparison.preferred,
         "verdict": " ".join(result.comparison.verdict),
+        "verdict_lead": " ".join(result.comparison.lead),
+        "verdict_details": " ".join(result.comparison.details),
         "candidates": [candidate_summary(r, result.comparison) for r in result.candidates],
         "effects": effects_summary(compare_effects(result.candidates, result.comparison.rows, cfg.seed)),
     })

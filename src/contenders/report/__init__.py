@@ -175,6 +175,24 @@ def _behind(row: dict) -> str:
     return "best" if row["rank"] == 1 else _with_se(row["elpd_diff"], row["elpd_diff_se"])
 
 
+def _rank(row: dict | None) -> str:
+    """The rank shown: shared by candidates tied within Monte Carlo error ("4–5"), from
+    the comparison's one standing rule (``compare.standings``)."""
+    if not row:
+        return fmt.MISSING
+    return str(row.get("shared_rank") or row["rank"])
+
+
+#: How the standing of a ranked candidate reads in the tables (compare.standings).
+STANDING_TEXT = {
+    "best": "best",
+    "tied": "no: tied with the best within Monte Carlo error",
+    "close": "no: too close to tell apart (less than {small} elpd behind)",
+    "uncertain": "no: the order is uncertain",
+    "worse": "yes: clearly worse",
+}
+
+
 def _ranking(result, cands) -> Table:
     rows = _rows_by_id(result)
     extreme = result.config.ppp_extreme
@@ -183,7 +201,8 @@ def _ranking(result, cands) -> Table:
                "Stacking weight", "Pseudo-BMA+ weight", "Notes and what to do next"],
               csv_headers=["rank", "id", "label", "status", "elpd", "elpd_se", "elpd_behind_best",
                            "elpd_behind_best_se", "stacking_weight", "pseudo_bma_weight", "p_loo",
-                           "elpd_mcse", "elpd_method", "tied_with", "misses", "reason"],
+                           "elpd_mcse", "elpd_method", "tied_with", "misses", "reason", "shared_rank",
+                           "standing"],
               numeric=[True, False, False, True, True, True, True, False])
     for r in cands:
         row = rows.get(r.id)
@@ -191,7 +210,8 @@ def _ranking(result, cands) -> Table:
         if row:
             if row["tied_with"]:
                 notes.append("tied within Monte Carlo error with " + ", ".join(row["tied_with"])
-                             + "; the order among them would change with the seed")
+                             + "; the order among them would change with the seed, so they share rank "
+                             + _rank(row))
             missed = misfits(r.checks, extreme, PIT_ALPHA)
             if missed:
                 notes.append("misses " + ", ".join(missed)
@@ -206,14 +226,14 @@ def _ranking(result, cands) -> Table:
         misses = misfits(r.checks, extreme, PIT_ALPHA)
         cls = {"ok": "ranked", "unhealthy": "unhealthy", "failed": "failed", "skipped": "skipped"}[r.status]
         t.add([
-            n(str(row["rank"]) if row else fmt.MISSING),
+            n(_rank(row)),
             Cell(r.label, "name", r.id),
             Cell(STATUS_TEXT[r.status], "status " + cls),
             n(_with_se(row["elpd"], row["se"]) if row else fmt.MISSING),
             n(_behind(row) if row else fmt.MISSING),
             n(fmt.fixed(row["stacking_weight"], 2) if row else fmt.MISSING),
             n(fmt.fixed(row["pseudo_bma_weight"], 2) if row else fmt.MISSING),
-            Cell(" ".join(x.rstrip(".") + "." for x in notes if x), "wrap"),
+            Cell(fmt.sentences(notes), "wrap"),
         ], [
             row["rank"] if row else None, r.id, r.label, r.status, row["elpd"] if row else None,
             row["se"] if row else None, row["elpd_diff"] if row else None,
@@ -221,6 +241,7 @@ def _ranking(result, cands) -> Table:
             row["pseudo_bma_weight"] if row else None, row["p"] if row else None,
             row["mcse"] if row else None, row["method"] if row else None,
             " ".join(row["tied_with"]) if row else None, "; ".join(misses), r.reason,
+            row.get("shared_rank") if row else None, row.get("standing") if row else None,
         ], cls)
     return t
 
@@ -228,19 +249,25 @@ def _ranking(result, cands) -> Table:
 def _certainty(result) -> Table:
     rows = _rows_by_id(result)
     t = Table("verdict_certainty.csv",
-              ["Candidate", "elpd (SE)", "Behind the best (SE of difference)", "Behind by more than 2 SE?",
+              ["Candidate", "elpd (SE)", "Behind the best (SE of difference)", "Told apart from the best?",
                "Stacking weight", "Pseudo-BMA+ weight"],
               csv_headers=["id", "label", "elpd", "elpd_se", "elpd_behind_best", "elpd_behind_best_se",
                            "beyond_two_se", "stacking_weight", "pseudo_bma_weight"],
               numeric=[False, True, True, False, True, True])
+    standings = getattr(result.comparison, "standings", {}) or {}
     for cid in result.comparison.preferred:
         row = rows[cid]
-        beyond = row["rank"] > 1 and row["elpd_diff"] > 2 * row["elpd_diff_se"]
+        st = standings.get(cid)
+        kind = st.kind if st else ("best" if row["rank"] == 1 else "uncertain")
+        beyond = row["rank"] > 1 and row["elpd_diff"] > 2 * row["elpd_diff_se"]   # the raw fact, for the CSV
+        text = STANDING_TEXT[kind].format(small=fmt.num(SMALL_DIFFERENCE))
+        if st is not None and st.why:
+            text += f" ({st.why})"
         t.add([
             Cell(row["label"], "name", cid),
             n(_with_se(row["elpd"], row["se"])),
             n(_behind(row)),
-            Cell(fmt.MISSING if row["rank"] == 1 else ("yes" if beyond else "no: the order is uncertain")),
+            Cell(fmt.MISSING if kind == "best" else text),
             n(fmt.fixed(row["stacking_weight"], 2)),
             n(fmt.fixed(row["pseudo_bma_weight"], 2)),
         ], [cid, row["label"], row["elpd"], row["se"], row["elpd_diff"], row["elpd_diff_se"],
@@ -262,12 +289,11 @@ def _prior_plausibility(result, cands) -> Table:
                    Cell("not run: " + (r.reason.splitlines()[0] if r.reason else r.status), "muted wrap")],
                   [r.id, r.label, None, None, None, None, "not run"], "muted")
             continue
-        msg = p.message[:1].upper() + p.message[1:] + "."
-        if p.n_nonfinite:
-            msg += (f" {p.n_nonfinite} prior datasets hold infinite or undefined values: the priors allow "
-                    "extreme parameter values; tighten them.")
+        msg = fmt.sentences([p.message] + ([f"{fmt.integer(p.n_nonfinite)} prior datasets hold infinite or "
+                                            "undefined values: the priors allow extreme parameter values; "
+                                            "tighten them"] if p.n_nonfinite else []))
         t.add([Cell(r.label, "name", r.id), n(fmt.integer(p.n_draws)),
-               n(("◆ " if p.flagged else "") + (fmt.share(p.plausible_share)
+               n(("◆ " if p.flagged else "") + (fmt.share_against(p.plausible_share, result.config.implausible_share)
                                                  if p.plausible_share is not None else "no bounds set"),
                  "flag" if p.flagged else ""),
                n(fmt.integer(p.n_nonfinite), "flag" if p.n_nonfinite else ""),
@@ -307,8 +333,8 @@ def _prior_table(p) -> Table:
         share = row["share_below_observed"]
         edge = np.isfinite(share) and (share < 1 - PRIOR_EDGE or share > PRIOR_EDGE)
         inside = p.inside_each.get(row["statistic"])
-        t.add([describe(row["statistic"]), n(fmt.num(row["observed"], 4)), n(fmt.num(row["q05"])),
-               n(fmt.num(row["q50"])), n(fmt.num(row["q95"])),
+        obs, q05, q50, q95 = fmt.alike([row["observed"], row["q05"], row["q50"], row["q95"]])  # one statistic
+        t.add([describe(row["statistic"]), n(obs), n(q05), n(q50), n(q95),
                n(("◆ " if edge else "") + fmt.share(share), "flag" if edge else ""),
                n(fmt.bound(*b) if b else fmt.MISSING), n(fmt.share(inside) if inside is not None else fmt.MISSING)])
     return t
@@ -342,21 +368,22 @@ def _health(result, cands) -> tuple[Table, list[tuple[str, str, list[str]]]]:
         t.add([
             Cell(r.label, "name", r.id),
             Cell(STATUS_TEXT[r.status], "status " + cls),
-            n(("◆ " if rbad else "") + fmt.fixed(h.rhat_max, 3) + (f" ({h.rhat_worst})" if h.rhat_worst else ""),
-              "flag" if rbad else ""),
-            n(("◆ " if bbad else "") + fmt.integer(h.ess_bulk_min), "flag" if bbad else ""),
-            n(("◆ " if tbad else "") + fmt.integer(h.ess_tail_min), "flag" if tbad else ""),
+            n(("◆ " if rbad else "") + fmt.against(h.rhat_max, cfg.rhat_max, 3)
+              + (f" ({h.rhat_worst})" if h.rhat_worst else ""), "flag" if rbad else ""),
+            n(("◆ " if bbad else "") + fmt.against(h.ess_bulk_min, ess_min, 0), "flag" if bbad else ""),
+            n(("◆ " if tbad else "") + fmt.against(h.ess_tail_min, ess_min, 0), "flag" if tbad else ""),
             n(("◆ " if h.divergences else "") + fmt.integer(h.divergences), "flag" if h.divergences else ""),
             n(("◇ " if h.treedepth_hits else "") + fmt.integer(h.treedepth_hits),
               "watch" if h.treedepth_hits else ""),
-            n(("◆ " if ebad else "") + ", ".join(fmt.fixed(v, 2) for v in h.ebfmi), "flag" if ebad else ""),
+            n(("◆ " if ebad else "") + ", ".join(fmt.against(v, cfg.ebfmi_min, 2) for v in h.ebfmi),
+              "flag" if ebad else ""),
             Cell(runs),
         ], [r.id, r.label, r.status, h.rhat_max, h.rhat_worst, h.ess_bulk_min, h.ess_tail_min, h.ess_worst,
             h.divergences, h.treedepth_hits, " ".join(repr(float(v)) for v in h.ebfmi), h.adapt_delta,
             "; ".join(f"adapt_delta {a.adapt_delta:g}: {a.divergences} divergences, {a.seconds:.2f} s"
                       for a in h.attempts),
             "; ".join(h.problems), "; ".join(h.warnings)], cls)
-        items = [p[:1].upper() + p[1:] + "." for p in h.problems] + [w[:1].upper() + w[1:] + "." for w in h.warnings]
+        items = [fmt.sentence(p) for p in h.problems] + [fmt.sentence(w) for w in h.warnings]
         if r.refit_divergences:
             items.append(f"The exact refits for out-of-sample comparison had {r.refit_divergences} divergent "
                          "transitions: the refitted observations' elpd may be off; treat it with caution "
@@ -385,14 +412,15 @@ def _oos(result, cands) -> tuple[Table, list[tuple[str, str]]]:
         row = rows.get(r.id)
         high = o.n_high_k
         t.add([
-            n(str(row["rank"]) if row else fmt.MISSING),
+            n(_rank(row)),
             Cell(r.label + ("" if row else " (not ranked: sampler unhealthy)"), "name", r.id),
             n(_with_se(o.elpd, o.se)), n(fmt.fixed(o.p, 1)),
             n(_behind(row) if row else fmt.MISSING),
             n(fmt.fixed(row["stacking_weight"], 2) if row else fmt.MISSING),
             n(fmt.fixed(row["pseudo_bma_weight"], 2) if row else fmt.MISSING),
             n(fmt.fixed(o.mcse, 2)),
-            n(fmt.fixed(o.k_max, 2), "watch" if np.isfinite(o.k_max) and o.k_max > o.k_threshold else ""),
+            n(fmt.against(o.k_max, o.k_threshold, 2),
+              "watch" if np.isfinite(o.k_max) and o.k_max > o.k_threshold else ""),
             n(("◇ " if high else "") + str(high), "watch" if high else ""),
             Cell(o.method, "wrap"),
         ], [row["rank"] if row else None, r.id, r.label, r.status, o.elpd, o.se, o.p,
@@ -410,9 +438,10 @@ def _check_matrix(result, cands, pick) -> tuple[list[str], list[list[Cell]]]:
     rows of one candidate's checks."""
     extreme = result.config.ppp_extreme
     first = pick(cands[0].checks)
+    observed = fmt.alike([row["observed"] for row in first])   # one column, one count of decimals
     body = []
     for k, row in enumerate(first):
-        cells = [Cell(describe(row["statistic"])), n(fmt.num(row["observed"], 4))]
+        cells = [Cell(describe(row["statistic"])), n(observed[k])]
         for r in cands:
             rr = pick(r.checks)
             cells.append(p_cell(rr[k]["p_value"], extreme) if k < len(rr) else n(fmt.MISSING))
@@ -451,9 +480,10 @@ def _grouped_long(result, cands) -> Table:
 def _check_table(checks, extreme: float) -> Table:
     t = Table("", ["Statistic", "Observed", "Replicated median", "Replicated 90 % interval",
                    "Posterior predictive p"], numeric=[False, True, True, True, True])
-    for row in checks.rows:
-        t.add([describe(row["statistic"]), n(fmt.num(row["observed"], 4)), n(fmt.num(row["q50"])),
-               n(fmt.interval(row["q05"], row["q95"])), p_cell(row["p_value"], extreme)])
+    for row in checks.rows:   # one statistic per row: its values share one count of decimals
+        obs, q50, q05, q95 = fmt.alike([row["observed"], row["q50"], row["q05"], row["q95"]])
+        t.add([describe(row["statistic"]), n(obs), n(q50), n(f"{q05} to {q95}"),
+               p_cell(row["p_value"], extreme)])
     return t
 
 
@@ -471,8 +501,8 @@ def _pit_table(cands) -> Table:
         if not reading:
             reading = "no clear pattern; this does not show the candidate is right"
         t.add([Cell(r.label, "name", r.id), n(fmt.fixed(test.get("statistic"), 3)),
-               n(("◆ " if flagged else "") + fmt.pvalue(p), "flag" if flagged else ""),
-               Cell(reading[:1].upper() + reading[1:] + ".", "wrap")],
+               n(("◆ " if flagged else "") + fmt.pvalue_against(p, PIT_ALPHA), "flag" if flagged else ""),
+               Cell(fmt.sentence(reading), "wrap")],
               [r.id, r.label, test.get("statistic"), p, test.get("method"), reading],
               "flagged" if flagged else "")
     return t
@@ -482,8 +512,10 @@ def _effect_units(e, outcome: str) -> str:
     return f"{outcome} per unit of {e.column}" if e.kind == "slope" else outcome
 
 
-def _estimate(mean: float, lo: float, hi: float) -> str:
-    return f"{fmt.num(mean)} ({fmt.interval(lo, hi)})"
+def _estimate(mean: float, lo: float, hi: float, decimals: int | None = None) -> str:
+    if decimals is None:
+        return f"{fmt.num(mean)} ({fmt.interval(lo, hi)})"
+    return (f"{fmt.fixed(mean, decimals)} ({fmt.fixed(lo, decimals)} to {fmt.fixed(hi, decimals)})")
 
 
 READING_TEXT = {"agree": "agree", "depends": "◆ depends on the candidate",
@@ -511,17 +543,20 @@ def _effects_table(result, effects) -> Table:
     for e in effects:
         units = _effect_units(e, outcome)
         by_id = {row["id"]: row for row in e.rows}
-        cells = [Cell(e.title), Cell(units), n(fmt.num(e.observed, 4))]
+        c = e.combined
+        same = [e.observed] + [row[k] for row in e.rows if row["n_draws"] for k in ("mean", "lower", "upper")]
+        same += [c["mean"], c["lower"], c["upper"]] if c else []
+        d = fmt.decimals(same)   # one effect per row: its values share one count of decimals
+        cells = [Cell(e.title), Cell(units), n(fmt.fixed(e.observed, d))]
         for cid, _ in heads:
             row = by_id.get(cid)
             if row is None or not row["n_draws"]:
                 cells.append(n(fmt.MISSING, "muted"))
                 continue
             outside = row["observed_inside"] is False
-            cells.append(n(("◇ " if outside else "") + _estimate(row["mean"], row["lower"], row["upper"]),
+            cells.append(n(("◇ " if outside else "") + _estimate(row["mean"], row["lower"], row["upper"], d),
                            ("watch " if outside else "") + ("" if row["weight"] is not None else "muted")))
-        c = e.combined
-        cells.append(n(_estimate(c["mean"], c["lower"], c["upper"]) if c else fmt.MISSING))
+        cells.append(n(_estimate(c["mean"], c["lower"], c["upper"], d) if c else fmt.MISSING))
         cells.append(Cell(READING_TEXT[e.reading], "flag" if e.reading == "depends" else ""))
         t.add(cells, cls="flagged" if e.reading == "depends" else "")
         common = [e.key, e.title, e.kind, e.column, e.level, e.reference, units]
@@ -668,7 +703,7 @@ def _candidate_views(result, cands) -> list[CandidateView]:
         views.append(CandidateView(
             id=r.id, label=r.label, about=r.about, support=r.support, status=r.status,
             status_text=STATUS_TEXT[r.status], reason=r.reason,
-            rank=str(rows[r.id]["rank"]) if r.id in rows else fmt.MISSING,
+            rank=_rank(rows.get(r.id)),
             code=r.code, code_hash=r.code_hash, hyperparameters=_hyper_table(r),
             prior=_prior_table(r.prior) if r.prior is not None else None,
             parameters=(_param_table(r.health, _group_names(r, result.design), result.design)
@@ -735,9 +770,9 @@ def _settings(result, command_line) -> Table:
         cfg.candidates or "built-in")
     add("engine", result.engine, result.engine)
     add("seed", str(cfg.seed), cfg.seed)
-    add("chains, warmup, draws", f"{cfg.chains}, {cfg.warmup}, {cfg.draws}",
+    add("chains, warmup, draws", ", ".join(fmt.integer(v) for v in (cfg.chains, cfg.warmup, cfg.draws)),
         f"{cfg.chains} {cfg.warmup} {cfg.draws}")
-    add("prior predictive draws", str(cfg.prior_draws), cfg.prior_draws)
+    add("prior predictive draws", fmt.integer(cfg.prior_draws), cfg.prior_draws)
     add("adapt_delta and escalation", f"{cfg.adapt_delta:g}, then " + (", ".join(f"{v:g}" for v in cfg.escalation)
                                                                          or "none"),
         " ".join(f"{v:g}" for v in (cfg.adapt_delta, *cfg.escalation)))
@@ -745,7 +780,7 @@ def _settings(result, command_line) -> Table:
     add("health thresholds", f"R-hat below {cfg.rhat_max:g}; ESS at least {cfg.ess_per_chain_min:g} per chain; "
                              f"E-BFMI at least {cfg.ebfmi_min:g}",
         f"rhat_max={cfg.rhat_max!r} ess_per_chain_min={cfg.ess_per_chain_min!r} ebfmi_min={cfg.ebfmi_min!r}")
-    add("replicated datasets used by the checks", str(cfg.check_draws), cfg.check_draws)
+    add("replicated datasets used by the checks", fmt.integer(cfg.check_draws), cfg.check_draws)
     add("extreme posterior predictive p-value", f"below {cfg.ppp_extreme:g} or above {1 - cfg.ppp_extreme:g}",
         cfg.ppp_extreme)
     add("cross-validation", f"{cfg.cross_validation}; at most {cfg.refit_cap} exact refits; {cfg.folds} folds",
@@ -906,6 +941,9 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
             if getattr(result, "fits_reused", 0) else ""),
         "sections": SECTIONS + recovery_section.nav(result),
         "verdict": list(result.comparison.verdict) + recovery_section.verdict(result),
+        "verdict_lead": list(getattr(result.comparison, "lead", result.comparison.verdict[:1])),
+        "verdict_details": (list(getattr(result.comparison, "details", result.comparison.verdict[1:]))
+                            + recovery_section.verdict(result)),
         "recovery": recovery_section.context(result),
         "preferred": preferred,
         "any_ranked": bool(rows),
@@ -920,9 +958,9 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "health": health,
         "health_advice": health_advice,
         "health_rules": {
-            "rhat": fmt.fixed(cfg.rhat_max, 2),
-            "ess": fmt.integer(cfg.ess_per_chain_min),
-            "ebfmi": fmt.fixed(cfg.ebfmi_min, 1),
+            "rhat": fmt.limit(cfg.rhat_max),
+            "ess": fmt.limit(cfg.ess_per_chain_min),
+            "ebfmi": fmt.limit(cfg.ebfmi_min),
             "treedepth": str(cfg.max_treedepth),
         },
         "oos": oos,

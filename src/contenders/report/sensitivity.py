@@ -33,8 +33,10 @@ def _names(rows: Sequence[dict], groups: set[str] = frozenset(), J: int = 0) -> 
     return ", ".join(names[:NAMES_SHOWN]) + (f" and {more} more" if more > 0 else "")
 
 
-def _value(x: float, rng: tuple[float, float]) -> str:
-    text = fmt.num(x, 2)
+def _value(x: float, rng: tuple[float, float], threshold: float | None = None) -> str:
+    """A sensitivity with its single-chain range; beside ``threshold`` with the digits that
+    show on which side of it the value lies."""
+    text = fmt.num(x, 2) if threshold is None else fmt.against(x, threshold, fmt.decimals([x], 2))
     if all(v == v for v in rng):   # not NaN: more than one chain
         text += f" ({fmt.num(rng[0], 2)} to {fmt.num(rng[1], 2)})"
     return text
@@ -68,8 +70,8 @@ def sensitivity_context(cands: Sequence[Any], J: int = 0, K: int = -1) -> dict[s
         groups = group_terms(sizes_of([row["parameter"] for row in s.rows]), J, K)
         by = {key: [row for row in s.rows if row["reading"] == key] for key in READINGS}
         k = max(s.pareto_k.values()) if s.pareto_k else float("nan")
-        reliable = (f"Pareto k {fmt.num(k, 2)}: reliable" if s.reliable else
-                    f"◆ Pareto k {fmt.num(k, 2)} above {fmt.num(K_RELIABLE)}: the importance weights are "
+        reliable = (f"Pareto k {fmt.against(k, K_RELIABLE, 2)}: reliable" if s.reliable else
+                    f"◆ Pareto k {fmt.against(k, K_RELIABLE, 2)} above {fmt.num(K_RELIABLE)}: the importance weights are "
                     "unreliable; read the values as rough")
         overview.add([Cell(r.label, "name", r.id), n(fmt.integer(len(s.rows))),
                       Cell(("◆ " if by["conflict"] else "") + _names(by["conflict"], groups, J),
@@ -89,9 +91,9 @@ def sensitivity_context(cands: Sequence[Any], J: int = 0, K: int = -1) -> dict[s
                 if row["near_threshold"]:
                     reading += "; ◇ close to the threshold: the reading could change with other draws"
                 detail.add([Cell(r.label, "name", r.id), Cell(row["parameter"], "code"),
-                            n(_value(row["prior"], row["prior_range"]),
+                            n(_value(row["prior"], row["prior_range"], s.threshold),
                               "flag" if row["prior"] >= s.threshold else ""),
-                            n(_value(row["likelihood"], row["likelihood_range"])),
+                            n(_value(row["likelihood"], row["likelihood_range"], s.threshold)),
                             Cell(reading, "wrap")])
         for base in sorted(groups):
             mine = [row for row in s.rows if base_name(row["parameter"]) == base]

@@ -69,7 +69,7 @@ def n(text: str, cls: str = "") -> Cell:
 def p_cell(p: float, strong: float, mild: tuple[float, float] = MILD) -> Cell:
     """A posterior predictive p-value, marked ◆ beyond ``strong`` (or 1 - strong) and
     ◇ outside the ``mild`` range."""
-    text = fmt.pvalue(p)
+    text = fmt.pvalue(p) if p is None or not np.isfinite(p) else fmt.pvalue_against(p, strong, 1 - strong)
     if p is None or not np.isfinite(p):
         return n(text, "muted")
     if p < strong or p > 1 - strong:

@@ -81,6 +81,8 @@ def diagnose(
     """Compute every diagnostic of one run and decide whether it is healthy."""
     import arviz as az
 
+    from ..report.format import against, limit   # a value beside its threshold shows the side it is on
+
     idata = draws.idata
     settings = draws.settings
     names = [p for p in parameters if p in idata.posterior]
@@ -109,15 +111,16 @@ def diagnose(
         problems.append("R-hat could not be computed for some parameters (constant draws: the chains are stuck)")
     if np.isfinite(r_max) and r_max >= rhat_max:
         problems.append(
-            f"R-hat {r_max:.3f} for {worst_r} is not below {rhat_max}: chains disagree; run longer "
+            f"R-hat {against(r_max, rhat_max, 3)} for {worst_r} is not below {limit(rhat_max)}: chains "
+            "disagree; run longer "
             "(more warmup and draws) or reparameterise"
         )
     e_bulk = min(bulk.values()) if bulk else float("nan")
     e_tail = min(tail.values()) if tail else float("nan")
     if min(e_bulk, e_tail) < min_ess:
         problems.append(
-            f"effective sample size {min(e_bulk, e_tail):.0f} for {worst_e} is below {min_ess:.0f} "
-            f"({ess_per_chain_min:.0f} per chain): increase draws"
+            f"effective sample size {against(min(e_bulk, e_tail), min_ess, 0)} for {worst_e} is below "
+            f"{limit(min_ess)} ({limit(ess_per_chain_min)} per chain): increase draws"
         )
     if divergences:
         problems.append(
@@ -127,7 +130,9 @@ def diagnose(
     low = [i + 1 for i, v in enumerate(ebfmi) if v < ebfmi_min]
     if low:
         problems.append(
-            f"E-BFMI below {ebfmi_min} in chain(s) {', '.join(map(str, low))}: the sampler moves "
+            f"E-BFMI below {limit(ebfmi_min)} in chain(s) "
+            + ", ".join(f"{i} ({against(ebfmi[i - 1], ebfmi_min, 2)})" for i in low)
+            + ": the sampler moves "
             "poorly between energy levels; reparameterise (for example non-centred group effects)"
         )
     if hits:
