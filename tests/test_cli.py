@@ -117,6 +117,13 @@ def test_new_writes_where_the_user_stands_and_never_into_the_builtin_folder(tmp_
     res = cli("new", "my_candidate", "--label", "Other", cwd=here)
     assert res.returncode == 2 and "already exists" in res.stderr and "nothing was overwritten" in res.stderr
     assert (here / "my_candidate.stan").read_text() == text
+    # an id that differs only in case from an existing file is refused, and the older
+    # file stays as it was (and valid)
+    res = cli("new", "My_Candidate", cwd=here)
+    assert res.returncode == 2 and len(res.stderr.strip().splitlines()) == 1, res.stderr
+    assert "my_candidate.stan already exists, and ids ignore case, so 'My_Candidate' would clash" in res.stderr
+    assert sorted(p.name for p in here.iterdir()) == ["my_candidate.stan"]
+    assert (here / "my_candidate.stan").read_text() == text
     # --candidates FOLDER is created if missing
     res = cli("new", "other_one", "--candidates", "sub/folder", cwd=here)
     assert res.returncode == 0, res.stderr

@@ -275,6 +275,10 @@ def cmd_new(args: argparse.Namespace) -> int:
         raise UserError(f"{folder}: cannot create the candidates folder ({exc.strerror}); "
                         "choose another with --candidates FOLDER")
     path = folder / f"{args.name}.stan"
+    clash = sorted(p.name for p in folder.glob("*.stan") if p.stem.lower() == args.name.lower() and p.stem != args.name)
+    if clash:
+        raise UserError(f"{folder / clash[0]} already exists, and ids ignore case, so '{args.name}' would clash "
+                        "with it (the run would refuse the folder); choose another name or folder (nothing was written)")
     label = args.label or args.name.replace("_", " ").capitalize()
     try:
         with path.open("x") as fh:   # "x": fails when the file exists, so nothing is overwritten
