@@ -67,6 +67,25 @@ def test_user_errors_are_one_line_without_traceback(small, tmp_path, args, messa
     assert "Traceback" not in res.stderr and len(res.stderr.strip().splitlines()) == 1
 
 
+def test_a_misspelt_hyperparameter_stops_before_any_fitting_naming_the_valid_ones(small, tmp_path):
+    out = tmp_path / "o"
+    res = cli("run", small, "--outcome", "rt", "--out", out, "--hyper", "lognormal.sigmascale=1")
+    assert res.returncode == 2
+    err = res.stderr.strip()
+    assert len(err.splitlines()) == 1 and "Traceback" not in err, err
+    assert ("[hyperparameters.lognormal] sigmascale (--hyper lognormal.sigmascale=...) is not a hyperparameter "
+            "of candidate 'lognormal' (lognormal.stan); did you mean sigma_scale?") in err
+    # the valid names, as the header of stan/lognormal.stan declares them
+    assert "Its hyperparameters are: intercept_sd, coef_sd, group_sd_scale, sigma_scale; nothing was fitted" in err
+    assert res.stdout == "" and not out.exists()   # stopped before the output folder or any compile
+    # the same in a configuration file, and in a batch (stops before the first dataset)
+    cfg = tmp_path / "c.toml"
+    cfg.write_text('[hyperparameters.gamma]\nshape_scal = 2.0\n')
+    res = cli("batch", small, "--outcome", "rt", "--config", cfg, "--out", tmp_path / "b")
+    assert res.returncode == 2 and "shape_scal" in res.stderr and "is not a hyperparameter of candidate 'gamma'" in res.stderr
+    assert not (tmp_path / "b" / "small").exists()
+
+
 def test_bad_configuration_key_and_empty_candidates_folder(small, tmp_path):
     cfg = tmp_path / "c.toml"
     cfg.write_text('[data]\nfile = "small.csv"\noutcome = "rt"\n\n[sampler]\nchain = 2\n')

@@ -156,7 +156,26 @@ def select_candidates(cfg: RunConfig) -> list[Candidate]:
             f"[hyperparameters.{unknown[0]}] names no candidate in the run; the candidates are: "
             + ", ".join(every_id)
         )
+    by_id = {c.id: c for c in cands}
+    for cid, values in cfg.hyperparameters.items():
+        c = by_id.get(cid)
+        if c is None or c.info is None:   # not in this run, or a program stanc rejects (reported)
+            continue
+        wrong = [name for name in values if name not in c.info.hyperparameters]
+        if wrong:
+            raise UserError(_unknown_hyper_message(c, wrong[0]))
     return cands
+
+
+def _unknown_hyper_message(c: Candidate, name: str) -> str:
+    """One line for a hyperparameter override that names no input of candidate ``c``."""
+    import difflib
+
+    valid = c.info.hyperparameters if c.info else ()
+    close = difflib.get_close_matches(name, valid, n=1)
+    return (f"[hyperparameters.{c.id}] {name} (--hyper {c.id}.{name}=...) is not a hyperparameter of candidate "
+            f"'{c.id}' ({c.path.name})" + (f"; did you mean {close[0]}?" if close else "")
+            + " Its hyperparameters are: " + (", ".join(valid) or "(none)") + "; nothing was fitted.")
 
 
 def _settings(cfg: RunConfig, draws: int | None = None, chains: int | None = None) -> SamplerSettings:
