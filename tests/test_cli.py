@@ -54,6 +54,31 @@ def test_quick_run_end_to_end_writes_outputs(small, tmp_path, programs):
     assert "report:" in res.stdout
 
 
+def test_a_run_that_ranks_nothing_exits_3_writes_the_report_and_spends_no_refits(small, tmp_path, programs):
+    """Every candidate unhealthy (an ESS floor no short chain reaches): the report is still
+    written, the exit status is 3, and K-fold, which would refit twice per candidate, is
+    not run for them."""
+    out = tmp_path / "out"
+    res = cli("run", small, "--outcome", "rt", "--only", "lognormal", "--out", out, "--chains", 2,
+              "--warmup", 150, "--draws", 150, "--prior-draws", 100, "--engine", "pystan",
+              "--ess-per-chain-min", 100000, "--cross-validation", "kfold", "--folds", 2)
+    assert res.returncode == 3, res.stderr
+    assert "no candidate was ranked (1 unhealthy)" in res.stderr and "exit status 3" in res.stderr
+    assert (out / "report.html").stat().st_size > 10_000
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["ranking"] == []
+    (c,) = summary["candidates"]
+    assert c["status"] == "unhealthy" and "(100000 per chain)" in c["reason"]
+    assert c["reason"].endswith("exact refits skipped, since an unhealthy candidate is not ranked")
+    assert c["n_refits"] == 0 and "refits skipped" in c["elpd_method"] and "fold" not in c["elpd_method"]
+    # the prior draws and the posterior fit(s) of the adapt_delta escalation, no fold refits
+    assert summary["fits"]["sampled"] == 1 + len(c["adapt_delta_attempts"])
+    assert "exact refits skipped" in (out / "report.html").read_text()
+    assert "lognormal: unhealthy:" in res.stdout and "exact refits skipped" in res.stdout
+    # --help documents the status
+    assert "3 when the report was written but no candidate was ranked" in " ".join(cli("run", "--help").stdout.split())
+
+
 @pytest.mark.parametrize("args, message", [
     (["--outcome", "latency"], "outcome column 'latency' not found; the columns are: rt, cue"),
     (["--outcome", "rt", "--chains", "two"], "--chains must be a whole number >= 1; got 'two'"),
