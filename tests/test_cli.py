@@ -14,6 +14,9 @@ from contenders import demo
 from contenders.candidates import builtin_folder
 
 EXE = [sys.executable, "-m", "contenders.cli"]
+#: Health thresholds that 2 short chains can meet: a run that ranks nothing exits with 3, so
+#: tests of a run's outputs relax them (the defaults are for full runs).
+RELAXED = ["--ess-per-chain-min", 20, "--rhat-max", 1.05]
 
 
 def cli(*args, cwd=None):
@@ -44,7 +47,7 @@ def test_quick_run_end_to_end_writes_outputs(small, tmp_path, programs):
     res = cli("run", small, "--outcome", "rt", "--predictors", "cue", "--condition", "cue",
               "--only", "lognormal,normal", "--out", out, "--chains", 2, "--warmup", 200, "--draws", 200,
               "--prior-draws", 200, "--engine", "pystan", "--bounds", "mean=150:5000,min=50:inf",
-              "--hyper", "lognormal.sigma_scale=0.5")
+              "--hyper", "lognormal.sigma_scale=0.5", *RELAXED)
     assert res.returncode == 0, res.stderr
     summary = json.loads((out / "summary.json").read_text())
     assert [c["id"] for c in summary["candidates"]] == ["lognormal", "normal"]
@@ -73,7 +76,12 @@ def test_a_run_that_ranks_nothing_exits_3_writes_the_report_and_spends_no_refits
     assert c["n_refits"] == 0 and "refits skipped" in c["elpd_method"] and "fold" not in c["elpd_method"]
     # the prior draws and the posterior fit(s) of the adapt_delta escalation, no fold refits
     assert summary["fits"]["sampled"] == 1 + len(c["adapt_delta_attempts"])
-    assert "exact refits skipped" in (out / "report.html").read_text()
+    report = (out / "report.html").read_text()
+    assert "exact refits skipped" in report
+    # the timing lines keep waiting for a free core apart from each trial's seconds
+    assert {"prior", "prior_wait", "posterior", "posterior_wait", "total"} <= set(c["seconds"])
+    assert c["seconds"]["prior_wait"] == 0.0   # one candidate on its own never waits for another's chains
+    assert "Waiting for a core" in report
     assert "lognormal: unhealthy:" in res.stdout and "exact refits skipped" in res.stdout
     # --help documents the status
     assert "3 when the report was written but no candidate was ranked" in " ".join(cli("run", "--help").stdout.split())
@@ -134,7 +142,7 @@ def test_scaffolded_candidate_passes_check_and_can_be_fitted(small, tmp_path, en
     assert res.returncode == 0, res.stdout + res.stderr
     assert "ok       my_family" in res.stdout
     res = cli("run", small, "--outcome", "rt", "--candidates", folder, "--out", tmp_path / "o", "--chains", 2,
-              "--warmup", 200, "--draws", 200, "--prior-draws", 100, "--engine", "pystan", "--quiet")
+              "--warmup", 200, "--draws", 200, "--prior-draws", 100, "--engine", "pystan", "--quiet", *RELAXED)
     assert res.returncode == 0, res.stderr
     summary = json.loads((tmp_path / "o" / "summary.json").read_text())
     assert summary["candidates"][0]["label"] == "My family"
