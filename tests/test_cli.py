@@ -14,6 +14,9 @@ from contenders import demo
 from contenders.candidates import builtin_folder
 
 EXE = [sys.executable, "-m", "contenders.cli"]
+#: Health thresholds that 2 short chains can meet: a run that ranks nothing exits with 3, so
+#: tests of a run's outputs relax them (the defaults are for full runs).
+RELAXED = ["--ess-per-chain-min", 20, "--rhat-max", 1.05]
 
 
 def cli(*args, cwd=None):
@@ -44,7 +47,7 @@ def test_quick_run_end_to_end_writes_outputs(small, tmp_path, programs):
     res = cli("run", small, "--outcome", "rt", "--predictors", "cue", "--condition", "cue",
               "--only", "lognormal,normal", "--out", out, "--chains", 2, "--warmup", 200, "--draws", 200,
               "--prior-draws", 200, "--engine", "pystan", "--bounds", "mean=150:5000,min=50:inf",
-              "--hyper", "lognormal.sigma_scale=0.5")
+              "--hyper", "lognormal.sigma_scale=0.5", *RELAXED)
     assert res.returncode == 0, res.stderr
     summary = json.loads((out / "summary.json").read_text())
     assert [c["id"] for c in summary["candidates"]] == ["lognormal", "normal"]
@@ -52,6 +55,36 @@ def test_quick_run_end_to_end_writes_outputs(small, tmp_path, programs):
     assert set(summary["ranking"]) <= {"lognormal", "normal"}
     assert (out / "report.html").stat().st_size > 10_000
     assert "report:" in res.stdout
+
+
+def test_a_run_that_ranks_nothing_exits_3_writes_the_report_and_spends_no_refits(small, tmp_path, programs):
+    """Every candidate unhealthy (an ESS floor no short chain reaches): the report is still
+    written, the exit status is 3, and K-fold, which would refit twice per candidate, is
+    not run for them."""
+    out = tmp_path / "out"
+    res = cli("run", small, "--outcome", "rt", "--only", "lognormal", "--out", out, "--chains", 2,
+              "--warmup", 150, "--draws", 150, "--prior-draws", 100, "--engine", "pystan",
+              "--ess-per-chain-min", 100000, "--cross-validation", "kfold", "--folds", 2)
+    assert res.returncode == 3, res.stderr
+    assert "no candidate was ranked (1 unhealthy)" in res.stderr and "exit status 3" in res.stderr
+    assert (out / "report.html").stat().st_size > 10_000
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["ranking"] == []
+    (c,) = summary["candidates"]
+    assert c["status"] == "unhealthy" and "(100000 per chain)" in c["reason"]
+    assert c["reason"].endswith("exact refits skipped, since an unhealthy candidate is not ranked")
+    assert c["n_refits"] == 0 and "refits skipped" in c["elpd_method"] and "fold" not in c["elpd_method"]
+    # the prior draws and the posterior fit(s) of the adapt_delta escalation, no fold refits
+    assert summary["fits"]["sampled"] == 1 + len(c["adapt_delta_attempts"])
+    report = (out / "report.html").read_text()
+    assert "exact refits skipped" in report
+    # the timing lines keep waiting for a free core apart from each trial's seconds
+    assert {"prior", "prior_wait", "posterior", "posterior_wait", "total"} <= set(c["seconds"])
+    assert c["seconds"]["prior_wait"] == 0.0   # one candidate on its own never waits for another's chains
+    assert "Waiting for a core" in report
+    assert "lognormal: unhealthy:" in res.stdout and "exact refits skipped" in res.stdout
+    # --help documents the status
+    assert "3 when the report was written but no candidate was ranked" in " ".join(cli("run", "--help").stdout.split())
 
 
 @pytest.mark.parametrize("args, message", [
@@ -65,6 +98,25 @@ def test_user_errors_are_one_line_without_traceback(small, tmp_path, args, messa
     assert res.returncode == 2
     assert message in res.stderr
     assert "Traceback" not in res.stderr and len(res.stderr.strip().splitlines()) == 1
+
+
+def test_a_misspelt_hyperparameter_stops_before_any_fitting_naming_the_valid_ones(small, tmp_path):
+    out = tmp_path / "o"
+    res = cli("run", small, "--outcome", "rt", "--out", out, "--hyper", "lognormal.sigmascale=1")
+    assert res.returncode == 2
+    err = res.stderr.strip()
+    assert len(err.splitlines()) == 1 and "Traceback" not in err, err
+    assert ("[hyperparameters.lognormal] sigmascale (--hyper lognormal.sigmascale=...) is not a hyperparameter "
+            "of candidate 'lognormal' (lognormal.stan); did you mean sigma_scale?") in err
+    # the valid names, as the header of stan/lognormal.stan declares them
+    assert "Its hyperparameters are: intercept_sd, coef_sd, group_sd_scale, sigma_scale; nothing was fitted" in err
+    assert res.stdout == "" and not out.exists()   # stopped before the output folder or any compile
+    # the same in a configuration file, and in a batch (stops before the first dataset)
+    cfg = tmp_path / "c.toml"
+    cfg.write_text('[hyperparameters.gamma]\nshape_scal = 2.0\n')
+    res = cli("batch", small, "--outcome", "rt", "--config", cfg, "--out", tmp_path / "b")
+    assert res.returncode == 2 and "shape_scal" in res.stderr and "is not a hyperparameter of candidate 'gamma'" in res.stderr
+    assert not (tmp_path / "b" / "small").exists()
 
 
 def test_bad_configuration_key_and_empty_candidates_folder(small, tmp_path):
@@ -90,7 +142,7 @@ def test_scaffolded_candidate_passes_check_and_can_be_fitted(small, tmp_path, en
     assert res.returncode == 0, res.stdout + res.stderr
     assert "ok       my_family" in res.stdout
     res = cli("run", small, "--outcome", "rt", "--candidates", folder, "--out", tmp_path / "o", "--chains", 2,
-              "--warmup", 200, "--draws", 200, "--prior-draws", 100, "--engine", "pystan", "--quiet")
+              "--warmup", 200, "--draws", 200, "--prior-draws", 100, "--engine", "pystan", "--quiet", *RELAXED)
     assert res.returncode == 0, res.stderr
     summary = json.loads((tmp_path / "o" / "summary.json").read_text())
     assert summary["candidates"][0]["label"] == "My family"
@@ -116,6 +168,13 @@ def test_new_writes_where_the_user_stands_and_never_into_the_builtin_folder(tmp_
     text = (here / "my_candidate.stan").read_text()
     res = cli("new", "my_candidate", "--label", "Other", cwd=here)
     assert res.returncode == 2 and "already exists" in res.stderr and "nothing was overwritten" in res.stderr
+    assert (here / "my_candidate.stan").read_text() == text
+    # an id that differs only in case from an existing file is refused, and the older
+    # file stays as it was (and valid)
+    res = cli("new", "My_Candidate", cwd=here)
+    assert res.returncode == 2 and len(res.stderr.strip().splitlines()) == 1, res.stderr
+    assert "my_candidate.stan already exists, and ids ignore case, so 'My_Candidate' would clash" in res.stderr
+    assert sorted(p.name for p in here.iterdir()) == ["my_candidate.stan"]
     assert (here / "my_candidate.stan").read_text() == text
     # --candidates FOLDER is created if missing
     res = cli("new", "other_one", "--candidates", "sub/folder", cwd=here)

@@ -150,3 +150,20 @@ def test_reference_level_from_toml_and_from_the_flag():
         parse_flag("reference", "density")
     with pytest.raises(UserError, match="reference"):
         from_mapping({"data": {"reference": {"density": 1.5}}}, Path("."))
+
+
+def test_a_text_outcome_names_the_first_row_and_value_that_is_not_numeric(tmp_path):
+    # through the CSV reader, so that row and line numbers are those of the file
+    t = _table().assign(cue=["", "off", "on", "off", "on", "off", "on", "off", "on", "on", "on", "off"])
+    path = tmp_path / "t.csv"
+    t.to_csv(path, index=False)
+    table = read_table(path)   # the empty first cell reads as missing, not as text
+    with pytest.raises(UserError) as err:
+        build_design(table, "cue", source="t.csv")
+    message = err.value.message
+    assert "outcome column 'cue' is not numeric: data row 2 (line 3 of the file) holds 'off'" in message
+    # the mixed case names the row too
+    mixed = table.assign(rt=table.rt.astype(object).where(table.index != 4, "fast"))
+    with pytest.raises(UserError, match=r"has 1 non-numeric value\(s\), for example 'fast' "
+                                        r"\(data row 5 \(line 6 of the file\) holds 'fast'\)"):
+        build_design(mixed, "rt", source="t.csv")

@@ -256,3 +256,145 @@ def test_one_draw_evaluations_leave_no_socket_files(engine, programs, builtins, 
     values = engine.single_draw(programs["normal"], data, seed=5)
     assert values["y_rep"].shape == (design.N,)
     assert not list(tmp_path.glob("httpstan_*.sock")), "a socket file was left behind"
+
+
+def test_a_compile_past_pystans_request_limit_is_retried_once_then_one_line(engine, programs, builtins,
+                                                                            monkeypatch):
+    # PyStan's client gives up on a request after aiohttp's default 300 s; a loaded machine
+    # can take longer to compile. Simulated here: the compile request times out.
+    import asyncio
+    import dataclasses
+
+    import stan.common
+
+    from contenders.engines import compile_all
+    from contenders.engines.base import SamplingError
+
+    real = stan.common.HttpstanClient
+    posts = []
+
+    def client(times_out: int):
+        class Client(real):
+            async def post(self, path, json):
+                posts.append(path)
+                if len(posts) <= times_out:
+                    raise asyncio.TimeoutError()
+                return await super().post(path, json)
+        return Client
+
+    monkeypatch.setattr(stan.common, "HttpstanClient", client(1))
+    program = engine.compile(builtins["normal"])   # the second request answers
+    assert posts == ["/models", "/models"] and program.from_cache
+    posts.clear()
+    monkeypatch.setattr(stan.common, "HttpstanClient", client(99))
+    with pytest.raises(SamplingError) as err:
+        engine.compile(builtins["normal"])
+    assert len(posts) == 2   # tried twice, not more
+    message = str(err.value)
+    assert "\n" not in message and "Traceback" not in message
+    assert message.startswith("normal.stan: compiling took longer than the 300 s PyStan allows one request, "
+                              "2 times (the machine is busy)")
+    assert "--jobs 1" in message
+    # in a run the candidate fails with that line and the others go on
+    posts.clear()
+    copy = dataclasses.replace(builtins["normal"], problems=[])
+    assert compile_all(engine, [copy], jobs=1) == {}
+    assert copy.problems == [message]
+
+
+def test_compiling_says_when_each_program_starts_and_ends_and_when_it_waits_for_a_lock(engine, programs,
+                                                                                       builtins):
+    import subprocess
+    import sys
+    import time
+
+    import httpstan.models
+
+    from contenders.engines import Program, compile_all
+    from contenders.engines.base import Engine
+    from contenders.engines.pystan_engine import _lock_key
+
+    class Slow(Engine):   # compiles nothing, takes 1.2 s for it: the lines around a compile
+        name = "slow"
+
+        def version(self):
+            return "slow 0"
+
+        def is_cached(self, candidate):
+            return False
+
+        def compile(self, candidate):
+            time.sleep(1.2)
+            return Program(candidate.id, candidate.code, None, 1.2, False)
+
+        def sample(self, *a):
+            raise NotImplementedError
+
+        def single_draw(self, *a, **k):
+            raise NotImplementedError
+
+    lines: list[str] = []
+    compile_all(Slow(), [builtins["gamma"]], jobs=1, progress=lines.append)
+    assert lines == ["  compiling gamma ...", "  compiled gamma in 1 s"]
+    # another process holds the program's compile lock for 3 s: this one says it waits
+    lines.clear()
+    key = _lock_key(httpstan.models.calculate_model_name(builtins["normal"].code))
+    holder = subprocess.Popen(
+        [sys.executable, "-c",
+         "import time\n"
+         "from contenders.engines.base import compile_lock\n"
+         f"with compile_lock({key!r}):\n"
+         "    print('held', flush=True)\n"
+         "    time.sleep(3)\n"],
+        stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        got = compile_all(engine, [builtins["normal"]], jobs=1, progress=lines.append)
+    finally:
+        holder.stdout.close()
+        holder.wait(timeout=30)
+    assert set(got) == {"normal"}
+    assert lines[0] == ("normal: waiting for another process that is compiling this program (its compile lock); "
+                        "this one goes on when that is done")
+    assert lines[1] in ("normal: the other process is done (waited 2 s)",
+                        "normal: the other process is done (waited 3 s)")
+    assert len(lines) == 2   # cached: no compile lines
+    # without a listener the wait is silent (library use)
+    assert compile_all(engine, [builtins["normal"]], jobs=1) and len(lines) == 2
+
+
+def test_waiting_for_a_free_chain_slot_is_counted_apart_from_sampling(engine, programs, builtins, design):
+    """Another fit holds the only chain slot for 2 s: this fit's seconds exclude those 2 s,
+    which are kept as its waiting time, and the two add up to the time the call took."""
+    import threading
+    import time
+
+    from contenders.engines import pystan_engine
+    from contenders.engines.pystan_engine import _Waiting
+
+    # the bookkeeping itself, on a hand-driven clock
+    now = [0.0]
+    w = _Waiting(clock=lambda: now[0])
+    w.before_acquire(); now[0] = 5.0; w.acquired()          # 5 s with nothing running: waiting
+    w.before_acquire(); now[0] = 8.0; w.chain_done()        # 3 s with chain 1 running: work
+    now[0] = 10.0; w.acquired()                             # 2 s with nothing running: waiting
+    now[0] = 20.0; w.chain_done()
+    assert w.seconds == pytest.approx(7.0)
+
+    slots = threading.Semaphore(1)
+    slots.acquire()
+    saved = pystan_engine.CHAIN_SLOTS[0]
+    pystan_engine.CHAIN_SLOTS[0] = slots
+    threading.Timer(2.0, slots.release).start()
+    try:
+        c = builtins["normal"]
+        start = time.perf_counter()
+        draws = engine.sample(programs["normal"], inputs_for(c, design), SMALL)
+        took = time.perf_counter() - start
+    finally:
+        pystan_engine.CHAIN_SLOTS[0] = saved
+    assert 1.9 <= draws.wait_seconds <= 2.5
+    assert draws.sample_seconds > 0
+    assert draws.sample_seconds + draws.wait_seconds <= took
+    # without slots (one process alone) nothing is waited for
+    assert engine.sample(programs["normal"], inputs_for(c, design), SMALL).wait_seconds == 0.0

@@ -257,6 +257,15 @@ def test_csv_tables_hold_the_numbers_of_the_run(report):
     mean_row = next(r for r in prior if r["id"] == "lognormal" and r["statistic"] == "mean")
     assert (float(mean_row["bound_low"]), float(mean_row["bound_high"])) == (150.0, 5000.0)
     assert float(mean_row["share_inside_bound"]) == ln.prior.inside_each["mean"]
+    # timing: each trial's sampling seconds, the waiting for a free core apart, and the
+    # candidate's own total (once, not added to the parts again)
+    files = {r["id"]: r for r in _csv(out / "candidate_files.csv")}
+    s = ln.seconds
+    assert float(files["lognormal"]["seconds_prior"]) == pytest.approx(s["prior"])
+    assert float(files["lognormal"]["seconds_waiting"]) == pytest.approx(
+        s["prior_wait"] + s["posterior_wait"] + s.get("refits_wait", 0.0))
+    assert float(files["lognormal"]["seconds_total"]) == pytest.approx(s["total"])
+    assert s["total"] >= s["prior"] + s["posterior"]
 
 
 def test_report_writes_over_an_earlier_one_and_renders_without_optional_parts(report, tmp_path):

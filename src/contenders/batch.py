@@ -142,11 +142,12 @@ def run_batch(cfg: RunConfig, datasets: Sequence[str | Path], progress: Callable
     """Run every dataset with ``cfg`` (its ``data`` and ``out`` replaced per dataset) and
     write the index files into ``cfg.out``."""
     from .report import write_report
-    from .runner import output_folder, run
+    from .runner import output_folder, run, select_candidates
 
     say = progress or (lambda _text: None)
     start = time.perf_counter()
     paths = find_datasets(datasets)
+    select_candidates(cfg)   # a mistake in the candidates or their hyperparameters stops the batch at once
     out = output_folder(cfg.out)
     store = cfg.store or out / "fits"
     rows: list[DatasetRow] = []

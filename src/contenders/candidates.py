@@ -262,30 +262,31 @@ def load_candidate(path: Path) -> Candidate:
 
 def discover(folder: str | Path) -> list[Candidate]:
     """All candidates in a folder, sorted by id. Raises :class:`UserError` when the
-    folder is missing or holds no ``.stan`` file."""
+    folder is missing, holds no ``.stan`` file, or holds two files whose ids differ only
+    in case."""
     folder = Path(folder)
     if not folder.is_dir():
         raise UserError(f"{folder}: candidates folder not found; give a folder of .stan files.")
     paths = sorted(folder.glob("*.stan"))
     if not paths:
         raise UserError(f"{folder}: no .stan files in the candidates folder; add at least one candidate.")
+    seen: dict[str, Path] = {}
+    for path in paths:
+        key = path.stem.lower()
+        if key in seen:   # neither is the candidate: refuse the folder rather than pick one
+            raise UserError(
+                f"{folder}: {seen[key].name} and {path.name} have ids that differ only in case, and ids ignore "
+                "case (reports, the fit store and some file systems could not tell them apart); rename or "
+                "remove one."
+            )
+        seen[key] = path
     import concurrent.futures as cf
 
     # each file is checked by a run of the Stan compiler (``stanc --info``, a few hundredths
     # of a second each): run them side by side
     with cf.ThreadPoolExecutor(max_workers=min(8, len(paths))) as pool:
         loaded = list(pool.map(load_candidate, paths))
-    seen: dict[str, Path] = {}
-    out = []
-    for path, c in zip(paths, loaded):
-        key = path.stem.lower()
-        if key in seen:
-            c.problems.append(
-                f"{path.name}: id '{path.stem}' clashes with {seen[key].name} (ids ignore case); rename one."
-            )
-        seen.setdefault(key, path)
-        out.append(c)
-    return out
+    return loaded
 
 
 def check_against_data(c: Candidate, design: Design, overrides: Mapping[str, Any] | None = None) -> None:

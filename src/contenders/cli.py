@@ -55,7 +55,7 @@ def cmd_check(args: argparse.Namespace) -> int:
     if any(c.valid for c in cands):
         print(f"compiling {sum(c.valid for c in cands)} program(s), {jobs} at a time "
               "(about 45 s each the first time; cached afterwards) ...", flush=True)
-    programs = compile_all(engine, cands, jobs=jobs)
+    programs = compile_all(engine, cands, jobs=jobs, progress=lambda text: print(text, flush=True))
     failed = 0
     for c in cands:
         if c.id in programs:
@@ -124,6 +124,16 @@ def _config_from_args(args: argparse.Namespace, data: str | None):
     return cfg
 
 
+#: Exit status of a run that wrote its report but ranked no candidate (every one was
+#: skipped, failed or unhealthy). 2 is a user error, 130 an interrupt.
+NOTHING_RANKED = 3
+
+#: The exit statuses of the commands that run a comparison, for their --help.
+EXIT_STATUS = ("exit status: 0 when at least one candidate was ranked; 3 when the report was written but "
+               "no candidate was ranked (every one was skipped, failed or unhealthy); 2 for a mistake in the "
+               "input (one line on standard error); 130 when interrupted")
+
+
 def _run_and_report(cfg, command_line: str) -> int:
     from .report import write_report
     from .runner import run
@@ -147,6 +157,13 @@ def _run_and_report(cfg, command_line: str) -> int:
         print()
         print(f"report:  {Path(report).resolve()}")
         print(f"summary: {(result.out / 'summary.json').resolve()}")
+    if not result.comparison.ranking:
+        counts = {}
+        for r in result.candidates:
+            counts[r.status] = counts.get(r.status, 0) + 1
+        print(f"contenders: no candidate was ranked ({', '.join(f'{n} {s}' for s, n in sorted(counts.items()))}); "
+              f"the report says why for each; exit status {NOTHING_RANKED}", file=sys.stderr)
+        return NOTHING_RANKED
     return 0
 
 
@@ -275,6 +292,10 @@ def cmd_new(args: argparse.Namespace) -> int:
         raise UserError(f"{folder}: cannot create the candidates folder ({exc.strerror}); "
                         "choose another with --candidates FOLDER")
     path = folder / f"{args.name}.stan"
+    clash = sorted(p.name for p in folder.glob("*.stan") if p.stem.lower() == args.name.lower() and p.stem != args.name)
+    if clash:
+        raise UserError(f"{folder / clash[0]} already exists, and ids ignore case, so '{args.name}' would clash "
+                        "with it (the run would refuse the folder); choose another name or folder (nothing was written)")
     label = args.label or args.name.replace("_", " ").capitalize()
     try:
         with path.open("x") as fh:   # "x": fails when the file exists, so nothing is overwritten
@@ -363,13 +384,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_list)
 
     p = sub.add_parser("run", help="compare the candidates on one dataset and write the report",
-                       description=cmd_run.__doc__)
+                       description=cmd_run.__doc__, epilog=EXIT_STATUS)
     p.add_argument("data", nargs="?", metavar="DATA.csv", help="CSV data file (or [data] file in --config)")
     _add_run_flags(p)
     p.set_defaults(func=cmd_run)
 
     p = sub.add_parser("recovery", help="model recovery: could this design tell the candidates apart?",
-                       description=cmd_recovery.__doc__)
+                       description=cmd_recovery.__doc__, epilog=EXIT_STATUS)
     p.add_argument("data", nargs="?", metavar="DATA.csv", help="CSV data file (or [data] file in --config)")
     _add_run_flags(p)
     p.set_defaults(func=cmd_recovery)
@@ -391,7 +412,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_batch)
 
     p = sub.add_parser("demo", help="run every built-in on the invented demo study",
-                       description=cmd_demo.__doc__)
+                       description=cmd_demo.__doc__, epilog=EXIT_STATUS)
     p.add_argument("--folder", metavar="DIR", help="where to write the demo data (default: demo_data/)")
     p.add_argument("--out", metavar="DIR", help="output folder (default: reports/demo)")
     p.add_argument("--engine", choices=("auto", "pystan", "cmdstanpy"), help="Stan engine")

@@ -206,13 +206,20 @@ def build_design(
 
     y_raw = pd.to_numeric(table[outcome], errors="coerce")
     bad_text = y_raw.isna() & table[outcome].notna()
-    if bad_text.all():
-        raise UserError(f"{source}: outcome column '{outcome}' is not numeric.")
     if bad_text.any():
-        first = table.loc[bad_text, outcome].iloc[0]
+        # the first offending row, counted as the data rows of the file (row 1 is the line
+        # after the header), so the user can find it in a spreadsheet or editor
+        at = int(np.flatnonzero(bad_text.to_numpy())[0])
+        first = table[outcome].iloc[at]
+        where = f"data row {at + 1} (line {at + 2} of the file) holds {first!r}"
+        if not y_raw.notna().any():   # no cell of the column reads as a number
+            raise UserError(
+                f"{source}: outcome column '{outcome}' is not numeric: {where}; "
+                "choose a numeric column with --outcome."
+            )
         raise UserError(
             f"{source}: outcome column '{outcome}' has {int(bad_text.sum())} non-numeric "
-            f"value(s), for example {first!r}; fix or remove those rows."
+            f"value(s), for example {first!r} ({where}); fix or remove those rows."
         )
     y_all = y_raw.to_numpy(dtype=float)
     keep = np.isfinite(y_all)

@@ -159,7 +159,26 @@ def select_candidates(cfg: RunConfig) -> list[Candidate]:
             f"[hyperparameters.{unknown[0]}] names no candidate in the run; the candidates are: "
             + ", ".join(every_id)
         )
+    by_id = {c.id: c for c in cands}
+    for cid, values in cfg.hyperparameters.items():
+        c = by_id.get(cid)
+        if c is None or c.info is None:   # not in this run, or a program stanc rejects (reported)
+            continue
+        wrong = [name for name in values if name not in c.info.hyperparameters]
+        if wrong:
+            raise UserError(_unknown_hyper_message(c, wrong[0]))
     return cands
+
+
+def _unknown_hyper_message(c: Candidate, name: str) -> str:
+    """One line for a hyperparameter override that names no input of candidate ``c``."""
+    import difflib
+
+    valid = c.info.hyperparameters if c.info else ()
+    close = difflib.get_close_matches(name, valid, n=1)
+    return (f"[hyperparameters.{c.id}] {name} (--hyper {c.id}.{name}=...) is not a hyperparameter of candidate "
+            f"'{c.id}' ({c.path.name})" + (f"; did you mean {close[0]}?" if close else "")
+            + " Its hyperparameters are: " + (", ".join(valid) or "(none)") + "; nothing was fitted.")
 
 
 def _settings(cfg: RunConfig, draws: int | None = None, chains: int | None = None) -> SamplerSettings:
@@ -222,6 +241,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
             _settings(cfg, draws=max(1, math.ceil(cfg.prior_draws / prior_chains)), chains=prior_chains),
         )
         res.seconds["prior"] = pdraws.sample_seconds
+        res.seconds["prior_wait"] = pdraws.wait_seconds
         res.prior = summarise_prior(
             _stack(pdraws.idata.posterior_predictive, "y_rep"), design.y, cfg.bounds,
             cfg.thresholds, cfg.implausible_share,
@@ -238,6 +258,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         )
         res.health = health
         res.seconds["posterior"] = sum(a.seconds for a in health.attempts)
+        res.seconds["posterior_wait"] = sum(a.wait_seconds for a in health.attempts)
         stored = getattr(engine, "paths", {}).get(c.id)
         res.posterior_file = str(stored[-1]) if stored else ""
         res.sensitivity = power_scaling(draws.idata, c.parameter_names)   # None without lprior
@@ -261,8 +282,13 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         res.stage = "out-of-sample"
         report(c.id, "out-of-sample")
         groups = design.group if design.J > 0 else None
-        plan = plan_estimate(draws.idata, "psis" if cfg.quick else cfg.cross_validation, cfg.refit_cap,
+        # an unhealthy candidate is never ranked: its exact refits (high Pareto k, K-fold)
+        # would cost fits and decide nothing, so it gets plain PSIS-LOO only
+        plain = cfg.quick or not health.healthy
+        plan = plan_estimate(draws.idata, "psis" if plain else cfg.cross_validation, cfg.refit_cap,
                              cfg.folds, groups, cfg.seed)
+        if not health.healthy and not cfg.quick:
+            plan.method = plan.method.replace("(quick look)", f"({REFITS_SKIPPED})")
         del draws
         due = RefitsDue(plan, health.adapt_delta)
         if plan.fits and defer_refits:
@@ -272,12 +298,18 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
             finish_refits(res, due, outcomes)
         if not health.healthy and res.status == "ok":
             res.status, res.reason = "unhealthy", "; ".join(health.problems)
+            if not cfg.quick:
+                res.reason += f"; {REFITS_SKIPPED}"
         res.stage = "done"
     except (SamplingError, UserError) as exc:
         res.status, res.reason = "failed", f"{res.stage}: {exc}"
     except Exception as exc:  # one candidate never stops the others
         res.status, res.reason = "failed", f"{res.stage}: unexpected {type(exc).__name__}: {exc}"
     return res
+
+
+#: Said of an unhealthy candidate, whose exact refits are not run (it is never ranked).
+REFITS_SKIPPED = "exact refits skipped, since an unhealthy candidate is not ranked"
 
 
 @dataclass
@@ -296,6 +328,7 @@ class RefitOutcome:
     held_out: np.ndarray | None
     divergences: int = 0
     seconds: float = 0.0
+    wait_seconds: float = 0.0
     fit_files: list[str] = field(default_factory=list)
     sampled: int = 0
     reused: int = 0
@@ -313,7 +346,8 @@ def refit_held_out(c: Candidate, engine, program, design: Design, cfg: RunConfig
     # the store keeps a refit's held-out observations only: pick them by label
     held_ll = d.idata.log_likelihood.sel(obs=np.asarray(held))
     return RefitOutcome(_stack(held_ll, "log_lik").copy(),
-                        int(np.asarray(d.idata.sample_stats["diverging"].values).sum()), d.sample_seconds)
+                        int(np.asarray(d.idata.sample_stats["diverging"].values).sum()), d.sample_seconds,
+                        d.wait_seconds)
 
 
 def refit_task(c: Candidate, design: Design, cfg: RunConfig, engine_name: str, store_folder: str,
@@ -339,8 +373,9 @@ def finish_refits(res: CandidateResult, due: RefitsDue, outcomes: list[RefitOutc
     res.refit_divergences += sum(o.divergences for o in outcomes)
     spent = sum(o.seconds for o in outcomes)
     res.seconds["refits"] = res.seconds.get("refits", 0.0) + spent
+    res.seconds["refits_wait"] = res.seconds.get("refits_wait", 0.0) + sum(o.wait_seconds for o in outcomes)
     if "total" in res.seconds:   # refits run as tasks of their own after the candidate's
-        res.seconds["total"] += spent
+        res.seconds["total"] += spent + sum(o.wait_seconds for o in outcomes)
     for o in outcomes:
         res.fit_files.extend(f for f in o.fit_files if f not in res.fit_files)
         res.fits_sampled += o.sampled
@@ -452,11 +487,14 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
     from .executor import cores, share
 
     workers, chain_workers = share(jobs or cores(), len(todo))
-    cold = sum(not engine.is_cached(c) for c in todo)
+    from .engines.base import lock_notices
+
+    with lock_notices(say if todo else None):   # another process may be compiling one of them
+        cold = sum(not engine.is_cached(c) for c in todo)
     if cold:
         say(f"compiling {cold} program(s) with {engine.name} (about 45 s each, {jobs or cores()} "
             "at a time; cached for later runs)")
-    programs = compile_all(engine, todo, jobs=jobs or cores())
+    programs = compile_all(engine, todo, jobs=jobs or cores(), progress=say)
     for c in todo:
         if c.id not in programs:
             results[c.id] = CandidateResult(c.id, c.label, c.about, c.support, "failed",
@@ -480,8 +518,8 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
         raise
     ordered = [results[c.id] for c in cands]
     for r in ordered:
-        if r.status in ("failed", "skipped"):
-            say(f"  {r.id}: {r.status}: {r.reason.splitlines()[0][:160] if r.reason else ''}")
+        if r.status in ("failed", "skipped", "unhealthy"):
+            say(f"  {r.id}: {r.status}: {r.reason.splitlines()[0][:300] if r.reason else ''}")
     comparison = compare_candidates(ordered, cfg.seed, cfg.ppp_extreme, store=store)
     if cfg.quick:
         comparison.lead.insert(0, QUICK_LOOK.format(chains=cfg.chains, draws=cfg.draws, rhat=cfg.rhat_max))

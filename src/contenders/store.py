@@ -269,7 +269,8 @@ class FitStore:
             with contextlib.suppress(OSError):
                 os.utime(path)   # "last used", for contenders store --prune --older-than
             return Draws(idata, engine, 0.0, float(attrs.get("contenders_sample_seconds", 0.0)), settings,
-                         str(attrs.get("contenders_messages", "")))
+                         str(attrs.get("contenders_messages", "")),
+                         wait_seconds=float(attrs.get("contenders_wait_seconds", 0.0)))
         except Exception:  # a damaged file is refitted, never trusted
             return None
 
@@ -279,6 +280,7 @@ class FitStore:
         attrs = draws.idata.sample_stats.attrs
         attrs["contenders_key"] = key
         attrs["contenders_sample_seconds"] = draws.sample_seconds
+        attrs["contenders_wait_seconds"] = draws.wait_seconds
         attrs["contenders_messages"] = draws.messages[:10000]
         attrs["contenders_fit_format"] = FIT_FORMAT
         _write_whole(path, lambda tmp: write_netcdf(draws.idata, tmp))

@@ -67,7 +67,7 @@ __all__ = ["Draws", "Engine", "Program", "SamplerSettings", "SamplingError", "ge
            "cmdstan_available", "ENGINE_NAMES"]
 
 
-def compile_all(engine: Engine, candidates, jobs: int = 1) -> dict:
+def compile_all(engine: Engine, candidates, jobs: int = 1, progress=None) -> dict:
     """Compile valid candidates, ``jobs`` at a time, and return ``{id: Program}``.
 
     The C++ compiler is single-threaded, so with ``jobs`` > 1 the programs not yet in
@@ -75,36 +75,70 @@ def compile_all(engine: Engine, candidates, jobs: int = 1) -> dict:
     (``python -m contenders.engines.compile_one``), which fill that cache; then every
     program is loaded from the cache here. A candidate whose compilation fails gets the
     compiler's message appended to its ``problems``.
+
+    ``progress``, when given, is called with one line as each program not yet cached
+    starts and ends compiling (with its seconds), and when a program waits for another
+    process's compile lock (``base.compile_lock``).
     """
     import concurrent.futures as cf
     import subprocess
     import sys
+    import time
 
+    from .base import lock_notices
+
+    say = progress or (lambda _text: None)
     todo = [c for c in candidates if c.valid]
-    cold = [c for c in todo if not engine.is_cached(c)]
+    with lock_notices(progress):
+        cold = [c for c in todo if not engine.is_cached(c)]
+    cold_ids = {c.id for c in cold}
     seconds: dict[str, float] = {}
     if jobs > 1 and len(cold) > 1:
         def child(c):
-            proc = subprocess.run(
+            say(f"  compiling {c.id} ...")
+            t0 = time.perf_counter()
+            proc = subprocess.Popen(
                 [sys.executable, "-m", "contenders.engines.compile_one", engine.name, str(c.path)],
-                capture_output=True, text=True,
+                stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True,   # errors: see below
             )
+            last = ""
+            for line in proc.stdout:   # the child's lock notices as they come, then its seconds
+                line = line.rstrip("\n")
+                if line.startswith(compile_one_notice):
+                    say("  " + line[len(compile_one_notice):])
+                elif line.strip():
+                    last = line
+            proc.wait()
             try:
-                seconds[c.id] = float(proc.stdout.strip().splitlines()[-1])
-            except (ValueError, IndexError):
+                seconds[c.id] = float(last)
+                say(f"  compiled {c.id} in {time.perf_counter() - t0:.0f} s")
+            except ValueError:
                 pass  # the compile in this process below reports the error
 
         with cf.ThreadPoolExecutor(max_workers=jobs) as pool:
             list(pool.map(child, cold))
     programs = {}
-    for c in todo:
-        try:
-            program = engine.compile(c)
-        except SamplingError as exc:
-            c.problems.append(str(exc))
-            continue
-        if c.id in seconds:
-            program.compile_seconds = seconds[c.id]
-            program.from_cache = False
-        programs[c.id] = program
+    with lock_notices(progress):
+        for c in todo:
+            here = c.id in cold_ids and c.id not in seconds   # compiled in this process, now
+            if here:
+                say(f"  compiling {c.id} ...")
+            t0 = time.perf_counter()
+            try:
+                program = engine.compile(c)
+            except SamplingError as exc:
+                c.problems.append(str(exc))
+                if here:
+                    say(f"  {c.id}: compiling failed after {time.perf_counter() - t0:.0f} s")
+                continue
+            if here:
+                say(f"  compiled {c.id} in {time.perf_counter() - t0:.0f} s")
+            if c.id in seconds:
+                program.compile_seconds = seconds[c.id]
+                program.from_cache = False
+            programs[c.id] = program
     return programs
+
+
+#: How ``compile_one`` marks a line that is a notice to show, not its result.
+compile_one_notice = "notice: "

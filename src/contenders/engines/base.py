@@ -7,9 +7,10 @@ import contextlib
 import fcntl
 import os
 import threading
+import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Mapping
+from typing import TYPE_CHECKING, Any, Callable, Mapping
 
 import numpy as np
 
@@ -34,8 +35,48 @@ def _lock_folder() -> Path:
     return Path(base) / "contenders" / "compile-locks"
 
 
+#: Called with one line of text when this process must wait for another one's compile
+#: lock (see ``compile_lock``), and again when it got it; None: wait silently. Set with
+#: ``lock_notices``.
+LOCK_NOTICE: list[Callable[[str], None] | None] = [None]
+#: A lock held longer than this is worth a word (checking a cached program takes less).
+LOCK_NOTICE_SECONDS = 1.0
+
+
 @contextlib.contextmanager
-def compile_lock(key: str):
+def lock_notices(say: Callable[[str], None] | None):
+    """Within the block, ``compile_lock`` tells ``say`` when it waits for another process."""
+    previous, LOCK_NOTICE[0] = LOCK_NOTICE[0], say
+    try:
+        yield
+    finally:
+        LOCK_NOTICE[0] = previous
+
+
+def _acquire(handle, what: str) -> None:
+    """Take the lock on ``handle``; when another process holds it for more than
+    ``LOCK_NOTICE_SECONDS``, say so (``LOCK_NOTICE``) and say again when it is ours."""
+    deadline = time.monotonic() + LOCK_NOTICE_SECONDS
+    while True:
+        try:
+            fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            return
+        except BlockingIOError:
+            if time.monotonic() >= deadline:
+                break
+            time.sleep(0.05)
+    say = LOCK_NOTICE[0]
+    started = time.monotonic()
+    if say is not None:
+        say(f"{what}: waiting for another process that is compiling this program (its compile lock); "
+            "this one goes on when that is done")
+    fcntl.flock(handle, fcntl.LOCK_EX)
+    if say is not None:
+        say(f"{what}: the other process is done (waited {time.monotonic() - started + LOCK_NOTICE_SECONDS:.0f} s)")
+
+
+@contextlib.contextmanager
+def compile_lock(key: str, what: str = ""):
     """Hold an exclusive lock, across all processes of this user, on one program in an
     engine's on-disk cache while it is checked or compiled.
 
@@ -43,11 +84,12 @@ def compile_lock(key: str):
     build the same program into the same cache folder at the same time: httpstan empties
     the folder before it builds, and a process that loads the module while another is
     still linking it reads a half-written file. The lock is released by the system if
-    its holder dies. Not re-entrant: take it once per call chain."""
+    its holder dies. Not re-entrant: take it once per call chain. ``what`` names the
+    program in the notice given when the lock is held by another process (``lock_notices``)."""
     folder = _lock_folder()
     folder.mkdir(parents=True, exist_ok=True)
     with open(folder / f"{key}.lock", "a+") as handle:
-        fcntl.flock(handle, fcntl.LOCK_EX)
+        _acquire(handle, what or key)
         try:
             yield
         finally:
@@ -99,6 +141,9 @@ class Draws:
     settings: SamplerSettings
     messages: str = ""
     from_store: bool = False
+    #: seconds the fit waited, with none of its chains running, for a free chain slot
+    #: held by other fits of the run; ``sample_seconds`` excludes them
+    wait_seconds: float = 0.0
 
 
 class Engine(abc.ABC):

@@ -56,7 +56,7 @@ class CmdStanPyEngine(Engine):
         folder = _cache_root() / candidate.code_hash[:16]
         start = time.perf_counter()
         # one process at a time builds a program into the shared cache (see compile_lock)
-        with compile_lock(f"cmdstan-{candidate.code_hash[:16]}-{candidate.id}"):
+        with compile_lock(f"cmdstan-{candidate.code_hash[:16]}-{candidate.id}", what=candidate.id):
             folder.mkdir(parents=True, exist_ok=True)
             stan_file = folder / f"{candidate.id}.stan"
             if not stan_file.exists() or stan_file.read_text() != candidate.code:

@@ -188,7 +188,43 @@ def _init_chain_process() -> None:
 PARENT_CHECK_SECONDS = 2.0
 
 
-def _sample_direct(model, settings: SamplerSettings):
+class _Waiting:
+    """Seconds a fit spends waiting for a free chain slot while none of its own chains
+    runs: the time other fits of the run hold every slot. Time when one of its chains
+    runs and the next waits for a slot is work, not waiting (the fit is progressing)."""
+
+    def __init__(self, clock=time.perf_counter) -> None:
+        import threading
+
+        self.clock = clock
+        self.seconds = 0.0
+        self._lock = threading.Lock()
+        self._running = 0
+        self._acquiring = False
+        self._idle_from: float | None = None
+
+    def before_acquire(self) -> None:
+        with self._lock:
+            self._acquiring = True
+            if self._running == 0:
+                self._idle_from = self.clock()
+
+    def acquired(self) -> None:
+        with self._lock:
+            if self._idle_from is not None:
+                self.seconds += self.clock() - self._idle_from
+                self._idle_from = None
+            self._acquiring = False
+            self._running += 1
+
+    def chain_done(self) -> None:
+        with self._lock:
+            self._running -= 1
+            if self._running == 0 and self._acquiring:
+                self._idle_from = self.clock()
+
+
+def _sample_direct(model, settings: SamplerSettings, waiting: "_Waiting | None" = None):
     """NUTS with httpstan's compiled program, one chain per forked process, read directly.
 
     The same stan::services call with the same arguments as PyStan's ``model.sample``
@@ -204,7 +240,8 @@ def _sample_direct(model, settings: SamplerSettings):
     any latency to 7 significant digits.
 
     Returns ``(arrays, stats)``: per variable an array (chains, draws, *dims), and per
-    sampler statistic an array (chains, draws)."""
+    sampler statistic an array (chains, draws). ``waiting`` (a ``_Waiting``) measures the
+    time spent waiting for chain slots (``CHAIN_SLOTS``) with no chain of this fit running."""
     import json as _json
 
     import httpstan.services_stub as stub
@@ -224,18 +261,26 @@ def _sample_direct(model, settings: SamplerSettings):
         futures = []
         errors = []
         try:
+            waiting = waiting or _Waiting()
             for chain in range(1, settings.chains + 1):
                 if slots is not None:
+                    waiting.before_acquire()
                     slots.acquire()
+                    waiting.acquired()
                 try:
                     future = stub.executor.submit(_run_chain, model.model_name, data,
                                                   dict(kwargs, chain=chain), layout, settings.draws, folder)
                 except BaseException:
                     if slots is not None:
+                        waiting.chain_done()
                         slots.release()
                     raise
                 if slots is not None:
-                    future.add_done_callback(lambda _f: slots.release())
+                    def done(_f, slots=slots, waiting=waiting) -> None:
+                        waiting.chain_done()
+                        slots.release()
+
+                    future.add_done_callback(done)
                 futures.append(future)
             for i, future in enumerate(futures):
                 answer = future.result()
@@ -564,6 +609,13 @@ def _stan_message(text: str) -> str:
     return "\n".join(dict.fromkeys(keep))[:4000]
 
 
+#: How often a compile is asked for when PyStan's client gives up waiting for it.
+COMPILE_TRIES = 2
+#: The limit PyStan's client (an aiohttp session with aiohttp's default timeout) puts on
+#: one request, the compile included.
+REQUEST_LIMIT_SECONDS = 300
+
+
 class PyStanEngine(Engine):
     name = "pystan"
 
@@ -578,7 +630,7 @@ class PyStanEngine(Engine):
         import httpstan.models
 
         model_name = httpstan.models.calculate_model_name(candidate.code)
-        with compile_lock(_lock_key(model_name)):
+        with compile_lock(_lock_key(model_name), what=candidate.id):
             return _module_ready(model_name)
 
     def compile(self, candidate: Candidate) -> Program:
@@ -596,10 +648,25 @@ class PyStanEngine(Engine):
                     )
 
         start = time.perf_counter()
-        with compile_lock(_lock_key(model_name)):
+        with compile_lock(_lock_key(model_name), what=candidate.id):
             cached = _module_ready(model_name)
-            with _quiet():
-                asyncio.run(build())
+            for attempt in range(1, COMPILE_TRIES + 1):
+                try:
+                    with _quiet():
+                        asyncio.run(build())
+                    break
+                except asyncio.TimeoutError:
+                    # PyStan's client gives up on a request after REQUEST_LIMIT_SECONDS; on a
+                    # loaded machine a compile can take longer. httpstan finishes the build
+                    # in the background before asyncio.run returns, so a second request
+                    # usually finds the program compiled.
+                    raise_if_interrupted()
+                    if attempt == COMPILE_TRIES:
+                        raise SamplingError(
+                            f"{candidate.path.name}: compiling took longer than the {REQUEST_LIMIT_SECONDS} s "
+                            f"PyStan allows one request, {COMPILE_TRIES} times (the machine is busy); run again "
+                            "when it is less loaded, or with fewer programs compiled at once (--jobs 1)"
+                        ) from None
             try:
                 httpstan.models.import_services_extension_module(model_name)
             except (KeyError, ImportError, OSError) as exc:
@@ -621,9 +688,10 @@ class PyStanEngine(Engine):
     def sample(self, program: Program, data: Mapping[str, Any], settings: SamplerSettings) -> Draws:
         model = self._build(program, data, settings.seed)
         start = time.perf_counter()
+        waiting = _Waiting()
         with _quiet() as buf:
             try:
-                arrays, stats = _sample_direct(model, settings)
+                arrays, stats = _sample_direct(model, settings, waiting)
             except (RuntimeError, ValueError) as exc:
                 raise SamplingError(
                     f"{program.candidate_id}: sampling failed: {_short(exc, file_name=program.candidate_id + '.stan')}\n{_stan_message(buf.getvalue())}"
@@ -634,8 +702,9 @@ class PyStanEngine(Engine):
         seconds = time.perf_counter() - start
         idata = _to_inference_data(model, arrays, stats, data)
         del arrays, stats
-        return Draws(idata, self.name, program.compile_seconds, seconds, settings,
-                     _stan_message(buf.getvalue() + _LOGGED.get(id(model), "")))
+        wait = min(waiting.seconds, seconds)
+        return Draws(idata, self.name, program.compile_seconds, seconds - wait, settings,
+                     _stan_message(buf.getvalue() + _LOGGED.get(id(model), "")), wait_seconds=wait)
 
     def single_draw(
         self, program: Program, data: Mapping[str, Any], seed: int,

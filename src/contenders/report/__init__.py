@@ -381,6 +381,8 @@ def _health(result, cands) -> tuple[Table, list[tuple[str, str, list[str]]]]:
         ], [r.id, r.label, r.status, h.rhat_max, h.rhat_worst, h.ess_bulk_min, h.ess_tail_min, h.ess_worst,
             h.divergences, h.treedepth_hits, " ".join(repr(float(v)) for v in h.ebfmi), h.adapt_delta,
             "; ".join(f"adapt_delta {a.adapt_delta:g}: {a.divergences} divergences, {a.seconds:.2f} s"
+                      + (f" (and {getattr(a, 'wait_seconds', 0.0):.2f} s waiting for a core)"
+                         if getattr(a, "wait_seconds", 0.0) else "")
                       for a in h.attempts),
             "; ".join(h.problems), "; ".join(h.warnings)], cls)
         items = [fmt.sentence(p) for p in h.problems] + [fmt.sentence(w) for w in h.warnings]
@@ -804,16 +806,25 @@ def _settings(result, command_line) -> Table:
 
 
 def _files(result, cands) -> Table:
-    t = Table("candidate_files.csv", ["Candidate", "Program SHA-256", "Prior", "Posterior", "Refits", "Total"],
+    """Seconds per candidate: sampling in each trial, the time its fits waited for a free
+    core while other candidates' chains held them all (not part of a trial's seconds),
+    and the total from start to end of its work."""
+    t = Table("candidate_files.csv", ["Candidate", "Program SHA-256", "Prior", "Posterior", "Refits",
+                                      "Waiting for a core", "Total"],
               csv_headers=["id", "label", "status", "code_sha256", "seconds_prior", "seconds_posterior",
-                           "seconds_refits", "seconds_total"],
-              numeric=[False, False, True, True, True, True])
+                           "seconds_refits", "seconds_waiting", "seconds_total"],
+              numeric=[False, False, True, True, True, True, True])
     for r in cands:
         s = r.seconds
-        total = sum(s.values()) if s else None
+        parts = [s[k] for k in ("prior", "posterior", "refits") if k in s]
+        waits = [s[k] for k in ("prior_wait", "posterior_wait", "refits_wait") if k in s]
+        wait = sum(waits) if waits else None
+        total = s.get("total", sum(parts) + (wait or 0.0) if parts else None)
         t.add([Cell(r.label, "name", r.id), Cell(r.code_hash, "hash"), n(fmt.seconds(s.get("prior"))),
-               n(fmt.seconds(s.get("posterior"))), n(fmt.seconds(s.get("refits"))), n(fmt.seconds(total))],
-              [r.id, r.label, r.status, r.code_hash, s.get("prior"), s.get("posterior"), s.get("refits"), total])
+               n(fmt.seconds(s.get("posterior"))), n(fmt.seconds(s.get("refits"))), n(fmt.seconds(wait)),
+               n(fmt.seconds(total))],
+              [r.id, r.label, r.status, r.code_hash, s.get("prior"), s.get("posterior"), s.get("refits"), wait,
+               total])
     return t
 
 

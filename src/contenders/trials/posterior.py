@@ -29,7 +29,8 @@ from ..engines.base import Draws, Engine, Program, SamplerSettings
 class Attempt:
     adapt_delta: float
     divergences: int
-    seconds: float
+    seconds: float                 # sampling, without the waiting below
+    wait_seconds: float = 0.0      # waiting for a free chain slot, no chain of the fit running
 
 
 @dataclass
@@ -163,7 +164,7 @@ def fit_with_health(
     for i, delta in enumerate(steps):
         draws = engine.sample(program, data, replace(settings, adapt_delta=delta))
         n_div = int(np.asarray(draws.idata.sample_stats["diverging"].values).sum())
-        attempts.append(Attempt(delta, n_div, draws.sample_seconds))
+        attempts.append(Attempt(delta, n_div, draws.sample_seconds, draws.wait_seconds))
         if n_div == 0 or i == len(steps) - 1:
             break
         del draws
