@@ -163,7 +163,9 @@ def test_kfold_above_the_refit_cap_and_leave_one_group_out(tmp_path, programs):
     g = np.repeat(["p1", "p2", "p3", "p4"], 10)
     pd.DataFrame({"y": y, "g": g}).to_csv(tmp_path / "k.csv", index=False)
     base = RunConfig(data=tmp_path / "k.csv", outcome="y", only=("normal",), chains=2, warmup=200,
-                     draws=300, prior_draws=100, engine="pystan", folds=5)
+                     draws=300, prior_draws=100, engine="pystan", folds=5,
+                     ess_per_chain_min=20, rhat_max=1.05)   # short chains must count as healthy:
+    # an unhealthy candidate gets no refits
     kf = run(base.with_(out=tmp_path / "a", refit_cap=0)).candidates[0].oos
     assert kf.method.startswith("5-fold cross-validation (1 observations had Pareto k above")
     assert kf.n_refits == 5
