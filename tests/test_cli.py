@@ -71,7 +71,7 @@ def test_a_run_that_ranks_nothing_exits_3_writes_the_report_and_spends_no_refits
     summary = json.loads((out / "summary.json").read_text())
     assert summary["ranking"] == []
     (c,) = summary["candidates"]
-    assert c["status"] == "unhealthy" and "(100000 per chain)" in c["reason"]
+    assert c["status"] == "unhealthy" and "(100,000 per chain)" in c["reason"]   # thousands separated
     assert c["reason"].endswith("exact refits skipped, since an unhealthy candidate is not ranked")
     assert c["n_refits"] == 0 and "refits skipped" in c["elpd_method"] and "fold" not in c["elpd_method"]
     # the prior draws and the posterior fit(s) of the adapt_delta escalation, no fold refits
