@@ -525,42 +525,53 @@ READING_TEXT = {"agree": "agree", "depends": "◆ depends on the candidate",
 
 
 def _effects_table(result, effects) -> Table:
-    """Effects as rows, candidates as columns (ranked first, by elpd): the mean of the
-    replicated effect with its 95 % interval; ◇ where the observed value lies outside."""
+    """Candidates as rows (ranked first, by elpd), effects as columns: the mean of each
+    replicated effect with its 95 % interval, ◇ where the observed value lies outside;
+    the observed value first, the stacking-weighted mix and the reading last. Effects
+    are few and candidates many, so this way round the table fits the page's width.
+    The CSV keeps one row per effect and candidate."""
     outcome = result.design.outcome
-    heads: list[tuple[str, str]] = []
+    heads: list[tuple[str, str, str, Any]] = []   # id, label, status, weight
     for e in effects:
         for row in e.rows:
             if row["id"] not in [h[0] for h in heads]:
-                w = f", weight {fmt.fixed(row['weight'], 2)}" if row["weight"] is not None else ", not ranked"
-                heads.append((row["id"], f"{row['label']}{w}"))
+                heads.append((row["id"], row["label"], row["status"], row["weight"]))
     t = Table("effects.csv",
-              ["Effect", "Units", "Observed"] + [h for _, h in heads]
-              + ["Stacking-weighted mix", "Do the weighted candidates agree?"],
+              ["Candidate", "Stacking weight"] + [f"{e.title} ({_effect_units(e, outcome)})" for e in effects],
               csv_headers=["effect", "description", "kind", "column", "level", "reference", "units", "id",
                            "label", "status", "rank", "stacking_weight", "observed", "replicated_mean",
                            "replicated_q025", "replicated_q975", "direction", "observed_inside",
                            "n_draws", "n_missing", "reading"],
-              numeric=[False, False, True] + [True] * len(heads) + [True, False])
+              numeric=[False, True] + [True] * len(effects))
+    digits = []
     for e in effects:
-        units = _effect_units(e, outcome)
-        by_id = {row["id"]: row for row in e.rows}
         c = e.combined
         same = [e.observed] + [row[k] for row in e.rows if row["n_draws"] for k in ("mean", "lower", "upper")]
         same += [c["mean"], c["lower"], c["upper"]] if c else []
-        d = fmt.decimals(same)   # one effect per row: its values share one count of decimals
-        cells = [Cell(e.title), Cell(units), n(fmt.fixed(e.observed, d))]
-        for cid, _ in heads:
-            row = by_id.get(cid)
+        digits.append(fmt.decimals(same))   # one effect per column: its values share one count of decimals
+    t.add([Cell("Observed in the data"), n("")] + [n(fmt.fixed(e.observed, d)) for e, d in zip(effects, digits)],
+          cls="observed")
+    for cid, label, status, weight in heads:
+        ranked = weight is not None
+        cells = [Cell(label, "name", cid), n(fmt.fixed(weight, 2) if ranked else "not ranked", "" if ranked else "muted")]
+        for e, d in zip(effects, digits):
+            row = {r["id"]: r for r in e.rows}.get(cid)
             if row is None or not row["n_draws"]:
                 cells.append(n(fmt.MISSING, "muted"))
                 continue
             outside = row["observed_inside"] is False
             cells.append(n(("◇ " if outside else "") + _estimate(row["mean"], row["lower"], row["upper"], d),
-                           ("watch " if outside else "") + ("" if row["weight"] is not None else "muted")))
-        cells.append(n(_estimate(c["mean"], c["lower"], c["upper"], d) if c else fmt.MISSING))
-        cells.append(Cell(READING_TEXT[e.reading], "flag" if e.reading == "depends" else ""))
-        t.add(cells, cls="flagged" if e.reading == "depends" else "")
+                           ("watch " if outside else "") + ("" if ranked else "muted")))
+        t.add(cells, cls="" if ranked else "muted")
+    t.add([Cell("Stacking-weighted mix"), n("")]
+          + [n(_estimate(e.combined["mean"], e.combined["lower"], e.combined["upper"], d) if e.combined
+               else fmt.MISSING) for e, d in zip(effects, digits)], cls="combined")
+    t.add([Cell("Do the weighted candidates agree?"), n("")]
+          + [Cell(READING_TEXT[e.reading], "flag" if e.reading == "depends" else "") for e in effects],
+          cls="flagged" if any(e.reading == "depends" for e in effects) else "")
+    for e in effects:
+        c = e.combined
+        units = _effect_units(e, outcome)
         common = [e.key, e.title, e.kind, e.column, e.level, e.reference, units]
         for row in e.rows:
             t.csv_rows.append(common + [row["id"], row["label"], row["status"], row["rank"], row["weight"],
@@ -883,7 +894,8 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "elpd": drawn(store, "elpd_differences", result.comparison.rows),
         "prior": drawn(store, "prior_grid", [(r.label, r.prior) for r in with_prior], stats, observed),
         "pareto": drawn(store, "pareto_k_grid", [(r.label, r.oos) for r in with_oos]),
-        "density": drawn(store, "replicate_density_grid", d.y, [(r.label, r.y_rep_sample) for r in with_checks]),
+        "density": drawn(store, "replicate_density_grid", d.y, [(r.label, r.y_rep_sample) for r in with_checks],
+                       outcome=d.outcome),
         "stats": drawn(store, "statistic_grid", [(r.label, r.checks) for r in with_checks], cfg.ppp_extreme),
         "pit": drawn(store, "loo_pit_grid", [(r.label, r.checks) for r in with_checks], PIT_ALPHA),
     }

@@ -57,10 +57,10 @@ PANEL = "#fcfbf8"        # panel background, a warm paper tone
 STYLE = {
     "font.family": "DejaVu Sans",
     "font.size": 8,
-    "axes.titlesize": 8,
+    "axes.titlesize": 8.5,
     "axes.titlelocation": "left",
     "axes.titlepad": 3,
-    "axes.labelsize": 7.5,
+    "axes.labelsize": 8.5,
     "axes.labelcolor": "#333333",
     "axes.edgecolor": "#6b6b6b",
     "axes.linewidth": 0.6,
@@ -68,8 +68,8 @@ STYLE = {
     "axes.spines.top": False,
     "axes.spines.right": False,
     "axes.grid": False,
-    "xtick.labelsize": 6.5,
-    "ytick.labelsize": 6.5,
+    "xtick.labelsize": 7.5,
+    "ytick.labelsize": 7.5,
     "xtick.color": "#4d4d4d",
     "ytick.color": "#4d4d4d",
     "xtick.major.size": 2.5,
@@ -77,7 +77,7 @@ STYLE = {
     "xtick.major.width": 0.5,
     "ytick.major.width": 0.5,
     "legend.frameon": False,
-    "legend.fontsize": 7,
+    "legend.fontsize": 7.5,
     "figure.facecolor": "white",
     "svg.fonttype": "path",
     "svg.hashsalt": "contenders-report",
@@ -88,6 +88,8 @@ STYLE = {
 #: SVG larger than this (bytes) is replaced by a PNG.
 SVG_BUDGET = 450_000
 PNG_DPI = 110
+#: Figures may be shown this many times larger than drawn (their width in points).
+DISPLAY_SCALE = 1.3
 RASTER_DPI = 130
 
 def plain(text: str, limit: int = 34) -> str:
@@ -133,7 +135,9 @@ def _svg(fig: Figure, alt: str) -> str:
         tag = m.group(0)
         width = re.search(r'width="([\d.]+)pt"', tag)
         tag = re.sub(r'\s(width|height)="[\d.]+pt"', "", tag, count=2)
-        style = f' style="max-width:{width.group(1)}pt"' if width else ""
+        # shown up to DISPLAY_SCALE times its drawn size, so that its smallest text (7 pt)
+        # reads at about 10 px or more on a 1280 px wide screen
+        style = f' style="max-width:{float(width.group(1)) * DISPLAY_SCALE:.0f}pt"' if width else ""
         return tag[:-1] + f' class="fig" role="img" aria-label="{escape(alt)}"{style}>'
 
     return _compact(re.sub(r"<svg\b[^>]*>", root, text, count=1))
@@ -143,7 +147,7 @@ def _png(fig: Figure, alt: str) -> str:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=PNG_DPI, metadata={"Software": None})
     data = base64.b64encode(buf.getvalue()).decode("ascii")
-    width = int(round(fig.get_figwidth() * 96))
+    width = int(round(fig.get_figwidth() * 96 * DISPLAY_SCALE))
     return (f'<img class="fig" src="data:image/png;base64,{data}" alt="{escape(alt)}" '
             f'style="max-width:{width}px">')
 
@@ -320,7 +324,7 @@ def _histogram(ax, draws: np.ndarray, scale: Scale, color: str) -> tuple[float, 
     d = d[~np.isnan(d)]
     if d.size == 0:
         ax.text(0.5, 0.5, "no finite draws", transform=ax.transAxes, ha="center", va="center",
-                fontsize=6.5, color=MUTED)
+                fontsize=7, color=MUTED)
         return 0.0, 0.0
     below = float(np.mean(d < scale.lo))
     above = float(np.mean(d > scale.hi))
@@ -344,7 +348,7 @@ def _tint(color: str, alpha: float) -> tuple[float, float, float, float]:
 
 def _beyond(ax, below: float, above: float) -> None:
     """Note the share of draws outside the shown range, at the panel's edges."""
-    style = dict(transform=ax.transAxes, fontsize=5.8, color="#555555", va="top")
+    style = dict(transform=ax.transAxes, fontsize=7, color="#555555", va="top")
 
     def pct(x: float) -> str:
         return f"{100 * x:.0f} %" if x >= 0.01 else "<1 %"
@@ -363,7 +367,7 @@ def _flag_frame(ax) -> None:
 
 
 def _row_label(ax, text: str, offset: float = 6) -> None:
-    ax.annotate(_wrap(text, 17), xy=(0, 0.5), xycoords="axes fraction", xytext=(-offset, 0),
+    ax.annotate(_wrap(text, 17, 3), xy=(0, 0.5), xycoords="axes fraction", xytext=(-offset, 0),
                 textcoords="offset points", ha="right", va="center", fontsize=7.5, color=INK)
 
 
@@ -383,7 +387,7 @@ def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
         return None
     n = len(rows)
     fig = _new(7.2, 0.6 + 0.32 * n)
-    fig.subplots_adjust(left=0.27, right=0.97, top=1 - 0.28 / (0.6 + 0.32 * n),
+    fig.subplots_adjust(left=0.36, right=0.97, top=1 - 0.28 / (0.6 + 0.32 * n),
                         bottom=0.42 / (0.6 + 0.32 * n))
     ax = fig.add_subplot()
     d = np.array([r["elpd_diff"] for r in rows], dtype=float)
@@ -393,7 +397,7 @@ def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
     right = max(hi * 1.08, 6.0)
     ax.axvspan(0, SMALL_DIFFERENCE, color=BAND, zorder=0, linewidth=0)
     ax.text(SMALL_DIFFERENCE / 2, ypos[0] + 0.62, f"within {SMALL_DIFFERENCE:g}: too close to tell apart", ha="center", va="bottom",
-            fontsize=6.3, color="#555555", clip_on=False)
+            fontsize=7, color="#555555", clip_on=False)
     ax.axvline(0, color=MUTED, linewidth=0.7)
     for y, di, s, r in zip(ypos, d, se, rows):
         if r["rank"] == 1:
@@ -402,7 +406,7 @@ def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
         ax.hlines(y, di - 2 * s, di + 2 * s, color=POSTERIOR, linewidth=1.0)
         ax.hlines(y, di - s, di + s, color=POSTERIOR, linewidth=3.2)
         ax.plot([di], [y], marker="o", color=INK, markersize=4.2, zorder=3)
-    ax.set_yticks(ypos, [plain(f"{r['rank']}. {r['label']}", 30) for r in rows])
+    ax.set_yticks(ypos, [plain(f"{r.get('shared_rank') or r['rank']}. {r['label']}", 60) for r in rows])
     ax.tick_params(axis="y", length=0, labelsize=7.5)
     ax.spines["left"].set_visible(False)
     ax.set_xlim(min(-0.05 * right, float(np.nanmin(d - 2 * se)) * 1.05), right)
@@ -460,7 +464,7 @@ def _statistic_grid(cands, stats, observed, draws_of, color, annotate, flag_of=N
         axes[0, j].set_title(_wrap(title, 18, 1) + ("\n" + scale.note if scale is not None and scale.note else "\n"),
                              fontsize=7)
     for i, (label, _) in enumerate(cands):
-        axes[i, 0].annotate(_wrap(label, 17), xy=(0, 0.5), xycoords="axes fraction", xytext=(-6, 0),
+        axes[i, 0].annotate(_wrap(label, 17, 3), xy=(0, 0.5), xycoords="axes fraction", xytext=(-6, 0),
                             textcoords="offset points", ha="right", va="center", fontsize=7.3, color=INK)
     return fig
 
@@ -490,7 +494,7 @@ class _PriorMarks:
         inside = p.inside_each.get(stat)
         if inside is not None:
             ax.text(0.5, -0.03, f"{100 * inside:.0f} % inside", transform=ax.transAxes, ha="center", va="top",
-                    fontsize=5.8, color=LIMIT, fontweight="bold",
+                    fontsize=7, color=LIMIT, fontweight="bold",
                     bbox=dict(facecolor="white", edgecolor="none", pad=0.4))
 
 
@@ -549,9 +553,9 @@ def pareto_k_grid(cands: Sequence[tuple[str, object]]) -> Rendered | None:
         ax.set_yticks([v for v in (0.0, 0.5, 1.0) if ymin <= v <= ymax])
         if not np.isfinite(k).any():
             ax.text(0.5, 0.5, "no Pareto k (elpd from held-out fits)", transform=ax.transAxes,
-                    ha="center", va="center", fontsize=6.5, color=MUTED)
+                    ha="center", va="center", fontsize=7, color=MUTED)
         note = f"threshold {o.k_threshold:.2f}; {int(high.sum())} above; {len(o.refitted)} refitted"
-        ax.text(0.995, 0.97, note, transform=ax.transAxes, ha="right", va="top", fontsize=6,
+        ax.text(0.995, 0.97, note, transform=ax.transAxes, ha="right", va="top", fontsize=7,
                 color="#444444", bbox=dict(facecolor=PANEL, edgecolor="none", pad=0.5))
         _row_label(ax, label, offset=24)
     axes[-1].set_xlabel("observation (row of the data after dropping rows without an outcome)")
@@ -588,7 +592,8 @@ def binned_density(rows: np.ndarray, lo: float, hi: float, bandwidth: float, m: 
 
 
 @_styled
-def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]], ncols: int = 3) -> Rendered | None:
+def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]], ncols: int = 3,
+                           outcome: str = "outcome") -> Rendered | None:
     """One panel per candidate, same axes: the density of each replicated dataset (thin,
     light lines) and of the observed data (thick, solid ink), all smoothed with the same
     kernel bandwidth (Silverman's rule on the observed data)."""
@@ -623,10 +628,10 @@ def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]
         ax.xaxis.set_major_locator(MaxNLocator(nbins=4))
         ax.set_yticks([])
         ax.spines["left"].set_visible(False)
-        ax.set_title(plain(label, 34))
+        ax.set_title(plain(label, 60))
         if k == 0:
-            ax.legend(loc="upper right", fontsize=6.2, handlelength=1.8)
-    fig.supxlabel("outcome", fontsize=7.5, y=0.1 / height)
+            ax.legend(loc="upper right", fontsize=7, handlelength=1.8)
+    fig.supxlabel(plain(outcome, 60), fontsize=8.5, y=0.1 / height)
     return render(fig, "density of replicated datasets and of the observed data per candidate")
 
 
@@ -657,7 +662,7 @@ class _PosteriorMarks:
     def __call__(self, ax, c, stat, scale):
         flagged = self.flagged(c, stat)
         ax.text(0.5, -0.03, ("◆ " if flagged else "") + _p_text(self.p(c, stat)), transform=ax.transAxes,
-                ha="center", va="top", fontsize=6, fontweight="bold" if flagged else "normal", color=INK,
+                ha="center", va="top", fontsize=7, fontweight="bold" if flagged else "normal", color=INK,
                 bbox=dict(facecolor="white", edgecolor="none", pad=0.4))
 
 
@@ -726,14 +731,14 @@ def loo_pit_grid(cands: Sequence[tuple[str, object]], alpha: float = 0.01, ncols
             ax.tick_params(axis="y", labelleft=False)
         p = c.loo_pit_test["p_value"]
         flagged = np.isfinite(p) and p < alpha
-        ax.set_title(plain(label, 30))
+        ax.set_title(plain(label, 60))
         ax.text(0.98, 0.04, ("◆ " if flagged else "") + "KS " + _p_text(p),
-                transform=ax.transAxes, ha="right", va="bottom", fontsize=6.3,
+                transform=ax.transAxes, ha="right", va="bottom", fontsize=7,
                 fontweight="bold" if flagged else "normal")
         if flagged:
             _flag_frame(ax)
         if k == 0:
-            ax.legend(loc="upper left", fontsize=6, handlelength=1.5)
+            ax.legend(loc="upper left", fontsize=7, handlelength=1.5)
     fig.supxlabel("LOO-PIT value", fontsize=7.5, y=0.12 / height)
     fig.text(0.012, 0.5, "ECDF minus uniform", rotation=90, va="center", fontsize=7.5)
     return render(fig, "LOO-PIT calibration per candidate: distribution function minus uniform with a 95 % band")
@@ -815,10 +820,10 @@ def effects_across(effects: Sequence[object], units: dict[str, str]) -> Rendered
     if not effects:
         return None
     heights = [len(e.rows) + (1 if e.combined else 0) + 0.9 for e in effects]
-    width = 7.4
-    height = 0.35 + 0.2 * sum(heights) + 0.32 * len(effects)
+    width = 8.0
+    height = 0.35 + 0.22 * sum(heights) + 0.32 * len(effects)
     fig = _new(width, height)
-    fig.subplots_adjust(left=1.9 / width, right=0.98, top=1 - 0.3 / height, bottom=0.55 / height, hspace=0.9)
+    fig.subplots_adjust(left=2.8 / width, right=0.98, top=1 - 0.3 / height, bottom=0.55 / height, hspace=0.9)
     axes = fig.subplots(len(effects), 1, squeeze=False, gridspec_kw={"height_ratios": heights})[:, 0]
     for ax, e in zip(axes, effects):
         rows = list(e.rows)
@@ -836,7 +841,7 @@ def effects_across(effects: Sequence[object], units: dict[str, str]) -> Rendered
                         markerfacecolor=INK if ranked else "white", zorder=3)
             head = f"{row['rank']}. " if ranked else ""
             tail = f"  w {row['weight']:.2f}" if ranked else "  not ranked"
-            labels.append(plain(head + str(row["label"]), 24) + tail)
+            labels.append(plain(head + str(row["label"]), 60) + tail)
         if e.combined:
             c = e.combined
             ends += [c["lower"], c["upper"]]
@@ -852,7 +857,7 @@ def effects_across(effects: Sequence[object], units: dict[str, str]) -> Rendered
         ax.set_xlim(lo, hi)
         ax.set_ylim(-0.7, n - 0.3)
         ax.set_yticks(ypos, labels)
-        ax.tick_params(axis="y", length=0, labelsize=6.8)
+        ax.tick_params(axis="y", length=0, labelsize=7.5)
         ax.spines["left"].set_visible(False)
         ax.xaxis.set_major_locator(MaxNLocator(nbins=5))
         flagged = e.reading == "depends"
@@ -862,6 +867,6 @@ def effects_across(effects: Sequence[object], units: dict[str, str]) -> Rendered
         if flagged:
             _flag_frame(ax)
     axes[-1].set_xlabel("replicated effect (dot: mean; line: 95 % interval); thick black line: observed value",
-                        fontsize=6.8)
+                        fontsize=7.8)
     return render(fig, "each effect under each candidate with 95 % intervals, the stacking-weighted mix "
                        "and the observed value")
