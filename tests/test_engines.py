@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+import contextlib
+import subprocess
+import sys
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -11,6 +15,25 @@ from contenders.data import build_design
 from contenders.engines import SamplerSettings, cmdstan_available, get_engine
 
 SMALL = SamplerSettings(chains=2, warmup=200, draws=150, seed=11)
+
+
+@contextlib.contextmanager
+def _lock_held_elsewhere(key: str, seconds: float):
+    """Another process holds the compile lock ``key`` for ``seconds`` while the body runs."""
+    holder = subprocess.Popen(
+        [sys.executable, "-c",
+         "import time\n"
+         "from contenders.engines.base import compile_lock\n"
+         f"with compile_lock({key!r}):\n"
+         "    print('held', flush=True)\n"
+         f"    time.sleep({seconds})\n"],
+        stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        yield
+    finally:
+        holder.stdout.close()
+        holder.wait(timeout=30)
 
 
 @pytest.fixture(scope="module")
@@ -184,22 +207,10 @@ def test_compile_waits_while_another_process_builds_the_same_program(engine, pro
 
     candidate = builtins["normal"]
     key = _lock_key(httpstan.models.calculate_model_name(candidate.code))
-    holder = subprocess.Popen(
-        [sys.executable, "-c",
-         "import sys, time\n"
-         "from contenders.engines.base import compile_lock\n"
-         f"with compile_lock({key!r}):\n"
-         "    print('held', flush=True)\n"
-         "    time.sleep(3)\n"],
-        stdout=subprocess.PIPE, text=True)
-    try:
-        assert holder.stdout.readline().strip() == "held"
+    with _lock_held_elsewhere(key, 3):
         start = time.monotonic()
         program = engine.compile(candidate)
         waited = time.monotonic() - start
-    finally:
-        holder.stdout.close()
-        holder.wait(timeout=30)
     assert program.from_cache
     assert waited > 2.0, f"compile returned after {waited:.2f} s while another process held the program"
     # and this process let go of it: another can take it at once
@@ -339,20 +350,8 @@ def test_compiling_says_when_each_program_starts_and_ends_and_when_it_waits_for_
     # another process holds the program's compile lock for 3 s: this one says it waits
     lines.clear()
     key = _lock_key(httpstan.models.calculate_model_name(builtins["normal"].code))
-    holder = subprocess.Popen(
-        [sys.executable, "-c",
-         "import time\n"
-         "from contenders.engines.base import compile_lock\n"
-         f"with compile_lock({key!r}):\n"
-         "    print('held', flush=True)\n"
-         "    time.sleep(3)\n"],
-        stdout=subprocess.PIPE, text=True)
-    try:
-        assert holder.stdout.readline().strip() == "held"
+    with _lock_held_elsewhere(key, 3):
         got = compile_all(engine, [builtins["normal"]], jobs=1, progress=lines.append)
-    finally:
-        holder.stdout.close()
-        holder.wait(timeout=30)
     assert set(got) == {"normal"}
     assert lines[0] == ("normal: waiting for another process that is compiling this program (its compile lock); "
                         "this one goes on when that is done")
