@@ -522,7 +522,8 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
             say(f"  {r.id}: {r.status}: {r.reason.splitlines()[0][:300] if r.reason else ''}")
     comparison = compare_candidates(ordered, cfg.seed, cfg.ppp_extreme, store=store)
     if cfg.quick:
-        comparison.lead.insert(0, QUICK_LOOK.format(chains=cfg.chains, draws=cfg.draws, rhat=cfg.rhat_max))
+        comparison.lead.insert(0, QUICK_LOOK.format(chains=cfg.chains, draws=cfg.draws, rhat=cfg.rhat_max,
+                                                         ess=cfg.ess_per_chain_min))
     sampled = sum(r.fits_sampled for r in ordered if not r.from_store)
     reused = sum(r.fits_reused for r in ordered if not r.from_store) + sum(
         len(r.fit_files) for r in ordered if r.from_store)
@@ -537,7 +538,7 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
 
 #: The first sentence of a quick look's verdict.
 QUICK_LOOK = ("Quick look, not a full result: {chains} chains x {draws} draws, no adapt_delta escalation, "
-              "R-hat below {rhat:g} accepted, PSIS-LOO without refits. Use it to see which candidates are "
+              "R-hat below {rhat:g} and ESS of {ess:g} per chain accepted, PSIS-LOO without refits. Use it to see which candidates are "
               "worth a full run; run again without --quick before drawing conclusions.")
 
 
