@@ -169,7 +169,7 @@ def test_lead_is_short_and_says_what_to_use_how_sure_and_what_misses():
     assert comp.verdict == comp.lead + comp.details
     assert not any(s in comp.lead for s in comp.details)
     # a quick look puts its mark at the start of the lead (runner.run does this)
-    quick = QUICK_LOOK.format(chains=4, draws=250, rhat=1.05)
+    quick = QUICK_LOOK.format(chains=4, draws=250, rhat=1.05, ess=25)
     comp.lead.insert(0, quick)
     assert comp.verdict[0].startswith("Quick look, not a full result")
 
@@ -280,3 +280,23 @@ def test_sentences_start_with_a_capital_and_reasons_are_not_doubled():
     text = " ".join(comp.verdict)
     assert text.count("skipped") == 2 and "skipped: skipped" not in text   # "was skipped:" and the lead
     assert f"Gamma was skipped: {reason.rstrip('.')}." in text
+
+
+def test_verdict_advice_on_flagged_priors_follows_what_the_prior_trial_found():
+    # The demo's case (README, Prior predictive trial): the lognormal's failing minimum can
+    # be fixed by a narrower prior on one parameter, while the guesses of the lognormal
+    # with guesses and lapses put the minimum below its bound whatever the priors.
+    from contenders.compare import _prior_advice
+
+    def flagged(label, *readings):
+        return SimpleNamespace(label=label, prior=SimpleNamespace(failing=[{"reading": r} for r in readings]))
+
+    text = _prior_advice([flagged("Lognormal", "narrow_one"),
+                          flagged("Lognormal with guesses and lapses", "structure"),
+                          flagged("Gamma", "structure", "narrow_several"),
+                          flagged("Old", )])
+    assert "Tighten" not in text
+    assert " Narrower priors can help Lognormal and Gamma:" in text
+    assert ". No narrower prior will fix Lognormal with guesses and lapses: the family itself" in text
+    assert ". For Old, the prior predictive section shows which statistic is implausible" in text
+    assert _prior_advice([]) == ""

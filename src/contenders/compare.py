@@ -597,6 +597,29 @@ def _how_sure(ranked, st: dict[str, Standing], rows: dict[str, dict]) -> str:
     return "How sure: " + "; ".join(parts) + "."
 
 
+def _prior_advice(flagged) -> str:
+    """What to do about flagged priors, by what the prior trial found for each failing
+    bound (trials/prior.py): narrower priors can help, or the family itself puts the
+    statistic outside the bound and no prior will fix it."""
+    def readings(r) -> set:
+        return {f.get("reading") for f in (getattr(r.prior, "failing", None) or [])}
+
+    narrow = [r.label for r in flagged if readings(r) & {"narrow_one", "narrow_several"}]
+    structure = [r.label for r in flagged if readings(r) and readings(r) <= {"structure"}]
+    unread = [r.label for r in flagged if r.label not in narrow and r.label not in structure]
+    parts = []
+    if narrow:
+        parts.append(f"Narrower priors can help {_labels(narrow)}: the prior predictive section names the "
+                     "parameter and the range to narrow towards ([hyperparameters.ID])")
+    if structure:
+        parts.append(f"no narrower prior will fix {_labels(structure)}: the family itself puts the failing "
+                     "statistic outside its bound; revisit the bound or the family")
+    if unread:
+        parts.append(f"for {_labels(unread)}, the prior predictive section shows which statistic is "
+                     "implausible; narrow its priors under [hyperparameters.ID] or revisit the bounds")
+    return "".join(f" {p[:1].upper()}{p[1:]}." for p in parts)
+
+
 def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.01,
                        pit_alpha: float = 0.01, store=None) -> Comparison:
     """Rank healthy candidates by elpd and write the verdict.
@@ -727,8 +750,7 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
         details.append(
             "Priors that put most of their mass on implausible datasets (share of prior draws inside every "
             "plausibility bound): " + "; ".join(f"{r.label} {100 * r.prior.plausible_share:.0f} %" for r in flagged)
-            + ". Tighten these candidates' priors under [hyperparameters.ID], or revisit the bounds; "
-              "the prior predictive section shows which statistic is implausible.")
+            + "." + _prior_advice(flagged))
     for r in results:
         reason = (r.reason or "").splitlines()[0] if r.reason else ""
         if r.status == "unhealthy":
