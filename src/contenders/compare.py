@@ -220,8 +220,10 @@ def plan_estimate(
     folds: int = 10,
     groups: np.ndarray | None = None,
     seed: int = 0,
+    why_plain: str = "quick look",
 ) -> Plan:
-    """PSIS-LOO of one candidate and the refits the estimate needs (see ``estimate``)."""
+    """PSIS-LOO of one candidate and the refits the estimate needs (see ``estimate``).
+    With ``strategy`` "psis" there are none; ``why_plain`` says why in the method."""
     import warnings
 
     import arviz as az
@@ -258,8 +260,8 @@ def plan_estimate(
     if strategy == "kfold":
         return held_out(make_folds(n, folds, groups, seed), f"{folds}-fold cross-validation")
     high = np.flatnonzero(k > threshold)
-    if strategy == "psis":   # a quick look: PSIS-LOO as it is, never a refit
-        method = "PSIS-LOO without refits (quick look)"
+    if strategy == "psis":   # a quick look or an unhealthy fit: PSIS-LOO as it is, never a refit
+        method = f"PSIS-LOO without refits ({why_plain})"
         if high.size:
             method += (f"; {high.size} observation{'s' if high.size > 1 else ''} with Pareto k above "
                        f"{threshold:.2f} not refitted, so this elpd may be off")

@@ -286,9 +286,8 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         # would cost fits and decide nothing, so it gets plain PSIS-LOO only
         plain = cfg.quick or not health.healthy
         plan = plan_estimate(draws.idata, "psis" if plain else cfg.cross_validation, cfg.refit_cap,
-                             cfg.folds, groups, cfg.seed)
-        if not health.healthy and not cfg.quick:
-            plan.method = plan.method.replace("(quick look)", f"({REFITS_SKIPPED})")
+                             cfg.folds, groups, cfg.seed,
+                             why_plain="quick look" if cfg.quick else REFITS_SKIPPED)
         del draws
         due = RefitsDue(plan, health.adapt_delta)
         if plan.fits and defer_refits:
