@@ -31,6 +31,31 @@ from .base import (OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingEr
 
 
 #: Socket files made by the httpstan call running in the current asyncio task.
+def one_interpreter_name() -> str:
+    """Give the running interpreter one name per environment, and return it.
+
+    httpstan names a compiled program by a hash that includes ``sys.executable``. In a
+    virtual environment the console script ``contenders`` runs as ``bin/python3`` and
+    ``python -m pytest`` as ``bin/python``: the same interpreter under two names, so each
+    compiled every program again (about 8 minutes for the ten built-ins on two cores).
+    Where ``bin/python3`` (else ``bin/python``) of ``sys.prefix`` is the very file that
+    runs, ``sys.executable`` becomes that path, before httpstan computes any name. Another
+    environment keeps its own name and its own compiled programs, as httpstan intends."""
+    here = sys.executable
+    for name in ("python3", "python"):
+        path = os.path.join(sys.prefix, "bin", name)
+        try:
+            if here and os.path.samefile(path, here):
+                sys.executable = path
+                break
+        except OSError:
+            continue
+    return sys.executable
+
+
+one_interpreter_name()
+
+
 _CALL_SOCKETS: contextvars.ContextVar[list | None] = contextvars.ContextVar("call_sockets", default=None)
 
 
