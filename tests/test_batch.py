@@ -120,3 +120,26 @@ def test_a_folder_without_csv_files_is_one_clear_error(tmp_path):
     (tmp_path / "notes.txt").write_text("no data here")
     with pytest.raises(UserError, match="holds no .csv files"):
         find_datasets([tmp_path])
+
+
+@pytest.mark.parametrize("rows, status", [
+    ([("ok", "gamma"), ("failed", "")], 0),
+    ([("ok", ""), ("ok", "")], 3),        # every dataset ran, none ranked a candidate
+    ([("failed", ""), ("failed", "")], 1),
+])
+def test_batch_exit_status_says_whether_anything_was_ranked(rows, status, monkeypatch, tmp_path, capsys):
+    import types
+
+    from contenders import batch as batch_module
+    from contenders import cli
+
+    fake = types.SimpleNamespace(out=tmp_path, rows=[
+        types.SimpleNamespace(name=f"d{k}", status=s, best=b, winner=b, outcome=b or "no candidate ranked",
+                              reason="" if s == "ok" else "broken")
+        for k, (s, b) in enumerate(rows)])
+    monkeypatch.setattr(batch_module, "run_batch", lambda *a, **k: fake)
+    data = tmp_path / "a.csv"
+    data.write_text("rt\n1\n2\n")
+    assert cli.main(["batch", str(data), "--outcome", "rt", "--out", str(tmp_path / "o")]) == status
+    if status == 3:
+        assert "exit status 3" in capsys.readouterr().err

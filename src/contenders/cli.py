@@ -134,6 +134,12 @@ EXIT_STATUS = ("exit status: 0 when at least one candidate was ranked; 3 when th
                "input (one line on standard error); 130 when interrupted")
 
 
+#: The exit statuses of ``contenders batch``.
+BATCH_EXIT_STATUS = ("exit status: 0 when at least one dataset ranked a candidate; 3 when datasets ran but none "
+                     "ranked a candidate; 1 when no dataset could be run; 2 for a mistake in the input; "
+                     "130 when interrupted")
+
+
 def _run_and_report(cfg, command_line: str) -> int:
     from .report import write_report
     from .runner import run
@@ -238,7 +244,13 @@ def cmd_batch(args: argparse.Namespace) -> int:
             print(f"{r.name}: " + (r.winner or r.outcome if r.status == "ok" else f"not run: {r.reason}"))
         print()
         print(f"index: {(batch.out / 'index.html').resolve()}")
-    return 0 if any(r.status == "ok" for r in batch.rows) else 1
+    if not any(r.status == "ok" for r in batch.rows):
+        return 1
+    if not any(r.best for r in batch.rows if r.status == "ok"):
+        print(f"contenders: no dataset ranked a candidate; the index and each report say why; "
+              f"exit status {NOTHING_RANKED}", file=sys.stderr)
+        return NOTHING_RANKED
+    return 0
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
@@ -405,7 +417,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_calibrate)
 
     p = sub.add_parser("batch", help="compare the candidates on many datasets and write an index",
-                       description=cmd_batch.__doc__)
+                       description=cmd_batch.__doc__, epilog=BATCH_EXIT_STATUS)
     p.add_argument("datasets", nargs="*", metavar="DATASETS",
                    help="a folder of CSV files, or CSV files (default: [data] file in --config)")
     _add_run_flags(p)
