@@ -20,6 +20,7 @@ import arviz as az
 import numpy as np
 
 from ..candidates import Candidate
+from ..cleanup import while_writing
 from .base import OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError, compile_lock
 
 
@@ -36,11 +37,30 @@ def set_chain_workers(n: int) -> None:
     CHAIN_WORKERS[0] = max(1, int(n))
 
 
+def _quiet_logger() -> logging.Logger:
+    """Keep CmdStanPy's log to errors, for good.
+
+    CmdStanPy configures its logger the first time it uses it (``get_logger``: level DEBUG
+    and a handler printing INFO and above), unless the logger already has a handler; a
+    level set before then was undone, and a run printed about 50 log lines. A handler of
+    our own, for errors only, keeps CmdStanPy from adding its own; what goes wrong reaches
+    the user as the engine's error message instead."""
+    logger = logging.getLogger("cmdstanpy")
+    if not any(getattr(h, "_contenders", False) for h in logger.handlers):
+        handler = logging.StreamHandler()
+        handler.setLevel(logging.ERROR)
+        handler.setFormatter(logging.Formatter("cmdstanpy: %(message)s"))
+        handler._contenders = True
+        logger.addHandler(handler)
+    logger.setLevel(logging.ERROR)
+    return logger
+
+
 class CmdStanPyEngine(Engine):
     name = "cmdstanpy"
 
     def __init__(self) -> None:
-        logging.getLogger("cmdstanpy").setLevel(logging.WARNING)
+        _quiet_logger()
 
     def version(self) -> str:
         import cmdstanpy
@@ -71,34 +91,38 @@ class CmdStanPyEngine(Engine):
     def sample(self, program: Program, data: Mapping[str, Any], settings: SamplerSettings) -> Draws:
         out = tempfile.mkdtemp(prefix="contenders_")
         start = time.perf_counter()
-        try:
+        # registered while it exists: a worker stopped part-way removes it (cleanup.remove_all)
+        with while_writing(out):
             try:
-                fit = program.handle.sample(
-                    data=dict(data),
-                    chains=settings.chains,
-                    parallel_chains=min(settings.chains, CHAIN_WORKERS[0] or settings.chains),
-                    iter_warmup=settings.warmup,
-                    iter_sampling=settings.draws,
-                    adapt_delta=settings.adapt_delta,
-                    max_treedepth=settings.max_treedepth,
-                    seed=settings.seed,
-                    output_dir=out,
-                    show_progress=False,
-                    show_console=False,
+                try:
+                    fit = program.handle.sample(
+                        data=dict(data),
+                        chains=settings.chains,
+                        parallel_chains=min(settings.chains, CHAIN_WORKERS[0] or settings.chains),
+                        iter_warmup=settings.warmup,
+                        iter_sampling=settings.draws,
+                        adapt_delta=settings.adapt_delta,
+                        max_treedepth=settings.max_treedepth,
+                        seed=settings.seed,
+                        output_dir=out,
+                        show_progress=False,
+                        show_console=False,
+                    )
+                except Exception as exc:
+                    raise SamplingError(f"{program.candidate_id}: sampling failed: {str(exc)[:4000]}") from None
+                idata = az.from_cmdstanpy(
+                    posterior=fit,
+                    posterior_predictive=["y_rep"],
+                    log_likelihood=["log_lik"],
+                    observed_data={"y": np.asarray(data["y"])},
+                    dims=OBS_DIMS,
                 )
-            except Exception as exc:
-                raise SamplingError(f"{program.candidate_id}: sampling failed: {str(exc)[:4000]}") from None
-            seconds = time.perf_counter() - start
-            idata = az.from_cmdstanpy(
-                posterior=fit,
-                posterior_predictive=["y_rep"],
-                log_likelihood=["log_lik"],
-                observed_data={"y": np.asarray(data["y"])},
-                dims=OBS_DIMS,
-            )
-            del fit
-        finally:
-            shutil.rmtree(out, ignore_errors=True)
+                del fit
+                # reading the CSV files is part of the sampling time (PyStan's engine counts
+                # its own reading too)
+                seconds = time.perf_counter() - start
+            finally:
+                shutil.rmtree(out, ignore_errors=True)
         return Draws(idata, self.name, program.compile_seconds, seconds, settings)
 
     def single_draw(
@@ -106,18 +130,19 @@ class CmdStanPyEngine(Engine):
         init: Mapping[str, Any] | None = None,
     ) -> dict[str, np.ndarray]:
         out = tempfile.mkdtemp(prefix="contenders_")
-        try:
+        with while_writing(out):
             try:
-                fit = program.handle.sample(
-                    data=dict(data), fixed_param=True, chains=1, iter_sampling=1, seed=seed,
-                    inits=dict(init) if init else None,
-                    output_dir=out, show_progress=False, show_console=False,
-                )
-            except Exception as exc:
-                raise SamplingError(
-                    f"{program.candidate_id}: could not evaluate the program at "
-                    f"{'the given' if init else 'random initial'} values: {str(exc)[:4000]}"
-                ) from None
-            return {name: np.asarray(value)[0] for name, value in fit.stan_variables().items()}
-        finally:
-            shutil.rmtree(out, ignore_errors=True)
+                try:
+                    fit = program.handle.sample(
+                        data=dict(data), fixed_param=True, chains=1, iter_sampling=1, seed=seed,
+                        inits=dict(init) if init else None,
+                        output_dir=out, show_progress=False, show_console=False,
+                    )
+                except Exception as exc:
+                    raise SamplingError(
+                        f"{program.candidate_id}: could not evaluate the program at "
+                        f"{'the given' if init else 'random initial'} values: {str(exc)[:4000]}"
+                    ) from None
+                return {name: np.asarray(value)[0] for name, value in fit.stan_variables().items()}
+            finally:
+                shutil.rmtree(out, ignore_errors=True)
