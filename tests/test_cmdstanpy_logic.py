@@ -8,6 +8,7 @@ import sys
 import time
 from pathlib import Path
 
+import arviz
 import pytest
 
 from contenders import cleanup
@@ -15,10 +16,22 @@ from contenders.engines import cmdstanpy_engine as ce
 from contenders.engines.base import Program, SamplerSettings, SamplingError
 
 
+def fake_cmdstan(root: Path, version: str = "2.35.0", stanc: bool = True) -> Path:
+    """A folder shaped like a built CmdStan: its makefile (with the version line CmdStan's
+    own makefile carries) and, with ``stanc``, an executable bin/stanc."""
+    folder = root / f"cmdstan-{version}"
+    (folder / "bin").mkdir(parents=True, exist_ok=True)
+    (folder / "makefile").write_text(f"# CmdStan makefile\nCMDSTAN_VERSION := {version}\n")
+    if stanc:
+        (folder / "bin" / "stanc").write_text("#!/bin/sh\n")
+        (folder / "bin" / "stanc").chmod(0o755)
+    return folder
+
+
 def test_cmdstanpys_log_stays_quiet_after_it_configures_itself():
     # CmdStanPy sets up its logger on first use (cmdstanpy/utils/logging.py, get_logger),
     # which undid a level set before; run in a fresh process so that first use is real
-    code = ("from contenders.engines.cmdstanpy_engine import CmdStanPyEngine; CmdStanPyEngine(); "
+    code = ("from contenders.engines.cmdstanpy_engine import _quiet_logger; _quiet_logger(); "
             "from cmdstanpy.utils import get_logger; log = get_logger(); "
             "log.info('INFO-LINE'); log.warning('WARNING-LINE'); log.error('ERROR-LINE')")
     res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
@@ -44,10 +57,10 @@ class _Handle:
 
 
 @pytest.mark.parametrize("fail", [True, False])
-def test_the_scratch_folder_is_registered_while_sampling_and_removed_after(fail, monkeypatch):
+def test_the_scratch_folder_is_registered_while_sampling_and_removed_after(fail, monkeypatch, tmp_path):
     handle = _Handle(fail)
-    monkeypatch.setattr(ce.az, "from_cmdstanpy", lambda **_k: "idata")
-    engine = ce.CmdStanPyEngine()
+    monkeypatch.setattr(arviz, "from_cmdstanpy", lambda **_k: "idata")
+    engine = ce.CmdStanPyEngine(fake_cmdstan(tmp_path))
     program = Program("toy", "", handle, 0.0, True)
     if fail:
         with pytest.raises(SamplingError, match="toy: sampling failed"):
@@ -59,12 +72,159 @@ def test_the_scratch_folder_is_registered_while_sampling_and_removed_after(fail,
     assert not folder.exists() and folder not in cleanup._PATHS
 
 
-def test_sampling_time_includes_reading_the_draws(monkeypatch):
+def test_sampling_time_includes_reading_the_draws(monkeypatch, tmp_path):
     def slow_read(**_k):
         time.sleep(0.4)   # the CSV files being parsed into arrays
         return "idata"
 
-    monkeypatch.setattr(ce.az, "from_cmdstanpy", slow_read)
-    draws = ce.CmdStanPyEngine().sample(Program("toy", "", _Handle(False), 0.0, True), {"y": [1.0]},
+    monkeypatch.setattr(arviz, "from_cmdstanpy", slow_read)
+    draws = ce.CmdStanPyEngine(fake_cmdstan(tmp_path)).sample(Program("toy", "", _Handle(False), 0.0, True), {"y": [1.0]},
                                         SamplerSettings(chains=1, warmup=1, draws=1))
     assert draws.sample_seconds >= 0.4
+
+
+# The message CmdStanPy 1.x raises when a chain fails (cmdstanpy/model.py, CmdStanModel.sample):
+# Stan's error lines, then the command and the output files, then a hint about show_console.
+CMDSTANPY_FAILURE = ("Error during sampling:\nException: lognormal_lpdf: Scale parameter is 0, but must be "
+                     "positive! (in 'toy.stan', line 12, column 2 to column 30)\n"
+                     "Command and output files:\nRunSet: chains=1, chain_ids=[1], num_processes=1\n"
+                     " cmd (chain 1):\n\t['/x/toy', 'id=1']\n retcodes=[70]\n per-chain output files:\n"
+                     " csv_files:\n\t/tmp/contenders_x/toy-1.csv\n"
+                     "Consider re-running with show_console=True if the above output is unclear!")
+
+
+def test_a_sampling_failure_gives_stans_reason_on_its_first_line(monkeypatch, tmp_path):
+    class Failing(_Handle):
+        def sample(self, output_dir, **_k):
+            raise RuntimeError(CMDSTANPY_FAILURE)
+
+    engine = ce.CmdStanPyEngine(fake_cmdstan(tmp_path))
+    with pytest.raises(SamplingError) as info:
+        engine.sample(Program("toy", "", Failing(False), 0.0, True), {"y": [1.0]}, SamplerSettings(chains=1))
+    text = str(info.value)
+    assert text.splitlines()[0] == ("toy: sampling failed: Exception: lognormal_lpdf: Scale parameter is 0, "
+                                    "but must be positive! (in 'toy.stan', line 12, column 2 to column 30)")
+    assert "show_console" not in text and "csv_files" not in text and len(text.splitlines()) == 1
+
+
+def test_an_empty_failure_reads_the_chain_console_or_says_there_was_none(tmp_path):
+    folder = tmp_path / "run"
+    folder.mkdir()
+    assert "no message from CmdStan" in ce._cause(RuntimeError(""), str(folder))
+    (folder / "toy-1-stdout.txt").write_text("method = sample\nRejecting initial value:\n"
+                                             "Initialization failed.\n")
+    assert ce._cause(RuntimeError("Error during sampling:\n"), str(folder)) == \
+        "Rejecting initial value:; Initialization failed."
+
+
+def test_cmdstan_without_stanc_is_refused_and_auto_says_it_falls_back(tmp_path, monkeypatch):
+    from contenders.engines import find_cmdstan, resolve_engine
+    from contenders.errors import UserError
+
+    half = fake_cmdstan(tmp_path / "half", stanc=False)
+    monkeypatch.setenv("CMDSTAN", str(half))
+    folder, why = find_cmdstan()
+    assert folder is None and "bin/stanc is missing" in why
+    name, notice = resolve_engine("auto")
+    assert name == "pystan" and "using PyStan" in notice and "bin/stanc is missing" in notice
+    with pytest.raises(UserError, match="engine 'cmdstanpy' cannot run: CMDSTAN=.*bin/stanc is missing"):
+        resolve_engine("cmdstanpy")
+    built = fake_cmdstan(tmp_path / "built")
+    monkeypatch.setenv("CMDSTAN", str(built))
+    assert find_cmdstan() == (built, "") and resolve_engine("auto") == ("cmdstanpy", "")
+
+
+def test_home_cmdstan_takes_the_newest_version_folder(tmp_path, monkeypatch):
+    # CmdStanPy's own order (cmdstanpy.utils.cmdstan_path / get_latest_cmdstan): newest version
+    from contenders.engines import find_cmdstan
+
+    monkeypatch.delenv("CMDSTAN", raising=False)
+    monkeypatch.setenv("HOME", str(tmp_path))
+    for v in ("2.9.0", "2.35.0", "2.34.1"):
+        fake_cmdstan(tmp_path / ".cmdstan", v)
+    assert find_cmdstan()[0].name == "cmdstan-2.35.0"
+
+
+def test_engine_cmdstanpy_without_cmdstan_leaves_no_output_folder(tmp_path, monkeypatch):
+    from contenders.config import RunConfig
+    from contenders.errors import UserError
+    from contenders.runner import run
+
+    monkeypatch.setenv("CMDSTAN", str(fake_cmdstan(tmp_path / "half", stanc=False)))
+    data = tmp_path / "d.csv"
+    data.write_text("y\n1.0\n2.0\n3.0\n")
+    out = tmp_path / "out"
+    cfg = RunConfig(data=str(data), outcome="y", out=str(out), engine="cmdstanpy")
+    with pytest.raises(UserError, match="cmdstanpy"):
+        run(cfg)
+    assert not out.exists()
+
+
+def test_version_line_and_program_cache_follow_the_cmdstan_used(tmp_path, monkeypatch):
+    from importlib.metadata import version
+
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "cache"))
+    a = ce.CmdStanPyEngine(fake_cmdstan(tmp_path / "a", "2.35.0"))
+    b = ce.CmdStanPyEngine(fake_cmdstan(tmp_path / "b", "2.36.0"))
+    assert a.version() == f"cmdstanpy {version('cmdstanpy')} (CmdStan 2.35.0 at {a.cmdstan})"
+    assert "CmdStan 2.36.0" in b.version()
+
+    class Cand:
+        id, code_hash = "toy", "ab" * 32
+
+    assert a._folder(Cand) != b._folder(Cand)
+    exe = a._folder(Cand) / "toy"
+    exe.parent.mkdir(parents=True)
+    exe.write_bytes(b"half-linked")
+    assert not a.is_cached(Cand)   # an executable without the finished-build mark
+    (exe.parent / "toy.built").write_text(a._stamp(exe))
+    assert a.is_cached(Cand) and not b.is_cached(Cand)
+    exe.write_bytes(b"relinked, longer than before")
+    assert not a.is_cached(Cand)
+
+
+def test_a_store_only_rerun_needs_neither_cmdstanpy_nor_arviz(tmp_path):
+    folder = fake_cmdstan(tmp_path)
+    code = ("import sys\nfrom contenders.engines.lazy import LazyEngine\ne = LazyEngine('auto')\n"
+            "print(e.name, 'cmdstanpy' in sys.modules, 'arviz' in sys.modules)\nprint(e.version())\n")
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
+                         env={**os.environ, "CMDSTAN": str(folder)})
+    assert res.returncode == 0, res.stderr
+    first, second = res.stdout.splitlines()
+    assert first == "cmdstanpy False False" and "CmdStan 2.35.0" in second
+
+
+class _Counting(_Handle):
+    def sample(self, output_dir, parallel_chains=None, **_k):
+        self.seen.append(parallel_chains)
+        return object()
+
+
+def test_without_an_executor_chains_at_once_follow_the_cores(monkeypatch, tmp_path):
+    from contenders import executor
+
+    monkeypatch.setattr(arviz, "from_cmdstanpy", lambda **_k: "idata")
+    monkeypatch.setattr(ce, "CHAIN_WORKERS", [0])
+    monkeypatch.setattr(executor, "cores", lambda: 2)
+    handle = _Counting(False)
+    ce.CmdStanPyEngine(fake_cmdstan(tmp_path)).sample(Program("toy", "", handle, 0.0, True), {"y": [1.0]},
+                                                      SamplerSettings(chains=4))
+    assert handle.seen == [2]
+
+
+def test_a_fit_takes_every_free_chain_slot_and_gives_them_back(monkeypatch, tmp_path):
+    import threading
+
+    monkeypatch.setattr(arviz, "from_cmdstanpy", lambda **_k: "idata")
+    slots = threading.Semaphore(3)
+    monkeypatch.setattr(ce, "CHAIN_SLOTS", [slots])
+    engine, handle = ce.CmdStanPyEngine(fake_cmdstan(tmp_path)), _Counting(False)
+    program = Program("toy", "", handle, 0.0, True)
+    engine.sample(program, {"y": [1.0]}, SamplerSettings(chains=4))   # alone: all 3 slots
+    slots.acquire()
+    slots.acquire()   # two held by other workers
+    engine.sample(program, {"y": [1.0]}, SamplerSettings(chains=4))
+    slots.release()
+    slots.release()
+    assert handle.seen == [3, 1]
+    assert all(slots.acquire(blocking=False) for _ in range(3))   # every slot came back

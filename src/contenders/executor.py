@@ -105,10 +105,12 @@ def _worker_init(engine_name: str, chain_workers: int, events, slots=None) -> No
 
     signal.signal(signal.SIGTERM, on_term)
     _set_chain_workers(engine_name, chain_workers)
-    if slots is not None and engine_name == "pystan":
-        from .engines import pystan_engine
-
-        pystan_engine.CHAIN_SLOTS[0] = slots
+    if slots is not None and engine_name in ("pystan", "cmdstanpy"):
+        if engine_name == "pystan":
+            from .engines import pystan_engine as module
+        else:
+            from .engines import cmdstanpy_engine as module
+        module.CHAIN_SLOTS[0] = slots
     # Stan's chain processes are children of this worker; a worker's exit waits for its
     # children, so stop them first. multiprocessing runs finalisers with an exit priority
     # before it joins children, highest first; queues close their feeder threads at
@@ -172,7 +174,7 @@ class ProcessExecutor(Executor):
                  on_event: Callable[[str, str], None] | None = None, cores: int = 0) -> None:
         ctx = mp.get_context("spawn")
         slots = None
-        if cores and engine_name == "pystan":
+        if cores and engine_name in ("pystan", "cmdstanpy"):
             slots, chain_workers = ctx.Semaphore(cores), cores
         self.workers, self.chain_workers = workers, chain_workers
         self._events = ctx.Queue()

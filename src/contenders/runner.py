@@ -450,6 +450,11 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
     if cfg.cross_validation == "leave_group_out" and design.J == 0:
         raise UserError("cross_validation = leave_group_out needs a group column; set group under [data] or --group")
     cands = select_candidates(cfg)
+    from .engines import resolve_engine
+
+    _name, notice = resolve_engine(cfg.engine)   # before the output folder: a bad engine leaves nothing
+    if notice:
+        say(notice)
     out = output_folder(cfg.out)
     if cfg.quick:
         _never_over_a_full_result(out)

@@ -139,12 +139,11 @@ def _engine_versions() -> set[str]:
     with contextlib.suppress(Exception):
         found.add(pystan_version())
     with contextlib.suppress(Exception):
-        from .engines import cmdstan_available
+        from .engines import cmdstanpy_version_line, find_cmdstan
 
-        if cmdstan_available()[0]:
-            from .engines import get_engine
-
-            found.add(get_engine("cmdstanpy").version())
+        folder, _why = find_cmdstan()
+        if folder is not None:
+            found.add(cmdstanpy_version_line(folder))
     return found
 
 

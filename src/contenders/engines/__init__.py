@@ -7,54 +7,117 @@ settings, returning ArviZ ``InferenceData`` with the groups ``posterior``,
 
 * ``pystan``: PyStan 3, installed from PyPI alone; the default when no CmdStan
   installation is found.
-* ``cmdstanpy``: CmdStanPy, chosen when a CmdStan installation is found (or asked
-  for); faster and lighter on memory for large data.
+* ``cmdstanpy``: CmdStanPy, chosen when a usable CmdStan installation is found (or
+  asked for).
 """
 
 from __future__ import annotations
+
+import os
+from pathlib import Path
 
 from .base import Draws, Engine, Program, SamplerSettings, SamplingError
 
 ENGINE_NAMES = ("auto", "pystan", "cmdstanpy")
 
+_INSTALL_HINT = "install one with cmdstanpy's installer, or set CMDSTAN to a built CmdStan folder"
+
+
+def _version_key(name: str) -> tuple:
+    parts = name.split("-", 1)[-1].replace("-", ".").split(".")
+    return tuple(int(p) if p.isdigit() else -1 for p in parts)
+
+
+def find_cmdstan() -> tuple[Path | None, str]:
+    """The CmdStan folder CmdStanPy would use, found without importing CmdStanPy, and
+    ``""``; or ``None`` and why there is none or why it cannot be used.
+
+    The folder is ``$CMDSTAN``, else the newest ``cmdstan-*`` folder in ``~/.cmdstan``
+    (CmdStanPy's own order, ``cmdstanpy.utils.cmdstan_path``). It is usable when it holds
+    CmdStan's ``makefile`` and a built compiler ``bin/stanc``: CmdStanPy accepts a folder
+    with a makefile alone, and every program then fails to compile with an empty message."""
+    env = os.environ.get("CMDSTAN")
+    if env:
+        folder, origin = Path(env), f"CMDSTAN={env}"
+    else:
+        home = Path(os.path.expanduser(os.path.join("~", ".cmdstan")))
+        if not home.exists():
+            return None, ("no CmdStan installation found (CMDSTAN is not set and ~/.cmdstan does not exist); "
+                          + _INSTALL_HINT)
+        found = sorted((p for p in home.iterdir() if p.is_dir() and p.name.startswith("cmdstan-")),
+                       key=lambda p: _version_key(p.name))
+        if not found:
+            return None, f"~/.cmdstan holds no cmdstan-* folder; {_INSTALL_HINT}"
+        folder, origin = found[-1], str(found[-1])
+    if not folder.is_dir():
+        return None, f"{origin}: no such folder; {_INSTALL_HINT}"
+    if not (folder / "makefile").is_file():
+        return None, f"{origin}: not a CmdStan folder (it has no makefile); {_INSTALL_HINT}"
+    stanc = folder / "bin" / ("stanc.exe" if os.name == "nt" else "stanc")
+    if not (stanc.is_file() and os.access(stanc, os.X_OK)):
+        return None, (f"{origin}: CmdStan is not built (bin/stanc is missing); build it with 'make build' "
+                      f"in that folder, or {_INSTALL_HINT}")
+    return folder, ""
+
+
+def cmdstan_version(folder) -> str:
+    """CmdStan's version as its makefile states it (``CMDSTAN_VERSION := 2.35.0``), else ``unknown``."""
+    try:
+        for line in (Path(folder) / "makefile").read_text(errors="replace").splitlines():
+            if line.startswith("CMDSTAN_VERSION"):
+                return line.split("=", 1)[1].strip() or "unknown"
+    except OSError:
+        pass
+    return "unknown"
+
+
+def cmdstanpy_version_line(folder) -> str:
+    """The CmdStanPy engine's version line, from package metadata and CmdStan's makefile
+    (no import of CmdStanPy): the CmdStan version and folder are part of the fit store's
+    keys, so a rebuilt or another CmdStan never serves fits made with the old one."""
+    from importlib.metadata import version
+
+    return f"cmdstanpy {version('cmdstanpy')} (CmdStan {cmdstan_version(folder)} at {folder})"
+
 
 def cmdstan_available() -> tuple[bool, str]:
-    """Whether a CmdStan installation is found, and if not, why."""
-    import os
+    """Whether a usable CmdStan installation is found: ``(True, folder)``, or ``(False, why)``."""
+    import importlib.util
 
-    # CmdStanPy looks only at $CMDSTAN and at ~/.cmdstan (cmdstanpy.utils.cmdstan_path);
-    # when neither exists the answer is known without importing it (a fifth of a second)
-    if not os.environ.get("CMDSTAN") and not os.path.exists(os.path.expanduser(os.path.join("~", ".cmdstan"))):
-        return False, ("no CmdStan installation found (CMDSTAN is not set and ~/.cmdstan does not exist); "
-                       "install one with cmdstanpy's installer")
-    try:
-        import cmdstanpy
-    except ImportError as exc:  # pragma: no cover - dependency
-        return False, f"cmdstanpy is not installed ({exc})"
-    try:
-        import logging
-
-        logging.getLogger("cmdstanpy").disabled = True
-        path = cmdstanpy.cmdstan_path()
-    except Exception as exc:
-        return False, f"no CmdStan installation found ({exc}); install one with cmdstanpy's installer"
-    finally:
-        logging.getLogger("cmdstanpy").disabled = False
-    return True, str(path)
+    folder, why = find_cmdstan()
+    if folder is None:
+        return False, why
+    if importlib.util.find_spec("cmdstanpy") is None:  # pragma: no cover - dependency
+        return False, "cmdstanpy is not installed"
+    return True, str(folder)
 
 
-def get_engine(name: str = "auto") -> Engine:
-    """Return the engine called ``name``; ``auto`` prefers CmdStanPy when CmdStan is found."""
+def resolve_engine(name: str = "auto") -> tuple[str, str]:
+    """``(engine name, notice)``: ``auto`` becomes ``cmdstanpy`` when a usable CmdStan is
+    found, else ``pystan``, with a notice when a CmdStan was pointed at (CMDSTAN set, or
+    ~/.cmdstan present) but cannot be used, so the fallback is never silent. A user error
+    for an unknown name, or for ``cmdstanpy`` without a usable CmdStan."""
     from ..errors import UserError
 
     if name not in ENGINE_NAMES:
         raise UserError(f"engine '{name}' is not known; choose one of: {', '.join(ENGINE_NAMES)}")
-    if name == "auto":
-        name = "cmdstanpy" if cmdstan_available()[0] else "pystan"
+    if name == "pystan":
+        return name, ""
+    ok, why = cmdstan_available()
     if name == "cmdstanpy":
-        ok, why = cmdstan_available()
         if not ok:
             raise UserError(f"engine 'cmdstanpy' cannot run: {why}; or use --engine pystan")
+        return name, ""
+    if ok:
+        return "cmdstanpy", ""
+    pointed = os.environ.get("CMDSTAN") or os.path.exists(os.path.expanduser(os.path.join("~", ".cmdstan")))
+    return "pystan", (f"engine: using PyStan, because the CmdStan found cannot be used: {why}" if pointed else "")
+
+
+def get_engine(name: str = "auto") -> Engine:
+    """Return the engine called ``name``; ``auto`` prefers CmdStanPy when a usable CmdStan is found."""
+    name, _notice = resolve_engine(name)
+    if name == "cmdstanpy":
         from .cmdstanpy_engine import CmdStanPyEngine
 
         return CmdStanPyEngine()
@@ -64,7 +127,7 @@ def get_engine(name: str = "auto") -> Engine:
 
 
 __all__ = ["Draws", "Engine", "Program", "SamplerSettings", "SamplingError", "get_engine",
-           "cmdstan_available", "ENGINE_NAMES"]
+           "cmdstan_available", "find_cmdstan", "resolve_engine", "ENGINE_NAMES"]
 
 
 def compile_all(engine: Engine, candidates, jobs: int = 1, progress=None) -> dict:

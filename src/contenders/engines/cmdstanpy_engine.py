@@ -1,22 +1,25 @@
 """CmdStanPy engine: used when a CmdStan installation is found.
 
-Each program is copied into a folder named by the hash of its code under the user's
-cache folder (``~/.cache/contenders/cmdstan/``) and compiled there once, so the
+Each program is copied into a folder named by the hash of its code and of the CmdStan
+used (its folder and version) under the user's cache folder
+(``~/.cache/contenders/cmdstan/``) and compiled there once, so the
 candidates folder is never littered with executables. Sampler output (CSV files) goes
 to a temporary folder that is removed once the draws are in memory.
 """
 
 from __future__ import annotations
 
+import contextlib
+import hashlib
 import logging
 import os
+import re
 import shutil
 import tempfile
 import time
 from pathlib import Path
 from typing import Any, Mapping
 
-import arviz as az
 import numpy as np
 
 from ..candidates import Candidate
@@ -35,6 +38,69 @@ CHAIN_WORKERS = [0]
 
 def set_chain_workers(n: int) -> None:
     CHAIN_WORKERS[0] = max(1, int(n))
+
+
+#: A semaphore of chain slots shared by a run's worker processes (see
+#: ``executor._worker_init``), or None. A fit takes one slot, waiting if need be, then
+#: every further free one up to its chains, and runs that many chains at once.
+CHAIN_SLOTS: list = [None]
+
+
+def _chains_at_once(chains: int) -> int:
+    """Chains one sampling call runs at once without slots: the executor's limit, else
+    the cores this process may use (not every chain at once on a small machine)."""
+    if CHAIN_WORKERS[0]:
+        return max(1, min(chains, CHAIN_WORKERS[0]))
+    from ..executor import cores
+
+    return max(1, min(chains, cores()))
+
+
+@contextlib.contextmanager
+def _chain_slots(chains: int):
+    """Yield how many chains to run at once, holding that many shared slots meanwhile."""
+    slots = CHAIN_SLOTS[0]
+    if slots is None:
+        yield _chains_at_once(chains)
+        return
+    slots.acquire()
+    held = 1
+    while held < chains and slots.acquire(False):
+        held += 1
+    try:
+        yield held
+    finally:
+        for _ in range(held):
+            slots.release()
+
+
+_NOISE = re.compile(r"^(Command and output files:|Consider re-running with show_console|RunSet:|"
+                    r" *(cmd|retcodes|per-chain output files|csv_files|console_msgs)\b)")
+
+
+def _cause(exc: BaseException, folder: str) -> str:
+    """Stan's own reason for a failed run, on one line: the error lines of CmdStanPy's
+    message, else of the chains' console files (still in ``folder``); never CmdStanPy's
+    pointers to files about to be removed or to its ``show_console`` option."""
+    text = str(exc)
+    lines = []
+    for line in text.splitlines():
+        if _NOISE.match(line):
+            break   # the rest lists the command and the (removed) output files
+        line = line.strip()
+        if line and not line.startswith(("Error during sampling", "Non-fatal error during sampling")):
+            lines.append(line)
+    if not lines:
+        for path in sorted(Path(folder).glob("*.txt")):
+            with contextlib.suppress(OSError):
+                lines += [ln.strip() for ln in path.read_text(errors="replace").splitlines()
+                          if re.match(r"\s*(E[rx]|Rejecting|Initialization|Unrecoverable|terminate)", ln)]
+    unique = list(dict.fromkeys(lines))
+    if not unique:
+        return (f"{type(exc).__name__} with no message from CmdStan; check that the CmdStan installation "
+                "works ('make examples/bernoulli/bernoulli' in its folder)")
+    more = f" (and {len(unique) - 3} more)" if len(unique) > 3 else ""
+    return "; ".join(unique[:3])[:1500] + more
 
 
 def _quiet_logger() -> logging.Logger:
@@ -59,46 +125,80 @@ def _quiet_logger() -> logging.Logger:
 class CmdStanPyEngine(Engine):
     name = "cmdstanpy"
 
-    def __init__(self) -> None:
+    def __init__(self, cmdstan: str | os.PathLike | None = None) -> None:
+        from . import cmdstanpy_version_line, find_cmdstan
+
         _quiet_logger()
+        if cmdstan is None:
+            cmdstan, why = find_cmdstan()
+            if cmdstan is None:
+                raise SamplingError(f"the CmdStanPy engine cannot run: {why}")
+        self.cmdstan = Path(cmdstan)
+        self._version = cmdstanpy_version_line(self.cmdstan)
 
     def version(self) -> str:
-        import cmdstanpy
+        return self._version
 
-        return f"cmdstanpy {cmdstanpy.__version__} (CmdStan at {cmdstanpy.cmdstan_path()})"
+    def _folder(self, candidate: Candidate) -> Path:
+        """The program's cache folder: its code and the CmdStan (folder and version) that builds it."""
+        key = hashlib.sha256(f"{candidate.code_hash}|{self._version}".encode()).hexdigest()[:16]
+        return _cache_root() / key
+
+    @staticmethod
+    def _stamp(exe: Path) -> str:
+        st = exe.stat()
+        return f"{st.st_size} {st.st_mtime_ns}"
 
     def is_cached(self, candidate: Candidate) -> bool:
-        return (_cache_root() / candidate.code_hash[:16] / candidate.id).exists()
+        """An executable counts as compiled only with the mark written after a build that
+        finished (a build stopped part-way can leave a half-linked executable)."""
+        exe = self._folder(candidate) / candidate.id
+        mark = exe.with_name(f"{candidate.id}.built")
+        try:
+            return mark.read_text() == self._stamp(exe)
+        except OSError:
+            return False
 
     def compile(self, candidate: Candidate) -> Program:
+        import cmdstanpy
         from cmdstanpy import CmdStanModel
 
-        folder = _cache_root() / candidate.code_hash[:16]
+        cmdstanpy.set_cmdstan_path(str(self.cmdstan))
+        folder = self._folder(candidate)
         start = time.perf_counter()
         # one process at a time builds a program into the shared cache (see compile_lock)
-        with compile_lock(f"cmdstan-{candidate.code_hash[:16]}-{candidate.id}", what=candidate.id):
+        with compile_lock(f"cmdstan-{folder.name}-{candidate.id}", what=candidate.id):
             folder.mkdir(parents=True, exist_ok=True)
             stan_file = folder / f"{candidate.id}.stan"
             if not stan_file.exists() or stan_file.read_text() != candidate.code:
                 stan_file.write_text(candidate.code)
-            cached = stan_file.with_suffix("").exists()
+            exe, mark = folder / candidate.id, folder / f"{candidate.id}.built"
+            cached = self.is_cached(candidate)
+            if not cached:   # an executable without the mark is not trusted: build again
+                for stale in (exe, mark):
+                    with contextlib.suppress(OSError):
+                        stale.unlink()
             try:
                 model = CmdStanModel(stan_file=str(stan_file))
             except Exception as exc:
-                raise SamplingError(f"{candidate.path.name}: compiling failed:\n{str(exc)[:4000]}") from None
+                raise SamplingError(f"{candidate.path.name}: compiling failed: {_cause(exc, str(folder))}") from None
+            if exe.exists():
+                mark.write_text(self._stamp(exe))
         return Program(candidate.id, candidate.code, model, time.perf_counter() - start, cached)
 
     def sample(self, program: Program, data: Mapping[str, Any], settings: SamplerSettings) -> Draws:
+        import arviz as az
+
         out = tempfile.mkdtemp(prefix="contenders_")
         start = time.perf_counter()
         # registered while it exists: a worker stopped part-way removes it (cleanup.remove_all)
-        with while_writing(out):
+        with while_writing(out), _chain_slots(settings.chains) as at_once:
             try:
                 try:
                     fit = program.handle.sample(
                         data=dict(data),
                         chains=settings.chains,
-                        parallel_chains=min(settings.chains, CHAIN_WORKERS[0] or settings.chains),
+                        parallel_chains=at_once,
                         iter_warmup=settings.warmup,
                         iter_sampling=settings.draws,
                         adapt_delta=settings.adapt_delta,
@@ -109,7 +209,7 @@ class CmdStanPyEngine(Engine):
                         show_console=False,
                     )
                 except Exception as exc:
-                    raise SamplingError(f"{program.candidate_id}: sampling failed: {str(exc)[:4000]}") from None
+                    raise SamplingError(f"{program.candidate_id}: sampling failed: {_cause(exc, out)}") from None
                 idata = az.from_cmdstanpy(
                     posterior=fit,
                     posterior_predictive=["y_rep"],
@@ -118,6 +218,10 @@ class CmdStanPyEngine(Engine):
                     dims=OBS_DIMS,
                 )
                 del fit
+                # y_rep as float32, as the PyStan engine keeps it (log_lik stays float64 for LOO)
+                pp = getattr(idata, "posterior_predictive", None)
+                if pp is not None and "y_rep" in pp:
+                    pp["y_rep"] = pp["y_rep"].astype(np.float32)
                 # reading the CSV files is part of the sampling time (PyStan's engine counts
                 # its own reading too)
                 seconds = time.perf_counter() - start
@@ -141,7 +245,7 @@ class CmdStanPyEngine(Engine):
                 except Exception as exc:
                     raise SamplingError(
                         f"{program.candidate_id}: could not evaluate the program at "
-                        f"{'the given' if init else 'random initial'} values: {str(exc)[:4000]}"
+                        f"{'the given' if init else 'random initial'} values: {_cause(exc, out)}"
                     ) from None
                 return {name: np.asarray(value)[0] for name, value in fit.stan_variables().items()}
             finally:

@@ -26,17 +26,13 @@ class LazyEngine(Engine):
     """``get_engine(name)``, loaded on first use; ``auto`` is resolved at once."""
 
     def __init__(self, name: str = "auto") -> None:
-        from . import ENGINE_NAMES, cmdstan_available, get_engine
-        from ..errors import UserError
+        from . import cmdstanpy_version_line, find_cmdstan, resolve_engine
 
-        if name not in ENGINE_NAMES:
-            raise UserError(f"engine '{name}' is not known; choose one of: {', '.join(ENGINE_NAMES)}")
-        if name == "auto":
-            name = "cmdstanpy" if cmdstan_available()[0] else "pystan"
+        name, self.notice = resolve_engine(name)
         self.name = name
-        # CmdStanPy's version line needs CmdStanPy itself: load that engine now
-        self._engine: Engine | None = None if name == "pystan" else get_engine(name)
-        self._version = pystan_version() if name == "pystan" else self._engine.version()
+        self._engine: Engine | None = None
+        # both version lines come from package metadata (CmdStan's from its makefile)
+        self._version = pystan_version() if name == "pystan" else cmdstanpy_version_line(find_cmdstan()[0])
 
     def loaded(self) -> Engine:
         """The real engine (loaded now if it was not yet)."""
