@@ -1,4 +1,6 @@
-"""The CmdStanPy engine's own logic, tested without a CmdStan installation: its log stays
+"""The CmdStanPy engine's own logic, tested without a CmdStan installation (a fake CmdStan
+folder, fake program handles): finding and checking CmdStan, failure messages, the program
+cache and version line, chains at once, y_rep's precision; and: its log stays
 quiet, its scratch folders are registered for removal on a stop, and its sampling time
 includes reading the draws. Fake program handles stand in for compiled CmdStan programs."""
 
@@ -228,3 +230,40 @@ def test_a_fit_takes_every_free_chain_slot_and_gives_them_back(monkeypatch, tmp_
     slots.release()
     assert handle.seen == [3, 1]
     assert all(slots.acquire(blocking=False) for _ in range(3))   # every slot came back
+
+
+def test_y_rep_is_kept_as_float32_and_log_lik_as_float64(monkeypatch, tmp_path):
+    import numpy as np
+
+    rng = np.random.default_rng(1)
+
+    def read(**_k):   # what az.from_cmdstanpy gives: every variable float64
+        return arviz.from_dict(posterior={"a": rng.normal(size=(2, 5))},
+                               posterior_predictive={"y_rep": rng.normal(size=(2, 5, 3))},
+                               log_likelihood={"log_lik": rng.normal(size=(2, 5, 3))})
+
+    monkeypatch.setattr(arviz, "from_cmdstanpy", read)
+    idata = ce.CmdStanPyEngine(fake_cmdstan(tmp_path)).sample(
+        Program("toy", "", _Handle(False), 0.0, True), {"y": [1.0, 2.0, 3.0]}, SamplerSettings(chains=2)).idata
+    assert idata.posterior_predictive["y_rep"].dtype == np.float32   # as the PyStan engine keeps it
+    assert idata.log_likelihood["log_lik"].dtype == np.float64
+
+
+def test_a_compile_failure_without_a_message_still_says_what_to_check(monkeypatch, tmp_path):
+    import cmdstanpy
+
+    class Broken:
+        def __init__(self, stan_file):
+            Path(stan_file).with_suffix("").write_bytes(b"half")   # a half-linked executable
+            raise ValueError("")
+
+    class Cand:
+        id, code_hash, code, path = "toy", "cd" * 32, "model {}", Path("toy.stan")
+
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "cache"))
+    monkeypatch.setattr(cmdstanpy, "CmdStanModel", Broken)
+    engine = ce.CmdStanPyEngine(fake_cmdstan(tmp_path))
+    with pytest.raises(SamplingError, match=r"toy.stan: compiling failed: ValueError with no message from CmdStan; "
+                                            r"check that the CmdStan installation works"):
+        engine.compile(Cand)
+    assert not engine.is_cached(Cand)   # the failed build's executable does not count
