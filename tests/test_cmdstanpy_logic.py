@@ -154,10 +154,10 @@ def test_engine_cmdstanpy_without_cmdstan_leaves_no_output_folder(tmp_path, monk
 
     monkeypatch.setenv("CMDSTAN", str(fake_cmdstan(tmp_path / "half", stanc=False)))
     data = tmp_path / "d.csv"
-    data.write_text("y\n1.0\n2.0\n3.0\n")
+    data.write_text("y\n" + "".join(f"{1 + i / 10}\n" for i in range(12)))
     out = tmp_path / "out"
     cfg = RunConfig(data=str(data), outcome="y", out=str(out), engine="cmdstanpy")
-    with pytest.raises(UserError, match="cmdstanpy"):
+    with pytest.raises(UserError, match="engine 'cmdstanpy' cannot run: CMDSTAN=.*bin/stanc is missing"):
         run(cfg)
     assert not out.exists()
 
@@ -267,3 +267,25 @@ def test_a_compile_failure_without_a_message_still_says_what_to_check(monkeypatc
                                             r"check that the CmdStan installation works"):
         engine.compile(Cand)
     assert not engine.is_cached(Cand)   # the failed build's executable does not count
+
+
+def test_a_run_says_when_auto_falls_back_to_pystan(tmp_path, monkeypatch):
+    from contenders import runner
+    from contenders.config import RunConfig
+
+    class Stop(Exception):
+        pass
+
+    def stop(_path):
+        raise Stop   # the notice must come before the output folder is made
+
+    monkeypatch.setenv("CMDSTAN", str(tmp_path / "nowhere"))
+    monkeypatch.setattr(runner, "output_folder", stop)
+    data = tmp_path / "d.csv"
+    data.write_text("y\n" + "".join(f"{1 + i / 10}\n" for i in range(12)))
+    said = []
+    with pytest.raises(Stop):
+        runner.run(RunConfig(data=str(data), outcome="y", out=str(tmp_path / "out"), engine="auto"),
+                   progress=said.append)
+    assert said == [f"engine: using PyStan, because the CmdStan found cannot be used: CMDSTAN={tmp_path / 'nowhere'}: "
+                    "no such folder; install one with cmdstanpy's installer, or set CMDSTAN to a built CmdStan folder"]
