@@ -289,3 +289,13 @@ def test_a_run_says_when_auto_falls_back_to_pystan(tmp_path, monkeypatch):
                    progress=said.append)
     assert said == [f"engine: using PyStan, because the CmdStan found cannot be used: CMDSTAN={tmp_path / 'nowhere'}: "
                     "no such folder; install one with cmdstanpy's installer, or set CMDSTAN to a built CmdStan folder"]
+
+
+def test_a_compile_error_puts_stancs_reason_first():
+    # the shape of CmdStanPy's compile failure (cmdstanpy/compilation.py, compile_stan_file)
+    text = ("Failed to compile Stan model '/c/toy.stan'. Console:\n--- Translating Stan model to C++ code ---\n"
+            "Syntax error in '/c/toy.stan', line 3, column 4 to column 5, parsing error:\n   3:  y ~ normal(\n"
+            "Expected \")\" after arguments.")
+    cause = ce._compile_cause(ValueError(text), "")
+    assert cause.splitlines()[0] == "Syntax error in '/c/toy.stan', line 3, column 4 to column 5, parsing error:"
+    assert cause.splitlines()[1:] == text.splitlines()

@@ -122,6 +122,17 @@ def _quiet_logger() -> logging.Logger:
     return logger
 
 
+def _compile_cause(exc: BaseException, folder: str) -> str:
+    """The compiler's reason first (its first line naming an error), then its whole
+    message (stanc's location and code excerpt) on the lines after."""
+    text = str(exc).strip()
+    if not text:
+        return _cause(exc, folder)
+    key = next((ln.strip() for ln in text.splitlines()
+                if "error" in ln.lower() and not ln.startswith("Failed to compile")), "")
+    return f"{key}\n{text[:4000]}" if key and key != text else text[:4000]
+
+
 class CmdStanPyEngine(Engine):
     name = "cmdstanpy"
 
@@ -181,7 +192,7 @@ class CmdStanPyEngine(Engine):
             try:
                 model = CmdStanModel(stan_file=str(stan_file))
             except Exception as exc:
-                raise SamplingError(f"{candidate.path.name}: compiling failed: {_cause(exc, str(folder))}") from None
+                raise SamplingError(f"{candidate.path.name}: compiling failed: {_compile_cause(exc, str(folder))}") from None
             if exe.exists():
                 mark.write_text(self._stamp(exe))
         return Program(candidate.id, candidate.code, model, time.perf_counter() - start, cached)
