@@ -18,6 +18,20 @@ from contenders.engines import cmdstanpy_engine as ce
 from contenders.engines.base import Program, SamplerSettings, SamplingError
 
 
+@pytest.fixture(autouse=True)
+def _cmdstan_variable_restored():
+    """CmdStanPy's ``set_cmdstan_path`` writes ``os.environ["CMDSTAN"]`` (cmdstanpy/utils/
+    cmdstan.py); a fake folder set by a test here must not reach later tests, which would
+    then take it for a real CmdStan. (monkeypatch.delenv records nothing when the variable
+    is absent, so it would not remove one set later.)"""
+    before = os.environ.get("CMDSTAN")
+    os.environ.pop("CMDSTAN", None)
+    yield
+    os.environ.pop("CMDSTAN", None)
+    if before is not None:
+        os.environ["CMDSTAN"] = before
+
+
 def fake_cmdstan(root: Path, version: str = "2.35.0", stanc: bool = True) -> Path:
     """A folder shaped like a built CmdStan: its makefile (with the version line CmdStan's
     own makefile carries) and, with ``stanc``, an executable bin/stanc."""
