@@ -5,6 +5,7 @@ Not a test. Run it from the repository root with the project installed:
     python benchmarks/end_to_end.py                     # speed: demo design, all built-ins
     python benchmarks/end_to_end.py --memory            # memory: N = 20,000, jobs = 2
     python benchmarks/end_to_end.py --store-size        # fit store size at N = 20,000
+    python benchmarks/end_to_end.py --engines           # PyStan against CmdStanPy (needs CmdStan)
 
 Speed part (each phase starts from an empty fit store; programs are compiled first, so
 compiling is not timed):
@@ -28,6 +29,15 @@ Memory part: the whole run at N = 20,000 (the demo design with more participants
 ``jobs`` = 2; peak resident memory of the process tree (the command and every process
 it starts), sampled every 0.25 s from /proc (Linux). Sum of RSS, so shared pages are
 counted more than once: an upper bound.
+
+Engines part (``--engines``, only where a usable CmdStan is installed beside PyStan):
+the same ``contenders run`` (the demo design, ``--participants`` and ``--draws``, or
+``--engines-n`` rows of it) with ``--engine pystan`` and with ``--engine cmdstanpy``,
+each from an empty fit store after compiling (not timed), the order of the two engines
+swapped on every other repeat. Printed per engine: wall and CPU seconds and peak
+process-tree memory (as in the memory part), each candidate's status, and the largest
+difference of elpd between the engines (the same seed gives the same draws, so it
+should be near zero); and the ratios CmdStanPy / PyStan of wall time and peak memory.
 
 Store-size part: ``contenders run`` at N = 20,000 for the candidates of
 ``--store-only`` (default: lognormal) with the default 4 chains x 1,000 draws (warmup
@@ -90,11 +100,12 @@ def _tree_rss(pid: int) -> int:
     return total
 
 
-def timed(cmd: list[str], env: dict | None = None, log: Path | None = None) -> tuple[float, int, float]:
+def timed(cmd: list[str], env: dict | None = None, log: Path | None = None,
+          ok: tuple[int, ...] = (0,)) -> tuple[float, int, float]:
     """Wall seconds, peak process-tree RSS (bytes) and CPU seconds (user + system of every
     process the command started and waited for) of a command; fails loudly. With ``log``,
     a line every 30 s (elapsed, tree RSS now, peak so far) is appended there, so a run cut
-    short still leaves its figures."""
+    short still leaves its figures. ``ok``: the exit statuses that count as finished."""
     start = time.perf_counter()
     cpu0 = resource.getrusage(resource.RUSAGE_CHILDREN)
     proc = subprocess.Popen(cmd, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
@@ -121,7 +132,7 @@ def timed(cmd: list[str], env: dict | None = None, log: Path | None = None) -> t
     seconds = time.perf_counter() - start
     cpu1 = resource.getrusage(resource.RUSAGE_CHILDREN)
     cpu = (cpu1.ru_utime - cpu0.ru_utime) + (cpu1.ru_stime - cpu0.ru_stime)
-    if proc.returncode != 0:
+    if proc.returncode not in ok:
         sys.stderr.write(output[-4000:])
         raise SystemExit(f"command failed ({proc.returncode}): {' '.join(cmd)}")
     return seconds, peak[0], cpu
@@ -372,6 +383,63 @@ def store_size(args) -> dict:
             shutil.rmtree(work, ignore_errors=True)
 
 
+ENGINES = ("pystan", "cmdstanpy")
+
+
+def engines(args) -> dict:
+    sys.path.insert(0, str(ROOT / "src"))
+    from contenders.engines import cmdstan_available
+
+    ok, why = cmdstan_available()
+    if not ok:
+        raise SystemExit(f"--engines compares PyStan with CmdStanPy and needs a usable CmdStan: {why}")
+    work = Path(tempfile.mkdtemp(prefix="contenders-engines-"))
+    try:
+        cfg = write_config(work, args.participants, args.draws, args.engines_n or None)
+        ids = args.only.split(",") if args.only else []
+        only = ["--only", args.only] if args.only else []
+        for name in ENGINES:
+            print(f"compiling for {name} (not timed) ...", flush=True)
+            subprocess.run(contenders("check", "--engine", name, *ids), check=True, stdout=subprocess.DEVNULL)
+        env = dict(os.environ, PYTHONHASHSEED="0")
+        runs = {name: [] for name in ENGINES}
+        summaries = {}
+        for r in range(args.repeat):
+            for name in (ENGINES if r % 2 == 0 else ENGINES[::-1]):
+                out = work / f"{name}{r}"
+                print(f"[{r + 1}/{args.repeat}] contenders run --engine {name} ...", flush=True)
+                before = _httpstan_fits()
+                seconds, peak, cpu = timed(contenders("run", "--config", str(cfg), "--quiet", "--engine", name,
+                                                      "--out", str(out), *only), env,
+                                      ok=(0, 3))   # 3: the run finished but ranked no candidate
+                for path in _httpstan_fits() - before:   # PyStan caches every seeded fit; not ours to keep
+                    path.unlink(missing_ok=True)
+                print(f"  {seconds:.1f} s wall, {cpu:.1f} s CPU, peak {peak / 2**30:.2f} GiB", flush=True)
+                runs[name].append({"seconds": round(seconds, 1), "cpu_seconds": round(cpu, 1),
+                                   "peak_gb": round(peak / 2**30, 2)})
+                summaries.setdefault(name, json.loads((out / "summary.json").read_text()))
+        elpd = {name: {c["id"]: c.get("elpd_loo") for c in s["candidates"]} for name, s in summaries.items()}
+        both = [cid for cid, v in elpd["pystan"].items()
+                if v is not None and elpd["cmdstanpy"].get(cid) is not None]
+
+        def median(name, key):
+            return statistics.median(x[key] for x in runs[name])
+
+        return {
+            "n": summaries["pystan"]["data"]["n"], "cores": os.cpu_count(), "repeats": args.repeat,
+            "engine_versions": {name: s["sampler"]["engine"] for name, s in summaries.items()},
+            "runs": runs,
+            "statuses": {name: {c["id"]: c["status"] for c in s["candidates"]} for name, s in summaries.items()},
+            "largest_elpd_difference": (max(abs(elpd["pystan"][c] - elpd["cmdstanpy"][c]) for c in both)
+                                        if both else None),
+            "cmdstanpy_over_pystan_wall": round(median("cmdstanpy", "seconds") / median("pystan", "seconds"), 2),
+            "cmdstanpy_over_pystan_peak_memory": round(median("cmdstanpy", "peak_gb") / median("pystan", "peak_gb"), 2),
+        }
+    finally:
+        if not args.keep:
+            shutil.rmtree(work, ignore_errors=True)
+
+
 def main() -> None:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--only", default="", help="candidate ids, comma-separated (default: all built-ins)")
@@ -386,12 +454,18 @@ def main() -> None:
     p.add_argument("--refits", type=int, default=100,
                    help="store size: refits assumed in the computed ten-candidate total (default 100: "
                         "refit_cap 10 for each of ten candidates)")
-    p.add_argument("--repeat", type=int, default=1, help="speed: repeats of baseline, cold and jobs = 1")
+    p.add_argument("--engines", action="store_true",
+                   help="run the same job with PyStan and with CmdStanPy instead (needs CmdStan)")
+    p.add_argument("--engines-n", type=int, default=0,
+                   help="engines: rows of the demo design to keep (default: all of --participants)")
+    p.add_argument("--repeat", type=int, default=1,
+                   help="speed: repeats of baseline, cold and jobs = 1; engines: repeats of both engines")
     p.add_argument("--log", type=Path, default=None,
                    help="memory: append elapsed time, tree RSS and peak so far here every 30 s")
     p.add_argument("--keep", action="store_true", help="keep the temporary folders")
     args = p.parse_args()
-    result = store_size(args) if args.store_size else memory(args) if args.memory else speed(args)
+    result = (engines(args) if args.engines else store_size(args) if args.store_size
+              else memory(args) if args.memory else speed(args))
     print(json.dumps(result, indent=2))
 
 
