@@ -75,7 +75,7 @@ def cmd_check(args: argparse.Namespace) -> int:
 RUN_FLAGS = (
     "outcome", "predictors", "group", "conditions", "reference", "typical_value", "typical_spread", "candidates",
     "only", "out", "store", "chains", "warmup", "draws", "prior_draws", "seed", "jobs", "engine", "adapt_delta",
-    "escalation", "max_treedepth", "thresholds", "bounds", "rhat_max", "ess_per_chain_min", "ebfmi_min",
+    "escalation", "longer_retry", "max_treedepth", "thresholds", "bounds", "rhat_max", "ess_per_chain_min", "ebfmi_min",
     "implausible_share", "check_draws", "ppp_extreme", "cross_validation", "refit_cap", "folds",
     "replicates", "cluster",
 )
@@ -87,7 +87,7 @@ def _add_run_flags(p: argparse.ArgumentParser) -> None:
     from .config import _TYPES, HELP, section_of
 
     metavars = {"path": "DIR", "str": "COL", "strs": "A,B", "float": "X", "posfloat": "X", "posint": "N",
-                "int0": "N", "prob": "P", "probs": "P,P", "floats": "T,T", "engine": "NAME",
+                "int0": "N", "prob": "P", "probs": "P,P", "factor": "F", "floats": "T,T", "engine": "NAME",
                 "bounds": "STAT=LOW:HIGH,...", "levels": "COL=LEVEL,...", "cv": "METHOD", "folds": "K", "bool": "", "reps": "R",
                 "address": "tcp://HOST:PORT"}
     p.add_argument("--config", metavar="FILE", help="TOML configuration file; flags override its keys")

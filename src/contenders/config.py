@@ -43,6 +43,7 @@ class RunConfig:
     seed: int = 20261201
     adapt_delta: float = 0.8
     escalation: tuple[float, ...] = (0.95, 0.99)
+    longer_retry: float = 2.0               # warmup and draws times this on one retry; 1: never
     max_treedepth: int = 10
     jobs: int = 0                           # 0: all cores
     engine: str = "auto"
@@ -75,7 +76,7 @@ _LAYOUT: dict[str, dict[str, str]] = {
     "candidates": {"folder": "candidates", "only": "only"},
     "sampler": {"chains": "chains", "warmup": "warmup", "draws": "draws",
                 "prior_draws": "prior_draws", "seed": "seed", "adapt_delta": "adapt_delta",
-                "escalation": "escalation", "max_treedepth": "max_treedepth"},
+                "escalation": "escalation", "longer_retry": "longer_retry", "max_treedepth": "max_treedepth"},
     "checks": {"thresholds": "thresholds", "bounds": "bounds", "check_draws": "check_draws",
                "implausible_share": "implausible_share", "ppp_extreme": "ppp_extreme"},
     "comparison": {"cross_validation": "cross_validation", "refit_cap": "refit_cap", "folds": "folds"},
@@ -91,7 +92,8 @@ _TYPES: dict[str, str] = {
     "data": "path", "outcome": "str", "predictors": "strs", "group": "str", "conditions": "strs", "reference": "levels",
     "typical_value": "float", "typical_spread": "posfloat", "candidates": "path", "only": "strs",
     "out": "path", "store": "path", "chains": "posint", "warmup": "int0", "draws": "posint", "prior_draws": "posint",
-    "seed": "int0", "adapt_delta": "prob", "escalation": "probs", "max_treedepth": "posint",
+    "seed": "int0", "adapt_delta": "prob", "escalation": "probs", "longer_retry": "factor",
+    "max_treedepth": "posint",
     "jobs": "int0", "engine": "engine", "thresholds": "floats", "bounds": "bounds",
     "rhat_max": "posfloat", "ess_per_chain_min": "posfloat", "ebfmi_min": "posfloat",
     "implausible_share": "prob", "check_draws": "posint", "quiet": "bool", "ppp_extreme": "prob",
@@ -103,7 +105,7 @@ _TYPES: dict[str, str] = {
 
 _DESCRIBE = {
     "path": "a path in quotes", "str": "text in quotes", "strs": "a list of column names",
-    "float": "a number", "posfloat": "a positive number", "posint": "a whole number >= 1",
+    "float": "a number", "posfloat": "a positive number", "factor": "a number >= 1", "posint": "a whole number >= 1",
     "int0": "a whole number >= 0", "prob": "a number strictly between 0 and 1",
     "probs": "a list of numbers strictly between 0 and 1", "floats": "a list of numbers",
     "engine": "one of auto, pystan, cmdstanpy",
@@ -150,6 +152,11 @@ def _convert(key: str, value: Any, base: Path) -> Any:
     if kind == "posfloat":
         v = num(value)
         if not (math.isfinite(v) and v > 0):
+            raise bad()
+        return v
+    if kind == "factor":
+        v = num(value)
+        if not (math.isfinite(v) and v >= 1):
             raise bad()
         return v
     if kind in ("posint", "int0"):
@@ -305,7 +312,8 @@ def apply_flags(cfg: RunConfig, flags: Mapping[str, Any], base: Path | None = No
 #: ESS 246 to 365 of 1,000 draws) and ranked only the other two, which said more about
 #: the short chains than about the candidates. Flags given beside ``--quick`` still win.
 QUICK_PROFILE: dict[str, Any] = {"chains": 4, "warmup": 250, "draws": 250, "prior_draws": 200,
-                                 "escalation": (), "rhat_max": 1.05, "ess_per_chain_min": 25.0}
+                                 "escalation": (), "longer_retry": 1.0, "rhat_max": 1.05,
+                                 "ess_per_chain_min": 25.0}
 #: Where a quick look writes when no output folder is given (a full run's is reports/run).
 QUICK_OUT = Path("reports/quick")
 
@@ -342,6 +350,8 @@ HELP: dict[str, str] = {
     "seed": "random seed of every fit",
     "adapt_delta": "Stan's target acceptance rate for the first fit",
     "escalation": "higher adapt_delta values tried in turn after divergent transitions",
+    "longer_retry": ("when R-hat or ESS falls just short (R-hat below 1.05, ESS at least its floor divided by "
+                     "this, no divergent transitions), fit once more with warmup and draws times this (1: never)"),
     "max_treedepth": "Stan's maximum tree depth",
     "jobs": "cores the run may use: programs compiled, candidates fitted side by side and chains at once (0: all cores)",
     "engine": "Stan engine: auto (CmdStanPy when CmdStan is installed, else PyStan), pystan, cmdstanpy",
@@ -362,7 +372,7 @@ HELP: dict[str, str] = {
                   "candidate (0: none with run; recovery uses 20)",
     "cluster": "run the fits on an existing Dask cluster at this scheduler address, e.g. tcp://HOST:PORT "
                "(default: worker processes on this machine)",
-    "quick": "a quick look: 4 chains x 250 draws (250 warmup), 200 prior draws, no adapt_delta escalation, "
+    "quick": "a quick look: 4 chains x 250 draws (250 warmup), 200 prior draws, no adapt_delta escalation or longer retry, "
              "R-hat below 1.05 and ESS of 25 per chain accepted, PSIS-LOO without refits; marked 'quick look' in the verdict, written to "
              "reports/quick unless --out is given, never over a full run's output; flags given with it still win",
 }

@@ -253,7 +253,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         report(c.id, "posterior")
         draws, health = fit_with_health(
             engine, program, inputs_for(c, design, None, cfg.hyperparameters.get(c.id)), _settings(cfg),
-            c.parameter_names, cfg.escalation, rhat_max=cfg.rhat_max,
+            c.parameter_names, cfg.escalation, cfg.longer_retry, rhat_max=cfg.rhat_max,
             ess_per_chain_min=cfg.ess_per_chain_min, ebfmi_min=cfg.ebfmi_min,
         )
         res.health = health
@@ -289,7 +289,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
                              cfg.folds, groups, cfg.seed,
                              why_plain="quick look" if cfg.quick else REFITS_SKIPPED)
         del draws
-        due = RefitsDue(plan, health.adapt_delta)
+        due = RefitsDue(plan, health.adapt_delta, health.warmup, health.draws)
         if plan.fits and defer_refits:
             res.pending = due
         else:
@@ -314,10 +314,13 @@ REFITS_SKIPPED = "exact refits skipped, since an unhealthy candidate is not rank
 @dataclass
 class RefitsDue:
     """The refits an out-of-sample estimate still needs (``plan.fits``) and the
-    ``adapt_delta`` the accepted posterior fit used."""
+    ``adapt_delta``, warmup and draws per chain the accepted posterior fit used (longer
+    than the run's when its first fit fell just short on R-hat or ESS)."""
 
     plan: Plan
     adapt_delta: float
+    warmup: int = 0      # 0: the run's
+    draws: int = 0       # 0: the run's
 
 
 @dataclass
@@ -340,7 +343,8 @@ def refit_held_out(c: Candidate, engine, program, design: Design, cfg: RunConfig
     The seed depends on ``j`` only, so the refits give the same draws wherever they run."""
     fitted, held = due.plan.fits[j]
     report(c.id, f"out-of-sample: refit {j + 1} of {len(due.plan.fits)}")
-    settings = replace(_settings(cfg), adapt_delta=due.adapt_delta, seed=cfg.seed + 1001 + j)
+    settings = replace(_settings(cfg), adapt_delta=due.adapt_delta, seed=cfg.seed + 1001 + j,
+                       warmup=due.warmup or cfg.warmup, draws=due.draws or cfg.draws)
     d = engine.sample(program, inputs_for(c, design, fitted, cfg.hyperparameters.get(c.id)), settings)
     # the store keeps a refit's held-out observations only: pick them by label
     held_ll = d.idata.log_likelihood.sel(obs=np.asarray(held))
@@ -427,7 +431,7 @@ def fit_task(c: Candidate, design: Design, cfg: RunConfig, engine_name: str, sto
         settings = replace(_settings(cfg), seed=cfg.seed if seed is None else seed)
         draws, health = fit_with_health(
             engine, program, inputs_for(c, design, None, cfg.hyperparameters.get(c.id)), settings,
-            c.parameter_names, cfg.escalation, rhat_max=cfg.rhat_max,
+            c.parameter_names, cfg.escalation, cfg.longer_retry, rhat_max=cfg.rhat_max,
             ess_per_chain_min=cfg.ess_per_chain_min, ebfmi_min=cfg.ebfmi_min,
         )
         kept = keep(draws, health)
@@ -652,6 +656,8 @@ def candidate_summary(r: CandidateResult, comparison: Comparison) -> dict[str, A
         "treedepth_hits": h.treedepth_hits if h else None,
         "ebfmi": h.ebfmi if h else None,
         "adapt_delta": h.adapt_delta if h else None,
+        "warmup": h.warmup if h else None,
+        "draws": h.draws if h else None,
         "adapt_delta_attempts": [asdict(a) for a in h.attempts] if h else [],
         "prior_plausible_share": p.plausible_share if p else None,
         "prior_flagged": p.flagged if p else None,

@@ -60,14 +60,15 @@ def fit_key(code: str, data: Mapping[str, Any], settings: SamplerSettings, engin
 #: Settings of a run that change a candidate's trial results (and so their stored copy).
 TRIAL_SETTINGS = (
     "chains", "warmup", "draws", "prior_draws", "seed", "adapt_delta", "max_treedepth", "escalation",
-    "rhat_max", "ess_per_chain_min", "ebfmi_min", "thresholds", "bounds", "implausible_share",
+    "longer_retry", "rhat_max", "ess_per_chain_min", "ebfmi_min", "thresholds", "bounds", "implausible_share",
     "check_draws", "conditions", "reference", "cross_validation", "refit_cap", "folds",
 )
 #: Bumped whenever the stored trial results change shape. Format 4: plain data only (no
 #: ArviZ objects), so reading them back imports neither ArviZ nor xarray. Format 5:
 #: coefficients in the outcome's units and group terms (``CandidateResult.coefficients``),
-#: and the prior trial's reading of each failing bound.
-TRIALS_FORMAT = 5
+#: and the prior trial's reading of each failing bound. Format 6: warmup and draws per
+#: chain of each posterior attempt and of the accepted fit (the longer retry).
+TRIALS_FORMAT = 6
 
 
 def trials_key(candidate, design, cfg, engine_version: str) -> str:

@@ -364,7 +364,10 @@ def _health(result, cands) -> tuple[Table, list[tuple[str, str, list[str]]]]:
         bbad = h.ess_bulk_min < ess_min
         tbad = h.ess_tail_min < ess_min
         ebad = any(v < cfg.ebfmi_min for v in h.ebfmi)
-        runs = " → ".join(f"{a.adapt_delta:g}: {a.divergences} div." for a in h.attempts)
+        first = h.attempts[0].draws if h.attempts else 0
+        longer = [" (longer: " + fmt.integer(getattr(a, "draws", 0)) + " draws)"
+                  if getattr(a, "draws", 0) and getattr(a, "draws", 0) != first else "" for a in h.attempts]
+        runs = " → ".join(f"{a.adapt_delta:g}{more}: {a.divergences} div." for a, more in zip(h.attempts, longer))
         t.add([
             Cell(r.label, "name", r.id),
             Cell(STATUS_TEXT[r.status], "status " + cls),
@@ -380,7 +383,9 @@ def _health(result, cands) -> tuple[Table, list[tuple[str, str, list[str]]]]:
             Cell(runs),
         ], [r.id, r.label, r.status, h.rhat_max, h.rhat_worst, h.ess_bulk_min, h.ess_tail_min, h.ess_worst,
             h.divergences, h.treedepth_hits, " ".join(repr(float(v)) for v in h.ebfmi), h.adapt_delta,
-            "; ".join(f"adapt_delta {a.adapt_delta:g}: {a.divergences} divergences, {a.seconds:.2f} s"
+            "; ".join(f"adapt_delta {a.adapt_delta:g}"
+                      + (f", warmup {a.warmup}, draws {a.draws}" if getattr(a, "draws", 0) else "")
+                      + f": {a.divergences} divergences, {a.seconds:.2f} s"
                       + (f" (and {getattr(a, 'wait_seconds', 0.0):.2f} s waiting for a core)"
                          if getattr(a, "wait_seconds", 0.0) else "")
                       for a in h.attempts),

@@ -12,13 +12,23 @@ Diagnostics and thresholds:
   cotangent disintegrations in Hamiltonian Monte Carlo", arXiv:1604.00695).
 
 When a fit has divergent transitions it is refitted with each higher ``adapt_delta``
-of the escalation in turn until none remain; every attempt is recorded.
+of the escalation in turn until none remain. When the accepted fit then falls just
+short on R-hat or ESS alone (no divergent transitions, E-BFMI fine, R-hat below 1.05,
+ESS at least its floor divided by the factor), it is fitted once more with warmup and
+draws times ``longer`` (the run's ``longer_retry``): R-hat from 1,000 draws per chain
+varies by about +-0.005 between seeds for a well-behaved posterior (measured here, see
+``config.QUICK_PROFILE``), so 1.012 can be chance; longer chains settle it, and ESS
+grows about in proportion to the draws (common practice, no source). A fit far off
+(R-hat 1.05 or more, or any divergent transition left) is not retried: more of the same
+sampling does not fix a posterior the sampler cannot explore. Every attempt is recorded.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
 from typing import Any, Mapping, Sequence
+
+import math
 
 import numpy as np
 
@@ -31,6 +41,8 @@ class Attempt:
     divergences: int
     seconds: float                 # sampling, without the waiting below
     wait_seconds: float = 0.0      # waiting for a free chain slot, no chain of the fit running
+    warmup: int = 0                # per chain
+    draws: int = 0                 # per chain
 
 
 @dataclass
@@ -51,6 +63,8 @@ class Health:
     problems: list[str]
     warnings: list[str]
     table: list[dict] = field(default_factory=list)   # per parameter element
+    warmup: int = 0                # per chain, of the accepted fit
+    draws: int = 0                 # per chain, of the accepted fit
 
     @property
     def posterior_means(self) -> dict[str, float]:
@@ -145,8 +159,25 @@ def diagnose(
         rhat_max=r_max, rhat_worst=worst_r, ess_bulk_min=e_bulk, ess_tail_min=e_tail,
         ess_worst=worst_e, divergences=divergences, treedepth_hits=hits, ebfmi=ebfmi,
         adapt_delta=settings.adapt_delta, attempts=list(attempts), healthy=not problems,
-        problems=problems, warnings=warnings, table=table,
+        problems=problems, warnings=warnings, table=table, warmup=settings.warmup, draws=settings.draws,
     )
+
+
+#: A fit whose R-hat is at or above this is far off, not just short: no longer retry
+#: (the older rule of thumb for R-hat; common practice, no source).
+RHAT_FAR = 1.05
+
+
+def just_short(health: Health, longer: float, rhat_max: float = 1.01, ess_per_chain_min: float = 100.0,
+               ebfmi_min: float = 0.3, chains: int = 4) -> bool:
+    """Whether an unhealthy fit fell short on R-hat or ESS only, and by little enough that
+    chains ``longer`` times as long can be expected to settle it."""
+    if health.healthy or longer <= 1 or health.divergences or any(v < ebfmi_min for v in health.ebfmi):
+        return False
+    if not np.isfinite(health.rhat_max) or health.rhat_max >= max(RHAT_FAR, rhat_max):
+        return False
+    ess = min(health.ess_bulk_min, health.ess_tail_min)
+    return bool(np.isfinite(ess) and ess >= ess_per_chain_min * chains / longer)
 
 
 def fit_with_health(
@@ -156,20 +187,43 @@ def fit_with_health(
     settings: SamplerSettings,
     parameters: Sequence[str],
     escalation: Sequence[float] = (0.95, 0.99),
+    longer: float = 1.0,
     **thresholds: float,
 ) -> tuple[Draws, Health]:
-    """Sample; on divergent transitions refit at each higher adapt_delta in turn."""
+    """Sample; on divergent transitions refit at each higher adapt_delta in turn; when the
+    result falls just short on R-hat or ESS (see :func:`just_short`), fit once more with
+    warmup and draws ``longer`` times as many."""
     steps = [settings.adapt_delta] + sorted(d for d in escalation if d > settings.adapt_delta)
     attempts: list[Attempt] = []
-    for i, delta in enumerate(steps):
-        draws = engine.sample(program, data, replace(settings, adapt_delta=delta))
+
+    def one(run: SamplerSettings) -> Draws:
+        draws = engine.sample(program, data, run)
         n_div = int(np.asarray(draws.idata.sample_stats["diverging"].values).sum())
-        attempts.append(Attempt(delta, n_div, draws.sample_seconds, draws.wait_seconds))
-        if n_div == 0 or i == len(steps) - 1:
+        attempts.append(Attempt(run.adapt_delta, n_div, draws.sample_seconds, draws.wait_seconds,
+                                run.warmup, run.draws))
+        return draws
+
+    for i, delta in enumerate(steps):
+        draws = one(replace(settings, adapt_delta=delta))
+        if attempts[-1].divergences == 0 or i == len(steps) - 1:
             break
         del draws
     health = diagnose(draws, parameters, attempts=attempts, **thresholds)
-    if len(attempts) > 1:
-        record = "; ".join(f"adapt_delta {a.adapt_delta}: {a.divergences} divergences" for a in attempts)
+    escalated = len(attempts) > 1
+    short = health.problems
+    if just_short(health, longer, chains=settings.chains, **thresholds):
+        run = replace(settings, adapt_delta=health.adapt_delta, warmup=math.ceil(settings.warmup * longer),
+                      draws=math.ceil(settings.draws * longer))
+        del draws
+        draws = one(run)
+        health = diagnose(draws, parameters, attempts=attempts, **thresholds)
+        health.warnings.insert(0, (
+            f"fitted again with {run.warmup} warmup iterations and {run.draws} draws per chain (instead of "
+            f"{settings.warmup} and {settings.draws}), since the first fit fell just short: "
+            + "; ".join(p.split(":")[0] for p in short)
+            + (": the longer fit passes" if health.healthy else ": the longer fit does not pass either")))
+    if escalated:
+        record = "; ".join(f"adapt_delta {a.adapt_delta}: {a.divergences} divergences"
+                           for a in attempts if a.draws == settings.draws)
         health.warnings.insert(0, f"refitted after divergent transitions ({record})")
     return draws, health
