@@ -72,7 +72,7 @@ def test_a_fit_just_short_on_rhat_is_fitted_again_longer_and_passes():
     assert [(a.warmup, a.draws) for a in health.attempts] == [(1000, 1000), (2000, 2000)]
     assert health.rhat_max < 1.01
     assert health.warnings[0].startswith("fitted again with 2000 warmup iterations and 2000 draws per chain "
-                                         "(instead of 1000 and 1000), since the first fit fell just short: R-hat")
+                                         "(instead of 1000 and 1000), since the first fit fell just short (R-hat")
     assert health.warnings[0].endswith("the longer fit passes")
 
 

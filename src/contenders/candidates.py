@@ -302,6 +302,11 @@ def check_against_data(c: Candidate, design: Design, overrides: Mapping[str, Any
     if c.info.inputs["y"].get("type") == "int" and not np.all(design.y == np.round(design.y)):
         c.skip_reason = "the program declares an integer outcome but the outcome has fractions"
         return
+    if design.slopes and not {"Kz", "Z"} <= set(c.info.inputs):
+        # never fitted without the slopes asked for: it would answer another question
+        c.skip_reason = ("slopes per group were asked for, but the program does not declare the inputs "
+                         "Kz and Z that carry them (see the README's contract table)")
+        return
     try:
         c.hyperparameter_values(overrides)
     except UserError as exc:

@@ -73,7 +73,7 @@ def cmd_check(args: argparse.Namespace) -> int:
 
 #: Settings given on the command line of ``run`` (and ``demo``), in help order.
 RUN_FLAGS = (
-    "outcome", "predictors", "group", "conditions", "reference", "typical_value", "typical_spread", "candidates",
+    "outcome", "predictors", "group", "slopes", "conditions", "reference", "typical_value", "typical_spread", "candidates",
     "only", "out", "store", "chains", "warmup", "draws", "prior_draws", "seed", "jobs", "engine", "adapt_delta",
     "escalation", "longer_retry", "max_treedepth", "thresholds", "bounds", "rhat_max", "ess_per_chain_min", "ebfmi_min",
     "implausible_share", "check_draws", "ppp_extreme", "cross_validation", "refit_cap", "folds",

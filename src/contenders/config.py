@@ -29,6 +29,7 @@ class RunConfig:
     predictors: tuple[str, ...] = ()
     group: str | None = None
     conditions: tuple[str, ...] = ()
+    slopes: tuple[str, ...] = ()            # predictors with a slope per group
     reference: Mapping[str, str] = field(default_factory=dict)   # column -> reference level
     typical_value: float | None = None
     typical_spread: float | None = None
@@ -71,7 +72,7 @@ class RunConfig:
 # TOML layout: section -> {key: field name}
 _LAYOUT: dict[str, dict[str, str]] = {
     "data": {"file": "data", "outcome": "outcome", "predictors": "predictors", "group": "group",
-             "conditions": "conditions", "reference": "reference", "typical_value": "typical_value",
+             "conditions": "conditions", "slopes": "slopes", "reference": "reference", "typical_value": "typical_value",
              "typical_spread": "typical_spread"},
     "candidates": {"folder": "candidates", "only": "only"},
     "sampler": {"chains": "chains", "warmup": "warmup", "draws": "draws",
@@ -89,7 +90,7 @@ _LAYOUT: dict[str, dict[str, str]] = {
 _SECTIONS = tuple(_LAYOUT) + ("hyperparameters",)
 
 _TYPES: dict[str, str] = {
-    "data": "path", "outcome": "str", "predictors": "strs", "group": "str", "conditions": "strs", "reference": "levels",
+    "data": "path", "outcome": "str", "predictors": "strs", "group": "str", "conditions": "strs", "slopes": "strs", "reference": "levels",
     "typical_value": "float", "typical_spread": "posfloat", "candidates": "path", "only": "strs",
     "out": "path", "store": "path", "chains": "posint", "warmup": "int0", "draws": "posint", "prior_draws": "posint",
     "seed": "int0", "adapt_delta": "prob", "escalation": "probs", "longer_retry": "factor",
@@ -334,6 +335,8 @@ HELP: dict[str, str] = {
     "predictors": "predictor columns, comma-separated (numeric: centred and scaled; text: indicators)",
     "group": "grouping column for varying intercepts (participants, items, machines)",
     "conditions": "columns whose levels get their own predictive checks, comma-separated",
+    "slopes": ("predictors whose slope varies by group (each group's deviation, correlated with its intercept), "
+               "comma-separated; each must be among the predictors, and a group column is needed"),
     "reference": "reference level of a text predictor or condition column, e.g. density=dense,cue=off "
                  "(default: the first level in sorted order); coefficients and effects are each level "
                  "minus the reference",

@@ -56,6 +56,7 @@ class Design:
     y_scale: float
     dropped_rows: int = 0
     table: pd.DataFrame | None = field(default=None, repr=False, compare=False)
+    slopes: tuple[int, ...] = ()       # columns of X (0-based) with a slope per group
 
     @property
     def N(self) -> int:
@@ -88,6 +89,8 @@ class Design:
             "X": self.X,
             "J": self.J,
             "group": self.group,
+            "Kz": len(self.slopes),
+            "Z": self.X[:, list(self.slopes)],
             "N_fit": int(fit_idx.size),
             "fit_idx": fit_idx + 1,
             "y_center": self.y_center,
@@ -97,7 +100,7 @@ class Design:
 
 #: Names of the inputs the runner supplies itself; every other declared input of a
 #: candidate is a prior hyperparameter.
-SUPPLIED_INPUTS = ("N", "y", "K", "X", "J", "group", "N_fit", "fit_idx", "y_center", "y_scale")
+SUPPLIED_INPUTS = ("N", "y", "K", "X", "J", "group", "Kz", "Z", "N_fit", "fit_idx", "y_center", "y_scale")
 
 
 def levels_with_reference(labels: Sequence, reference: str | None = None) -> tuple[str, list[str]]:
@@ -183,6 +186,7 @@ def build_design(
     source: str = "data",
     min_rows: int = 10,
     reference: Mapping[str, str] | None = None,
+    slopes: Sequence[str] = (),
 ) -> Design:
     """Check the table and build the :class:`Design` (see the module docstring).
 
@@ -191,6 +195,8 @@ def build_design(
     because silently dropping them would change which rows every candidate sees.
     ``reference`` maps a text predictor column to its reference level (checked with
     :func:`check_reference`; by default the first level in sorted order).
+    ``slopes`` names predictor columns that get a slope per group (every column of X
+    made from each of them: one for a number, one per non-reference level for text).
     """
     reference = dict(reference or {})
     columns = [str(c) for c in table.columns]
@@ -203,6 +209,14 @@ def build_design(
             )
     if outcome in predictors or (group and (group == outcome or group in predictors)):
         raise UserError(f"{source}: a column is used twice among outcome, predictors and group.")
+    for name in slopes:
+        if name not in predictors:
+            raise UserError(
+                f"{source}: slope column '{name}' is not among the predictors ("
+                + (", ".join(predictors) or "none") + "); a slope per group varies around a predictor's "
+                "common slope, so add it with --predictors or remove it from --slopes.")
+    if slopes and not group:
+        raise UserError(f"{source}: slopes per group ({', '.join(slopes)}) need a group column; set --group.")
 
     y_raw = pd.to_numeric(table[outcome], errors="coerce")
     bad_text = y_raw.isna() & table[outcome].notna()
@@ -292,6 +306,7 @@ def build_design(
         source=source, outcome=outcome, y=y, X=X, coding=tuple(coding),
         group_column=group, group=gidx, group_levels=levels,
         y_center=y_center, y_scale=y_scale, dropped_rows=dropped, table=table,
+        slopes=tuple(i for i, code in enumerate(coding) if code.source in set(slopes)),
     )
 
 

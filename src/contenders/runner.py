@@ -125,7 +125,7 @@ def load_design(cfg: RunConfig) -> Design:
     check_reference(table, cfg.reference, cfg.predictors, cfg.conditions, source=str(cfg.data))
     return build_design(
         table, cfg.outcome, cfg.predictors, cfg.group, cfg.typical_value, cfg.typical_spread,
-        source=str(cfg.data), reference=cfg.reference,
+        source=str(cfg.data), reference=cfg.reference, slopes=cfg.slopes,
     )
 
 
@@ -197,12 +197,14 @@ def _stack(idata_group, name: str) -> np.ndarray:
 def prior_parameters(posterior, names, J: int, K: int) -> dict[str, np.ndarray]:
     """Each scalar parameter's prior draws (vector elements as ``name[k]``), in the
     order of the stacked ``y_rep`` draws; the group terms (one value per group) are
-    left out, since a prior on each group's term is the group SD's business."""
+    left out, since a prior on each group's term is the group SD's business; so are
+    matrix-valued parameters (the group slopes ``slope_z`` and the Cholesky factor
+    ``group_corr_L`` of their correlation), for the same reason."""
     from .trials.coefficients import group_terms
 
     flat = {}
     for name in names:
-        if name not in posterior:
+        if name not in posterior or posterior[name].ndim > 3:
             continue
         values = np.asarray(posterior[name].values, dtype=float)
         flat[name] = values.reshape(values.shape[0] * values.shape[1], -1)

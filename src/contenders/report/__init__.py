@@ -680,6 +680,11 @@ def _groups_note(c) -> str:
     if c.group_sd is not None:
         unit = f" {c.outcome}" if c.link == "identity" else (" on the log scale" if c.link == "log" else "")
         text += f"; their SD {c.group_sd_parameter} is {_estimate95(c.group_sd)}{unit}"
+    for s in getattr(c, "slopes", []):
+        text += (f"; the groups' slopes on {s['name']} vary with SD {s['parameter']} "
+                 f"{_estimate95(s['per_unit'])}" + (f" ({s['units']})" if s["units"] else "")
+                 + (f", correlated with their intercepts at {_estimate95(s['correlation'])}"
+                    if np.isfinite(s["correlation"][0]) else ""))
     low, high = extremes(c)
     known = bool(c.link) and np.isfinite(c.groups[0]["offset"][0])
 

@@ -87,6 +87,10 @@ class Coefficients:
     group_sd_parameter: str = ""
     group_sd: tuple[float, float, float] | None = None
     groups: list[dict] = field(default_factory=list)
+    #: slopes per group (built-ins' ``slope_sd``, ``group_corr_L``): per slope column, the
+    #: SD of the groups' slopes (internal, and per unit of the column) and the correlation
+    #: of the groups' slopes with their intercepts
+    slopes: list[dict] = field(default_factory=list)
 
 
 def _draws(posterior, name: str) -> np.ndarray | None:
@@ -168,6 +172,21 @@ def coefficient_summary(posterior, design, link=None, reason: str = "") -> Coeff
                                    "internal": _summary(z[:, j]),
                                    "offset": _summary(offsets[:, j]) if scaled else (math.nan,) * 3,
                                    "value": _summary(to_outcome(offsets[:, j])) if scaled else (math.nan,) * 3})
+    slope_sd, factor = _draws(posterior, "slope_sd"), _draws(posterior, "group_corr_L")
+    if J > 0 and design.slopes and slope_sd is not None and slope_sd.shape[1] == len(design.slopes):
+        size = len(design.slopes) + 1
+        for k, col in enumerate(design.slopes):
+            c = coding[col]
+            # correlation of slope k with the intercepts: Omega = L L', and L's first row is
+            # (1, 0, ..., 0), so Omega[k + 1, 1] = L[k + 1, 1] (row-major flattening)
+            corr = factor[:, (k + 1) * size] if factor is not None and factor.shape[1] == size * size else None
+            per = "per unit of " + c.source if c.level is None else f"{c.source} = {c.level} against {c.reference}"
+            out.slopes.append({"parameter": f"slope_sd[{k + 1}]", "name": c.name, "column": c.source,
+                               "internal": _summary(slope_sd[:, k]),
+                               "per_unit": _summary(slope_sd[:, k] / c.scale),
+                               "units": ("" if link is None else
+                                         f"{design.outcome} {per}" if not log else f"log scale, {per}"),
+                               "correlation": _summary(corr) if corr is not None else (math.nan,) * 3})
     if not out.rows and not out.groups:
         return None
     return out
@@ -196,5 +215,11 @@ def summary(c: Coefficients | None) -> dict[str, Any] | None:
         "groups": {"column": c.group_column, "parameter": c.group_parameter, "count": len(c.groups),
                    "sd_parameter": c.group_sd_parameter or None,
                    "sd": list(c.group_sd) if c.group_sd else None} if c.groups else None,
+        "slopes": [{"parameter": s["parameter"], "name": s["name"], "units": s["units"] or None,
+                    "sd_internal_mean": s["internal"][0], "sd_mean": s["per_unit"][0],
+                    "sd_q025": s["per_unit"][1], "sd_q975": s["per_unit"][2],
+                    "correlation_with_intercept_mean": s["correlation"][0],
+                    "correlation_q025": s["correlation"][1], "correlation_q975": s["correlation"][2]}
+                   for s in getattr(c, "slopes", [])],
     }
 

@@ -109,6 +109,13 @@ def diagnose(
     sd = _flatten(post[names].std(dim=("chain", "draw")), names)
     q05 = _flatten(post[names].quantile(0.05, dim=("chain", "draw")), names)
     q95 = _flatten(post[names].quantile(0.95, dim=("chain", "draw")), names)
+    # elements equal in every draw of every chain are fixed by the program's structure (the
+    # first row of a Cholesky factor of a correlation matrix is 1, 0, ..., 0), not stuck:
+    # chains stuck at their random initial values would differ from one another
+    spread = _flatten(post[names].max(dim=("chain", "draw")) - post[names].min(dim=("chain", "draw")), names)
+    for k in [k for k, v in spread.items() if v == 0 and post.sizes["chain"] * post.sizes["draw"] > 1]:
+        for d in (rhat, bulk, tail):
+            d.pop(k, None)
     table = [{"parameter": k, "mean": mean[k], "sd": sd[k], "q05": q05[k], "q95": q95[k],
               "rhat": rhat[k], "ess_bulk": bulk[k], "ess_tail": tail[k]} for k in rhat]
     finite_rhat = {k: v for k, v in rhat.items() if np.isfinite(v)}
@@ -219,9 +226,9 @@ def fit_with_health(
         health = diagnose(draws, parameters, attempts=attempts, **thresholds)
         health.warnings.insert(0, (
             f"fitted again with {run.warmup} warmup iterations and {run.draws} draws per chain (instead of "
-            f"{settings.warmup} and {settings.draws}), since the first fit fell just short: "
+            f"{settings.warmup} and {settings.draws}), since the first fit fell just short ("
             + "; ".join(p.split(":")[0] for p in short)
-            + (": the longer fit passes" if health.healthy else ": the longer fit does not pass either")))
+            + ("); the longer fit passes" if health.healthy else "); the longer fit does not pass either")))
     if escalated:
         record = "; ".join(f"adapt_delta {a.adapt_delta}: {a.divergences} divergences"
                            for a in attempts if a.draws == settings.draws)

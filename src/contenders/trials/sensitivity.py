@@ -129,7 +129,9 @@ def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
     if lprior not in post:
         return None
     try:
-        names = [p for p in parameters if p in post and p != lprior and post[p].size > 0]
+        # matrix-valued parameters (group slopes, a correlation's Cholesky factor with its
+        # fixed elements) are left out, as the group terms' prior is their SDs' business
+        names = [p for p in parameters if p in post and p != lprior and post[p].size > 0 and post[p].ndim <= 3]
         # the likelihood component is the sum of log_lik over observations at each draw
         # (ArviZ sums it the same way); summed here once, ArviZ makes no copies of the
         # whole pointwise array (1.9 GB more at 4,000 draws x 20,000 observations)
