@@ -307,6 +307,11 @@ def check_against_data(c: Candidate, design: Design, overrides: Mapping[str, Any
         c.skip_reason = ("slopes per group were asked for, but the program does not declare the inputs "
                          "Kz and Z that carry them (see the README's contract table)")
         return
+    if design.asks_censoring and not {"cens", "has_lower_limit", "lower_limit", "has_upper_limit",
+                                      "upper_limit"} <= set(c.info.inputs):
+        c.skip_reason = ("censoring or truncation was asked for, but the program does not declare the inputs "
+                         "cens, has_lower_limit, lower_limit, has_upper_limit and upper_limit (see the README)")
+        return
     try:
         c.hyperparameter_values(overrides)
     except UserError as exc:

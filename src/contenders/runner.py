@@ -126,6 +126,7 @@ def load_design(cfg: RunConfig) -> Design:
     return build_design(
         table, cfg.outcome, cfg.predictors, cfg.group, cfg.typical_value, cfg.typical_spread,
         source=str(cfg.data), reference=cfg.reference, slopes=cfg.slopes,
+        censored=cfg.censored, truncate=cfg.truncate,
     )
 
 
