@@ -93,3 +93,13 @@ def test_a_program_without_the_inputs_is_skipped_only_when_asked():
     (again,) = discover(HERE / "candidates" / "funnel")
     check_against_data(again, build_design(table(), "y", ["x"]))
     assert again.skip_reason is None
+
+
+def test_a_left_censoring_point_outside_a_positive_support_skips_that_candidate():
+    (funnel,) = discover(HERE / "candidates" / "funnel")
+    t = table()
+    t.loc[5, "y"] = 0.0                     # row 6 is left-censored (c = -1) at 0: no probability below 0
+    d = build_design(t, "y", ["x"], censored="c")
+    funnel.support = "positive"
+    check_against_data(funnel, d)
+    assert funnel.skip_reason == "1 outcome value(s) are zero or negative; this candidate needs y > 0"

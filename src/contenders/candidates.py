@@ -298,6 +298,8 @@ def check_against_data(c: Candidate, design: Design, overrides: Mapping[str, Any
     if reason:
         c.skip_reason = reason   # the reason alone: "skipped" is the status, shown beside it
         return
+    # censoring points are outcome values: one at or below a family's support (a left-censoring
+    # point <= 0 for a positive family, which holds no probability) skips it by the check above
     assert c.info is not None
     if c.info.inputs["y"].get("type") == "int" and not np.all(design.y == np.round(design.y)):
         c.skip_reason = "the program declares an integer outcome but the outcome has fractions"
