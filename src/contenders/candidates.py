@@ -298,6 +298,8 @@ def check_against_data(c: Candidate, design: Design, overrides: Mapping[str, Any
     if reason:
         c.skip_reason = reason   # the reason alone: "skipped" is the status, shown beside it
         return
+    # censoring points are outcome values: one at or below a family's support (a left-censoring
+    # point <= 0 for a positive family, which holds no probability) skips it by the check above
     assert c.info is not None
     if c.info.inputs["y"].get("type") == "int" and not np.all(design.y == np.round(design.y)):
         c.skip_reason = "the program declares an integer outcome but the outcome has fractions"
@@ -306,6 +308,11 @@ def check_against_data(c: Candidate, design: Design, overrides: Mapping[str, Any
         # never fitted without the slopes asked for: it would answer another question
         c.skip_reason = ("slopes per group were asked for, but the program does not declare the inputs "
                          "Kz and Z that carry them (see the README's contract table)")
+        return
+    if design.asks_censoring and not {"cens", "has_lower_limit", "lower_limit", "has_upper_limit",
+                                      "upper_limit"} <= set(c.info.inputs):
+        c.skip_reason = ("censoring or truncation was asked for, but the program does not declare the inputs "
+                         "cens, has_lower_limit, lower_limit, has_upper_limit and upper_limit (see the README)")
         return
     try:
         c.hyperparameter_values(overrides)

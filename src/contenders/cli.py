@@ -73,7 +73,7 @@ def cmd_check(args: argparse.Namespace) -> int:
 
 #: Settings given on the command line of ``run`` (and ``demo``), in help order.
 RUN_FLAGS = (
-    "outcome", "predictors", "group", "slopes", "conditions", "reference", "typical_value", "typical_spread", "candidates",
+    "outcome", "predictors", "group", "slopes", "censored", "truncate", "conditions", "reference", "typical_value", "typical_spread", "candidates",
     "only", "out", "store", "chains", "warmup", "draws", "prior_draws", "seed", "jobs", "engine", "adapt_delta",
     "escalation", "longer_retry", "max_treedepth", "thresholds", "bounds", "rhat_max", "ess_per_chain_min", "ebfmi_min",
     "implausible_share", "check_draws", "ppp_extreme", "cross_validation", "refit_cap", "folds",
@@ -89,7 +89,7 @@ def _add_run_flags(p: argparse.ArgumentParser) -> None:
     metavars = {"path": "DIR", "str": "COL", "strs": "A,B", "float": "X", "posfloat": "X", "posint": "N",
                 "int0": "N", "prob": "P", "probs": "P,P", "factor": "F", "floats": "T,T", "engine": "NAME",
                 "bounds": "STAT=LOW:HIGH,...", "levels": "COL=LEVEL,...", "cv": "METHOD", "folds": "K", "bool": "", "reps": "R",
-                "address": "tcp://HOST:PORT"}
+                "address": "tcp://HOST:PORT", "window": "L:U"}
     p.add_argument("--config", metavar="FILE", help="TOML configuration file; flags override its keys")
     for name in RUN_FLAGS:
         flag = "--" + name.replace("_", "-")

@@ -30,6 +30,8 @@ class RunConfig:
     group: str | None = None
     conditions: tuple[str, ...] = ()
     slopes: tuple[str, ...] = ()            # predictors with a slope per group
+    censored: str | None = None             # censoring column: 0 observed, 1 right-, -1 left-censored
+    truncate: tuple[float | None, float | None] = (None, None)   # truncation window, None = open
     reference: Mapping[str, str] = field(default_factory=dict)   # column -> reference level
     typical_value: float | None = None
     typical_spread: float | None = None
@@ -72,7 +74,7 @@ class RunConfig:
 # TOML layout: section -> {key: field name}
 _LAYOUT: dict[str, dict[str, str]] = {
     "data": {"file": "data", "outcome": "outcome", "predictors": "predictors", "group": "group",
-             "conditions": "conditions", "slopes": "slopes", "reference": "reference", "typical_value": "typical_value",
+             "conditions": "conditions", "slopes": "slopes", "censored": "censored", "truncate": "truncate", "reference": "reference", "typical_value": "typical_value",
              "typical_spread": "typical_spread"},
     "candidates": {"folder": "candidates", "only": "only"},
     "sampler": {"chains": "chains", "warmup": "warmup", "draws": "draws",
@@ -90,7 +92,7 @@ _LAYOUT: dict[str, dict[str, str]] = {
 _SECTIONS = tuple(_LAYOUT) + ("hyperparameters",)
 
 _TYPES: dict[str, str] = {
-    "data": "path", "outcome": "str", "predictors": "strs", "group": "str", "conditions": "strs", "slopes": "strs", "reference": "levels",
+    "data": "path", "outcome": "str", "predictors": "strs", "group": "str", "conditions": "strs", "slopes": "strs", "censored": "str", "truncate": "window", "reference": "levels",
     "typical_value": "float", "typical_spread": "posfloat", "candidates": "path", "only": "strs",
     "out": "path", "store": "path", "chains": "posint", "warmup": "int0", "draws": "posint", "prior_draws": "posint",
     "seed": "int0", "adapt_delta": "prob", "escalation": "probs", "longer_retry": "factor",
@@ -115,6 +117,7 @@ _DESCRIBE = {
     "cv": "one of loo, kfold, leave_group_out", "folds": "a whole number >= 2",
     "reps": "0 (no model recovery) or a whole number >= 2",
     "levels": "a table column = \"level\", e.g. {density = \"dense\"}",
+    "window": "\"L:U\" with either side empty for an open end, e.g. \"0:\" or \":3000\"",
     "address": "a Dask scheduler address such as tcp://HOST:PORT, or empty for this machine",
 }
 
@@ -203,6 +206,26 @@ def _convert(key: str, value: Any, base: Path) -> Any:
         if not isinstance(value, str) or (value and "://" not in value and ":" not in value):
             raise bad()
         return value.strip()
+    if kind == "window":
+        if not isinstance(value, str) or value.count(":") != 1:
+            raise bad()
+        ends = []
+        for part in value.split(":"):
+            part = part.strip()
+            if not part:
+                ends.append(None)
+                continue
+            try:
+                v = float(part)
+            except ValueError:
+                raise bad() from None
+            if not math.isfinite(v):
+                raise bad()
+            ends.append(v)
+        low, high = ends
+        if low is not None and high is not None and not low < high:
+            raise UserError(f"configuration key 'truncate': the lower end {low:g} must be below the upper end {high:g}")
+        return (low, high)
     if kind == "levels":
         if not isinstance(value, Mapping):
             raise bad()
@@ -337,6 +360,9 @@ HELP: dict[str, str] = {
     "conditions": "columns whose levels get their own predictive checks, comma-separated",
     "slopes": ("predictors whose slope varies by group (each group's deviation, correlated with its intercept), "
                "comma-separated; each must be among the predictors, and a group column is needed"),
+    "censored": ("censoring column: 0 observed, 1 right-censored at the value (true value larger), "
+                 "-1 left-censored at the value (true value smaller)"),
+    "truncate": "truncation window L:U of the outcome, either side may be empty (e.g. 0: or :3000)",
     "reference": "reference level of a text predictor or condition column, e.g. density=dense,cue=off "
                  "(default: the first level in sorted order); coefficients and effects are each level "
                  "minus the reference",
@@ -395,7 +421,7 @@ def section_of(name: str) -> str:
 def parse_flag(name: str, text: str) -> Any:
     """A command-line value as the TOML value it spells, for the named setting."""
     kind = _TYPES.get(name)
-    if kind in ("path", "str", "engine", "cv", "address"):
+    if kind in ("path", "str", "engine", "cv", "address", "window"):
         return text
     if kind in ("strs",):
         return [v.strip() for v in text.split(",") if v.strip()]

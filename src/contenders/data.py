@@ -57,6 +57,17 @@ class Design:
     dropped_rows: int = 0
     table: pd.DataFrame | None = field(default=None, repr=False, compare=False)
     slopes: tuple[int, ...] = ()       # columns of X (0-based) with a slope per group
+    cens: np.ndarray | None = None     # int per row: 0 observed, 1 right-, -1 left-censored (None: all 0)
+    window: tuple[float | None, float | None] = (None, None)   # truncation window, None = open end
+
+    @property
+    def censoring(self) -> np.ndarray:
+        return np.zeros(self.N, dtype=np.int64) if self.cens is None else self.cens
+
+    @property
+    def asks_censoring(self) -> bool:
+        """True when censoring or truncation was asked for (candidates then need the inputs)."""
+        return self.cens is not None or self.window != (None, None)
 
     @property
     def N(self) -> int:
@@ -91,6 +102,11 @@ class Design:
             "group": self.group,
             "Kz": len(self.slopes),
             "Z": self.X[:, list(self.slopes)],
+            "cens": self.censoring,
+            "has_lower_limit": int(self.window[0] is not None),
+            "lower_limit": float(self.window[0] or 0.0),
+            "has_upper_limit": int(self.window[1] is not None),
+            "upper_limit": float(self.window[1] or 0.0),
             "N_fit": int(fit_idx.size),
             "fit_idx": fit_idx + 1,
             "y_center": self.y_center,
@@ -100,7 +116,8 @@ class Design:
 
 #: Names of the inputs the runner supplies itself; every other declared input of a
 #: candidate is a prior hyperparameter.
-SUPPLIED_INPUTS = ("N", "y", "K", "X", "J", "group", "Kz", "Z", "N_fit", "fit_idx", "y_center", "y_scale")
+SUPPLIED_INPUTS = ("N", "y", "K", "X", "J", "group", "Kz", "Z", "cens", "has_lower_limit", "lower_limit",
+                   "has_upper_limit", "upper_limit", "N_fit", "fit_idx", "y_center", "y_scale")
 
 
 def levels_with_reference(labels: Sequence, reference: str | None = None) -> tuple[str, list[str]]:
@@ -187,6 +204,8 @@ def build_design(
     min_rows: int = 10,
     reference: Mapping[str, str] | None = None,
     slopes: Sequence[str] = (),
+    censored: str | None = None,
+    truncate: tuple[float | None, float | None] = (None, None),
 ) -> Design:
     """Check the table and build the :class:`Design` (see the module docstring).
 
@@ -215,6 +234,11 @@ def build_design(
                 f"{source}: slope column '{name}' is not among the predictors ("
                 + (", ".join(predictors) or "none") + "); a slope per group varies around a predictor's "
                 "common slope, so add it with --predictors or remove it from --slopes.")
+    if censored is not None and censored not in columns:
+        raise UserError(f"{source}: censoring column '{censored}' not found; the columns are: " + ", ".join(columns))
+    if censored is not None and censored in (outcome, group, *predictors):
+        raise UserError(f"{source}: censoring column '{censored}' is also used as outcome, predictor or group; "
+                        "give it a column of its own.")
     if slopes and not group:
         raise UserError(f"{source}: slopes per group ({', '.join(slopes)}) need a group column; set --group.")
 
@@ -246,6 +270,29 @@ def build_design(
         )
     if np.ptp(y) == 0:
         raise UserError(f"{source}: outcome column '{outcome}' is constant ({y[0]:g}); nothing to model.")
+
+    cens = None
+    if censored is not None:
+        raw = pd.to_numeric(table[censored], errors="coerce").to_numpy(dtype=float)
+        bad = ~np.isin(raw, (-1.0, 0.0, 1.0))
+        if bad.any():
+            at = int(np.flatnonzero(bad)[0])
+            raise UserError(
+                f"{source}: censoring column '{censored}' holds {str(table[censored].iloc[at])!r} at data row {at + 1}; "
+                "its values must be 0 (observed), 1 (right-censored) or -1 (left-censored).")
+        cens = raw.astype(np.int64)
+    low, high = truncate
+    outside = np.zeros(y.size, dtype=bool)
+    if low is not None:
+        outside |= y < low
+    if high is not None:
+        outside |= y > high
+    if outside.any():
+        at = int(np.flatnonzero(outside)[0])
+        raise UserError(
+            f"{source}: the truncation window {'' if low is None else f'{low:g}'}:{'' if high is None else f'{high:g}'} "
+            f"excludes {int(outside.sum())} outcome value(s), e.g. {y[at]:g} at data row {at + 1}; "
+            "widen --truncate or remove those rows.")
 
     coding: list[PredictorCoding] = []
     blocks: list[np.ndarray] = []
@@ -307,6 +354,7 @@ def build_design(
         group_column=group, group=gidx, group_levels=levels,
         y_center=y_center, y_scale=y_scale, dropped_rows=dropped, table=table,
         slopes=tuple(i for i, code in enumerate(coding) if code.source in set(slopes)),
+        cens=cens, window=(low, high),
     )
 
 

@@ -126,6 +126,7 @@ def load_design(cfg: RunConfig) -> Design:
     return build_design(
         table, cfg.outcome, cfg.predictors, cfg.group, cfg.typical_value, cfg.typical_spread,
         source=str(cfg.data), reference=cfg.reference, slopes=cfg.slopes,
+        censored=cfg.censored, truncate=cfg.truncate,
     )
 
 
@@ -704,7 +705,11 @@ def summary_dict(result: RunResult) -> dict[str, Any]:
                  "n": result.design.N, "dropped_rows": result.design.dropped_rows,
                  "predictors": [c.name for c in result.design.coding], "group": cfg.group,
                  "conditions": list(cfg.conditions), "y_center": result.design.y_center,
-                 "y_scale": result.design.y_scale},
+                 "y_scale": result.design.y_scale,
+                 "censored_column": cfg.censored,
+                 "censored_right": int((result.design.censoring == 1).sum()),
+                 "censored_left": int((result.design.censoring == -1).sum()),
+                 "truncation": {"lower": result.design.window[0], "upper": result.design.window[1]}},
         "sampler": {"engine": result.engine, "chains": cfg.chains, "warmup": cfg.warmup,
                     "draws": cfg.draws, "seed": cfg.seed, "adapt_delta": cfg.adapt_delta,
                     "max_treedepth": cfg.max_treedepth},

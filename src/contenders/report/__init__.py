@@ -781,6 +781,13 @@ def _settings(result, command_line) -> Table:
     add("outcome column", d.outcome, d.outcome)
     add("observations used", fmt.integer(d.N), d.N)
     add("rows dropped (outcome missing or not finite)", fmt.integer(d.dropped_rows), d.dropped_rows)
+    if d.asks_censoring:
+        n_right, n_left = int((d.censoring == 1).sum()), int((d.censoring == -1).sum())
+        add("censored observations (right, left; they enter the statistics at their censoring points)",
+            f"{fmt.integer(n_right)}, {fmt.integer(n_left)}", f"{n_right} {n_left}")
+        lo, hi = d.window
+        add("truncation window", f"{'' if lo is None else fmt.num(lo, 4)}:{'' if hi is None else fmt.num(hi, 4)}"
+            if d.window != (None, None) else "none", f"{lo} {hi}")
     add("predictor columns", ", ".join(cfg.predictors) or "none", " ".join(cfg.predictors))
     add("predictor coding", "; ".join(f"{c.name}: centre {fmt.num(c.center, 4)}, scale {fmt.num(c.scale, 4)}"
                                       for c in d.coding) or "none",
