@@ -8,6 +8,7 @@ from __future__ import annotations
 import csv
 import json
 import math
+import re
 from pathlib import Path
 
 import numpy as np
@@ -197,7 +198,8 @@ def test_large_n_tiny_discrepancy_is_detectable_but_not_relevant():
     plain = compare_candidates([_one_candidate(rows)], seed=1)
     text = " ".join(plain.verdict)
     assert "misses features of the data (mean" in text
-    assert "beyond their 90 % interval" in text and " SD)" in text
+    assert re.search(r"mean \(observed -?[0-9.]+, 0\.0[34]\d* or 0\.0[34]\d* SD above the replicated 90 % "
+                     r"interval; p < 0\.001\)", text), text
     assert "No relevant sizes are set ([checks] relevant)" in text
     judged = compare_candidates([_one_candidate(rows)], seed=1, relevant={"mean": 0.5})
     named = [m for m in judged.lead if m.startswith("But ")]
@@ -296,6 +298,7 @@ def test_run_reports_miss_and_reading_against_closed_form(tmp_path):
     assert entry["miss"] == pytest.approx(row["miss"]) and entry["reading"] == "detectable"
     assert entry["relevant"] is None and summary["checks"]["relevant"] == {}
     assert "No relevant sizes are set" in summary["verdict"]
+    assert "mean (observed" in summary["verdict"]
     assert set(summary["candidates"][0]["ppc_grouped"]["arm"]["a"]["mean"]) >= {"miss", "miss_share_sd", "reading"}
 
     # relevant sizes: the miss (about 0.2) is below 0.5, so it is detectable but small
@@ -308,7 +311,7 @@ def test_run_reports_miss_and_reading_against_closed_form(tmp_path):
     entry = summary["candidates"][0]["ppc"]["mean"]
     assert entry["reading"] == "small" and entry["relevant"] == 0.5
     assert "named only when larger than that size" in summary["verdict"]
-    assert "mean (replicates" not in summary["verdict"]
+    assert "mean (observed" not in summary["verdict"]
     with open(out / "predictive_checks.csv", newline="") as fh:
         rows = {r["statistic"]: r for r in csv.DictReader(fh)}
     assert float(rows["mean"]["miss"]) == pytest.approx(row["miss"])
@@ -320,5 +323,5 @@ def test_run_reports_miss_and_reading_against_closed_form(tmp_path):
     html = (out / "report.html").read_text()
     assert "Miss beyond the interval (share of SD)" in html
     assert st.READINGS["small"] + " (0.5)" in html
-    assert "Relevant sizes set ([checks] relevant): mean 0.5" in html
+    assert "Relevant sizes set ([checks] relevant): mean = 0.5" in html
     assert "miss +" in html                                   # under the p-value in the matrix

@@ -501,7 +501,7 @@ def _misfit(r, ppp_extreme: float, pit_alpha: float, relevant: Mapping[str, floa
     of its miss (observed minus the nearest end of the replicated 90 % interval). With
     relevant sizes set, a statistic that has one is named only when its miss is larger
     (``statistics.named_misses``); one without a relevant size is named when detectable."""
-    from .report.format import miss as miss_text, pvalue_against
+    from .report.format import miss_words, pvalue_against
     from .trials.statistics import describe, named_misses, unit_of
 
     if r.checks is None:
@@ -510,14 +510,14 @@ def _misfit(r, ppp_extreme: float, pit_alpha: float, relevant: Mapping[str, floa
     relevant = relevant or {}
     for row in named_misses(r.checks.rows, ppp_extreme, relevant):
         p = row["p_value"]
-        # p = Pr(T(y_rep) >= T(y)): near 0, replicates fall short of the observed value
-        side = "lower" if p < 0.5 else "higher"
-        size = row.get("miss", float("nan"))
-        by = ("" if not np.isfinite(size) else
-              f", {miss_text(size, row.get('miss_share_sd'), unit_of(row['statistic']))} beyond their 90 % interval")
+        by = miss_words(row.get("miss", float("nan")), row.get("miss_share_sd"), unit_of(row["statistic"]))
+        if by:
+            what = f"observed {row['observed']:.4g}, {by}"
+        else:   # p = Pr(T(y_rep) >= T(y)): near 0, replicates fall short of the observed value
+            what = f"replicates {'lower' if p < 0.5 else 'higher'} than the observed {row['observed']:.4g}"
         unset = "; no relevant size set" if relevant and row["statistic"] not in relevant else ""
-        out.append(f"{describe(row['statistic'])} (replicates {side} than the observed "
-                   f"{row['observed']:.4g}{by}; {_p_is(pvalue_against(p, ppp_extreme, 1 - ppp_extreme))}{unset})")
+        out.append(f"{describe(row['statistic'])} ({what}; "
+                   f"{_p_is(pvalue_against(p, ppp_extreme, 1 - ppp_extreme))}{unset})")
     test = r.checks.loo_pit_test
     if np.isfinite(test["p_value"]) and test["p_value"] < pit_alpha:
         out.append(f"calibration (LOO-PIT not uniform, {_p_is(pvalue_against(test['p_value'], pit_alpha))})")
@@ -537,8 +537,8 @@ def _small_misses(r, ppp_extreme: float, relevant: Mapping[str, float]) -> int:
 def _relevance_sentence(ranked, misses: dict, ppp_extreme: float, relevant: Mapping[str, float]) -> str:
     """What the named misses were judged against: no relevant sizes (every detectable miss
     is named, however small), or the sizes set and how many smaller misses were left out."""
-    from .report.format import num
-    from .trials.statistics import describe
+    from .report.format import miss
+    from .trials.statistics import describe, unit_of
 
     if not relevant:
         if not any(misses.values()):
@@ -546,11 +546,11 @@ def _relevance_sentence(ranked, misses: dict, ppp_extreme: float, relevant: Mapp
         return ("No relevant sizes are set ([checks] relevant), so every detectable miss is named, however "
                 "small it is in the outcome's units (with many observations a difference too small to matter "
                 "is still detected); set one per statistic to name only the misses that matter.")
-    sizes = ", ".join(f"{describe(k)} {num(v)}" for k, v in relevant.items())
+    sizes = ", ".join(f"{describe(k)} = {miss(v, None, unit_of(k)).lstrip('+')}" for k, v in relevant.items())
     small = {r.label: _small_misses(r, ppp_extreme, relevant) for r in ranked}
     left = sum(small.values())
-    text = (f"Misses of a statistic with a relevant size ({sizes}, in its units) are named only when larger "
-            "than that size")
+    text = (f"Misses of a statistic with a relevant size ({sizes}) are named only when larger than that "
+            "size")
     if left:
         who = _labels([f"{k} {v}" for k, v in small.items() if v])
         text += (f"; {left} detectable but smaller miss{'es are' if left > 1 else ' is'} left out ({who}; "

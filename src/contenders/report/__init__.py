@@ -1038,7 +1038,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "mild_low": fmt.num(MILD[0]),
         "mild_high": fmt.num(MILD[1]),
         "ppp_extreme_high": fmt.num(1 - cfg.ppp_extreme),
-        "relevant": "; ".join(f"{describe(k)} {fmt.miss(v, None, unit_of(k)).lstrip('+')}"
+        "relevant": ", ".join(f"{describe(k)} = {fmt.miss(v, None, unit_of(k)).lstrip('+')}"
                               for k, v in cfg.relevant.items()),
         "matrix": matrix,
         "grouped": grouped,

@@ -286,3 +286,17 @@ def miss(size: Any, share_sd: Any = None, unit: str = "outcome") -> str:
     if unit == "outcome" and not _is_missing(share_sd):
         text += f" ({num(abs(float(share_sd)), 2)} SD)"
     return text
+
+
+def miss_words(size: Any, share_sd: Any = None, unit: str = "outcome") -> str:
+    """The miss in words for a sentence: "2.1 or 0.01 SD above the replicated 90 %
+    interval", "1.2 % points below ..."; empty when the size is unknown."""
+    if _is_missing(size):
+        return ""
+    size = float(size)
+    if size == 0:
+        return "inside the replicated 90 % interval"
+    amount = num(100 * abs(size), 2) + " % points" if unit == "share" else num(abs(size))
+    if unit == "outcome" and not _is_missing(share_sd):
+        amount += f" or {num(abs(float(share_sd)), 2)} SD"
+    return f"{amount} {'above' if size > 0 else 'below'} the replicated 90 % interval"

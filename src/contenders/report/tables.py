@@ -26,8 +26,8 @@ NEXT_STEP = {
 }
 
 
-#: Posterior predictive p-values outside this range are marked as worth a look (◇);
-#: the range of the checks' own ``extreme`` list (trials/checks.py).
+#: Posterior predictive p-values outside this range are marked as worth a look (◇), a
+#: milder mark than ``ppp_extreme``'s ◆ (common practice, no source).
 MILD = (0.025, 0.975)
 
 
