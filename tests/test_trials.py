@@ -109,7 +109,8 @@ def test_summary_json_has_the_promised_fields(known_run):
     for key in ("id", "label", "status", "reason", "rhat_max", "ess_bulk_min", "ess_tail_min",
                 "divergences", "adapt_delta", "prior_plausible_share", "ppc"):
         assert key in entry, key
-    assert set(entry["ppc"]["skewness"]) == {"observed", "p_value"}
+    assert set(entry["ppc"]["skewness"]) == {"observed", "p_value", "replicated_q50", "replicated_q05",
+                                             "replicated_q95", "miss", "miss_share_sd", "relevant", "reading"}
     assert summary["data"]["n"] == 300
 
 

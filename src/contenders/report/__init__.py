@@ -30,7 +30,9 @@ from .figure_store import drawn
 from . import format as fmt
 from .sensitivity import sensitivity_context
 from ..trials.coefficients import base_name, extremes, group_terms, sizes_of
-from .tables import MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, n, p_cell, pit_reading
+from .tables import (MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, miss_cell, n, p_cell, pit_reading,
+                     reading_cell)
+from ..trials.statistics import reading as check_reading, unit_of
 
 __all__ = ["write_report", "build_context", "CSV_FILES"]
 
@@ -212,7 +214,7 @@ def _ranking(result, cands) -> Table:
                 notes.append("tied within Monte Carlo error with " + ", ".join(row["tied_with"])
                              + "; the order among them would change with the seed, so they share rank "
                              + _rank(row))
-            missed = misfits(r.checks, extreme, PIT_ALPHA)
+            missed = misfits(r.checks, extreme, PIT_ALPHA, result.config.relevant)
             if missed:
                 notes.append("misses " + ", ".join(missed)
                              + ": treat its predictions of these with suspicion (see Predictive checks)")
@@ -223,7 +225,7 @@ def _ranking(result, cands) -> Table:
         else:
             notes.append(r.reason.splitlines()[0] if r.reason else "")
             notes.append(NEXT_STEP.get(r.status, ""))
-        misses = misfits(r.checks, extreme, PIT_ALPHA)
+        misses = misfits(r.checks, extreme, PIT_ALPHA, result.config.relevant)
         cls = {"ok": "ranked", "unhealthy": "unhealthy", "failed": "failed", "skipped": "skipped"}[r.status]
         t.add([
             n(_rank(row)),
@@ -311,7 +313,7 @@ def _prior_long(result, cands) -> Table:
                                   "Prior draws below observed", "Bound", "Draws inside bound"],
               csv_headers=["id", "statistic", "description", "observed", "prior_mean", "prior_q05",
                            "prior_q50", "prior_q95", "share_below_observed", "bound_low", "bound_high",
-                           "share_inside_bound", "missing_draws"])
+                           "share_inside_bound", "missing_draws", "miss", "miss_share_sd"])
     for r in cands:
         if r.prior is None:
             continue
@@ -320,7 +322,8 @@ def _prior_long(result, cands) -> Table:
             t.csv_rows.append([r.id, row["statistic"], describe(row["statistic"]), row["observed"],
                                row["mean"], row["q05"], row["q50"], row["q95"], row["share_below_observed"],
                                b[0] if b else None, b[1] if b else None,
-                               r.prior.inside_each.get(row["statistic"]), row.get("n_missing")])
+                               r.prior.inside_each.get(row["statistic"]), row.get("n_missing"),
+                               row.get("miss"), row.get("miss_share_sd")])
     return t
 
 
@@ -440,10 +443,24 @@ def _oos(result, cands) -> tuple[Table, list[tuple[str, str]]]:
     return t, refitted
 
 
+def _matrix_cell(row: dict, extreme: float, relevant) -> Cell:
+    """A p-value of the matrix with the miss below it when the observed value lies outside
+    the replicated 90 % interval; a detectable miss within its relevant size is marked ◇."""
+    cell = p_cell(row["p_value"], extreme)
+    code = check_reading(row["p_value"], row.get("miss", np.nan), (relevant or {}).get(row["statistic"]), extreme)
+    if code == "small":
+        cell = n("◇ " + cell.text.lstrip("◆ "), "watch")
+    size = row.get("miss", np.nan)
+    if size is not None and np.isfinite(size) and size != 0:
+        cell.sub = "miss " + fmt.miss(size, row.get("miss_share_sd"), unit_of(row["statistic"]))
+    return cell
+
+
 def _check_matrix(result, cands, pick) -> tuple[list[str], list[list[Cell]]]:
     """p-values with statistics as rows and candidates as columns; ``pick`` returns the
     rows of one candidate's checks."""
     extreme = result.config.ppp_extreme
+    relevant = result.config.relevant
     first = pick(cands[0].checks)
     observed = fmt.alike([row["observed"] for row in first])   # one column, one count of decimals
     body = []
@@ -451,46 +468,60 @@ def _check_matrix(result, cands, pick) -> tuple[list[str], list[list[Cell]]]:
         cells = [Cell(describe(row["statistic"])), n(observed[k])]
         for r in cands:
             rr = pick(r.checks)
-            cells.append(p_cell(rr[k]["p_value"], extreme) if k < len(rr) else n(fmt.MISSING))
+            cells.append(_matrix_cell(rr[k], extreme, relevant) if k < len(rr) else n(fmt.MISSING))
         body.append(cells)
     return [r.label for r in cands], body
+
+
+#: Columns of the miss and its reading in the check CSV files.
+MISS_CSV = ["miss", "miss_share_sd", "relevant", "reading"]
+
+
+def _miss_raw(row: dict, extreme: float, relevant) -> list:
+    size = (relevant or {}).get(row["statistic"])
+    return [row.get("miss"), row.get("miss_share_sd"), size,
+            check_reading(row["p_value"], row.get("miss", np.nan), size, extreme)]
 
 
 def _checks_long(result, cands) -> Table:
     t = Table("predictive_checks.csv", [],
               csv_headers=["id", "statistic", "description", "observed", "replicated_mean", "replicated_q05",
-                           "replicated_q50", "replicated_q95", "p_value", "beyond_extreme"])
+                           "replicated_q50", "replicated_q95", "p_value", "beyond_extreme"] + MISS_CSV)
     extreme = result.config.ppp_extreme
     for r in cands:
         for row in r.checks.rows:
             p = row["p_value"]
             t.csv_rows.append([r.id, row["statistic"], describe(row["statistic"]), row["observed"], row["mean"],
                                row["q05"], row["q50"], row["q95"], p,
-                               bool(np.isfinite(p) and (p < extreme or p > 1 - extreme))])
+                               bool(np.isfinite(p) and (p < extreme or p > 1 - extreme))]
+                              + _miss_raw(row, extreme, result.config.relevant))
     return t
 
 
 def _grouped_long(result, cands) -> Table:
     t = Table("grouped_checks.csv", [],
               csv_headers=["id", "condition", "level", "statistic", "description", "observed",
-                           "replicated_mean", "replicated_q05", "replicated_q50", "replicated_q95", "p_value"])
+                           "replicated_mean", "replicated_q05", "replicated_q50", "replicated_q95", "p_value"]
+              + MISS_CSV)
     for r in cands:
         for cond, levels in r.checks.grouped.items():
             for level, rows in levels.items():
                 for row in rows:
                     t.csv_rows.append([r.id, cond, str(level), row["statistic"], describe(row["statistic"]),
                                        row["observed"], row["mean"], row["q05"], row["q50"], row["q95"],
-                                       row["p_value"]])
+                                       row["p_value"]]
+                                      + _miss_raw(row, result.config.ppp_extreme, result.config.relevant))
     return t
 
 
-def _check_table(checks, extreme: float) -> Table:
+def _check_table(checks, extreme: float, relevant=None) -> Table:
     t = Table("", ["Statistic", "Observed", "Replicated median", "Replicated 90 % interval",
-                   "Posterior predictive p"], numeric=[False, True, True, True, True])
+                   "Miss beyond the interval (share of SD)", "Posterior predictive p", "Reading"],
+              numeric=[False, True, True, True, True, True, False])
     for row in checks.rows:   # one statistic per row: its values share one count of decimals
         obs, q50, q05, q95 = fmt.alike([row["observed"], row["q50"], row["q05"], row["q95"]])
-        t.add([describe(row["statistic"]), n(obs), n(q50), n(f"{q05} to {q95}"),
-               p_cell(row["p_value"], extreme)])
+        t.add([describe(row["statistic"]), n(obs), n(q50), n(f"{q05} to {q95}"), miss_cell(row),
+               p_cell(row["p_value"], extreme), reading_cell(row, extreme, relevant)])
     return t
 
 
@@ -731,7 +762,8 @@ def _candidate_views(result, cands) -> list[CandidateView]:
             prior=_prior_table(r.prior) if r.prior is not None else None,
             parameters=(_param_table(r.health, _group_names(r, result.design), result.design)
                         if r.health is not None and r.health.table else None),
-            checks=_check_table(r.checks, result.config.ppp_extreme) if r.checks is not None else None,
+            checks=(_check_table(r.checks, result.config.ppp_extreme, result.config.relevant)
+                    if r.checks is not None else None),
             advice=advice, fits=_fit_links(r, result.out),
             coefficients=_coefficient_table(getattr(r, "coefficients", None)),
             coefficients_note=_coefficients_note(getattr(r, "coefficients", None)),
@@ -806,6 +838,8 @@ def _settings(result, command_line) -> Table:
     add("replicated datasets used by the checks", fmt.integer(cfg.check_draws), cfg.check_draws)
     add("extreme posterior predictive p-value", f"below {cfg.ppp_extreme:g} or above {1 - cfg.ppp_extreme:g}",
         cfg.ppp_extreme)
+    add("relevant sizes of a miss", ", ".join(f"{k} {v:g}" for k, v in cfg.relevant.items()) or "none set",
+        " ".join(f"{k}={v:g}" for k, v in cfg.relevant.items()))
     add("cross-validation", f"{cfg.cross_validation}; at most {cfg.refit_cap} exact refits; {cfg.folds} folds",
         f"{cfg.cross_validation} refit_cap={cfg.refit_cap} folds={cfg.folds}")
     add("plausibility bounds", "; ".join(f"{describe(k)}: {fmt.bound(*v)}" for k, v in cfg.bounds.items())
@@ -1004,6 +1038,8 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "mild_low": fmt.num(MILD[0]),
         "mild_high": fmt.num(MILD[1]),
         "ppp_extreme_high": fmt.num(1 - cfg.ppp_extreme),
+        "relevant": ", ".join(f"{describe(k)} = {fmt.miss(v, None, unit_of(k)).lstrip('+')}"
+                              for k, v in cfg.relevant.items()),
         "matrix": matrix,
         "grouped": grouped,
         "pit": pit,

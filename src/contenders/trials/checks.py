@@ -16,7 +16,7 @@ class PredictiveChecks:
     grouped: dict[str, dict[str, list[dict]]]         # condition -> level -> rows
     loo_pit: np.ndarray                               # one value per observation
     loo_pit_test: dict                                # statistic, p_value, method
-    extreme: list[str]                                # statistics with p outside [0.025, 0.975]
+    extreme: list[str]                                # statistics with p beyond ppp_extreme (detectable)
     stat_draws: dict[str, np.ndarray] = field(repr=False, default_factory=dict)
 
 
@@ -60,8 +60,11 @@ def predictive_checks(
     thresholds: Sequence[float] = (),
     conditions: Mapping[str, np.ndarray] | None = None,
     reff: float = 1.0,
+    ppp_extreme: float = 0.01,
 ) -> PredictiveChecks:
-    """All posterior predictive checks of one candidate; arrays shaped (draws, N)."""
+    """All posterior predictive checks of one candidate; arrays shaped (draws, N).
+    ``extreme`` lists the statistics whose ppp-value lies below ``ppp_extreme`` or above
+    1 - ``ppp_extreme`` (the run's ``[checks] ppp_extreme``)."""
     reps = st.compute(y_rep, thresholds)
     obs = st.compute(y, thresholds)
     rows = st.summarise(reps, obs)
@@ -71,5 +74,5 @@ def predictive_checks(
         g_obs = st.grouped(y, labels, thresholds)
         grouped_rows[cond] = {lev: st.summarise(g_rep[lev], g_obs[lev]) for lev in g_rep}
     pit = loo_pit(y, y_rep, log_lik, reff)
-    extreme = [r["statistic"] for r in rows if not (0.025 <= r["p_value"] <= 0.975)]
+    extreme = [r["statistic"] for r in rows if st.detectable(r["p_value"], ppp_extreme)]
     return PredictiveChecks(rows, grouped_rows, pit, uniformity_test(pit), extreme, reps)
