@@ -496,7 +496,7 @@ def _p_is(text: str) -> str:
     return "p " + text if text[:1] in "<>" else "p = " + text
 
 
-def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
+def _misfit(r, ppp_extreme: float) -> list[str]:
     """Short descriptions of the predictive checks a candidate fails."""
     from .report.format import pvalue_against
     from .trials.statistics import describe
@@ -511,9 +511,11 @@ def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
             side = "lower" if p < 0.5 else "higher"
             out.append(f"{describe(row['statistic'])} (replicates {side} than the observed "
                        f"{row['observed']:.4g}; {_p_is(pvalue_against(p, ppp_extreme, 1 - ppp_extreme))})")
-    test = r.checks.loo_pit_test
-    if np.isfinite(test["p_value"]) and test["p_value"] < pit_alpha:
-        out.append(f"calibration (LOO-PIT not uniform, {_p_is(pvalue_against(test['p_value'], pit_alpha))})")
+    from .trials.checks import band_text
+
+    where = band_text(r.checks.loo_pit_test)   # the band's level is the run's pit_alpha
+    if where:
+        out.append(f"calibration (LOO-PIT ECDF {where})")
     return out
 
 
@@ -623,7 +625,7 @@ def _prior_advice(flagged) -> str:
 
 
 def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.01,
-                       pit_alpha: float = 0.01, store=None) -> Comparison:
+                       store=None) -> Comparison:
     """Rank healthy candidates by elpd and write the verdict.
 
     Rules (see ``standings``, the one rule every sentence and table reads): a
@@ -631,8 +633,8 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
     paired difference is uncertain (common practice, no source, for the factor 2);
     candidates tied within Monte Carlo error share one standing and one rank; a
     candidate with a posterior predictive p-value below ``ppp_extreme`` or above 1 -
-    ``ppp_extreme`` for any statistic, or a LOO-PIT uniformity p-value below
-    ``pit_alpha``, is named as misfitting even when it ranks well (the thresholds are
+    ``ppp_extreme`` for any statistic, or LOO-PIT values whose ECDF leaves the
+    simultaneous band of the run's ``pit_alpha`` (``checks.uniformity_test``), is named as misfitting even when it ranks well (the thresholds are
     common practice, no source); unhealthy, failed and skipped candidates are not
     ranked. ``store``: see ``weights``.
 
@@ -666,7 +668,7 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
             row["shared_rank"] = st[row["id"]].rank
         preferred = [r.id for r in ranked if st[r.id].preferred]
         names = {r.id: r.label for r in ranked}
-        misses = {r.id: _misfit(r, ppp_extreme, pit_alpha) for r in ranked}
+        misses = {r.id: _misfit(r, ppp_extreme) for r in ranked}
 
         # --- the lead: what to use, how sure, what misses
         others = [names[cid] for cid in preferred if cid != best.id]
