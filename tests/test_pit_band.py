@@ -121,3 +121,16 @@ def test_a_loo_pit_outside_the_band_is_named_in_the_misses():
     good_pit = np.linspace(0.005, 0.995, 300)
     good = PredictiveChecks([], {}, good_pit, uniformity_test(good_pit, 0.01), [])
     assert misfits(good, 0.01) == [] and _misfit(SimpleNamespace(checks=good), 0.01) == []
+
+
+def test_pit_alpha_is_read_from_the_configuration_and_checked(tmp_path):
+    from contenders.config import from_mapping
+    from contenders.errors import UserError
+    from contenders.store import TRIAL_SETTINGS
+
+    cfg = from_mapping({"checks": {"pit_alpha": 0.05}}, tmp_path)
+    assert cfg.pit_alpha == 0.05
+    assert from_mapping({}, tmp_path).pit_alpha == 0.01
+    assert "pit_alpha" in TRIAL_SETTINGS    # a new level recomputes the stored checks
+    with pytest.raises(UserError, match="pit_alpha"):
+        from_mapping({"checks": {"pit_alpha": 1.5}}, tmp_path)

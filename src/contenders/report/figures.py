@@ -591,8 +591,8 @@ def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]
     95 % (light blue) and 50 % (darker blue) of the replicated datasets' densities, their
     median (thin dashed blue) and the density of the observed data (thick, solid ink);
     all smoothed with the same kernel bandwidth (Silverman's rule on the observed data).
-    Where the observed density leaves the 95 % envelope, a thick orange stroke runs
-    along the bottom of the panel."""
+    Where the observed density leaves the 95 % envelope by more than 1 % of the panel's
+    height, a thick orange stroke runs along the bottom of the panel."""
     cands = [(label, r) for label, r in cands if r is not None and np.size(r)]
     if not cands:
         return None
@@ -624,7 +624,9 @@ def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]
         ax.fill_between(grid, lo50, hi50, color=_tint(POSTERIOR, 0.45), linewidth=0, label="replicated, 50 %")
         ax.plot(grid, med, color=POSTERIOR, linewidth=0.8, linestyle=(0, (3, 2)), label="replicated median")
         ax.plot(grid, obs, color=INK, linewidth=2.0, label="observed data")
-        miss = (obs > hi) | (obs < lo)
+        # outside the envelope by more than 1 % of the panel's height (smaller gaps in the
+        # flat tails cannot be seen and would mark noise)
+        miss = (obs - hi > 0.01 * top) | (lo - obs > 0.01 * top)
         if miss.any():
             xs = np.where(miss, grid, np.nan)
             ax.plot(xs, np.full_like(grid, 0.012 * top), color=FLAG, linewidth=3.2, solid_capstyle="butt",
@@ -721,10 +723,10 @@ def loo_pit_grid(cands: Sequence[tuple[str, object]], ncols: int = 2) -> Rendere
     lim = max(max(float(np.abs(d).max()), float(np.abs(lo).max()), float(np.abs(hi).max()))
               for _, _, _, d, _, lo, hi, *_ in curves) * 1.15
     nrow, ncol = _grid_shape(len(cands), ncols)
-    width, height = 7.6, 0.55 + 1.5 * nrow
+    width, height = 7.6, 0.85 + 1.7 * nrow
     fig = _new(width, height)
-    fig.subplots_adjust(left=0.1, right=0.99, top=1 - 0.32 / height, bottom=0.62 / height,
-                        wspace=0.1, hspace=0.55)
+    fig.subplots_adjust(left=0.1, right=0.99, top=1 - 0.72 / height, bottom=0.62 / height,
+                        wspace=0.1, hspace=0.72)
     axes = fig.subplots(nrow, ncol, squeeze=False)
     for k, ax in enumerate(axes.flat):
         if k >= len(curves):
@@ -747,12 +749,16 @@ def loo_pit_grid(cands: Sequence[tuple[str, object]], ncols: int = 2) -> Rendere
             ax.tick_params(axis="y", labelleft=False)
         flagged = leaves_band(test)
         state = f"leaves the {band}" if flagged else f"inside the {band}"
-        ax.set_title(("◆ " if flagged else "") + plain(label, 40) + ": " + state,
+        ax.set_title(("◆ " if flagged else "") + plain(label, 60) + "\n" + state,
                      fontweight="bold" if flagged else "normal")
         if flagged:
             _flag_frame(ax)
-        if k == 0:
-            ax.legend(loc="upper left", fontsize=7, handlelength=1.8)
+    handles = {}
+    for ax in fig.axes:
+        for h, text in zip(*ax.get_legend_handles_labels()):
+            handles.setdefault(text, h)
+    fig.legend(list(handles.values()), list(handles), loc="upper center", ncol=3, fontsize=7.5, handlelength=1.8,
+               bbox_to_anchor=(0.55, 1 - 0.04 / height))
     fig.supxlabel("LOO-PIT value (low: the observation fell low in its leave-one-out predictive distribution)",
                   fontsize=7.5, y=0.14 / height)
     fig.text(0.012, 0.5, "ECDF minus uniform", rotation=90, va="center", fontsize=7.5)
@@ -770,6 +776,8 @@ def quantile_grid(cands: Sequence[tuple[str, object]], outcome: str = "outcome",
     at zero. A level whose 95 % interval misses zero gets an orange diamond; the panel's
     title names the stretches missed. Panels share the vertical axis unless one
     candidate's misses are more than four times another's, then each has its own."""
+    import textwrap
+
     from ..trials.checks import quantile_misses
 
     cands = [(label, c) for label, c in cands if c is not None and getattr(c, "quantiles", None)]
@@ -782,10 +790,10 @@ def quantile_grid(cands: Sequence[tuple[str, object]], outcome: str = "outcome",
         spans.append(max(v) if v else 1.0)
     shared = max(spans) <= 4 * max(min(spans), 1e-300)
     nrow, ncol = _grid_shape(len(cands), ncols)
-    width, height = 7.6, 0.85 + 1.9 * nrow
+    width, height = 7.6, 0.95 + 2.0 * nrow
     fig = _new(width, height)
-    fig.subplots_adjust(left=0.1, right=0.99, top=1 - 0.62 / height, bottom=0.62 / height,
-                        wspace=0.1 if shared else 0.22, hspace=0.75)
+    fig.subplots_adjust(left=0.1, right=0.99, top=1 - 0.72 / height, bottom=0.62 / height,
+                        wspace=0.1 if shared else 0.22, hspace=0.9)
     axes = fig.subplots(nrow, ncol, squeeze=False)
     for k, ax in enumerate(axes.flat):
         if k >= len(cands):
@@ -813,8 +821,9 @@ def quantile_grid(cands: Sequence[tuple[str, object]], outcome: str = "outcome",
         if shared and k % ncol:
             ax.tick_params(axis="y", labelleft=False)
         misses = quantile_misses(rows)
-        ax.set_title(plain(label, 50) + "\n" + plain("outside: " + "; ".join(misses) if misses
-                                                     else "every level inside", 80), fontsize=7.5)
+        short = "; ".join(m.replace(" (replicates ", " ").replace(")", "") for m in misses)
+        ax.set_title(plain(label, 50) + "\n" + ("\n".join(textwrap.wrap("outside: " + short, 58)) if misses
+                                                 else "every level inside"), fontsize=7.5)
         if k == 0:
             ax.plot([], [], color=POSTERIOR, linewidth=4.0, label="replicated minus observed: 50 %, 95 %")
             ax.plot([], [], linestyle="none", marker="D", markerfacecolor=FLAG, markeredgecolor=INK,
