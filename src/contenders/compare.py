@@ -634,9 +634,10 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
     candidates tied within Monte Carlo error share one standing and one rank; a
     candidate with a posterior predictive p-value below ``ppp_extreme`` or above 1 -
     ``ppp_extreme`` for any statistic, or LOO-PIT values whose ECDF leaves the
-    simultaneous band of the run's ``pit_alpha`` (``checks.uniformity_test``), is named as misfitting even when it ranks well (the thresholds are
-    common practice, no source); unhealthy, failed and skipped candidates are not
-    ranked. ``store``: see ``weights``.
+    simultaneous band of the run's ``pit_alpha`` (``checks.uniformity_test``), is
+    named as misfitting even when it ranks well (the p-value threshold is common
+    practice, no source); unhealthy, failed and skipped candidates are not ranked.
+    ``store``: see ``weights``.
 
     The verdict comes as a lead of two or three sentences (what to use, how sure,
     what misses) and the details.

@@ -58,7 +58,7 @@ SECTIONS = [
 CSV_FILES = (
     "ranking.csv", "verdict_certainty.csv", "prior_plausibility.csv", "prior_trial.csv",
     "sampler_health.csv", "out_of_sample.csv", "predictive_checks.csv", "grouped_checks.csv",
-    "loo_pit.csv", "effects.csv", "hyperparameters.csv", "parameters.csv", "run_settings.csv", "candidate_files.csv",
+    "loo_pit.csv", "quantiles.csv", "effects.csv", "hyperparameters.csv", "parameters.csv", "run_settings.csv", "candidate_files.csv",
     "sensitivity.csv", "coefficients.csv", "group_effects.csv",
 )
 
