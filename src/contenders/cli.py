@@ -76,7 +76,7 @@ RUN_FLAGS = (
     "outcome", "predictors", "group", "slopes", "conditions", "reference", "typical_value", "typical_spread", "candidates",
     "only", "out", "store", "chains", "warmup", "draws", "prior_draws", "seed", "jobs", "engine", "adapt_delta",
     "escalation", "longer_retry", "max_treedepth", "thresholds", "bounds", "rhat_max", "ess_per_chain_min", "ebfmi_min",
-    "implausible_share", "check_draws", "ppp_extreme", "relevant", "cross_validation", "refit_cap", "folds",
+    "implausible_share", "check_draws", "ppp_extreme", "relevant", "pit_alpha", "cross_validation", "refit_cap", "folds",
     "replicates", "cluster",
 )
 #: Shorter spellings the issue tracker and README use.

@@ -496,7 +496,7 @@ def _p_is(text: str) -> str:
     return "p " + text if text[:1] in "<>" else "p = " + text
 
 
-def _misfit(r, ppp_extreme: float, pit_alpha: float, relevant: Mapping[str, float] | None = None) -> list[str]:
+def _misfit(r, ppp_extreme: float, relevant: Mapping[str, float] | None = None) -> list[str]:
     """Short descriptions of the predictive checks a candidate fails, each with the size
     of its miss (observed minus the nearest end of the replicated 90 % interval). With
     relevant sizes set, a statistic that has one is named only when its miss is larger
@@ -518,9 +518,11 @@ def _misfit(r, ppp_extreme: float, pit_alpha: float, relevant: Mapping[str, floa
         unset = "; no relevant size set" if relevant and row["statistic"] not in relevant else ""
         out.append(f"{describe(row['statistic'])} ({what}; "
                    f"{_p_is(pvalue_against(p, ppp_extreme, 1 - ppp_extreme))}{unset})")
-    test = r.checks.loo_pit_test
-    if np.isfinite(test["p_value"]) and test["p_value"] < pit_alpha:
-        out.append(f"calibration (LOO-PIT not uniform, {_p_is(pvalue_against(test['p_value'], pit_alpha))})")
+    from .trials.checks import band_text
+
+    where = band_text(r.checks.loo_pit_test)   # the band's level is the run's pit_alpha
+    if where:
+        out.append(f"calibration (LOO-PIT ECDF {where})")
     return out
 
 
@@ -664,7 +666,7 @@ def _prior_advice(flagged) -> str:
 
 
 def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.01,
-                       pit_alpha: float = 0.01, store=None,
+                       store=None,
                        relevant: Mapping[str, float] | None = None) -> Comparison:
     """Rank healthy candidates by elpd and write the verdict.
 
@@ -673,10 +675,11 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
     paired difference is uncertain (common practice, no source, for the factor 2);
     candidates tied within Monte Carlo error share one standing and one rank; a
     candidate with a posterior predictive p-value below ``ppp_extreme`` or above 1 -
-    ``ppp_extreme`` for any statistic, or a LOO-PIT uniformity p-value below
-    ``pit_alpha``, is named as misfitting even when it ranks well (the thresholds are
-    common practice, no source); unhealthy, failed and skipped candidates are not
-    ranked. ``store``: see ``weights``. ``relevant`` (statistic -> smallest miss that
+    ``ppp_extreme`` for any statistic, or LOO-PIT values whose ECDF leaves the
+    simultaneous band of the run's ``pit_alpha`` (``checks.uniformity_test``), is
+    named as misfitting even when it ranks well (the p-value threshold is common
+    practice, no source); unhealthy, failed and skipped candidates are not ranked.
+    ``store``: see ``weights``. ``relevant`` (statistic -> smallest miss that
     matters, ``[checks] relevant``): a statistic that has one is named only when its miss
     exceeds it, and a sentence says what the misses were judged against.
 
@@ -711,7 +714,7 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
         preferred = [r.id for r in ranked if st[r.id].preferred]
         names = {r.id: r.label for r in ranked}
         relevant = dict(relevant or {})
-        misses = {r.id: _misfit(r, ppp_extreme, pit_alpha, relevant) for r in ranked}
+        misses = {r.id: _misfit(r, ppp_extreme, relevant) for r in ranked}
 
         # --- the lead: what to use, how sure, what misses
         others = [names[cid] for cid in preferred if cid != best.id]

@@ -57,6 +57,7 @@ class RunConfig:
     check_draws: int = 1000                 # replicated datasets used for the checks
     ppp_extreme: float = 0.01               # p-values beyond this (or 1 - it) count as misfit
     relevant: Mapping[str, float] = field(default_factory=dict)   # statistic -> smallest miss that matters
+    pit_alpha: float = 0.01                 # LOO-PIT band holds a uniform ECDF with prob. 1 - this
     cross_validation: str = "loo"           # loo | kfold | leave_group_out
     refit_cap: int = 10                     # exact refits per candidate before K-fold
     folds: int = 10
@@ -81,7 +82,7 @@ _LAYOUT: dict[str, dict[str, str]] = {
                 "escalation": "escalation", "longer_retry": "longer_retry", "max_treedepth": "max_treedepth"},
     "checks": {"thresholds": "thresholds", "bounds": "bounds", "check_draws": "check_draws",
                "implausible_share": "implausible_share", "ppp_extreme": "ppp_extreme",
-               "relevant": "relevant"},
+               "relevant": "relevant", "pit_alpha": "pit_alpha"},
     "comparison": {"cross_validation": "cross_validation", "refit_cap": "refit_cap", "folds": "folds"},
     "health": {"rhat_max": "rhat_max", "ess_per_chain_min": "ess_per_chain_min",
                "ebfmi_min": "ebfmi_min"},
@@ -99,7 +100,7 @@ _TYPES: dict[str, str] = {
     "max_treedepth": "posint",
     "jobs": "int0", "engine": "engine", "thresholds": "floats", "bounds": "bounds",
     "rhat_max": "posfloat", "ess_per_chain_min": "posfloat", "ebfmi_min": "posfloat",
-    "implausible_share": "prob", "check_draws": "posint", "quiet": "bool", "ppp_extreme": "prob",
+    "implausible_share": "prob", "check_draws": "posint", "quiet": "bool", "ppp_extreme": "prob", "pit_alpha": "prob",
     "relevant": "sizes",
     "cross_validation": "cv", "refit_cap": "int0", "folds": "folds",
     "replicates": "reps",
@@ -390,6 +391,7 @@ HELP: dict[str, str] = {
     "ppp_extreme": "posterior predictive p-values below this or above 1 minus this count as misfit",
     "relevant": ("smallest miss that matters per statistic, in its units (outcome units; a share for below_T), "
                  "e.g. mean=10,min=50: the verdict then names only misses larger than this"),
+    "pit_alpha": "LOO-PIT values count as miscalibrated when their ECDF leaves the simultaneous 1 - this band",
     "cross_validation": "loo (PSIS-LOO, exact refits, K-fold above the cap), kfold, or leave_group_out",
     "refit_cap": "exact leave-one-out refits per candidate before falling back to K-fold",
     "folds": "number of folds K for K-fold cross-validation",

@@ -277,7 +277,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         keep = thin_draws(y_rep.shape[0], cfg.check_draws)
         conditions = {col: design.table[col].to_numpy() for col in cfg.conditions}
         res.checks = predictive_checks(design.y, y_rep[keep], log_lik[keep], cfg.thresholds, conditions,
-                                       ppp_extreme=cfg.ppp_extreme)
+                                       ppp_extreme=cfg.ppp_extreme, pit_alpha=cfg.pit_alpha)
         res.y_rep_sample = y_rep[thin_draws(y_rep.shape[0], FIGURE_DRAWS)].astype(np.float32)
         res.effects = effect_draws(y_rep, design.y, design.table, cfg.conditions, cfg.predictors,
                                    reference=cfg.reference)
@@ -686,6 +686,7 @@ def candidate_summary(r: CandidateResult, comparison: Comparison, cfg: RunConfig
         "ppc_grouped": {cond: {lev: ppc_entries(rows, extreme, relevant) for lev, rows in levels.items()}
                         for cond, levels in k.grouped.items()} if k else {},
         "loo_pit_test": k.loo_pit_test if k else None,
+        "quantiles": k.quantiles if k else [],
         "elpd_loo": o.elpd if o else None,
         "elpd_loo_se": o.se if o else None,
         "p_loo": o.p if o else None,

@@ -61,7 +61,7 @@ def fit_key(code: str, data: Mapping[str, Any], settings: SamplerSettings, engin
 TRIAL_SETTINGS = (
     "chains", "warmup", "draws", "prior_draws", "seed", "adapt_delta", "max_treedepth", "escalation",
     "longer_retry", "rhat_max", "ess_per_chain_min", "ebfmi_min", "thresholds", "bounds", "implausible_share",
-    "check_draws", "conditions", "reference", "cross_validation", "refit_cap", "folds", "ppp_extreme",
+    "check_draws", "pit_alpha", "conditions", "reference", "cross_validation", "refit_cap", "folds", "ppp_extreme",
 )
 #: Bumped whenever the stored trial results change shape. Format 4: plain data only (no
 #: ArviZ objects), so reading them back imports neither ArviZ nor xarray. Format 5:
@@ -71,7 +71,8 @@ TRIAL_SETTINGS = (
 #: check row (overall, per condition, prior) carries its miss (``miss``, ``miss_share_sd``),
 #: and the checks' ``extreme`` list follows ``ppp_extreme`` (now a trial setting). The
 #: relevant sizes (``[checks] relevant``) are not: readings are made at report time.
-TRIALS_FORMAT = 7
+#: Format 8: the LOO-PIT band test (``checks.uniformity_test``) and the quantile checks.
+TRIALS_FORMAT = 8
 
 
 def trials_key(candidate, design, cfg, engine_version: str) -> str:

@@ -44,9 +44,6 @@ LINEUPS = 3
 #: The observed value beyond this share of prior draws is marked in the prior tables.
 PRIOR_EDGE = 0.99
 
-#: LOO-PIT uniformity p-values below this are flagged (the verdict's rule in compare.py).
-PIT_ALPHA = 0.01
-
 SECTIONS = [
     ("verdict", "Verdict"),
     ("cautions", "Cautions"),
@@ -63,7 +60,7 @@ SECTIONS = [
 CSV_FILES = (
     "ranking.csv", "verdict_certainty.csv", "prior_plausibility.csv", "prior_trial.csv",
     "sampler_health.csv", "out_of_sample.csv", "predictive_checks.csv", "grouped_checks.csv",
-    "loo_pit.csv", "effects.csv", "hyperparameters.csv", "parameters.csv", "run_settings.csv", "candidate_files.csv",
+    "loo_pit.csv", "quantiles.csv", "effects.csv", "hyperparameters.csv", "parameters.csv", "run_settings.csv", "candidate_files.csv",
     "sensitivity.csv", "coefficients.csv", "group_effects.csv",
 )
 
@@ -214,7 +211,7 @@ def _ranking(result, cands) -> Table:
                 notes.append("tied within Monte Carlo error with " + ", ".join(row["tied_with"])
                              + "; the order among them would change with the seed, so they share rank "
                              + _rank(row))
-            missed = misfits(r.checks, extreme, PIT_ALPHA, result.config.relevant)
+            missed = misfits(r.checks, extreme, result.config.relevant)
             if missed:
                 notes.append("misses " + ", ".join(missed)
                              + ": treat its predictions of these with suspicion (see Predictive checks)")
@@ -225,7 +222,7 @@ def _ranking(result, cands) -> Table:
         else:
             notes.append(r.reason.splitlines()[0] if r.reason else "")
             notes.append(NEXT_STEP.get(r.status, ""))
-        misses = misfits(r.checks, extreme, PIT_ALPHA, result.config.relevant)
+        misses = misfits(r.checks, extreme, result.config.relevant)
         cls = {"ok": "ranked", "unhealthy": "unhealthy", "failed": "failed", "skipped": "skipped"}[r.status]
         t.add([
             n(_rank(row)),
@@ -526,23 +523,57 @@ def _check_table(checks, extreme: float, relevant=None) -> Table:
 
 
 def _pit_table(cands) -> Table:
-    t = Table("loo_pit.csv", ["Candidate", "KS statistic", "p-value", "Reading and what to do next"],
-              csv_headers=["id", "label", "ks_statistic", "p_value", "method", "reading"],
-              numeric=[False, True, True, False])
+    """The LOO-PIT band test per candidate: inside or not, where the ECDF leaves the band."""
+    from ..trials.checks import band_text, leaves_band
+
+    t = Table("loo_pit.csv", ["Candidate", "ECDF inside the band", "Where it leaves the band",
+                              "Reading and what to do next"],
+              csv_headers=["id", "label", "band", "inside", "points", "outside_points", "above", "below",
+                           "largest_gap", "method", "reading"],
+              numeric=[False, False, False, False])
     for r in cands:
         test = r.checks.loo_pit_test
-        p = test.get("p_value", np.nan)
-        flagged = np.isfinite(p) and p < PIT_ALPHA
+        flagged = leaves_band(test)
         reading = pit_reading(r.checks.loo_pit)
         if flagged and not reading:
             reading = "the LOO-PIT values depart from uniform; look at the figure for where"
         if not reading:
             reading = "no clear pattern; this does not show the candidate is right"
-        t.add([Cell(r.label, "name", r.id), n(fmt.fixed(test.get("statistic"), 3)),
-               n(("◆ " if flagged else "") + fmt.pvalue_against(p, PIT_ALPHA), "flag" if flagged else ""),
+        inside = test.get("inside")
+        shown = "not tested" if inside is None else ("◆ no" if flagged else "yes")
+        where = band_text(test)
+        if where:
+            where = (where[0].upper() + where[1:] + f" ({test['outside_points']} of {test['points']} points, "
+                     f"at most {fmt.fixed(test['largest_gap'], 3)} outside)")
+
+        def spans(xs):
+            return " ".join(f"{a:g}-{b:g}" for a, b in xs)
+
+        t.add([Cell(r.label, "name", r.id), Cell(shown, "flag" if flagged else ""), Cell(where or "—", "wrap"),
                Cell(fmt.sentence(reading), "wrap")],
-              [r.id, r.label, test.get("statistic"), p, test.get("method"), reading],
+              [r.id, r.label, test.get("band"), inside, test.get("points"), test.get("outside_points"),
+               spans(test.get("above", [])), spans(test.get("below", [])), test.get("largest_gap"),
+               test.get("method"), reading],
               "flagged" if flagged else "")
+    return t
+
+
+def _quantile_table(cands) -> Table:
+    """Where each candidate's replicated quantiles miss the observed ones; the CSV has
+    every level of every candidate."""
+    from ..trials.checks import quantile_misses
+
+    t = Table("quantiles.csv", ["Candidate", "Observed quantiles outside the replicated 95 % interval"],
+              csv_headers=["id", "label", "level", "observed", "replicated_median", "lower_95", "upper_95",
+                           "lower_50", "upper_50", "share_replicated_at_or_above", "miss"])
+    for r in cands:
+        rows = getattr(r.checks, "quantiles", [])
+        misses = quantile_misses(rows)
+        # listed, not flagged: 19 pointwise intervals miss now and then by chance
+        t.add([Cell(r.label, "name", r.id), Cell("; ".join(misses) if misses else "none of the 19 levels", "wrap")])
+        for q in rows:
+            t.csv_rows.append([r.id, r.label, q["level"], q["observed"], q["median"], q["lower"], q["upper"],
+                               q["lower50"], q["upper50"], q["share_above"], q["miss"]])
     return t
 
 
@@ -840,6 +871,7 @@ def _settings(result, command_line) -> Table:
         cfg.ppp_extreme)
     add("relevant sizes of a miss", ", ".join(f"{k} {v:g}" for k, v in cfg.relevant.items()) or "none set",
         " ".join(f"{k}={v:g}" for k, v in cfg.relevant.items()))
+    add("LOO-PIT band", f"simultaneous {100 * (1 - cfg.pit_alpha):g} % (pit_alpha {cfg.pit_alpha:g})", cfg.pit_alpha)
     add("cross-validation", f"{cfg.cross_validation}; at most {cfg.refit_cap} exact refits; {cfg.folds} folds",
         f"{cfg.cross_validation} refit_cap={cfg.refit_cap} folds={cfg.folds}")
     add("plausibility bounds", "; ".join(f"{describe(k)}: {fmt.bound(*v)}" for k, v in cfg.bounds.items())
@@ -941,13 +973,15 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "density": drawn(store, "replicate_density_grid", d.y, [(r.label, r.y_rep_sample) for r in with_checks],
                        outcome=d.outcome),
         "stats": drawn(store, "statistic_grid", [(r.label, r.checks) for r in with_checks], cfg.ppp_extreme),
-        "pit": drawn(store, "loo_pit_grid", [(r.label, r.checks) for r in with_checks], PIT_ALPHA),
+        "pit": drawn(store, "loo_pit_grid", [(r.label, r.checks) for r in with_checks]),
+        "quantiles": drawn(store, "quantile_grid", [(r.label, r.checks) for r in with_checks], outcome=d.outcome),
     }
 
     checks_long = _checks_long(result, with_checks)
     matrix = None
     grouped = []
     pit = None
+    quantiles = None
     grouped_long = None
     if with_checks:
         heads, body = _check_matrix(result, with_checks, lambda c: c.rows)
@@ -964,6 +998,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
             grouped.append({"condition": cond, "blocks": blocks})
         grouped_long = _grouped_long(result, with_checks)
         pit = _pit_table(with_checks)
+        quantiles = _quantile_table(with_checks)
 
     lineups = _lineups(result, cands)
 
@@ -975,7 +1010,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     n_status = {s: sum(r.status == s for r in cands) for s in ("ok", "unhealthy", "failed", "skipped")}
     counts = ", ".join(f"{v} {k if k != 'ok' else 'ranked'}" for k, v in n_status.items() if v)
 
-    csv_tables = [ranking, certainty, prior_plausibility_table, prior_long, health, oos, checks_long, pit, settings, files]
+    csv_tables = [ranking, certainty, prior_plausibility_table, prior_long, health, oos, checks_long, pit, quantiles, settings, files]
     csv_tables.append(sensitivity["csv"])
     if cfg.conditions and grouped_long is not None:
         csv_tables.append(grouped_long)
@@ -1043,7 +1078,9 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "matrix": matrix,
         "grouped": grouped,
         "pit": pit,
-        "pit_alpha": fmt.num(PIT_ALPHA),
+        "quantiles": quantiles,
+        "pit_band": f"{100 * (1 - cfg.pit_alpha):g} %",
+        "pit_alpha": fmt.num(cfg.pit_alpha),
         "lineups": lineups,
         "effects_table": effects_table,
         "effect_sentences": [e.sentence for e in effects],

@@ -80,14 +80,16 @@ def p_cell(p: float, strong: float, mild: tuple[float, float] = MILD) -> Cell:
     return n(text)
 
 
-def misfits(checks, strong: float, pit_alpha: float = 0.01, relevant=None) -> list[str]:
-    """Plain names of the checks a candidate fails (p beyond ``strong``, LOO-PIT test);
-    with relevant sizes, as the verdict names them (``statistics.named_misses``)."""
+def misfits(checks, strong: float, relevant=None) -> list[str]:
+    """Plain names of the checks a candidate fails (p beyond ``strong``, LOO-PIT ECDF
+    outside its band, tested at the run's ``pit_alpha``); with relevant sizes, as the
+    verdict names them (``statistics.named_misses``)."""
     if checks is None:
         return []
     out = [describe(r["statistic"]) for r in named_misses(checks.rows, strong, relevant)]
-    p = checks.loo_pit_test.get("p_value", np.nan)
-    if np.isfinite(p) and p < pit_alpha:
+    from ..trials.checks import leaves_band
+
+    if leaves_band(checks.loo_pit_test):
         out.append("LOO-PIT calibration")
     return out
 
