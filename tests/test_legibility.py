@@ -61,7 +61,7 @@ def test_elpd_figure_shows_the_shared_rank_and_whole_labels(drawn):
     assert figures.elpd_differences(rows) is not None
     (fig,) = drawn
     _assert_legible(fig)
-    labels = [t.get_text() for t in fig.axes[0].get_yticklabels()]
+    labels = [t.get_text().replace("\n", " ") for t in fig.axes[0].get_yticklabels()]
     assert labels == [f"1. {LONG}", "2–3. Gamma", "2–3. Inverse Gaussian (Wald)"]
 
 

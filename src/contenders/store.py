@@ -67,8 +67,9 @@ TRIAL_SETTINGS = (
 #: ArviZ objects), so reading them back imports neither ArviZ nor xarray. Format 5:
 #: coefficients in the outcome's units and group terms (``CandidateResult.coefficients``),
 #: and the prior trial's reading of each failing bound. Format 6: warmup and draws per
-#: chain of each posterior attempt and of the accepted fit (the longer retry).
-TRIALS_FORMAT = 6
+#: chain of each posterior attempt and of the accepted fit (the longer retry). Format 7:
+#: power-scaling readings ``pulled_both_ways``, ``set_by_prior``, ``led_by_data``, ``steady``.
+TRIALS_FORMAT = 7
 
 
 def trials_key(candidate, design, cfg, engine_version: str) -> str:
