@@ -96,3 +96,24 @@ def test_effects_table_has_candidates_as_rows_and_effects_as_columns():
     assert t.rows[0][2].text == "12.0" and t.rows[4][2].text == "◇ 13.0 (11.0 to 15.0)"
     assert t.rows[9][1].text == "not ranked" and t.row_cls[9] == "muted"
     assert len(t.csv_rows) == 2 * (10 + 1)   # the CSV keeps one row per effect and candidate (and the mix)
+
+
+def test_pareto_k_bands_are_labelled_from_the_run_threshold():
+    # edges 0.5 and min(1 - 1/log10 S, 0.7) (Vehtari et al. 2024, "Pareto smoothed
+    # importance sampling", JMLR 25(72)); S = 1000 gives 1 - 1/3 = 0.6667
+    from contenders.report.out_of_sample import k_band_counts, k_bands
+    t = 1 - 1 / np.log10(1000)
+    assert [b[0] for b in k_bands(t)] == ["k ≤ 0.5", "0.5 < k ≤ 0.6667", "k > 0.6667"]
+    assert [b[0] for b in k_bands(0.7)] == ["k ≤ 0.5", "0.5 < k ≤ 0.7", "k > 0.7"]
+    assert [b[0] for b in k_bands(0.45)] == ["k ≤ 0.45", "k > 0.45"]
+    assert k_band_counts(np.array([0.1, 0.5, 0.55, 0.6667, 0.68, np.nan]), t) == [2, 1, 2]   # 0.6667 > 2/3
+
+
+def test_sensitivity_reading_codes():
+    from contenders.trials.sensitivity import READINGS, _reading
+    assert _reading(0.2, 0.3, 0.05) == "pulled_both_ways"
+    assert _reading(0.2, 0.01, 0.05) == "set_by_prior"
+    assert _reading(0.01, 0.3, 0.05) == "led_by_data"
+    assert _reading(0.01, 0.01, 0.05) == "steady"
+    assert _reading(float("nan"), 0.3, 0.05) == ""
+    assert all(READINGS[k] for k in READINGS)
