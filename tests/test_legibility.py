@@ -62,7 +62,7 @@ def test_elpd_figure_shows_the_shared_rank_and_whole_labels(drawn):
     assert figures.elpd_differences(rows) is not None
     (fig,) = drawn
     _assert_legible(fig)
-    labels = [t.get_text() for t in fig.axes[0].get_yticklabels()]
+    labels = [t.get_text().replace("\n", " ") for t in fig.axes[0].get_yticklabels()]
     assert labels == [f"1. {LONG}", "2–3. Gamma", "2–3. Inverse Gaussian (Wald)"]
 
 
@@ -191,3 +191,24 @@ def test_prior_figure_follows_the_same_grammar(drawn):
     assert [t.get_text() for t in mean_panel.texts if "in" in t.get_text()] == ["83 % in", "83 % in"]
     bounds = [ln.get_xdata()[0] for ln in mean_panel.lines if ln.get_linestyle() == "--"]
     assert sorted(bounds) == [150.0, 5000.0]
+
+
+def test_pareto_k_bands_are_labelled_from_the_run_threshold():
+    # edges 0.5 and min(1 - 1/log10 S, 0.7) (Vehtari et al. 2024, "Pareto smoothed
+    # importance sampling", JMLR 25(72)); S = 1000 gives 1 - 1/3 = 0.6667
+    from contenders.report.out_of_sample import k_band_counts, k_bands
+    t = 1 - 1 / np.log10(1000)
+    assert [b[0] for b in k_bands(t)] == ["k ≤ 0.5", "0.5 < k ≤ 0.6667", "k > 0.6667"]
+    assert [b[0] for b in k_bands(0.7)] == ["k ≤ 0.5", "0.5 < k ≤ 0.7", "k > 0.7"]
+    assert [b[0] for b in k_bands(0.45)] == ["k ≤ 0.45", "k > 0.45"]
+    assert k_band_counts(np.array([0.1, 0.5, 0.55, 0.6667, 0.68, np.nan]), t) == [2, 1, 2]   # 0.6667 > 2/3
+
+
+def test_sensitivity_reading_codes():
+    from contenders.trials.sensitivity import READINGS, _reading
+    assert _reading(0.2, 0.3, 0.05) == "pulled_both_ways"
+    assert _reading(0.2, 0.01, 0.05) == "set_by_prior"
+    assert _reading(0.01, 0.3, 0.05) == "led_by_data"
+    assert _reading(0.01, 0.01, 0.05) == "steady"
+    assert _reading(float("nan"), 0.3, 0.05) == ""
+    assert all(READINGS[k] for k in READINGS)

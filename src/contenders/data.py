@@ -57,6 +57,13 @@ class Design:
     dropped_rows: int = 0
     table: pd.DataFrame | None = field(default=None, repr=False, compare=False)
     slopes: tuple[int, ...] = ()       # columns of X (0-based) with a slope per group
+    #: each observation's row in the data file, counted from 1 at the line after the
+    #: header (rows without a usable outcome are dropped, so these can skip numbers)
+    data_rows: np.ndarray | None = field(default=None, repr=False, compare=False)
+
+    def data_row(self, i: int) -> int:
+        """The data-file row (1 = the line after the header) of 0-based observation ``i``."""
+        return int(self.data_rows[i]) if self.data_rows is not None else int(i) + 1
 
     @property
     def N(self) -> int:
@@ -306,6 +313,7 @@ def build_design(
         source=source, outcome=outcome, y=y, X=X, coding=tuple(coding),
         group_column=group, group=gidx, group_levels=levels,
         y_center=y_center, y_scale=y_scale, dropped_rows=dropped, table=table,
+        data_rows=np.flatnonzero(keep) + 1,
         slopes=tuple(i for i, code in enumerate(coding) if code.source in set(slopes)),
     )
 

@@ -72,7 +72,8 @@ TRIAL_SETTINGS = (
 #: and the checks' ``extreme`` list follows ``ppp_extreme`` (now a trial setting). The
 #: relevant sizes (``[checks] relevant``) are not: readings are made at report time.
 #: Format 8: the LOO-PIT band test (``checks.uniformity_test``) and the quantile checks.
-TRIALS_FORMAT = 8
+#: Format 9: power-scaling readings ``pulled_both_ways``, ``set_by_prior``, ``led_by_data``, ``steady``.
+TRIALS_FORMAT = 9
 
 
 def trials_key(candidate, design, cfg, engine_version: str) -> str:

@@ -29,6 +29,7 @@ from . import recovery_section
 from .figure_store import drawn
 from . import format as fmt
 from .sensitivity import sensitivity_context
+from . import out_of_sample
 from ..trials.coefficients import base_name, extremes, group_terms, sizes_of
 from .tables import (MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, miss_cell, n, p_cell, pit_reading,
                      reading_cell)
@@ -59,7 +60,7 @@ SECTIONS = [
 
 CSV_FILES = (
     "ranking.csv", "verdict_certainty.csv", "prior_plausibility.csv", "prior_trial.csv",
-    "sampler_health.csv", "out_of_sample.csv", "predictive_checks.csv", "grouped_checks.csv",
+    "sampler_health.csv", "out_of_sample.csv", "pareto_k_bands.csv", "pareto_k_worst.csv", "predictive_checks.csv", "grouped_checks.csv",
     "loo_pit.csv", "quantiles.csv", "effects.csv", "hyperparameters.csv", "parameters.csv", "run_settings.csv", "candidate_files.csv",
     "sensitivity.csv", "coefficients.csv", "group_effects.csv",
 )
@@ -398,46 +399,6 @@ def _health(result, cands) -> tuple[Table, list[tuple[str, str, list[str]]]]:
         if items:
             advice.append((r.label, r.id, items))
     return t, advice
-
-
-def _oos(result, cands) -> tuple[Table, list[tuple[str, str]]]:
-    rows = _rows_by_id(result)
-    t = Table("out_of_sample.csv",
-              ["Rank", "Candidate", "elpd (SE)", "p_loo", "Behind the best (SE of difference)",
-               "Stacking weight", "Pseudo-BMA+ weight", "MC SE of elpd", "Largest Pareto k",
-               "k above threshold", "Method"],
-              csv_headers=["rank", "id", "label", "status", "elpd", "elpd_se", "p_loo", "elpd_behind_best",
-                           "elpd_behind_best_se", "stacking_weight", "pseudo_bma_weight", "elpd_mcse",
-                           "elpd_psis_before_refits", "pareto_k_max", "pareto_k_threshold", "n_high_k",
-                           "n_refits", "refitted_observations", "method"],
-              numeric=[True, False, True, True, True, True, True, True, True, True, False])
-    refitted = []
-    for r in cands:
-        o = r.oos
-        if o is None:
-            continue
-        row = rows.get(r.id)
-        high = o.n_high_k
-        t.add([
-            n(_rank(row)),
-            Cell(r.label + ("" if row else " (not ranked: sampler unhealthy)"), "name", r.id),
-            n(_with_se(o.elpd, o.se)), n(fmt.fixed(o.p, 1)),
-            n(_behind(row) if row else fmt.MISSING),
-            n(fmt.fixed(row["stacking_weight"], 2) if row else fmt.MISSING),
-            n(fmt.fixed(row["pseudo_bma_weight"], 2) if row else fmt.MISSING),
-            n(fmt.fixed(o.mcse, 2)),
-            n(fmt.against(o.k_max, o.k_threshold, 2),
-              "watch" if np.isfinite(o.k_max) and o.k_max > o.k_threshold else ""),
-            n(("◇ " if high else "") + str(high), "watch" if high else ""),
-            Cell(o.method, "wrap"),
-        ], [row["rank"] if row else None, r.id, r.label, r.status, o.elpd, o.se, o.p,
-            row["elpd_diff"] if row else None, row["elpd_diff_se"] if row else None,
-            row["stacking_weight"] if row else None, row["pseudo_bma_weight"] if row else None,
-            o.mcse, o.elpd_psis, o.k_max, o.k_threshold, high, o.n_refits,
-            " ".join(str(i + 1) for i in o.refitted), o.method], "" if row else "muted")
-        if o.refitted:
-            refitted.append((r.label, ", ".join(str(i + 1) for i in o.refitted)))
-    return t, refitted
 
 
 def _matrix_cell(row: dict, extreme: float, relevant) -> Cell:
@@ -956,7 +917,11 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     prior_plausibility_table = _prior_plausibility(result, cands)
     prior_long = _prior_long(result, cands)
     health, health_advice = _health(result, cands)
-    oos, refitted = _oos(result, cands)
+    oos, oos_estimates = out_of_sample.comparison_tables(result, cands)
+    k_bands, k_worst, k_shared = out_of_sample.pareto_k_tables(result, cands)
+    rows_of_data = out_of_sample.data_rows(d)
+    refitted = [(r.label, ", ".join(str(int(rows_of_data[i])) for i in r.oos.refitted))
+                for r in with_oos if r.oos.refitted]
     settings = _settings(result, command_line)
     files = _files(result, cands)
     views = _candidate_views(result, cands)
@@ -969,7 +934,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     figs: dict[str, Any] = {
         "elpd": drawn(store, "elpd_differences", result.comparison.rows),
         "prior": drawn(store, "prior_grid", [(r.label, r.prior) for r in with_prior], stats, observed),
-        "pareto": drawn(store, "pareto_k_grid", [(r.label, r.oos) for r in with_oos]),
+        "pareto": drawn(store, "pareto_k_worst", [(r.label, r.oos, rows_of_data) for r in with_oos]),
         "density": drawn(store, "replicate_density_grid", d.y, [(r.label, r.y_rep_sample) for r in with_checks],
                        outcome=d.outcome),
         "stats": drawn(store, "statistic_grid", [(r.label, r.checks) for r in with_checks], cfg.ppp_extreme),
@@ -1010,7 +975,8 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     n_status = {s: sum(r.status == s for r in cands) for s in ("ok", "unhealthy", "failed", "skipped")}
     counts = ", ".join(f"{v} {k if k != 'ok' else 'ranked'}" for k, v in n_status.items() if v)
 
-    csv_tables = [ranking, certainty, prior_plausibility_table, prior_long, health, oos, checks_long, pit, quantiles, settings, files]
+    csv_tables = [ranking, certainty, prior_plausibility_table, prior_long, health, oos, k_bands, k_worst,
+                  checks_long, pit, quantiles, settings, files]
     csv_tables.append(sensitivity["csv"])
     if cfg.conditions and grouped_long is not None:
         csv_tables.append(grouped_long)
@@ -1066,6 +1032,13 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
             "treedepth": str(cfg.max_treedepth),
         },
         "oos": oos,
+        "oos_estimates": oos_estimates,
+        "oos_answer": out_of_sample.answer(
+            result.comparison.rows, [r.label for r in with_oos if r.id not in rows]),
+        "k_bands": k_bands,
+        "k_threshold_shared": (out_of_sample.threshold_text(with_oos[0].oos.k_threshold)
+                               if with_oos and k_shared else ""),
+        "worst_listed": str(out_of_sample.WORST_LISTED),
         "refitted": refitted,
         "refit_cap": str(cfg.refit_cap),
         "ppp_extreme": fmt.num(cfg.ppp_extreme),

@@ -45,6 +45,7 @@ import numpy as np  # noqa: E402
 from ..compare import SMALL_DIFFERENCE  # noqa: E402
 from ..trials.statistics import describe  # noqa: E402
 from .figure_store import Lineup, Rendered, next_prefix  # noqa: E402  (records readable without matplotlib)
+from .out_of_sample import STANDING_WORDS, standing_of  # noqa: E402  (no matplotlib there)
 
 # --- palette and style ------------------------------------------------------------
 
@@ -348,41 +349,66 @@ def _grid_shape(n: int, ncols: int = 3) -> tuple[int, int]:
 
 # --- 1. elpd differences -------------------------------------------------------------
 
+#: How each standing (compare.standings) is drawn in the comparison chart: marker and
+#: face colour; the words printed at the row's right end are ``STANDING_WORDS``.
+STANDING_MARK = {
+    "best": ("D", INK),
+    "tied": ("o", INK),
+    "close": ("o", INK),
+    "uncertain": ("o", "white"),
+    "worse": ("s", LIMIT),
+}
+
+
 @_styled
 def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
-    """Each ranked candidate's elpd behind the best: dot, ±1 SE (thick) and ±2 SE
-    (thin) of the paired difference; the band below 4 marks differences too small to
-    tell apart."""
+    """How far each ranked candidate predicts behind the best, one row each, best at
+    the top: the difference in elpd as a marker whose shape and fill say the candidate's
+    standing (diamond: best; filled circle: tied or too close to tell; open circle: order
+    uncertain; vermillion square: clearly worse), a thin line over ±2 SE of the paired
+    difference and a heavier one over ±1 SE, the grey band of differences too small to
+    matter, and the standing in words at the right end of the row."""
     if len(rows) < 2:
         return None
     n = len(rows)
-    fig = _new(7.2, 0.6 + 0.32 * n)
-    fig.subplots_adjust(left=0.36, right=0.97, top=1 - 0.28 / (0.6 + 0.32 * n),
-                        bottom=0.42 / (0.6 + 0.32 * n))
+    height = 0.75 + 0.3 * n
+    fig = _new(5.6, height)
+    fig.subplots_adjust(left=0.33, right=0.76, top=1 - 0.36 / height, bottom=0.5 / height)
     ax = fig.add_subplot()
     d = np.array([r["elpd_diff"] for r in rows], dtype=float)
     se = np.nan_to_num(np.array([r["elpd_diff_se"] for r in rows], dtype=float))
     ypos = np.arange(n)[::-1]
-    hi = float(np.nanmax(d + 2 * se)) if n else 1.0
-    right = max(hi * 1.08, 6.0)
-    ax.axvspan(0, SMALL_DIFFERENCE, color=BAND, zorder=0, linewidth=0)
-    ax.text(SMALL_DIFFERENCE / 2, ypos[0] + 0.62, f"within {SMALL_DIFFERENCE:g}: too close to tell apart", ha="center", va="bottom",
-            fontsize=7, color="#555555", clip_on=False)
-    ax.axvline(0, color=MUTED, linewidth=0.7)
+    hi = float(np.nanmax(d + 2 * se))
+    right = max(hi * 1.06, 2.5 * SMALL_DIFFERENCE)
+    left = min(-0.04 * right, float(np.nanmin(d - 2 * se)) * 1.05)
+    ax.axvspan(left, SMALL_DIFFERENCE, color=BAND, zorder=0, linewidth=0)
+    ax.text(SMALL_DIFFERENCE, n - 0.35, f" under {SMALL_DIFFERENCE:g}: too small to matter", ha="left",
+            va="bottom", fontsize=7, color="#555555", clip_on=False)
+    for y in ypos:
+        ax.axhline(y, color="#ebe8e1", linewidth=0.5, zorder=0)
     for y, di, s, r in zip(ypos, d, se, rows):
-        if r["rank"] == 1:
-            ax.plot([0], [y], marker="D", color=INK, markersize=5, zorder=3)
-            continue
-        ax.hlines(y, di - 2 * s, di + 2 * s, color=POSTERIOR, linewidth=1.0)
-        ax.hlines(y, di - s, di + s, color=POSTERIOR, linewidth=3.2)
-        ax.plot([di], [y], marker="o", color=INK, markersize=4.2, zorder=3)
-    ax.set_yticks(ypos, [plain(f"{r.get('shared_rank') or r['rank']}. {r['label']}", 60) for r in rows])
+        kind = standing_of(r)
+        marker, face = STANDING_MARK.get(kind, STANDING_MARK["uncertain"])
+        words = STANDING_WORDS.get(kind, kind)
+        if r["rank"] != 1:
+            ax.hlines(y, di - 2 * s, di + 2 * s, color=POSTERIOR, linewidth=1.1, zorder=2)
+            ax.hlines(y, di - s, di + s, color=POSTERIOR, linewidth=2.6, zorder=2)
+            di = float(di)
+        else:
+            di = 0.0
+        ax.plot([di], [y], marker=marker, markerfacecolor=face, markeredgecolor=INK, markeredgewidth=0.8,
+                markersize=5.2, linestyle="none", zorder=4)
+        ax.annotate(words, xy=(1, y), xycoords=("axes fraction", "data"), xytext=(6, 0),
+                    textcoords="offset points", ha="left", va="center", fontsize=7.2,
+                    color=LIMIT if kind == "worse" else INK, fontweight="bold" if kind == "best" else "normal")
+    ax.set_yticks(ypos, [_wrap(f"{r.get('shared_rank') or r['rank']}. {r['label']}", 30, 2) for r in rows])
     ax.tick_params(axis="y", length=0, labelsize=7.5)
-    ax.spines["left"].set_visible(False)
-    ax.set_xlim(min(-0.05 * right, float(np.nanmin(d - 2 * se)) * 1.05), right)
+    for side in ("left", "right", "top"):
+        ax.spines[side].set_visible(False)
+    ax.set_xlim(left, right)
     ax.set_ylim(-0.6, n - 0.4)
-    ax.set_xlabel("elpd behind the best candidate (0 = best; bars: ±1 SE thick, ±2 SE thin)")
-    return render(fig, "elpd of each ranked candidate behind the best, with standard errors of the difference")
+    ax.set_xlabel("elpd behind the best (line: ±2 SE of the difference, heavier: ±1 SE)")
+    return render(fig, "how far each ranked candidate predicts behind the best, with its standing")
 
 
 # --- 2. prior predictive trial ----------------------------------------------------------
@@ -508,51 +534,60 @@ def prior_grid(cands: Sequence[tuple[str, object]], statistics: Sequence[str],
 
 # --- 3. Pareto k ----------------------------------------------------------------------
 
+#: Observations shown per candidate in the Pareto k view.
+WORST_SHOWN = 6
+
+
 @_styled
-def pareto_k_grid(cands: Sequence[tuple[str, object]]) -> Rendered | None:
-    """Rows: candidates. Pareto k of every observation, the threshold (dashed
-    vermillion), observations above it (orange triangles) and those refitted exactly
-    (black rings)."""
-    cands = [(label, o) for label, o in cands if o is not None]
+def pareto_k_worst(cands: Sequence[tuple[str, object, Sequence[int]]]) -> Rendered | None:
+    """One small panel per candidate: its observations with the largest Pareto k, largest
+    at the top, labelled by their row in the data file, as bars from 0 (blue up to the
+    threshold, orange and outlined above it, a ring at the end when the observation was
+    refitted exactly), with 0.5 dotted grey and the threshold dashed vermillion.
+    ``cands`` holds ``(label, out_of_sample, data_rows)``, ``data_rows`` giving each
+    observation's row in the data file."""
+    cands = [(label, o, rows) for label, o, rows in cands
+             if o is not None and np.isfinite(np.asarray(o.pareto_k, dtype=float)).any()]
     if not cands:
         return None
-    n_obs = max(len(o.pareto_k) for _, o in cands)
-    ks = np.concatenate([np.asarray(o.pareto_k, float) for _, o in cands])
-    ks = ks[np.isfinite(ks)]
-    thresholds = [o.k_threshold for _, o in cands]
-    ymin = min(-0.1, float(ks.min()) - 0.05) if ks.size else -0.1
-    ymax = max(1.0, float(ks.max()) + 0.08, max(thresholds) + 0.15) if ks.size else 1.0
-    width, height = 7.6, 0.5 + 0.72 * len(cands)
+    nrow, ncol = _grid_shape(len(cands), 5)
+    kmax = max(float(np.nanmax(np.asarray(o.pareto_k, dtype=float))) for _, o, _ in cands)
+    top = max(1.0, kmax + 0.08, max(o.k_threshold for _, o, _ in cands) + 0.1)
+    width, height = 10.2, 0.35 + 1.42 * nrow
     fig = _new(width, height)
-    fig.subplots_adjust(left=1.6 / width, right=0.985, top=1 - 0.15 / height, bottom=0.42 / height,
-                        hspace=0.3)
-    axes = fig.subplots(len(cands), 1, squeeze=False, sharex=True)[:, 0]
-    raster = n_obs > 300
-    for ax, (label, o) in zip(axes, cands):
+    fig.subplots_adjust(left=0.055, right=0.99, top=1 - 0.3 / height, bottom=0.42 / height,
+                        wspace=0.55, hspace=0.62)
+    axes = fig.subplots(nrow, ncol, squeeze=False)
+    for ax in axes.flat[len(cands):]:
+        ax.set_visible(False)
+    for ax, (label, o, rows) in zip(axes.flat, cands):
         k = np.asarray(o.pareto_k, dtype=float)
-        x = np.arange(1, k.size + 1)
-        high = k > o.k_threshold
-        ax.scatter(x[~high], k[~high], s=3 if n_obs > 300 else 6, color=POSTERIOR, alpha=0.7,
-                   linewidths=0, rasterized=raster)
+        order = [i for i in np.argsort(-np.nan_to_num(k, nan=-np.inf), kind="stable") if np.isfinite(k[i])]
+        order = order[:WORST_SHOWN]
+        y = np.arange(len(order))[::-1]
+        vals = k[order]
+        high = vals > o.k_threshold
+        ax.barh(y[~high], vals[~high], height=0.62, color=POSTERIOR, linewidth=0)
         if high.any():
-            ax.scatter(x[high], k[high], s=16, marker="^", color=FLAG, edgecolors=INK,
-                       linewidths=0.4, zorder=3)
-        if o.refitted:
-            idx = np.asarray(o.refitted, dtype=int)
-            ax.scatter(idx + 1, k[idx], s=55, facecolors="none", edgecolors=INK, linewidths=0.9, zorder=4)
-        ax.axhline(o.k_threshold, color=LIMIT, linestyle=(0, (4, 2)), linewidth=1.0)
-        ax.set_ylim(ymin, ymax)
-        ax.set_xlim(0, n_obs + 1)
-        ax.set_yticks([v for v in (0.0, 0.5, 1.0) if ymin <= v <= ymax])
-        if not np.isfinite(k).any():
-            ax.text(0.5, 0.5, "no Pareto k (elpd from held-out fits)", transform=ax.transAxes,
-                    ha="center", va="center", fontsize=7, color=MUTED)
-        note = f"threshold {o.k_threshold:.2f}; {int(high.sum())} above; {len(o.refitted)} refitted"
-        ax.text(0.995, 0.97, note, transform=ax.transAxes, ha="right", va="top", fontsize=7,
-                color="#444444", bbox=dict(facecolor=PANEL, edgecolor="none", pad=0.5))
-        _row_label(ax, label, offset=24)
-    axes[-1].set_xlabel("observation (row of the data after dropping rows without an outcome)")
-    return render(fig, "Pareto k of every observation per candidate, with the threshold")
+            ax.barh(y[high], vals[high], height=0.62, color=FLAG, edgecolor=INK, linewidth=0.7, hatch="///")
+        refitted = set(int(i) for i in o.refitted)
+        for yy, i, v in zip(y, order, vals):
+            if int(i) in refitted:
+                ax.plot([v], [yy], marker="o", markersize=6.5, markerfacecolor="none", markeredgecolor=INK,
+                        markeredgewidth=0.9, linestyle="none", zorder=4)
+        ax.axvline(0.5, color=MUTED, linestyle=(0, (1, 1.5)), linewidth=0.9)
+        ax.axvline(o.k_threshold, color=LIMIT, linestyle=(0, (4, 2)), linewidth=1.0)
+        ax.set_yticks(y, [f"row {int(rows[i])}" for i in order])
+        ax.tick_params(axis="y", length=0, labelsize=7)
+        ax.set_xlim(min(0.0, float(np.nanmin(vals)) - 0.05), top)
+        ax.set_ylim(-0.6, WORST_SHOWN - 0.4)
+        ax.set_xticks([v for v in (0.0, 0.5, 1.0) if v <= top])
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:g}"))
+        ax.spines["left"].set_visible(False)
+        ax.set_title(_wrap(label, 22, 2), fontsize=7.5)
+    fig.supxlabel("Pareto k of the worst observations (dotted: 0.5; dashed vermillion: the threshold)",
+                  fontsize=7.5, y=0.02)
+    return render(fig, "the observations with the largest Pareto k per candidate, by row of the data file")
 
 
 # --- 4. observed against replicated distributions ---------------------------------------------
