@@ -185,7 +185,7 @@ def _result(cid, pointwise, status="ok", p_values=None, reason=""):
         ll = np.tile(pw, (2, 200, 1)) + np.random.default_rng(0).normal(0, 1e-3, (2, 200, pw.size))
         r.oos = estimate(_idata(ll), _no_refit)
         rows = [{"statistic": s, "observed": 1.0, "p_value": p} for s, p in (p_values or {"mean": 0.5}).items()]
-        r.checks = PredictiveChecks(rows, {}, np.full(pw.size, 0.5), {"p_value": 0.5}, [])
+        r.checks = PredictiveChecks(rows, {}, np.full(pw.size, 0.5), {"inside": True, "band": 0.99, "above": [], "below": []}, [])
     return r
 
 

@@ -105,6 +105,7 @@ def test_missing_fit_subset_inputs_are_a_problem(folder):
     code = GOOD.replace("  int<lower=0, upper=N> N_fit;\n  array[N_fit] int<lower=1, upper=N> fit_idx;\n", "")
     code = code.replace("vector[N_fit] eta = linear_predictor(intercept, X[fit_idx], coef, group[fit_idx],",
                         "vector[N] eta = linear_predictor(intercept, X, coef, group,")
+    code = code.replace("Z[fit_idx], slope_z", "Z, slope_z")
     code = code.replace("y[fit_idx] ~ lognormal(eta, sigma);", "y ~ lognormal(eta, sigma);")
     assert "fit_idx" not in code
     _write(folder, "no_subset", code)

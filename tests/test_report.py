@@ -174,14 +174,14 @@ def test_report_has_every_section_candidate_and_embedded_figure(report):
 
     # Every figure is inside the page: inline SVG or a data URI.
     plots = [a for t, a in page.tags if t == "figure" and "plot" in (a.get("class") or "").split()]
-    assert len(plots) == 7     # elpd, prior, Pareto k, densities, statistics, LOO-PIT, effects
+    assert len(plots) == 8     # elpd, prior, Pareto k, densities, quantiles, statistics, LOO-PIT, effects
     for img in page.find("img"):
         assert img["src"].startswith("data:image/png;base64,")
     n_svg = len(page.find("svg"))
     n_img = len(page.find("img"))
     n_lineups = min(3, len(result.comparison.preferred))
     assert n_lineups >= 1
-    assert n_svg + n_img == 7 + 20 * n_lineups
+    assert n_svg + n_img == 8 + 20 * n_lineups
 
 
 def test_lineups_hide_the_observed_data_among_replicates(report):
@@ -241,6 +241,18 @@ def test_csv_tables_hold_the_numbers_of_the_run(report):
     want = next(r for r in ln.checks.rows if r["statistic"] == "skewness")
     assert float(first["p_value"]) == want["p_value"]
     assert float(first["observed"]) == pytest.approx(want["observed"], rel=1e-12)
+
+    # the LOO-PIT band test and the quantile checks, number for number
+    pit = {r["id"]: r for r in _csv(out / "loo_pit.csv")}
+    test = ln.checks.loo_pit_test
+    assert pit["lognormal"]["inside"] == ("true" if test["inside"] else "false")
+    assert float(pit["lognormal"]["band"]) == 0.99 and int(pit["lognormal"]["points"]) == test["points"] == 99
+    assert int(pit["lognormal"]["outside_points"]) == test["outside_points"]
+    assert "ks_statistic" not in pit["lognormal"] and "p_value" not in pit["lognormal"]
+    quantiles = [r for r in _csv(out / "quantiles.csv") if r["id"] == "lognormal"]
+    assert [float(r["level"]) for r in quantiles] == [q["level"] for q in ln.checks.quantiles]
+    q50 = next(r for r in quantiles if float(r["level"]) == 0.5)
+    assert float(q50["observed"]) == pytest.approx(float(np.quantile(result.design.y, 0.5)), rel=1e-12)
 
     grouped = _csv(out / "grouped_checks.csv")
     assert {r["level"] for r in grouped} == {"off", "on"}

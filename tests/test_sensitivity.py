@@ -98,12 +98,14 @@ def _run(tmp_path: Path, name: str, prior_mean: float, prior_sd: float):
     return result, cfg
 
 
-def test_strong_prior_far_from_the_data_is_a_conflict_and_a_weak_prior_is_not(tmp_path, fixture_program):
+def test_strong_prior_far_from_the_data_is_pulled_both_ways_and_a_weak_prior_is_led_by_data(tmp_path,
+                                                                                           fixture_program):
     """40 observations near 0 with known SD 1. A prior normal(4, 0.1) is strong (its
     precision 100 exceeds the data's 40) and sits far from them: the paper's reading of
-    prior and likelihood sensitivity both at least 0.05 is a possible prior-data conflict
-    (Kallioinen et al. 2023, Section 4, threshold 0.05). A prior normal(0, 100) leaves
-    the posterior to the data: prior sensitivity below 0.05, likelihood sensitivity above.
+    prior and likelihood sensitivity both at least 0.05 is a sign that prior and data
+    disagree (Kallioinen et al. 2023, Section 4, threshold 0.05), read here as "pulled
+    both ways". A prior normal(0, 100) leaves the posterior to the data: prior
+    sensitivity below 0.05, likelihood sensitivity above ("led by the data").
     Both are read from the run's summary.json and shown in the report."""
     strong, cfg = _run(tmp_path, "strong", 4.0, 0.1)
     weak, cfg_weak = _run(tmp_path, "weak", 0.0, 100.0)
@@ -113,21 +115,25 @@ def test_strong_prior_far_from_the_data_is_a_conflict_and_a_weak_prior_is_not(tm
     print("weak prior", w.rows, w.pareto_k)
     assert s.reliable and w.reliable
     (row_s,), (row_w,) = s.rows, w.rows
-    assert row_s["parameter"] == "mu" and row_s["reading"] == "conflict"
+    assert row_s["parameter"] == "mu" and row_s["reading"] == "pulled_both_ways"
     assert row_s["prior"] > 5 * THRESHOLD and row_s["likelihood"] > 5 * THRESHOLD
-    assert row_w["reading"] == ""
+    assert row_w["reading"] == "led_by_data"
     assert row_w["prior"] < THRESHOLD / 10 and row_w["likelihood"] > THRESHOLD
     assert not row_s["near_threshold"]
     summary = json.loads((cfg.out / "summary.json").read_text())
     ps = summary["candidates"][0]["power_scaling"]
-    assert ps["parameters"][0]["reading"] == "conflict" and ps["threshold"] == THRESHOLD
-    assert json.loads((cfg_weak.out / "summary.json").read_text())["candidates"][0]["power_scaling"][
-        "parameters"][0]["reading"] is None
+    assert ps["parameters"][0]["reading"] == "pulled_both_ways" and ps["threshold"] == THRESHOLD
+    assert ps["parameters"][0]["what_to_do"].startswith("Pulled both ways: the prior and the data push it")
+    weak_row = json.loads((cfg_weak.out / "summary.json").read_text())["candidates"][0]["power_scaling"][
+        "parameters"][0]
+    assert weak_row["reading"] == "led_by_data" and weak_row["what_to_do"].endswith("Nothing to do.")
     page = write_report(strong, cfg.out).read_text()
     assert "Sensitivity to the priors (power-scaling)" in page
-    assert "◆ mu" in page and "possible prior-data conflict" in page
+    assert "◆ mu" in page and "Check the priors of mu against what you meant" in page
+    assert "prior-data conflict" not in page and "weak likelihood" not in page
     table = pd.read_csv(cfg.out / "sensitivity.csv")
-    assert list(table["parameter"]) == ["mu"] and table["reading"][0] == "conflict"
+    assert list(table["parameter"]) == ["mu"] and table["reading"][0] == "pulled_both_ways"
+    assert table["what_to_do"][0].startswith("Pulled both ways")
     assert table["prior_sensitivity"][0] == pytest.approx(row_s["prior"])
 
 

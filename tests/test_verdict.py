@@ -69,7 +69,7 @@ def _oos(pointwise: np.ndarray, mcse: float) -> OutOfSample:
 
 def _checks(p_values: dict[str, float], n: int) -> PredictiveChecks:
     rows = [{"statistic": s, "observed": 1.0, "p_value": p} for s, p in p_values.items()]
-    return PredictiveChecks(rows, {}, np.full(n, 0.5), {"p_value": 0.5}, [])
+    return PredictiveChecks(rows, {}, np.full(n, 0.5), {"inside": True, "band": 0.99, "above": [], "below": []}, [])
 
 
 def _sleepstudy_results(misses: dict[str, dict] | None = None) -> list:

@@ -125,7 +125,7 @@ def _row_from_run(row: DatasetRow, result) -> DatasetRow:
         if r.posterior_file:
             row.posterior_files[r.id] = r.posterior_file
         if r.status == "ok":
-            missed = misfits(r.checks, cfg.ppp_extreme)
+            missed = misfits(r.checks, cfg.ppp_extreme, relevant=cfg.relevant)
             if missed:
                 row.misfits[r.id] = missed
         elif r.status == "unhealthy":

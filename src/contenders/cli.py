@@ -76,7 +76,7 @@ RUN_FLAGS = (
     "outcome", "predictors", "group", "slopes", "censored", "truncate", "conditions", "reference", "typical_value", "typical_spread", "candidates",
     "only", "out", "store", "chains", "warmup", "draws", "prior_draws", "seed", "jobs", "engine", "adapt_delta",
     "escalation", "longer_retry", "max_treedepth", "thresholds", "bounds", "rhat_max", "ess_per_chain_min", "ebfmi_min",
-    "implausible_share", "check_draws", "ppp_extreme", "cross_validation", "refit_cap", "folds",
+    "implausible_share", "check_draws", "ppp_extreme", "relevant", "pit_alpha", "cross_validation", "refit_cap", "folds",
     "replicates", "cluster",
 )
 #: Shorter spellings the issue tracker and README use.
@@ -88,7 +88,7 @@ def _add_run_flags(p: argparse.ArgumentParser) -> None:
 
     metavars = {"path": "DIR", "str": "COL", "strs": "A,B", "float": "X", "posfloat": "X", "posint": "N",
                 "int0": "N", "prob": "P", "probs": "P,P", "factor": "F", "floats": "T,T", "engine": "NAME",
-                "bounds": "STAT=LOW:HIGH,...", "levels": "COL=LEVEL,...", "cv": "METHOD", "folds": "K", "bool": "", "reps": "R",
+                "bounds": "STAT=LOW:HIGH,...", "sizes": "STAT=SIZE,...", "levels": "COL=LEVEL,...", "cv": "METHOD", "folds": "K", "bool": "", "reps": "R",
                 "address": "tcp://HOST:PORT", "window": "L:U"}
     p.add_argument("--config", metavar="FILE", help="TOML configuration file; flags override its keys")
     for name in RUN_FLAGS:

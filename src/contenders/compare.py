@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass, field
-from typing import Callable, Sequence
+from typing import Callable, Mapping, Sequence
 
 import numpy as np
 
@@ -496,25 +496,68 @@ def _p_is(text: str) -> str:
     return "p " + text if text[:1] in "<>" else "p = " + text
 
 
-def _misfit(r, ppp_extreme: float, pit_alpha: float) -> list[str]:
-    """Short descriptions of the predictive checks a candidate fails."""
-    from .report.format import pvalue_against
-    from .trials.statistics import describe
+def _misfit(r, ppp_extreme: float, relevant: Mapping[str, float] | None = None) -> list[str]:
+    """Short descriptions of the predictive checks a candidate fails, each with the size
+    of its miss (observed minus the nearest end of the replicated 90 % interval). With
+    relevant sizes set, a statistic that has one is named only when its miss is larger
+    (``statistics.named_misses``); one without a relevant size is named when detectable."""
+    from .report.format import miss_words, pvalue_against
+    from .trials.statistics import describe, named_misses, unit_of
 
     if r.checks is None:
         return []
     out = []
-    for row in r.checks.rows:
+    relevant = relevant or {}
+    for row in named_misses(r.checks.rows, ppp_extreme, relevant):
         p = row["p_value"]
-        if np.isfinite(p) and (p < ppp_extreme or p > 1 - ppp_extreme):
-            # p = Pr(T(y_rep) >= T(y)): near 0, replicates fall short of the observed value
-            side = "lower" if p < 0.5 else "higher"
-            out.append(f"{describe(row['statistic'])} (replicates {side} than the observed "
-                       f"{row['observed']:.4g}; {_p_is(pvalue_against(p, ppp_extreme, 1 - ppp_extreme))})")
-    test = r.checks.loo_pit_test
-    if np.isfinite(test["p_value"]) and test["p_value"] < pit_alpha:
-        out.append(f"calibration (LOO-PIT not uniform, {_p_is(pvalue_against(test['p_value'], pit_alpha))})")
+        by = miss_words(row.get("miss", float("nan")), row.get("miss_share_sd"), unit_of(row["statistic"]))
+        if by:
+            what = f"observed {row['observed']:.4g}, {by}"
+        else:   # p = Pr(T(y_rep) >= T(y)): near 0, replicates fall short of the observed value
+            what = f"replicates {'lower' if p < 0.5 else 'higher'} than the observed {row['observed']:.4g}"
+        unset = "; no relevant size set" if relevant and row["statistic"] not in relevant else ""
+        out.append(f"{describe(row['statistic'])} ({what}; "
+                   f"{_p_is(pvalue_against(p, ppp_extreme, 1 - ppp_extreme))}{unset})")
+    from .trials.checks import band_text
+
+    where = band_text(r.checks.loo_pit_test)   # the band's level is the run's pit_alpha
+    if where:
+        out.append(f"calibration (LOO-PIT ECDF {where})")
     return out
+
+
+def _small_misses(r, ppp_extreme: float, relevant: Mapping[str, float]) -> int:
+    """How many of a candidate's statistics are detectably off by less than their
+    relevant size (``statistics.reading`` "small")."""
+    from .trials.statistics import read_rows
+
+    if r.checks is None or not relevant:
+        return 0
+    return sum(code == "small" for code in read_rows(r.checks.rows, ppp_extreme, relevant))
+
+
+def _relevance_sentence(ranked, misses: dict, ppp_extreme: float, relevant: Mapping[str, float]) -> str:
+    """What the named misses were judged against: no relevant sizes (every detectable miss
+    is named, however small), or the sizes set and how many smaller misses were left out."""
+    from .report.format import miss
+    from .trials.statistics import describe, unit_of
+
+    if not relevant:
+        if not any(misses.values()):
+            return ""
+        return ("No relevant sizes are set ([checks] relevant), so every detectable miss is named, however "
+                "small it is in the outcome's units (with many observations a difference too small to matter "
+                "is still detected); set one per statistic to name only the misses that matter.")
+    sizes = ", ".join(f"{describe(k)} = {miss(v, None, unit_of(k)).lstrip('+')}" for k, v in relevant.items())
+    small = {r.label: _small_misses(r, ppp_extreme, relevant) for r in ranked}
+    left = sum(small.values())
+    text = (f"Misses of a statistic with a relevant size ({sizes}) are named only when larger than that "
+            "size")
+    if left:
+        who = _labels([f"{k} {v}" for k, v in small.items() if v])
+        text += (f"; {left} detectable but smaller miss{'es are' if left > 1 else ' is'} left out ({who}; "
+                 "see Predictive checks)")
+    return text + "."
 
 
 def _behind(row: dict) -> str:
@@ -623,7 +666,8 @@ def _prior_advice(flagged) -> str:
 
 
 def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.01,
-                       pit_alpha: float = 0.01, store=None) -> Comparison:
+                       store=None,
+                       relevant: Mapping[str, float] | None = None) -> Comparison:
     """Rank healthy candidates by elpd and write the verdict.
 
     Rules (see ``standings``, the one rule every sentence and table reads): a
@@ -631,10 +675,13 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
     paired difference is uncertain (common practice, no source, for the factor 2);
     candidates tied within Monte Carlo error share one standing and one rank; a
     candidate with a posterior predictive p-value below ``ppp_extreme`` or above 1 -
-    ``ppp_extreme`` for any statistic, or a LOO-PIT uniformity p-value below
-    ``pit_alpha``, is named as misfitting even when it ranks well (the thresholds are
-    common practice, no source); unhealthy, failed and skipped candidates are not
-    ranked. ``store``: see ``weights``.
+    ``ppp_extreme`` for any statistic, or LOO-PIT values whose ECDF leaves the
+    simultaneous band of the run's ``pit_alpha`` (``checks.uniformity_test``), is
+    named as misfitting even when it ranks well (the p-value threshold is common
+    practice, no source); unhealthy, failed and skipped candidates are not ranked.
+    ``store``: see ``weights``. ``relevant`` (statistic -> smallest miss that
+    matters, ``[checks] relevant``): a statistic that has one is named only when its miss
+    exceeds it, and a sentence says what the misses were judged against.
 
     The verdict comes as a lead of two or three sentences (what to use, how sure,
     what misses) and the details.
@@ -666,7 +713,8 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
             row["shared_rank"] = st[row["id"]].rank
         preferred = [r.id for r in ranked if st[r.id].preferred]
         names = {r.id: r.label for r in ranked}
-        misses = {r.id: _misfit(r, ppp_extreme, pit_alpha) for r in ranked}
+        relevant = dict(relevant or {})
+        misses = {r.id: _misfit(r, ppp_extreme, relevant) for r in ranked}
 
         # --- the lead: what to use, how sure, what misses
         others = [names[cid] for cid in preferred if cid != best.id]
@@ -694,6 +742,10 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
             lead.append(f"But {who} {'misses' if who == 'it' or len(missing) == 1 else 'miss'} features of "
                         f"the data ({', '.join(features)}); do not trust {'its' if len(missing) == 1 else 'their'} "
                         "predictions of these.")
+        elif relevant and any(_small_misses(r, ppp_extreme, relevant) for r in ranked if r.id in preferred):
+            lead.append(("It misses no" if len(preferred) == 1 else "None of them misses a") + " feature by more "
+                        "than the relevant sizes set ([checks] relevant), though smaller misses are "
+                        "detectable; checks can reveal misfit, not prove fit.")
         else:
             lead.append(("It fails no" if len(preferred) == 1 else "None of them fails a") + " predictive check; "
                         "checks can reveal misfit, not prove fit.")
@@ -744,6 +796,9 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
         if lower:
             details.append("Clearly worse candidates whose replicated data also miss features of the data: "
                            + "; ".join(lower) + " (details under Predictive checks).")
+        judged = _relevance_sentence(ranked, misses, ppp_extreme, relevant)
+        if judged:
+            details.append(judged)
     else:
         lead.append("No candidate could be ranked: every candidate was skipped, failed or is unhealthy "
                     "(see below). Fix the problems named there and run again.")

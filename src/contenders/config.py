@@ -58,6 +58,8 @@ class RunConfig:
     implausible_share: float = 0.5          # flag priors with less plausible mass than this
     check_draws: int = 1000                 # replicated datasets used for the checks
     ppp_extreme: float = 0.01               # p-values beyond this (or 1 - it) count as misfit
+    relevant: Mapping[str, float] = field(default_factory=dict)   # statistic -> smallest miss that matters
+    pit_alpha: float = 0.01                 # LOO-PIT band holds a uniform ECDF with prob. 1 - this
     cross_validation: str = "loo"           # loo | kfold | leave_group_out
     refit_cap: int = 10                     # exact refits per candidate before K-fold
     folds: int = 10
@@ -81,7 +83,8 @@ _LAYOUT: dict[str, dict[str, str]] = {
                 "prior_draws": "prior_draws", "seed": "seed", "adapt_delta": "adapt_delta",
                 "escalation": "escalation", "longer_retry": "longer_retry", "max_treedepth": "max_treedepth"},
     "checks": {"thresholds": "thresholds", "bounds": "bounds", "check_draws": "check_draws",
-               "implausible_share": "implausible_share", "ppp_extreme": "ppp_extreme"},
+               "implausible_share": "implausible_share", "ppp_extreme": "ppp_extreme",
+               "relevant": "relevant", "pit_alpha": "pit_alpha"},
     "comparison": {"cross_validation": "cross_validation", "refit_cap": "refit_cap", "folds": "folds"},
     "health": {"rhat_max": "rhat_max", "ess_per_chain_min": "ess_per_chain_min",
                "ebfmi_min": "ebfmi_min"},
@@ -99,7 +102,8 @@ _TYPES: dict[str, str] = {
     "max_treedepth": "posint",
     "jobs": "int0", "engine": "engine", "thresholds": "floats", "bounds": "bounds",
     "rhat_max": "posfloat", "ess_per_chain_min": "posfloat", "ebfmi_min": "posfloat",
-    "implausible_share": "prob", "check_draws": "posint", "quiet": "bool", "ppp_extreme": "prob",
+    "implausible_share": "prob", "check_draws": "posint", "quiet": "bool", "ppp_extreme": "prob", "pit_alpha": "prob",
+    "relevant": "sizes",
     "cross_validation": "cv", "refit_cap": "int0", "folds": "folds",
     "replicates": "reps",
     "cluster": "address",
@@ -114,6 +118,7 @@ _DESCRIBE = {
     "engine": "one of auto, pystan, cmdstanpy",
     "bounds": "a table statistic = [low, high] (use -inf or inf for an open end)",
     "bool": "true or false",
+    "sizes": "a table statistic = size (a positive number in the statistic's units), e.g. {mean = 10.0}",
     "cv": "one of loo, kfold, leave_group_out", "folds": "a whole number >= 2",
     "reps": "0 (no model recovery) or a whole number >= 2",
     "levels": "a table column = \"level\", e.g. {density = \"dense\"}",
@@ -240,6 +245,17 @@ def _convert(key: str, value: Any, base: Path) -> Any:
         if not isinstance(value, bool):
             raise bad()
         return value
+    if kind == "sizes":
+        if not isinstance(value, Mapping):
+            raise bad()
+        sizes = {}
+        for stat, size in value.items():
+            if isinstance(size, bool) or not isinstance(size, (int, float)) or not (
+                    math.isfinite(size) and size > 0):
+                raise UserError(f"configuration key 'relevant': the size for '{stat}' must be a positive number "
+                                f"in that statistic's units, e.g. {stat} = 10.0; got {size!r}")
+            sizes[str(stat)] = float(size)
+        return sizes
     if kind == "bounds":
         if not isinstance(value, Mapping):
             raise bad()
@@ -262,6 +278,13 @@ def _check_statistic_names(cfg: RunConfig) -> None:
             raise UserError(
                 f"configuration bound '{stat}' names no statistic; the statistics are: "
                 + ", ".join(sorted(known))
+            )
+    for stat in cfg.relevant:
+        if stat not in known:
+            raise UserError(
+                f"configuration key 'relevant' ([checks] relevant or --relevant): '{stat}' names no statistic; "
+                "the statistics are: " + ", ".join(sorted(known))
+                + " (a share below T exists only when T is among [checks] thresholds)"
             )
 
 
@@ -392,6 +415,9 @@ HELP: dict[str, str] = {
     "implausible_share": "flag candidates whose share of plausible prior draws is below this",
     "check_draws": "replicated datasets used for the predictive checks",
     "ppp_extreme": "posterior predictive p-values below this or above 1 minus this count as misfit",
+    "relevant": ("smallest miss that matters per statistic, in its units (outcome units; a share for below_T), "
+                 "e.g. mean=10,min=50: the verdict then names only misses larger than this"),
+    "pit_alpha": "LOO-PIT values count as miscalibrated when their ECDF leaves the simultaneous 1 - this band",
     "cross_validation": "loo (PSIS-LOO, exact refits, K-fold above the cap), kfold, or leave_group_out",
     "refit_cap": "exact leave-one-out refits per candidate before falling back to K-fold",
     "folds": "number of folds K for K-fold cross-validation",
@@ -447,6 +473,15 @@ def parse_flag(name: str, text: str) -> Any:
                 out[stat.strip()] = [_number(low), _number(high)]
             except ValueError:
                 raise UserError(f"--bounds must look like mean=150:5000,min=100:inf; got {part!r}") from None
+        return out
+    if kind == "sizes":
+        out = {}
+        for part in filter(None, (p.strip() for p in text.split(","))):
+            try:
+                stat, size = part.split("=")
+                out[stat.strip()] = _number(size)
+            except ValueError:
+                raise UserError(f"--relevant must look like mean=10,min=50; got {part!r}") from None
         return out
     if kind == "bool":
         return text.lower() in ("1", "true", "yes")

@@ -59,6 +59,10 @@ class Design:
     slopes: tuple[int, ...] = ()       # columns of X (0-based) with a slope per group
     cens: np.ndarray | None = None     # int per row: 0 observed, 1 right-, -1 left-censored (None: all 0)
     window: tuple[float | None, float | None] = (None, None)   # truncation window, None = open end
+    #: each observation's row in the data file, counted from 1 at the line after the
+    #: header (rows without a usable outcome are dropped, so these can skip numbers)
+    data_rows: np.ndarray | None = field(default=None, repr=False, compare=False)
+
 
     @property
     def censoring(self) -> np.ndarray:
@@ -68,6 +72,10 @@ class Design:
     def asks_censoring(self) -> bool:
         """True when censoring or truncation was asked for (candidates then need the inputs)."""
         return self.cens is not None or self.window != (None, None)
+
+    def data_row(self, i: int) -> int:
+        """The data-file row (1 = the line after the header) of 0-based observation ``i``."""
+        return int(self.data_rows[i]) if self.data_rows is not None else int(i) + 1
 
     @property
     def N(self) -> int:
@@ -353,6 +361,7 @@ def build_design(
         source=source, outcome=outcome, y=y, X=X, coding=tuple(coding),
         group_column=group, group=gidx, group_levels=levels,
         y_center=y_center, y_scale=y_scale, dropped_rows=dropped, table=table,
+        data_rows=np.flatnonzero(keep) + 1,
         slopes=tuple(i for i, code in enumerate(coding) if code.source in set(slopes)),
         cens=cens, window=(low, high),
     )

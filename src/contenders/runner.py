@@ -14,7 +14,7 @@ import platform
 import time
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
-from typing import Any
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 
@@ -36,6 +36,7 @@ from .trials.effects import compare_effects, effect_draws, effects_summary
 from .trials.posterior import Health, fit_with_health
 from .trials.prior import PriorTrial, summarise_prior
 from .trials.sensitivity import Sensitivity, power_scaling, summary as sensitivity_summary
+from .trials.statistics import INTERVAL
 
 #: Replicated datasets kept per candidate for figures (the checks use ``check_draws``).
 FIGURE_DRAWS = 100
@@ -276,7 +277,8 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         log_lik = _stack(draws.idata.log_likelihood.sel(draw=pp["draw"].values), "log_lik")
         keep = thin_draws(y_rep.shape[0], cfg.check_draws)
         conditions = {col: design.table[col].to_numpy() for col in cfg.conditions}
-        res.checks = predictive_checks(design.y, y_rep[keep], log_lik[keep], cfg.thresholds, conditions)
+        res.checks = predictive_checks(design.y, y_rep[keep], log_lik[keep], cfg.thresholds, conditions,
+                                       ppp_extreme=cfg.ppp_extreme, pit_alpha=cfg.pit_alpha)
         res.y_rep_sample = y_rep[thin_draws(y_rep.shape[0], FIGURE_DRAWS)].astype(np.float32)
         res.effects = effect_draws(y_rep, design.y, design.table, cfg.conditions, cfg.predictors,
                                    reference=cfg.reference)
@@ -531,7 +533,7 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
     for r in ordered:
         if r.status in ("failed", "skipped", "unhealthy"):
             say(f"  {r.id}: {r.status}: {r.reason.splitlines()[0][:300] if r.reason else ''}")
-    comparison = compare_candidates(ordered, cfg.seed, cfg.ppp_extreme, store=store)
+    comparison = compare_candidates(ordered, cfg.seed, cfg.ppp_extreme, store=store, relevant=cfg.relevant)
     if cfg.quick:
         comparison.lead.insert(0, QUICK_LOOK.format(chains=cfg.chains, draws=cfg.draws, rhat=cfg.rhat_max,
                                                          ess=cfg.ess_per_chain_min))
@@ -647,8 +649,25 @@ def _clean(value: Any) -> Any:
     return value
 
 
-def candidate_summary(r: CandidateResult, comparison: Comparison) -> dict[str, Any]:
+def ppc_entries(rows: Sequence[dict], ppp_extreme: float = 0.01,
+                relevant: Mapping[str, float] | None = None) -> dict[str, dict[str, Any]]:
+    """``summary.json``'s entry per statistic: observed value, p-value, the replicated
+    median and 90 % interval, the miss in the statistic's units and as a share of the
+    observed SD, the relevant size set for it and the reading (trials/statistics.py)."""
+    from .trials.statistics import read_rows
+
+    relevant = relevant or {}
+    return {row["statistic"]: {"observed": row["observed"], "p_value": row["p_value"],
+                               "replicated_q50": row.get("q50"), "replicated_q05": row.get("q05"),
+                               "replicated_q95": row.get("q95"), "miss": row.get("miss"),
+                               "miss_share_sd": row.get("miss_share_sd"),
+                               "relevant": relevant.get(row["statistic"]), "reading": code}
+            for row, code in zip(rows, read_rows(rows, ppp_extreme, relevant))}
+
+
+def candidate_summary(r: CandidateResult, comparison: Comparison, cfg: RunConfig | None = None) -> dict[str, Any]:
     h, p, k, o = r.health, r.prior, r.checks, r.oos
+    extreme, relevant = (cfg.ppp_extreme, cfg.relevant) if cfg is not None else (0.01, {})
     row = next((row for row in comparison.rows if row["id"] == r.id), {})
     return {
         "id": r.id, "label": r.label, "status": r.status, "reason": r.reason,
@@ -664,12 +683,11 @@ def candidate_summary(r: CandidateResult, comparison: Comparison) -> dict[str, A
         "adapt_delta_attempts": [asdict(a) for a in h.attempts] if h else [],
         "prior_plausible_share": p.plausible_share if p else None,
         "prior_flagged": p.flagged if p else None,
-        "ppc": {row["statistic"]: {"observed": row["observed"], "p_value": row["p_value"]}
-                for row in k.rows} if k else {},
-        "ppc_grouped": {cond: {lev: {row["statistic"]: {"observed": row["observed"], "p_value": row["p_value"]}
-                                     for row in rows} for lev, rows in levels.items()}
+        "ppc": ppc_entries(k.rows, extreme, relevant) if k else {},
+        "ppc_grouped": {cond: {lev: ppc_entries(rows, extreme, relevant) for lev, rows in levels.items()}
                         for cond, levels in k.grouped.items()} if k else {},
         "loo_pit_test": k.loo_pit_test if k else None,
+        "quantiles": k.quantiles if k else [],
         "elpd_loo": o.elpd if o else None,
         "elpd_loo_se": o.se if o else None,
         "p_loo": o.p if o else None,
@@ -722,7 +740,8 @@ def summary_dict(result: RunResult) -> dict[str, Any]:
         "verdict": " ".join(result.comparison.verdict),
         "verdict_lead": " ".join(result.comparison.lead),
         "verdict_details": " ".join(result.comparison.details),
-        "candidates": [candidate_summary(r, result.comparison) for r in result.candidates],
+        "checks": {"ppp_extreme": cfg.ppp_extreme, "interval": INTERVAL, "relevant": dict(cfg.relevant)},
+        "candidates": [candidate_summary(r, result.comparison, cfg) for r in result.candidates],
         "effects": effects_summary(compare_effects(result.candidates, result.comparison.rows, cfg.seed)),
     })
 

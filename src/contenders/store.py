@@ -61,14 +61,19 @@ def fit_key(code: str, data: Mapping[str, Any], settings: SamplerSettings, engin
 TRIAL_SETTINGS = (
     "chains", "warmup", "draws", "prior_draws", "seed", "adapt_delta", "max_treedepth", "escalation",
     "longer_retry", "rhat_max", "ess_per_chain_min", "ebfmi_min", "thresholds", "bounds", "implausible_share",
-    "check_draws", "conditions", "reference", "cross_validation", "refit_cap", "folds",
+    "check_draws", "pit_alpha", "conditions", "reference", "cross_validation", "refit_cap", "folds", "ppp_extreme",
 )
 #: Bumped whenever the stored trial results change shape. Format 4: plain data only (no
 #: ArviZ objects), so reading them back imports neither ArviZ nor xarray. Format 5:
 #: coefficients in the outcome's units and group terms (``CandidateResult.coefficients``),
 #: and the prior trial's reading of each failing bound. Format 6: warmup and draws per
-#: chain of each posterior attempt and of the accepted fit (the longer retry).
-TRIALS_FORMAT = 6
+#: chain of each posterior attempt and of the accepted fit (the longer retry). Format 7: each
+#: check row (overall, per condition, prior) carries its miss (``miss``, ``miss_share_sd``),
+#: and the checks' ``extreme`` list follows ``ppp_extreme`` (now a trial setting). The
+#: relevant sizes (``[checks] relevant``) are not: readings are made at report time.
+#: Format 8: the LOO-PIT band test (``checks.uniformity_test``) and the quantile checks.
+#: Format 9: power-scaling readings ``pulled_both_ways``, ``set_by_prior``, ``led_by_data``, ``steady``.
+TRIALS_FORMAT = 9
 
 
 def trials_key(candidate, design, cfg, engine_version: str) -> str:

@@ -29,8 +29,11 @@ from . import recovery_section
 from .figure_store import drawn
 from . import format as fmt
 from .sensitivity import sensitivity_context
+from . import out_of_sample
 from ..trials.coefficients import base_name, extremes, group_terms, sizes_of
-from .tables import MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, n, p_cell, pit_reading
+from .tables import (MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, miss_cell, n, p_cell, pit_reading,
+                     reading_cell)
+from ..trials.statistics import reading as check_reading, unit_of
 
 __all__ = ["write_report", "build_context", "CSV_FILES"]
 
@@ -41,9 +44,6 @@ LINEUPS = 3
 
 #: The observed value beyond this share of prior draws is marked in the prior tables.
 PRIOR_EDGE = 0.99
-
-#: LOO-PIT uniformity p-values below this are flagged (the verdict's rule in compare.py).
-PIT_ALPHA = 0.01
 
 SECTIONS = [
     ("verdict", "Verdict"),
@@ -60,8 +60,8 @@ SECTIONS = [
 
 CSV_FILES = (
     "ranking.csv", "verdict_certainty.csv", "prior_plausibility.csv", "prior_trial.csv",
-    "sampler_health.csv", "out_of_sample.csv", "predictive_checks.csv", "grouped_checks.csv",
-    "loo_pit.csv", "effects.csv", "hyperparameters.csv", "parameters.csv", "run_settings.csv", "candidate_files.csv",
+    "sampler_health.csv", "out_of_sample.csv", "pareto_k_bands.csv", "pareto_k_worst.csv", "predictive_checks.csv", "grouped_checks.csv",
+    "loo_pit.csv", "quantiles.csv", "effects.csv", "hyperparameters.csv", "parameters.csv", "run_settings.csv", "candidate_files.csv",
     "sensitivity.csv", "coefficients.csv", "group_effects.csv",
 )
 
@@ -212,7 +212,7 @@ def _ranking(result, cands) -> Table:
                 notes.append("tied within Monte Carlo error with " + ", ".join(row["tied_with"])
                              + "; the order among them would change with the seed, so they share rank "
                              + _rank(row))
-            missed = misfits(r.checks, extreme, PIT_ALPHA)
+            missed = misfits(r.checks, extreme, result.config.relevant)
             if missed:
                 notes.append("misses " + ", ".join(missed)
                              + ": treat its predictions of these with suspicion (see Predictive checks)")
@@ -223,7 +223,7 @@ def _ranking(result, cands) -> Table:
         else:
             notes.append(r.reason.splitlines()[0] if r.reason else "")
             notes.append(NEXT_STEP.get(r.status, ""))
-        misses = misfits(r.checks, extreme, PIT_ALPHA)
+        misses = misfits(r.checks, extreme, result.config.relevant)
         cls = {"ok": "ranked", "unhealthy": "unhealthy", "failed": "failed", "skipped": "skipped"}[r.status]
         t.add([
             n(_rank(row)),
@@ -311,7 +311,7 @@ def _prior_long(result, cands) -> Table:
                                   "Prior draws below observed", "Bound", "Draws inside bound"],
               csv_headers=["id", "statistic", "description", "observed", "prior_mean", "prior_q05",
                            "prior_q50", "prior_q95", "share_below_observed", "bound_low", "bound_high",
-                           "share_inside_bound", "missing_draws"])
+                           "share_inside_bound", "missing_draws", "miss", "miss_share_sd"])
     for r in cands:
         if r.prior is None:
             continue
@@ -320,7 +320,8 @@ def _prior_long(result, cands) -> Table:
             t.csv_rows.append([r.id, row["statistic"], describe(row["statistic"]), row["observed"],
                                row["mean"], row["q05"], row["q50"], row["q95"], row["share_below_observed"],
                                b[0] if b else None, b[1] if b else None,
-                               r.prior.inside_each.get(row["statistic"]), row.get("n_missing")])
+                               r.prior.inside_each.get(row["statistic"]), row.get("n_missing"),
+                               row.get("miss"), row.get("miss_share_sd")])
     return t
 
 
@@ -400,50 +401,24 @@ def _health(result, cands) -> tuple[Table, list[tuple[str, str, list[str]]]]:
     return t, advice
 
 
-def _oos(result, cands) -> tuple[Table, list[tuple[str, str]]]:
-    rows = _rows_by_id(result)
-    t = Table("out_of_sample.csv",
-              ["Rank", "Candidate", "elpd (SE)", "p_loo", "Behind the best (SE of difference)",
-               "Stacking weight", "Pseudo-BMA+ weight", "MC SE of elpd", "Largest Pareto k",
-               "k above threshold", "Method"],
-              csv_headers=["rank", "id", "label", "status", "elpd", "elpd_se", "p_loo", "elpd_behind_best",
-                           "elpd_behind_best_se", "stacking_weight", "pseudo_bma_weight", "elpd_mcse",
-                           "elpd_psis_before_refits", "pareto_k_max", "pareto_k_threshold", "n_high_k",
-                           "n_refits", "refitted_observations", "method"],
-              numeric=[True, False, True, True, True, True, True, True, True, True, False])
-    refitted = []
-    for r in cands:
-        o = r.oos
-        if o is None:
-            continue
-        row = rows.get(r.id)
-        high = o.n_high_k
-        t.add([
-            n(_rank(row)),
-            Cell(r.label + ("" if row else " (not ranked: sampler unhealthy)"), "name", r.id),
-            n(_with_se(o.elpd, o.se)), n(fmt.fixed(o.p, 1)),
-            n(_behind(row) if row else fmt.MISSING),
-            n(fmt.fixed(row["stacking_weight"], 2) if row else fmt.MISSING),
-            n(fmt.fixed(row["pseudo_bma_weight"], 2) if row else fmt.MISSING),
-            n(fmt.fixed(o.mcse, 2)),
-            n(fmt.against(o.k_max, o.k_threshold, 2),
-              "watch" if np.isfinite(o.k_max) and o.k_max > o.k_threshold else ""),
-            n(("◇ " if high else "") + str(high), "watch" if high else ""),
-            Cell(o.method, "wrap"),
-        ], [row["rank"] if row else None, r.id, r.label, r.status, o.elpd, o.se, o.p,
-            row["elpd_diff"] if row else None, row["elpd_diff_se"] if row else None,
-            row["stacking_weight"] if row else None, row["pseudo_bma_weight"] if row else None,
-            o.mcse, o.elpd_psis, o.k_max, o.k_threshold, high, o.n_refits,
-            " ".join(str(i + 1) for i in o.refitted), o.method], "" if row else "muted")
-        if o.refitted:
-            refitted.append((r.label, ", ".join(str(i + 1) for i in o.refitted)))
-    return t, refitted
+def _matrix_cell(row: dict, extreme: float, relevant) -> Cell:
+    """A p-value of the matrix with the miss below it when the observed value lies outside
+    the replicated 90 % interval; a detectable miss within its relevant size is marked ◇."""
+    cell = p_cell(row["p_value"], extreme)
+    code = check_reading(row["p_value"], row.get("miss", np.nan), (relevant or {}).get(row["statistic"]), extreme)
+    if code == "small":
+        cell = n("◇ " + cell.text.lstrip("◆ "), "watch")
+    size = row.get("miss", np.nan)
+    if size is not None and np.isfinite(size) and size != 0:
+        cell.sub = "miss " + fmt.miss(size, row.get("miss_share_sd"), unit_of(row["statistic"]))
+    return cell
 
 
 def _check_matrix(result, cands, pick) -> tuple[list[str], list[list[Cell]]]:
     """p-values with statistics as rows and candidates as columns; ``pick`` returns the
     rows of one candidate's checks."""
     extreme = result.config.ppp_extreme
+    relevant = result.config.relevant
     first = pick(cands[0].checks)
     observed = fmt.alike([row["observed"] for row in first])   # one column, one count of decimals
     body = []
@@ -451,67 +426,115 @@ def _check_matrix(result, cands, pick) -> tuple[list[str], list[list[Cell]]]:
         cells = [Cell(describe(row["statistic"])), n(observed[k])]
         for r in cands:
             rr = pick(r.checks)
-            cells.append(p_cell(rr[k]["p_value"], extreme) if k < len(rr) else n(fmt.MISSING))
+            cells.append(_matrix_cell(rr[k], extreme, relevant) if k < len(rr) else n(fmt.MISSING))
         body.append(cells)
     return [r.label for r in cands], body
+
+
+#: Columns of the miss and its reading in the check CSV files.
+MISS_CSV = ["miss", "miss_share_sd", "relevant", "reading"]
+
+
+def _miss_raw(row: dict, extreme: float, relevant) -> list:
+    size = (relevant or {}).get(row["statistic"])
+    return [row.get("miss"), row.get("miss_share_sd"), size,
+            check_reading(row["p_value"], row.get("miss", np.nan), size, extreme)]
 
 
 def _checks_long(result, cands) -> Table:
     t = Table("predictive_checks.csv", [],
               csv_headers=["id", "statistic", "description", "observed", "replicated_mean", "replicated_q05",
-                           "replicated_q50", "replicated_q95", "p_value", "beyond_extreme"])
+                           "replicated_q50", "replicated_q95", "p_value", "beyond_extreme"] + MISS_CSV)
     extreme = result.config.ppp_extreme
     for r in cands:
         for row in r.checks.rows:
             p = row["p_value"]
             t.csv_rows.append([r.id, row["statistic"], describe(row["statistic"]), row["observed"], row["mean"],
                                row["q05"], row["q50"], row["q95"], p,
-                               bool(np.isfinite(p) and (p < extreme or p > 1 - extreme))])
+                               bool(np.isfinite(p) and (p < extreme or p > 1 - extreme))]
+                              + _miss_raw(row, extreme, result.config.relevant))
     return t
 
 
 def _grouped_long(result, cands) -> Table:
     t = Table("grouped_checks.csv", [],
               csv_headers=["id", "condition", "level", "statistic", "description", "observed",
-                           "replicated_mean", "replicated_q05", "replicated_q50", "replicated_q95", "p_value"])
+                           "replicated_mean", "replicated_q05", "replicated_q50", "replicated_q95", "p_value"]
+              + MISS_CSV)
     for r in cands:
         for cond, levels in r.checks.grouped.items():
             for level, rows in levels.items():
                 for row in rows:
                     t.csv_rows.append([r.id, cond, str(level), row["statistic"], describe(row["statistic"]),
                                        row["observed"], row["mean"], row["q05"], row["q50"], row["q95"],
-                                       row["p_value"]])
+                                       row["p_value"]]
+                                      + _miss_raw(row, result.config.ppp_extreme, result.config.relevant))
     return t
 
 
-def _check_table(checks, extreme: float) -> Table:
+def _check_table(checks, extreme: float, relevant=None) -> Table:
     t = Table("", ["Statistic", "Observed", "Replicated median", "Replicated 90 % interval",
-                   "Posterior predictive p"], numeric=[False, True, True, True, True])
+                   "Miss beyond the interval (share of SD)", "Posterior predictive p", "Reading"],
+              numeric=[False, True, True, True, True, True, False])
     for row in checks.rows:   # one statistic per row: its values share one count of decimals
         obs, q50, q05, q95 = fmt.alike([row["observed"], row["q50"], row["q05"], row["q95"]])
-        t.add([describe(row["statistic"]), n(obs), n(q50), n(f"{q05} to {q95}"),
-               p_cell(row["p_value"], extreme)])
+        t.add([describe(row["statistic"]), n(obs), n(q50), n(f"{q05} to {q95}"), miss_cell(row),
+               p_cell(row["p_value"], extreme), reading_cell(row, extreme, relevant)])
     return t
 
 
 def _pit_table(cands) -> Table:
-    t = Table("loo_pit.csv", ["Candidate", "KS statistic", "p-value", "Reading and what to do next"],
-              csv_headers=["id", "label", "ks_statistic", "p_value", "method", "reading"],
-              numeric=[False, True, True, False])
+    """The LOO-PIT band test per candidate: inside or not, where the ECDF leaves the band."""
+    from ..trials.checks import band_text, leaves_band
+
+    t = Table("loo_pit.csv", ["Candidate", "ECDF inside the band", "Where it leaves the band",
+                              "Reading and what to do next"],
+              csv_headers=["id", "label", "band", "inside", "points", "outside_points", "above", "below",
+                           "largest_gap", "method", "reading"],
+              numeric=[False, False, False, False])
     for r in cands:
         test = r.checks.loo_pit_test
-        p = test.get("p_value", np.nan)
-        flagged = np.isfinite(p) and p < PIT_ALPHA
+        flagged = leaves_band(test)
         reading = pit_reading(r.checks.loo_pit)
         if flagged and not reading:
             reading = "the LOO-PIT values depart from uniform; look at the figure for where"
         if not reading:
             reading = "no clear pattern; this does not show the candidate is right"
-        t.add([Cell(r.label, "name", r.id), n(fmt.fixed(test.get("statistic"), 3)),
-               n(("◆ " if flagged else "") + fmt.pvalue_against(p, PIT_ALPHA), "flag" if flagged else ""),
+        inside = test.get("inside")
+        shown = "not tested" if inside is None else ("◆ no" if flagged else "yes")
+        where = band_text(test)
+        if where:
+            where = (where[0].upper() + where[1:] + f" ({test['outside_points']} of {test['points']} points, "
+                     f"at most {fmt.fixed(test['largest_gap'], 3)} outside)")
+
+        def spans(xs):
+            return " ".join(f"{a:g}-{b:g}" for a, b in xs)
+
+        t.add([Cell(r.label, "name", r.id), Cell(shown, "flag" if flagged else ""), Cell(where or "—", "wrap"),
                Cell(fmt.sentence(reading), "wrap")],
-              [r.id, r.label, test.get("statistic"), p, test.get("method"), reading],
+              [r.id, r.label, test.get("band"), inside, test.get("points"), test.get("outside_points"),
+               spans(test.get("above", [])), spans(test.get("below", [])), test.get("largest_gap"),
+               test.get("method"), reading],
               "flagged" if flagged else "")
+    return t
+
+
+def _quantile_table(cands) -> Table:
+    """Where each candidate's replicated quantiles miss the observed ones; the CSV has
+    every level of every candidate."""
+    from ..trials.checks import quantile_misses
+
+    t = Table("quantiles.csv", ["Candidate", "Observed quantiles outside the replicated 95 % interval"],
+              csv_headers=["id", "label", "level", "observed", "replicated_median", "lower_95", "upper_95",
+                           "lower_50", "upper_50", "share_replicated_at_or_above", "miss"])
+    for r in cands:
+        rows = getattr(r.checks, "quantiles", [])
+        misses = quantile_misses(rows)
+        # listed, not flagged: 19 pointwise intervals miss now and then by chance
+        t.add([Cell(r.label, "name", r.id), Cell("; ".join(misses) if misses else "none of the 19 levels", "wrap")])
+        for q in rows:
+            t.csv_rows.append([r.id, r.label, q["level"], q["observed"], q["median"], q["lower"], q["upper"],
+                               q["lower50"], q["upper50"], q["share_above"], q["miss"]])
     return t
 
 
@@ -731,7 +754,8 @@ def _candidate_views(result, cands) -> list[CandidateView]:
             prior=_prior_table(r.prior) if r.prior is not None else None,
             parameters=(_param_table(r.health, _group_names(r, result.design), result.design)
                         if r.health is not None and r.health.table else None),
-            checks=_check_table(r.checks, result.config.ppp_extreme) if r.checks is not None else None,
+            checks=(_check_table(r.checks, result.config.ppp_extreme, result.config.relevant)
+                    if r.checks is not None else None),
             advice=advice, fits=_fit_links(r, result.out),
             coefficients=_coefficient_table(getattr(r, "coefficients", None)),
             coefficients_note=_coefficients_note(getattr(r, "coefficients", None)),
@@ -813,6 +837,9 @@ def _settings(result, command_line) -> Table:
     add("replicated datasets used by the checks", fmt.integer(cfg.check_draws), cfg.check_draws)
     add("extreme posterior predictive p-value", f"below {cfg.ppp_extreme:g} or above {1 - cfg.ppp_extreme:g}",
         cfg.ppp_extreme)
+    add("relevant sizes of a miss", ", ".join(f"{k} {v:g}" for k, v in cfg.relevant.items()) or "none set",
+        " ".join(f"{k}={v:g}" for k, v in cfg.relevant.items()))
+    add("LOO-PIT band", f"simultaneous {100 * (1 - cfg.pit_alpha):g} % (pit_alpha {cfg.pit_alpha:g})", cfg.pit_alpha)
     add("cross-validation", f"{cfg.cross_validation}; at most {cfg.refit_cap} exact refits; {cfg.folds} folds",
         f"{cfg.cross_validation} refit_cap={cfg.refit_cap} folds={cfg.folds}")
     add("plausibility bounds", "; ".join(f"{describe(k)}: {fmt.bound(*v)}" for k, v in cfg.bounds.items())
@@ -897,7 +924,11 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     prior_plausibility_table = _prior_plausibility(result, cands)
     prior_long = _prior_long(result, cands)
     health, health_advice = _health(result, cands)
-    oos, refitted = _oos(result, cands)
+    oos, oos_estimates = out_of_sample.comparison_tables(result, cands)
+    k_bands, k_worst, k_shared = out_of_sample.pareto_k_tables(result, cands)
+    rows_of_data = out_of_sample.data_rows(d)
+    refitted = [(r.label, ", ".join(str(int(rows_of_data[i])) for i in r.oos.refitted))
+                for r in with_oos if r.oos.refitted]
     settings = _settings(result, command_line)
     files = _files(result, cands)
     views = _candidate_views(result, cands)
@@ -910,17 +941,19 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     figs: dict[str, Any] = {
         "elpd": drawn(store, "elpd_differences", result.comparison.rows),
         "prior": drawn(store, "prior_grid", [(r.label, r.prior) for r in with_prior], stats, observed),
-        "pareto": drawn(store, "pareto_k_grid", [(r.label, r.oos) for r in with_oos]),
+        "pareto": drawn(store, "pareto_k_worst", [(r.label, r.oos, rows_of_data) for r in with_oos]),
         "density": drawn(store, "replicate_density_grid", d.y, [(r.label, r.y_rep_sample) for r in with_checks],
                        outcome=d.outcome),
         "stats": drawn(store, "statistic_grid", [(r.label, r.checks) for r in with_checks], cfg.ppp_extreme),
-        "pit": drawn(store, "loo_pit_grid", [(r.label, r.checks) for r in with_checks], PIT_ALPHA),
+        "pit": drawn(store, "loo_pit_grid", [(r.label, r.checks) for r in with_checks]),
+        "quantiles": drawn(store, "quantile_grid", [(r.label, r.checks) for r in with_checks], outcome=d.outcome),
     }
 
     checks_long = _checks_long(result, with_checks)
     matrix = None
     grouped = []
     pit = None
+    quantiles = None
     grouped_long = None
     if with_checks:
         heads, body = _check_matrix(result, with_checks, lambda c: c.rows)
@@ -937,6 +970,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
             grouped.append({"condition": cond, "blocks": blocks})
         grouped_long = _grouped_long(result, with_checks)
         pit = _pit_table(with_checks)
+        quantiles = _quantile_table(with_checks)
 
     lineups = _lineups(result, cands)
 
@@ -948,7 +982,8 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     n_status = {s: sum(r.status == s for r in cands) for s in ("ok", "unhealthy", "failed", "skipped")}
     counts = ", ".join(f"{v} {k if k != 'ok' else 'ranked'}" for k, v in n_status.items() if v)
 
-    csv_tables = [ranking, certainty, prior_plausibility_table, prior_long, health, oos, checks_long, pit, settings, files]
+    csv_tables = [ranking, certainty, prior_plausibility_table, prior_long, health, oos, k_bands, k_worst,
+                  checks_long, pit, quantiles, settings, files]
     csv_tables.append(sensitivity["csv"])
     if cfg.conditions and grouped_long is not None:
         csv_tables.append(grouped_long)
@@ -1004,6 +1039,13 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
             "treedepth": str(cfg.max_treedepth),
         },
         "oos": oos,
+        "oos_estimates": oos_estimates,
+        "oos_answer": out_of_sample.answer(
+            result.comparison.rows, [r.label for r in with_oos if r.id not in rows]),
+        "k_bands": k_bands,
+        "k_threshold_shared": (out_of_sample.threshold_text(with_oos[0].oos.k_threshold)
+                               if with_oos and k_shared else ""),
+        "worst_listed": str(out_of_sample.WORST_LISTED),
         "refitted": refitted,
         "refit_cap": str(cfg.refit_cap),
         "ppp_extreme": fmt.num(cfg.ppp_extreme),
@@ -1011,10 +1053,14 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "mild_low": fmt.num(MILD[0]),
         "mild_high": fmt.num(MILD[1]),
         "ppp_extreme_high": fmt.num(1 - cfg.ppp_extreme),
+        "relevant": ", ".join(f"{describe(k)} = {fmt.miss(v, None, unit_of(k)).lstrip('+')}"
+                              for k, v in cfg.relevant.items()),
         "matrix": matrix,
         "grouped": grouped,
         "pit": pit,
-        "pit_alpha": fmt.num(PIT_ALPHA),
+        "quantiles": quantiles,
+        "pit_band": f"{100 * (1 - cfg.pit_alpha):g} %",
+        "pit_alpha": fmt.num(cfg.pit_alpha),
         "lineups": lineups,
         "effects_table": effects_table,
         "effect_sentences": [e.sentence for e in effects],

@@ -8,7 +8,12 @@ Visual language (ours, used in every figure and echoed by the page's styles):
 * limits the reader set or must respect (plausibility bounds, the Pareto k threshold,
   reference bands) are vermillion and dashed;
 * anything flagged carries a symbol (◆) and bold text as well as an orange frame,
-  never colour alone.
+  never colour alone;
+* the predictive checks share one grammar: a replicated (or prior) quantity is an
+  interval, thin over its central 95 %, thick over its central 50 %, with a white dot
+  at its median; the observed value is a thick solid ink line through the intervals
+  (statistics across candidates, quantile misses); distributions are envelopes (fills)
+  with the observed curve in ink; a miss is an orange diamond with an ink edge.
 
 The hues are from the colour-blind-safe set of Okabe & Ito (2008), "Color Universal
 Design (CUD): how to make figures and presentations that are friendly to colorblind
@@ -40,6 +45,7 @@ import numpy as np  # noqa: E402
 from ..compare import SMALL_DIFFERENCE  # noqa: E402
 from ..trials.statistics import describe  # noqa: E402
 from .figure_store import Lineup, Rendered, next_prefix  # noqa: E402  (records readable without matplotlib)
+from .out_of_sample import STANDING_WORDS, standing_of  # noqa: E402  (no matplotlib there)
 
 # --- palette and style ------------------------------------------------------------
 
@@ -318,45 +324,10 @@ def _tick_text(x: float, _pos=None) -> str:
     return sign + head + "10" + str(exp).translate(_SUP)
 
 
-def _histogram(ax, draws: np.ndarray, scale: Scale, color: str) -> tuple[float, float]:
-    """Histogram on the shared scale; returns the shares of draws below and above it."""
-    d = np.asarray(draws, dtype=float)
-    d = d[~np.isnan(d)]
-    if d.size == 0:
-        ax.text(0.5, 0.5, "no finite draws", transform=ax.transAxes, ha="center", va="center",
-                fontsize=7, color=MUTED)
-        return 0.0, 0.0
-    below = float(np.mean(d < scale.lo))
-    above = float(np.mean(d > scale.hi))
-    edges = scale.edges()
-    counts, _ = np.histogram(d[(d >= scale.lo) & (d <= scale.hi)], bins=edges)
-    dens = counts / (d.size * np.diff(scale.forward(edges)))
-    nz = np.flatnonzero(counts)
-    if nz.size:   # draw only from the first to the last occupied bin
-        a, b = nz[0], nz[-1] + 1
-        ax.stairs(dens[a:b], edges[a:b + 1], fill=True, facecolor=_tint(color, 0.45), edgecolor=color,
-                  linewidth=0.7)
-    ax.set_ylim(0, max(float(dens.max()), 1e-300) * 1.25)
-    return below, above
-
-
 def _tint(color: str, alpha: float) -> tuple[float, float, float, float]:
     from matplotlib.colors import to_rgb
 
     return (*to_rgb(color), alpha)
-
-
-def _beyond(ax, below: float, above: float) -> None:
-    """Note the share of draws outside the shown range, at the panel's edges."""
-    style = dict(transform=ax.transAxes, fontsize=7, color="#555555", va="top")
-
-    def pct(x: float) -> str:
-        return f"{100 * x:.0f} %" if x >= 0.01 else "<1 %"
-
-    if below > 0:
-        ax.text(0.01, 0.99, f"← {pct(below)}", ha="left", **style)
-    if above > 0:
-        ax.text(0.99, 0.99, f"{pct(above)} →", ha="right", **style)
 
 
 def _flag_frame(ax) -> None:
@@ -378,41 +349,66 @@ def _grid_shape(n: int, ncols: int = 3) -> tuple[int, int]:
 
 # --- 1. elpd differences -------------------------------------------------------------
 
+#: How each standing (compare.standings) is drawn in the comparison chart: marker and
+#: face colour; the words printed at the row's right end are ``STANDING_WORDS``.
+STANDING_MARK = {
+    "best": ("D", INK),
+    "tied": ("o", INK),
+    "close": ("o", INK),
+    "uncertain": ("o", "white"),
+    "worse": ("s", LIMIT),
+}
+
+
 @_styled
 def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
-    """Each ranked candidate's elpd behind the best: dot, ±1 SE (thick) and ±2 SE
-    (thin) of the paired difference; the band below 4 marks differences too small to
-    tell apart."""
+    """How far each ranked candidate predicts behind the best, one row each, best at
+    the top: the difference in elpd as a marker whose shape and fill say the candidate's
+    standing (diamond: best; filled circle: tied or too close to tell; open circle: order
+    uncertain; vermillion square: clearly worse), a thin line over ±2 SE of the paired
+    difference and a heavier one over ±1 SE, the grey band of differences too small to
+    matter, and the standing in words at the right end of the row."""
     if len(rows) < 2:
         return None
     n = len(rows)
-    fig = _new(7.2, 0.6 + 0.32 * n)
-    fig.subplots_adjust(left=0.36, right=0.97, top=1 - 0.28 / (0.6 + 0.32 * n),
-                        bottom=0.42 / (0.6 + 0.32 * n))
+    height = 0.75 + 0.3 * n
+    fig = _new(5.6, height)
+    fig.subplots_adjust(left=0.33, right=0.76, top=1 - 0.36 / height, bottom=0.5 / height)
     ax = fig.add_subplot()
     d = np.array([r["elpd_diff"] for r in rows], dtype=float)
     se = np.nan_to_num(np.array([r["elpd_diff_se"] for r in rows], dtype=float))
     ypos = np.arange(n)[::-1]
-    hi = float(np.nanmax(d + 2 * se)) if n else 1.0
-    right = max(hi * 1.08, 6.0)
-    ax.axvspan(0, SMALL_DIFFERENCE, color=BAND, zorder=0, linewidth=0)
-    ax.text(SMALL_DIFFERENCE / 2, ypos[0] + 0.62, f"within {SMALL_DIFFERENCE:g}: too close to tell apart", ha="center", va="bottom",
-            fontsize=7, color="#555555", clip_on=False)
-    ax.axvline(0, color=MUTED, linewidth=0.7)
+    hi = float(np.nanmax(d + 2 * se))
+    right = max(hi * 1.06, 2.5 * SMALL_DIFFERENCE)
+    left = min(-0.04 * right, float(np.nanmin(d - 2 * se)) * 1.05)
+    ax.axvspan(left, SMALL_DIFFERENCE, color=BAND, zorder=0, linewidth=0)
+    ax.text(SMALL_DIFFERENCE, n - 0.35, f" under {SMALL_DIFFERENCE:g}: too small to matter", ha="left",
+            va="bottom", fontsize=7, color="#555555", clip_on=False)
+    for y in ypos:
+        ax.axhline(y, color="#ebe8e1", linewidth=0.5, zorder=0)
     for y, di, s, r in zip(ypos, d, se, rows):
-        if r["rank"] == 1:
-            ax.plot([0], [y], marker="D", color=INK, markersize=5, zorder=3)
-            continue
-        ax.hlines(y, di - 2 * s, di + 2 * s, color=POSTERIOR, linewidth=1.0)
-        ax.hlines(y, di - s, di + s, color=POSTERIOR, linewidth=3.2)
-        ax.plot([di], [y], marker="o", color=INK, markersize=4.2, zorder=3)
-    ax.set_yticks(ypos, [plain(f"{r.get('shared_rank') or r['rank']}. {r['label']}", 60) for r in rows])
+        kind = standing_of(r)
+        marker, face = STANDING_MARK.get(kind, STANDING_MARK["uncertain"])
+        words = STANDING_WORDS.get(kind, kind)
+        if r["rank"] != 1:
+            ax.hlines(y, di - 2 * s, di + 2 * s, color=POSTERIOR, linewidth=1.1, zorder=2)
+            ax.hlines(y, di - s, di + s, color=POSTERIOR, linewidth=2.6, zorder=2)
+            di = float(di)
+        else:
+            di = 0.0
+        ax.plot([di], [y], marker=marker, markerfacecolor=face, markeredgecolor=INK, markeredgewidth=0.8,
+                markersize=5.2, linestyle="none", zorder=4)
+        ax.annotate(words, xy=(1, y), xycoords=("axes fraction", "data"), xytext=(6, 0),
+                    textcoords="offset points", ha="left", va="center", fontsize=7.2,
+                    color=LIMIT if kind == "worse" else INK, fontweight="bold" if kind == "best" else "normal")
+    ax.set_yticks(ypos, [_wrap(f"{r.get('shared_rank') or r['rank']}. {r['label']}", 30, 2) for r in rows])
     ax.tick_params(axis="y", length=0, labelsize=7.5)
-    ax.spines["left"].set_visible(False)
-    ax.set_xlim(min(-0.05 * right, float(np.nanmin(d - 2 * se)) * 1.05), right)
+    for side in ("left", "right", "top"):
+        ax.spines[side].set_visible(False)
+    ax.set_xlim(left, right)
     ax.set_ylim(-0.6, n - 0.4)
-    ax.set_xlabel("elpd behind the best candidate (0 = best; bars: ±1 SE thick, ±2 SE thin)")
-    return render(fig, "elpd of each ranked candidate behind the best, with standard errors of the difference")
+    ax.set_xlabel("elpd behind the best (line: ±2 SE of the difference, heavier: ±1 SE)")
+    return render(fig, "how far each ranked candidate predicts behind the best, with its standing")
 
 
 # --- 2. prior predictive trial ----------------------------------------------------------
@@ -427,139 +423,171 @@ def _wrap(text: str, width: int = 20, lines: int = 2) -> str:
     return plain("\n".join(parts), 200)
 
 
-def _statistic_grid(cands, stats, observed, draws_of, color, annotate, flag_of=None):
-    """Rows: candidates; columns: statistics on one x-range per column."""
-    nrow, ncol = len(cands), len(stats)
-    width = min(1.7 + 1.1 * ncol, 12.0)
-    height = 0.62 + 0.8 * nrow
+# --- predictive checks: intervals against the observed value -----------------------------
+#
+# One grammar for the checks: every replicated (or prior) quantity is a horizontal or
+# vertical interval, thin over its central 95 % and thick over its central 50 %, with a
+# white dot at its median; the observed value is a thick solid ink line through the
+# intervals. A row that misses carries a ◆, bold text and an orange marker.
+
+def _interval(ax, pos: float, lo: float, lo50: float, med: float, hi50: float, hi: float, color: str,
+              vertical: bool = False, flagged: bool = False) -> None:
+    """One interval: thin 95 %, thick 50 %, a white median dot (orange when flagged)."""
+    line = ax.vlines if vertical else ax.hlines
+    line(pos, lo, hi, color=color, linewidth=1.1, zorder=2)
+    line(pos, lo50, hi50, color=color, linewidth=4.0, zorder=2)
+    xy = ([pos], [med]) if vertical else ([med], [pos])
+    ax.plot(*xy, marker="D" if flagged else "o", markersize=5.2 if flagged else 4.0,
+            markerfacecolor=FLAG if flagged else "white", markeredgecolor=INK if flagged else color,
+            markeredgewidth=0.9, zorder=4, linestyle="none")
+
+
+def _spread(d: np.ndarray) -> tuple[float, ...] | None:
+    d = np.asarray(d, dtype=float)
+    d = d[np.isfinite(d)]
+    if d.size == 0:
+        return None
+    return tuple(float(v) for v in np.quantile(d, [0.025, 0.25, 0.5, 0.75, 0.975]))
+
+
+def _statistic_panels(cands, stats, observed, draws_of, color, note_of, flag_of=None, points_of=None,
+                      ncols: int = 2):
+    """One panel per statistic; rows: candidates. Each candidate's interval of the
+    statistic, the observed value as a thick ink line, a note (p-value or share inside
+    the bounds) at the right of each row, bounds as dashed vermillion lines."""
+    nc = len(cands)
+    nrow, ncol = _grid_shape(len(stats), ncols)
+    panel_h = 0.3 + 0.27 * nc
+    width = 8.0 if ncol > 1 else 5.4
+    left, right = 1.3, 0.8      # candidate labels; p-values or shares at the right of each row
+    height = 0.25 + (panel_h + 0.55) * nrow
     fig = _new(width, height)
-    fig.subplots_adjust(left=1.35 / width, right=0.99, top=1 - 0.42 / height, bottom=0.36 / height,
-                        wspace=0.16, hspace=0.5)
+    fig.subplots_adjust(left=left / width, right=1 - right / width, top=1 - 0.34 / height, bottom=0.42 / height,
+                        wspace=right / ((width - left - right * ncol) / ncol), hspace=0.55 / panel_h)
     axes = fig.subplots(nrow, ncol, squeeze=False)
-    for j, stat in enumerate(stats):
-        extra = annotate.points(stat) if hasattr(annotate, "points") else ()
-        scale = shared_scale([draws_of(c, stat) for _, c in cands], observed.get(stat, np.nan), extra,
-                             q=annotate.q)
-        for i, (label, c) in enumerate(cands):
-            ax = axes[i, j]
-            ax.set_yticks([])
-            ax.spines["left"].set_visible(False)
-            if scale is None:
-                ax.set_xticks([])
-                continue
-            below, above = _histogram(ax, draws_of(c, stat), scale, color)
-            _set_scale(ax, scale)
-            annotate(ax, c, stat, scale)
-            obs = observed.get(stat, np.nan)
-            if np.isfinite(obs):
-                ax.axvline(obs, color=INK, linewidth=2.0)
-            _beyond(ax, below, above)
-            if flag_of is not None and flag_of(c, stat):
-                _flag_frame(ax)
-            if i < nrow - 1:
-                ax.tick_params(axis="x", labelbottom=False)
-            else:
-                ax.tick_params(axis="x", pad=10)
-        title = describe(stat)
-        axes[0, j].set_title(_wrap(title, 18, 1) + ("\n" + scale.note if scale is not None and scale.note else "\n"),
-                             fontsize=7)
-    for i, (label, _) in enumerate(cands):
-        axes[i, 0].annotate(_wrap(label, 17, 3), xy=(0, 0.5), xycoords="axes fraction", xytext=(-6, 0),
-                            textcoords="offset points", ha="right", va="center", fontsize=7.3, color=INK)
+    ypos = np.arange(nc)[::-1].astype(float)
+    for k, ax in enumerate(axes.flat):
+        if k >= len(stats):
+            ax.set_visible(False)
+            continue
+        stat = stats[k]
+        obs = observed.get(stat, np.nan)
+        points = tuple(points_of(stat)) if points_of else ()
+        scale = shared_scale([draws_of(c, stat) for _, c in cands], obs, points, q=(0.025, 0.975))
+        ax.set_ylim(-0.7, nc - 0.3)
+        ax.spines["left"].set_visible(False)
+        ax.tick_params(axis="y", length=0)
+        ax.set_yticks(ypos, [_wrap(label, 19, 2) for label, _ in cands] if k % ncol == 0 else [""] * nc)
+        ax.tick_params(axis="y", labelsize=7.2)
+        ax.set_title(plain(describe(stat), 40) + (f"  ({scale.note})" if scale is not None and scale.note else ""))
+        if scale is None:
+            ax.set_xticks([])
+            continue
+        _set_scale(ax, scale)
+        for lo in points:
+            if np.isfinite(lo) and scale.lo < lo < scale.hi:
+                ax.axvline(lo, color=LIMIT, linestyle=(0, (3, 2)), linewidth=1.1, zorder=1)
+        for y, (label, c) in zip(ypos, cands):
+            s = _spread(draws_of(c, stat))
+            flagged = bool(flag_of(c, stat)) if flag_of else False
+            if s is not None:
+                clipped = [min(max(v, scale.lo), scale.hi) for v in s]
+                _interval(ax, y, *clipped, color=color, flagged=flagged)
+                d = np.asarray(draws_of(c, stat), dtype=float)
+                d = d[~np.isnan(d)]
+                for share, x, text, ha in ((np.mean(d < scale.lo), scale.lo, "◂ {}", "left"),
+                                           (np.mean(d > scale.hi), scale.hi, "{} ▸", "right")):
+                    if share > 0:   # the share of draws beyond the range shown
+                        pct = f"{100 * share:.0f} %" if share >= 0.01 else "<1 %"
+                        ax.text(x, y + 0.2, text.format(pct), fontsize=7, ha=ha, va="bottom", color="#555555")
+            note = note_of(c, stat)
+            if note:
+                ax.annotate(("◆ " if flagged else "") + note, xy=(1, y), xycoords=("axes fraction", "data"),
+                            xytext=(4, 0), textcoords="offset points", ha="left", va="center", fontsize=7,
+                            fontweight="bold" if flagged else "normal", color=INK)
+        if np.isfinite(obs):
+            ax.axvline(obs, color=INK, linewidth=2.2, zorder=3)
     return fig
-
-
-class _PriorMarks:
-    """Bounds and the share inside them, for the prior grid."""
-
-    q = (0.05, 0.95)
-
-    def __init__(self, bounds):
-        self.bounds = bounds
-
-    def points(self, stat):
-        return tuple(self.bounds.get(stat, ()))
-
-    def __call__(self, ax, p, stat, scale):
-        b = p.bounds.get(stat)
-        if not b:
-            return
-        lo, hi = b
-        if np.isfinite(lo) and lo > scale.lo:
-            ax.axvspan(scale.lo, lo, facecolor="none", edgecolor=LIMIT, hatch="////", linewidth=0, alpha=0.35)
-            ax.axvline(lo, color=LIMIT, linestyle=(0, (3, 2)), linewidth=1.1)
-        if np.isfinite(hi) and hi < scale.hi:
-            ax.axvspan(hi, scale.hi, facecolor="none", edgecolor=LIMIT, hatch="////", linewidth=0, alpha=0.35)
-            ax.axvline(hi, color=LIMIT, linestyle=(0, (3, 2)), linewidth=1.1)
-        inside = p.inside_each.get(stat)
-        if inside is not None:
-            ax.text(0.5, -0.03, f"{100 * inside:.0f} % inside", transform=ax.transAxes, ha="center", va="top",
-                    fontsize=7, color=LIMIT, fontweight="bold",
-                    bbox=dict(facecolor="white", edgecolor="none", pad=0.4))
 
 
 @_styled
 def prior_grid(cands: Sequence[tuple[str, object]], statistics: Sequence[str],
                observed: dict[str, float]) -> Rendered | None:
-    """Rows: candidates; columns: test statistics. The prior distribution of each
-    statistic (fill), the observed value (thick ink line) and the plausibility bounds
-    (dashed vermillion, the implausible side hatched). Each column has one x-range."""
+    """One panel per test statistic; rows: candidates. The prior distribution of the
+    statistic as an interval (purple: 95 % thin, 50 % thick, white dot at the median),
+    the observed value (thick ink line), the plausibility bounds (dashed vermillion) and
+    the share of prior datasets inside them at the right of each row."""
     cands = [(label, p) for label, p in cands if p is not None]
     if not cands or not statistics:
         return None
-    marks = _PriorMarks(cands[0][1].bounds)
-    fig = _statistic_grid(cands, list(statistics), observed,
-                          lambda p, stat: p.stat_draws.get(stat, np.zeros(0)), PRIOR, marks)
-    return render(fig, "prior distribution of each test statistic per candidate, with the observed value and bounds")
+    bounds = cands[0][1].bounds
+
+    def note(p, stat):
+        inside = p.inside_each.get(stat)
+        return f"{100 * inside:.0f} % in" if inside is not None else ""
+
+    fig = _statistic_panels(cands, list(statistics), observed,
+                            lambda p, stat: p.stat_draws.get(stat, np.zeros(0)), PRIOR, note,
+                            points_of=lambda stat: bounds.get(stat, ()))
+    return render(fig, "prior interval of each test statistic per candidate, with the observed value and bounds")
 
 
 # --- 3. Pareto k ----------------------------------------------------------------------
 
+#: Observations shown per candidate in the Pareto k view.
+WORST_SHOWN = 6
+
+
 @_styled
-def pareto_k_grid(cands: Sequence[tuple[str, object]]) -> Rendered | None:
-    """Rows: candidates. Pareto k of every observation, the threshold (dashed
-    vermillion), observations above it (orange triangles) and those refitted exactly
-    (black rings)."""
-    cands = [(label, o) for label, o in cands if o is not None]
+def pareto_k_worst(cands: Sequence[tuple[str, object, Sequence[int]]]) -> Rendered | None:
+    """One small panel per candidate: its observations with the largest Pareto k, largest
+    at the top, labelled by their row in the data file, as bars from 0 (blue up to the
+    threshold, orange and outlined above it, a ring at the end when the observation was
+    refitted exactly), with 0.5 dotted grey and the threshold dashed vermillion.
+    ``cands`` holds ``(label, out_of_sample, data_rows)``, ``data_rows`` giving each
+    observation's row in the data file."""
+    cands = [(label, o, rows) for label, o, rows in cands
+             if o is not None and np.isfinite(np.asarray(o.pareto_k, dtype=float)).any()]
     if not cands:
         return None
-    n_obs = max(len(o.pareto_k) for _, o in cands)
-    ks = np.concatenate([np.asarray(o.pareto_k, float) for _, o in cands])
-    ks = ks[np.isfinite(ks)]
-    thresholds = [o.k_threshold for _, o in cands]
-    ymin = min(-0.1, float(ks.min()) - 0.05) if ks.size else -0.1
-    ymax = max(1.0, float(ks.max()) + 0.08, max(thresholds) + 0.15) if ks.size else 1.0
-    width, height = 7.6, 0.5 + 0.72 * len(cands)
+    nrow, ncol = _grid_shape(len(cands), 5)
+    kmax = max(float(np.nanmax(np.asarray(o.pareto_k, dtype=float))) for _, o, _ in cands)
+    top = max(1.0, kmax + 0.08, max(o.k_threshold for _, o, _ in cands) + 0.1)
+    width, height = 10.2, 0.35 + 1.42 * nrow
     fig = _new(width, height)
-    fig.subplots_adjust(left=1.6 / width, right=0.985, top=1 - 0.15 / height, bottom=0.42 / height,
-                        hspace=0.3)
-    axes = fig.subplots(len(cands), 1, squeeze=False, sharex=True)[:, 0]
-    raster = n_obs > 300
-    for ax, (label, o) in zip(axes, cands):
+    fig.subplots_adjust(left=0.055, right=0.99, top=1 - 0.3 / height, bottom=0.42 / height,
+                        wspace=0.55, hspace=0.62)
+    axes = fig.subplots(nrow, ncol, squeeze=False)
+    for ax in axes.flat[len(cands):]:
+        ax.set_visible(False)
+    for ax, (label, o, rows) in zip(axes.flat, cands):
         k = np.asarray(o.pareto_k, dtype=float)
-        x = np.arange(1, k.size + 1)
-        high = k > o.k_threshold
-        ax.scatter(x[~high], k[~high], s=3 if n_obs > 300 else 6, color=POSTERIOR, alpha=0.7,
-                   linewidths=0, rasterized=raster)
+        order = [i for i in np.argsort(-np.nan_to_num(k, nan=-np.inf), kind="stable") if np.isfinite(k[i])]
+        order = order[:WORST_SHOWN]
+        y = np.arange(len(order))[::-1]
+        vals = k[order]
+        high = vals > o.k_threshold
+        ax.barh(y[~high], vals[~high], height=0.62, color=POSTERIOR, linewidth=0)
         if high.any():
-            ax.scatter(x[high], k[high], s=16, marker="^", color=FLAG, edgecolors=INK,
-                       linewidths=0.4, zorder=3)
-        if o.refitted:
-            idx = np.asarray(o.refitted, dtype=int)
-            ax.scatter(idx + 1, k[idx], s=55, facecolors="none", edgecolors=INK, linewidths=0.9, zorder=4)
-        ax.axhline(o.k_threshold, color=LIMIT, linestyle=(0, (4, 2)), linewidth=1.0)
-        ax.set_ylim(ymin, ymax)
-        ax.set_xlim(0, n_obs + 1)
-        ax.set_yticks([v for v in (0.0, 0.5, 1.0) if ymin <= v <= ymax])
-        if not np.isfinite(k).any():
-            ax.text(0.5, 0.5, "no Pareto k (elpd from held-out fits)", transform=ax.transAxes,
-                    ha="center", va="center", fontsize=7, color=MUTED)
-        note = f"threshold {o.k_threshold:.2f}; {int(high.sum())} above; {len(o.refitted)} refitted"
-        ax.text(0.995, 0.97, note, transform=ax.transAxes, ha="right", va="top", fontsize=7,
-                color="#444444", bbox=dict(facecolor=PANEL, edgecolor="none", pad=0.5))
-        _row_label(ax, label, offset=24)
-    axes[-1].set_xlabel("observation (row of the data after dropping rows without an outcome)")
-    return render(fig, "Pareto k of every observation per candidate, with the threshold")
+            ax.barh(y[high], vals[high], height=0.62, color=FLAG, edgecolor=INK, linewidth=0.7, hatch="///")
+        refitted = set(int(i) for i in o.refitted)
+        for yy, i, v in zip(y, order, vals):
+            if int(i) in refitted:
+                ax.plot([v], [yy], marker="o", markersize=6.5, markerfacecolor="none", markeredgecolor=INK,
+                        markeredgewidth=0.9, linestyle="none", zorder=4)
+        ax.axvline(0.5, color=MUTED, linestyle=(0, (1, 1.5)), linewidth=0.9)
+        ax.axvline(o.k_threshold, color=LIMIT, linestyle=(0, (4, 2)), linewidth=1.0)
+        ax.set_yticks(y, [f"row {int(rows[i])}" for i in order])
+        ax.tick_params(axis="y", length=0, labelsize=7)
+        ax.set_xlim(min(0.0, float(np.nanmin(vals)) - 0.05), top)
+        ax.set_ylim(-0.6, WORST_SHOWN - 0.4)
+        ax.set_xticks([v for v in (0.0, 0.5, 1.0) if v <= top])
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:g}"))
+        ax.spines["left"].set_visible(False)
+        ax.set_title(_wrap(label, 22, 2), fontsize=7.5)
+    fig.supxlabel("Pareto k of the worst observations (dotted: 0.5; dashed vermillion: the threshold)",
+                  fontsize=7.5, y=0.02)
+    return render(fig, "the observations with the largest Pareto k per candidate, by row of the data file")
 
 
 # --- 4. observed against replicated distributions ---------------------------------------------
@@ -594,9 +622,12 @@ def binned_density(rows: np.ndarray, lo: float, hi: float, bandwidth: float, m: 
 @_styled
 def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]], ncols: int = 3,
                            outcome: str = "outcome") -> Rendered | None:
-    """One panel per candidate, same axes: the density of each replicated dataset (thin,
-    light lines) and of the observed data (thick, solid ink), all smoothed with the same
-    kernel bandwidth (Silverman's rule on the observed data)."""
+    """One panel per candidate, same axes: at each point of the outcome, the central
+    95 % (light blue) and 50 % (darker blue) of the replicated datasets' densities, their
+    median (thin dashed blue) and the density of the observed data (thick, solid ink);
+    all smoothed with the same kernel bandwidth (Silverman's rule on the observed data).
+    Where the observed density leaves the 95 % envelope by more than 1 % of the panel's
+    height, a thick orange stroke runs along the bottom of the panel."""
     cands = [(label, r) for label, r in cands if r is not None and np.size(r)]
     if not cands:
         return None
@@ -606,12 +637,15 @@ def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]
     bw = silverman_bandwidth(y)
     grid, obs = binned_density(y, scale.lo, scale.hi, bw)
     obs = obs[0]
-    reps = [binned_density(r, scale.lo, scale.hi, bw)[1] for _, r in cands]
-    top = max(float(obs.max()), max(float(np.quantile(d.max(axis=1), 0.95)) for d in reps)) * 1.1
+    bands = []
+    for _, r in cands:
+        dens = binned_density(r, scale.lo, scale.hi, bw)[1]
+        bands.append(np.quantile(dens, [0.025, 0.25, 0.5, 0.75, 0.975], axis=0))
+    top = max(float(obs.max()), max(float(b[-1].max()) for b in bands)) * 1.1
     nrow, ncol = _grid_shape(len(cands), ncols)
-    width, height = 7.6, 0.5 + 1.6 * nrow
+    width, height = 7.6, 0.85 + 1.6 * nrow
     fig = _new(width, height)
-    fig.subplots_adjust(left=0.04, right=0.99, top=1 - 0.3 / height, bottom=0.52 / height,
+    fig.subplots_adjust(left=0.04, right=0.99, top=1 - 0.62 / height, bottom=0.52 / height,
                         wspace=0.1, hspace=0.45)
     axes = fig.subplots(nrow, ncol, squeeze=False)
     for k, ax in enumerate(axes.flat):
@@ -619,20 +653,34 @@ def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]
             ax.set_visible(False)
             continue
         label, r = cands[k]
-        segs = np.stack([np.broadcast_to(grid, reps[k].shape), reps[k]], axis=-1)
-        ax.add_collection(LineCollection(segs, colors=REPLICATE, linewidths=0.5, alpha=0.5,
-                                         rasterized=True, label=f"replicated datasets ({r.shape[0]})"))
+        lo, lo50, med, hi50, hi = bands[k]
+        ax.fill_between(grid, lo, hi, color=_tint(REPLICATE, 0.35), linewidth=0,
+                        label=f"replicated, 95 % ({r.shape[0]} datasets)")
+        ax.fill_between(grid, lo50, hi50, color=_tint(POSTERIOR, 0.45), linewidth=0, label="replicated, 50 %")
+        ax.plot(grid, med, color=POSTERIOR, linewidth=0.8, linestyle=(0, (3, 2)), label="replicated median")
         ax.plot(grid, obs, color=INK, linewidth=2.0, label="observed data")
+        # outside the envelope by more than 1 % of the panel's height (smaller gaps in the
+        # flat tails cannot be seen and would mark noise)
+        miss = (obs - hi > 0.01 * top) | (lo - obs > 0.01 * top)
+        if miss.any():
+            xs = np.where(miss, grid, np.nan)
+            ax.plot(xs, np.full_like(grid, 0.012 * top), color=FLAG, linewidth=3.2, solid_capstyle="butt",
+                    label="observed outside 95 %")
         ax.set_xlim(scale.lo, scale.hi)
         ax.set_ylim(0, top)
         ax.xaxis.set_major_locator(MaxNLocator(nbins=4))
         ax.set_yticks([])
         ax.spines["left"].set_visible(False)
-        ax.set_title(plain(label, 60))
-        if k == 0:
-            ax.legend(loc="upper right", fontsize=7, handlelength=1.8)
+        ax.set_title(plain(label, 60))   # a pointwise envelope: a short stroke is no verdict
+    handles = {}
+    for ax in fig.axes:
+        for h, text in zip(*ax.get_legend_handles_labels()):
+            handles.setdefault(text, h)
+    fig.legend(list(handles.values()), list(handles), loc="upper center", ncol=3, fontsize=7.5, handlelength=1.8,
+               bbox_to_anchor=(0.5, 1 - 0.02 / height))
     fig.supxlabel(plain(outcome, 60), fontsize=8.5, y=0.1 / height)
-    return render(fig, "density of replicated datasets and of the observed data per candidate")
+    return render(fig, "envelope of the replicated datasets' densities and the density of the observed data "
+                       "per candidate")
 
 
 # --- 5. test statistics ----------------------------------------------------------------
@@ -644,9 +692,7 @@ def _p_text(p: float) -> str:
 
 
 class _PosteriorMarks:
-    """The posterior predictive p-value under each panel."""
-
-    q = (0.005, 0.995)
+    """The posterior predictive p-value of each candidate and statistic, and its flag."""
 
     def __init__(self, extreme: float):
         self.extreme = extreme
@@ -659,41 +705,37 @@ class _PosteriorMarks:
     def p(c, stat) -> float:
         return next((r["p_value"] for r in c.rows if r["statistic"] == stat), np.nan)
 
-    def __call__(self, ax, c, stat, scale):
-        flagged = self.flagged(c, stat)
-        ax.text(0.5, -0.03, ("◆ " if flagged else "") + _p_text(self.p(c, stat)), transform=ax.transAxes,
-                ha="center", va="top", fontsize=7, fontweight="bold" if flagged else "normal", color=INK,
-                bbox=dict(facecolor="white", edgecolor="none", pad=0.4))
-
 
 @_styled
 def statistic_grid(cands: Sequence[tuple[str, object]], extreme: float) -> Rendered | None:
-    """Rows: candidates; columns: test statistics. The distribution of each statistic
-    over replicated datasets (blue fill) against the observed value (thick ink line),
-    with the posterior predictive p-value; panels beyond ``extreme`` are flagged."""
+    """One panel per test statistic; rows: candidates. The statistic over replicated
+    datasets as an interval (blue: 95 % thin, 50 % thick, white dot at the median), the
+    observed value as a thick ink line through the intervals, and the posterior
+    predictive p-value at the right of each row; a p-value beyond ``extreme`` gets a ◆,
+    bold text and an orange diamond at the median."""
     cands = [(label, c) for label, c in cands if c is not None]
     if not cands:
         return None
     stats = [row["statistic"] for row in cands[0][1].rows]
     observed = {row["statistic"]: row["observed"] for row in cands[0][1].rows}
     marks = _PosteriorMarks(extreme)
-    fig = _statistic_grid(cands, stats, observed, lambda c, stat: c.stat_draws.get(stat, np.zeros(0)),
-                          POSTERIOR, marks, flag_of=marks.flagged)
-    return render(fig, "distribution of each test statistic over replicated datasets per candidate, with the observed value")
+    fig = _statistic_panels(cands, stats, observed, lambda c, stat: c.stat_draws.get(stat, np.zeros(0)),
+                            POSTERIOR, lambda c, stat: _p_text(marks.p(c, stat)), flag_of=marks.flagged)
+    return render(fig, "interval of each test statistic over replicated datasets per candidate, "
+                       "with the observed value and the posterior predictive p-value")
 
 
 # --- 6. LOO-PIT ------------------------------------------------------------------------
 
-#: Asymptotic 95 % critical value of the one-sample Kolmogorov-Smirnov statistic times
-#: sqrt(n) (Kolmogorov's distribution; 1.358 for alpha = 0.05). Common practice, no source.
-KS_95 = 1.358
-
-
 @_styled
-def loo_pit_grid(cands: Sequence[tuple[str, object]], alpha: float = 0.01, ncols: int = 3) -> Rendered | None:
+def loo_pit_grid(cands: Sequence[tuple[str, object]], ncols: int = 2) -> Rendered | None:
     """One panel per candidate, same axes: the empirical distribution function of the
-    LOO-PIT values minus that of the uniform distribution (thick ink), with the 95 %
-    Kolmogorov-Smirnov band around zero (grey). Calibrated predictions stay in the band."""
+    LOO-PIT values minus the uniform one (thick ink), between the limits of the
+    simultaneous band of ``checks.uniformity_test`` (dashed vermillion; its level is the
+    run's pit_alpha). Evaluation points where the ECDF leaves the band carry orange
+    diamonds, and the panel's title says so with a ◆."""
+    from ..trials.checks import band_limits, leaves_band
+
     cands = [(label, c) for label, c in cands if c is not None and np.isfinite(c.loo_pit).any()]
     if not cands:
         return None
@@ -701,47 +743,131 @@ def loo_pit_grid(cands: Sequence[tuple[str, object]], alpha: float = 0.01, ncols
     for label, c in cands:
         pit = np.sort(np.asarray(c.loo_pit, dtype=float)[np.isfinite(c.loo_pit)])
         n = pit.size
+        test = c.loo_pit_test
+        prob = float(test.get("band", 0.99))
+        z, lower, upper = band_limits(n, prob)
         if n <= 400:   # exact steps: the ECDF jumps from (i - 1) / n to i / n at the i-th value
             u = np.r_[0.0, np.repeat(pit, 2), 1.0]
             f = np.r_[0.0, np.column_stack([np.arange(n) / n, np.arange(1, n + 1) / n]).ravel(), 1.0]
         else:          # on a fine grid: the steps are narrower than a line's width
             u = np.linspace(0.0, 1.0, 801)
             f = np.searchsorted(pit, u, side="right") / n
-        curves.append((label, c, u, f - u, KS_95 / np.sqrt(n)))
-    lim = max(max(float(np.abs(d).max()), b * 1.25) for *_, d, b in curves) * 1.12
+        at = np.searchsorted(pit, z, side="right") / n
+        out = (at > upper) | (at < lower)
+        curves.append((label, test, u, f - u, z, lower - z, upper - z, at - z, out, prob))
+    lim = max(max(float(np.abs(d).max()), float(np.abs(lo).max()), float(np.abs(hi).max()))
+              for _, _, _, d, _, lo, hi, *_ in curves) * 1.15
     nrow, ncol = _grid_shape(len(cands), ncols)
-    width, height = 7.6, 0.45 + 1.55 * nrow
+    width, height = 7.6, 0.85 + 1.7 * nrow
     fig = _new(width, height)
-    fig.subplots_adjust(left=0.08, right=0.99, top=1 - 0.3 / height, bottom=0.5 / height,
-                        wspace=0.12, hspace=0.45)
+    fig.subplots_adjust(left=0.1, right=0.99, top=1 - 0.72 / height, bottom=0.62 / height,
+                        wspace=0.1, hspace=0.72)
     axes = fig.subplots(nrow, ncol, squeeze=False)
     for k, ax in enumerate(axes.flat):
         if k >= len(curves):
             ax.set_visible(False)
             continue
-        label, c, u, d, b = curves[k]
-        ax.fill_between([0, 1], [-b, -b], [b, b], color=BAND, linewidth=0, label="95 % band (KS)")
+        label, test, u, d, z, lo, hi, at, out, prob = curves[k]
+        band = f"{100 * prob:g} % band"
+        ax.plot(z, lo, color=LIMIT, linestyle=(0, (3, 2)), linewidth=1.0, label=f"limits of the {band}")
+        ax.plot(z, hi, color=LIMIT, linestyle=(0, (3, 2)), linewidth=1.0)
         ax.axhline(0, color=MUTED, linewidth=0.6)
-        ax.plot(u, d, color=INK, linewidth=1.6, label="LOO-PIT")
+        ax.plot(u, d, color=INK, linewidth=1.7, label="LOO-PIT ECDF minus uniform")
+        if out.any():
+            ax.plot(z[out], at[out], linestyle="none", marker="D", markersize=3.6, markerfacecolor=FLAG,
+                    markeredgecolor=INK, markeredgewidth=0.5, zorder=4, label="outside the band")
         ax.set_xlim(0, 1)
         ax.set_ylim(-lim, lim)
-        ax.set_xticks([0, 0.5, 1])
+        ax.set_xticks([0, 0.25, 0.5, 0.75, 1], ["0", "0.25", "0.5", "0.75", "1"])
         ax.yaxis.set_major_locator(MaxNLocator(nbins=4, symmetric=True))
         if k % ncol:
             ax.tick_params(axis="y", labelleft=False)
-        p = c.loo_pit_test["p_value"]
-        flagged = np.isfinite(p) and p < alpha
-        ax.set_title(plain(label, 60))
-        ax.text(0.98, 0.04, ("◆ " if flagged else "") + "KS " + _p_text(p),
-                transform=ax.transAxes, ha="right", va="bottom", fontsize=7,
-                fontweight="bold" if flagged else "normal")
+        flagged = leaves_band(test)
+        state = f"leaves the {band}" if flagged else f"inside the {band}"
+        ax.set_title(("◆ " if flagged else "") + plain(label, 60) + "\n" + state,
+                     fontweight="bold" if flagged else "normal")
         if flagged:
             _flag_frame(ax)
-        if k == 0:
-            ax.legend(loc="upper left", fontsize=7, handlelength=1.5)
-    fig.supxlabel("LOO-PIT value", fontsize=7.5, y=0.12 / height)
+    handles = {}
+    for ax in fig.axes:
+        for h, text in zip(*ax.get_legend_handles_labels()):
+            handles.setdefault(text, h)
+    fig.legend(list(handles.values()), list(handles), loc="upper center", ncol=3, fontsize=7.5, handlelength=1.8,
+               bbox_to_anchor=(0.55, 1 - 0.04 / height))
+    fig.supxlabel("LOO-PIT value (low: the observation fell low in its leave-one-out predictive distribution)",
+                  fontsize=7.5, y=0.14 / height)
     fig.text(0.012, 0.5, "ECDF minus uniform", rotation=90, va="center", fontsize=7.5)
-    return render(fig, "LOO-PIT calibration per candidate: distribution function minus uniform with a 95 % band")
+    return render(fig, "LOO-PIT calibration per candidate: distribution function minus uniform between the "
+                       "limits of a simultaneous band")
+
+
+# --- 6b. quantiles ---------------------------------------------------------------------
+
+@_styled
+def quantile_grid(cands: Sequence[tuple[str, object]], outcome: str = "outcome", ncols: int = 2) -> Rendered | None:
+    """One panel per candidate: at each quantile level (5 %, ..., 95 %) the replicated
+    datasets' quantile minus the observed one, as a vertical interval (blue: 95 % thin,
+    50 % thick, white dot at the median); the observed quantiles are the thick ink line
+    at zero. A level whose 95 % interval misses zero gets an orange diamond; the panel's
+    title names the stretches missed. Panels share the vertical axis unless one
+    candidate's misses are more than four times another's, then each has its own."""
+    import textwrap
+
+    from ..trials.checks import quantile_misses
+
+    cands = [(label, c) for label, c in cands if c is not None and getattr(c, "quantiles", None)]
+    if not cands:
+        return None
+    spans = []
+    for _, c in cands:
+        v = [abs(q[key] - q["observed"]) for q in c.quantiles for key in ("lower", "upper")
+             if np.isfinite(q[key])]
+        spans.append(max(v) if v else 1.0)
+    shared = max(spans) <= 4 * max(min(spans), 1e-300)
+    nrow, ncol = _grid_shape(len(cands), ncols)
+    width, height = 7.6, 0.95 + 2.0 * nrow
+    fig = _new(width, height)
+    fig.subplots_adjust(left=0.1, right=0.99, top=1 - 0.72 / height, bottom=0.62 / height,
+                        wspace=0.1 if shared else 0.22, hspace=0.9)
+    axes = fig.subplots(nrow, ncol, squeeze=False)
+    for k, ax in enumerate(axes.flat):
+        if k >= len(cands):
+            ax.set_visible(False)
+            continue
+        label, c = cands[k]
+        rows = c.quantiles
+        lim = (max(spans) if shared else spans[k]) * 1.12 or 1.0
+        ax.axvspan(0, 12.5, color=BAND, linewidth=0, zorder=0)
+        ax.axvspan(87.5, 100, color=BAND, linewidth=0, zorder=0)
+        for x, text in ((6.25, "low tail"), (50, "body"), (93.75, "high tail")):
+            ax.text(x, 0.97, text, transform=ax.get_xaxis_transform(), ha="center", va="top", fontsize=7,
+                    color="#555555")
+        ax.axhline(0, color=INK, linewidth=2.2, zorder=3, label="observed quantile")
+        for q in rows:
+            if not np.isfinite(q["median"]):
+                continue
+            o = q["observed"]
+            _interval(ax, 100 * q["level"], q["lower"] - o, q["lower50"] - o, q["median"] - o, q["upper50"] - o,
+                      q["upper"] - o, POSTERIOR, vertical=True, flagged=bool(q["miss"]))
+        ax.set_xlim(0, 100)
+        ax.set_ylim(-lim, lim * 1.3)   # room for the zone names above the intervals
+        ax.set_xticks([5, 25, 50, 75, 95], ["5", "25", "50", "75", "95"])
+        ax.yaxis.set_major_locator(MaxNLocator(nbins=4, symmetric=True))
+        if shared and k % ncol:
+            ax.tick_params(axis="y", labelleft=False)
+        misses = quantile_misses(rows)
+        short = "; ".join(m.replace(" (replicates ", " ").replace(")", "") for m in misses)
+        ax.set_title(plain(label, 50) + "\n" + ("\n".join(textwrap.wrap("outside: " + short, 58)) if misses
+                                                 else "every level inside"), fontsize=7.5)
+        if k == 0:
+            ax.plot([], [], color=POSTERIOR, linewidth=4.0, label="replicated minus observed: 50 %, 95 %")
+            ax.plot([], [], linestyle="none", marker="D", markerfacecolor=FLAG, markeredgecolor=INK,
+                    label="observed outside the 95 %")
+            fig.legend(*ax.get_legend_handles_labels(), loc="upper center", ncol=3, fontsize=7.5,
+                       handlelength=1.8, bbox_to_anchor=(0.55, 1 - 0.04 / height))
+    fig.supxlabel("quantile level (%)", fontsize=7.5, y=0.14 / height)
+    fig.text(0.012, 0.5, plain(f"replicated minus observed ({outcome})", 60), rotation=90, va="center", fontsize=7.5)
+    return render(fig, "replicated minus observed quantile at each level from 5 % to 95 % per candidate")
 
 
 # --- 7. lineup -------------------------------------------------------------------------

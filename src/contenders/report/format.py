@@ -267,3 +267,36 @@ def raw(x: Any) -> Any:
             return "inf" if x > 0 else "-inf"
         return repr(x)
     return x
+
+
+def miss(size: Any, share_sd: Any = None, unit: str = "outcome") -> str:
+    """The miss of a test statistic (observed minus the nearest end of the replicated 90 %
+    interval, trials/statistics.py): "inside" for 0; signed, with three significant
+    digits, and for statistics in the outcome's units the share of the observed SD
+    ("+12.3 (0.15 SD)"); a share statistic (``unit`` "share") in percentage points."""
+    if _is_missing(size):
+        return MISSING
+    size = float(size)
+    if size == 0:
+        return "inside"
+    sign = "+" if size > 0 else ""
+    if unit == "share":
+        return sign + num(100 * size, 2) + " % points"
+    text = sign + num(size)
+    if unit == "outcome" and not _is_missing(share_sd):
+        text += f" ({num(abs(float(share_sd)), 2)} SD)"
+    return text
+
+
+def miss_words(size: Any, share_sd: Any = None, unit: str = "outcome") -> str:
+    """The miss in words for a sentence: "2.1 or 0.01 SD above the replicated 90 %
+    interval", "1.2 % points below ..."; empty when the size is unknown."""
+    if _is_missing(size):
+        return ""
+    size = float(size)
+    if size == 0:
+        return "inside the replicated 90 % interval"
+    amount = num(100 * abs(size), 2) + " % points" if unit == "share" else num(abs(size))
+    if unit == "outcome" and not _is_missing(share_sd):
+        amount += f" or {num(abs(float(share_sd)), 2)} SD"
+    return f"{amount} {'above' if size > 0 else 'below'} the replicated 90 % interval"

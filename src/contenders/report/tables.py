@@ -8,7 +8,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from ..trials.statistics import describe
+from ..trials.statistics import READINGS, describe, named_misses, reading, unit_of
 from . import format as fmt
 
 STATUS_TEXT = {
@@ -26,8 +26,8 @@ NEXT_STEP = {
 }
 
 
-#: Posterior predictive p-values outside this range are marked as worth a look (◇);
-#: the range of the checks' own ``extreme`` list (trials/checks.py).
+#: Posterior predictive p-values outside this range are marked as worth a look (◇), a
+#: milder mark than ``ppp_extreme``'s ◆ (common practice, no source).
 MILD = (0.025, 0.975)
 
 
@@ -36,6 +36,7 @@ class Cell:
     text: str
     cls: str = ""            # num | flag | watch | muted | good | wrap
     title: str = ""          # hover text, for example the full value
+    sub: str = ""            # a second, smaller line (the miss under a p-value)
 
 
 @dataclass
@@ -79,16 +80,47 @@ def p_cell(p: float, strong: float, mild: tuple[float, float] = MILD) -> Cell:
     return n(text)
 
 
-def misfits(checks, strong: float, pit_alpha: float = 0.01) -> list[str]:
-    """Plain names of the checks a candidate fails (p beyond ``strong``, LOO-PIT test)."""
+def misfits(checks, strong: float, relevant=None) -> list[str]:
+    """Plain names of the checks a candidate fails (p beyond ``strong``, LOO-PIT ECDF
+    outside its band, tested at the run's ``pit_alpha``); with relevant sizes, as the
+    verdict names them (``statistics.named_misses``)."""
     if checks is None:
         return []
-    out = [describe(r["statistic"]) for r in checks.rows
-           if np.isfinite(r["p_value"]) and (r["p_value"] < strong or r["p_value"] > 1 - strong)]
-    p = checks.loo_pit_test.get("p_value", np.nan)
-    if np.isfinite(p) and p < pit_alpha:
+    out = [describe(r["statistic"]) for r in named_misses(checks.rows, strong, relevant)]
+    from ..trials.checks import leaves_band
+
+    if leaves_band(checks.loo_pit_test):
         out.append("LOO-PIT calibration")
     return out
+
+
+#: The reading of a statistic as a table shows it: a mark and words (statistics.READINGS).
+READING_CELL = {
+    "fits": ("", ""),
+    "detectable": ("◆ ", "flag"),
+    "small": ("◇ ", "watch"),
+    "relevant": ("◆ ", "flag"),
+    "possibly_relevant": ("◇ ", "watch"),
+    "unknown": ("", "muted"),
+}
+
+
+def reading_cell(row: dict, strong: float, relevant=None) -> Cell:
+    """The reading of one check row (p, miss, relevant size) as a marked cell."""
+    size = (relevant or {}).get(row["statistic"])
+    code = reading(row.get("p_value", np.nan), row.get("miss", np.nan), size, strong)
+    mark, cls = READING_CELL[code]
+    text = READINGS[code]
+    if size is not None and code in ("small", "relevant", "possibly_relevant"):
+        text += f" ({fmt.miss(size, None, unit_of(row['statistic'])).lstrip('+')})"
+    return Cell(mark + text, ("wrap " + cls).strip())
+
+
+def miss_cell(row: dict) -> Cell:
+    """The miss beyond the replicated 90 % interval, signed, with its share of the SD."""
+    size = row.get("miss", np.nan)
+    return n(fmt.miss(size, row.get("miss_share_sd"), unit_of(row["statistic"])),
+             "muted" if size == 0 else "")
 
 
 def pit_reading(pit: np.ndarray) -> str:

@@ -16,14 +16,18 @@ The diagnostic itself is ArviZ's (:func:`arviz.psens`); this module supplies the
 prior (the program's ``lprior`` generated quantity) and the summed ``log_lik``, adds
 the Pareto k of the importance weights (the paper's reliability check: above 0.7 the
 weights are not trustworthy) and reads each parameter's pair of values as the paper
-does:
+does, in this project's words (``_reading``, :data:`READINGS`):
 
-* prior and likelihood sensitivity both at least 0.05: the prior and the data pull
-  the parameter in different directions (possible prior-data conflict);
-* prior sensitivity at least 0.05, likelihood sensitivity below: the prior decides
-  the parameter and the data say little about it (strong prior, weak likelihood).
-
-The paper gives no reading for a parameter insensitive to both; none is made here.
+* ``pulled_both_ways``: prior and likelihood sensitivity both at least 0.05; the prior
+  and the data pull the parameter in different directions (the paper's sign of a
+  conflict between them);
+* ``set_by_prior``: prior sensitivity at least 0.05, likelihood sensitivity below; the
+  prior sets the parameter and the data add little (the paper's strong prior with a
+  weak likelihood);
+* ``led_by_data``: likelihood sensitivity at least 0.05, prior sensitivity below; the
+  data decide the parameter, the case the paper calls unproblematic;
+* ``steady``: both below 0.05; the posterior barely moves either way (the paper makes
+  no reading of this; here it only says that nothing needs doing).
 """
 
 from __future__ import annotations
@@ -45,11 +49,21 @@ DELTA = 0.01
 #: Pareto k above this: the importance weights, and so the diagnostic, are unreliable.
 K_RELIABLE = 0.7
 
+#: Every reading code with the sentence the report shows, which says what to do.
 READINGS = {
-    "conflict": "prior and data disagree: possible prior-data conflict",
-    "prior_dominates": "the prior decides it; the data say little (weak likelihood)",
-    "": "",
+    "pulled_both_ways": "Pulled both ways: the prior and the data push it in different directions. "
+                        "Check that the prior's centre and width say what you meant; if they do, the data "
+                        "disagree with it, so show the result under a wider prior as well.",
+    "set_by_prior": "Set by the prior: the data add little about it. Keep the prior only if it was chosen "
+                    "on purpose and say so when reporting; otherwise widen it, or collect data that "
+                    "inform this parameter.",
+    "led_by_data": "Led by the data: the prior hardly matters. Nothing to do.",
+    "steady": "Steady: barely moves when either the prior or the data are scaled. Nothing to do.",
+    "": "Not computed (a non-finite value). Nothing to read.",
 }
+
+#: The readings that ask the user to act.
+ACT_ON = ("pulled_both_ways", "set_by_prior")
 
 
 @dataclass
@@ -77,7 +91,7 @@ class Sensitivity:
 
     @property
     def flagged(self) -> list[dict]:
-        return [row for row in self.rows if row["reading"] in ("conflict", "prior_dominates")]
+        return [row for row in self.rows if row["reading"] in ACT_ON]
 
 
 def power_scale_log_weights(log_component: np.ndarray, alpha: float) -> tuple[np.ndarray, float]:
@@ -104,13 +118,12 @@ def power_scaled_mean(values: np.ndarray, log_component: np.ndarray, alpha: floa
 
 
 def _reading(prior: float, likelihood: float, threshold: float) -> str:
+    """The reading code (a key of :data:`READINGS`) of one parameter's pair of values."""
     if not (np.isfinite(prior) and np.isfinite(likelihood)):
         return ""
-    if prior >= threshold and likelihood >= threshold:
-        return "conflict"
     if prior >= threshold:
-        return "prior_dominates"
-    return ""
+        return "pulled_both_ways" if likelihood >= threshold else "set_by_prior"
+    return "led_by_data" if likelihood >= threshold else "steady"
 
 
 def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
@@ -187,5 +200,6 @@ def summary(s: Sensitivity | None) -> dict | None:
                         "prior_chain_range": list(r["prior_range"]),
                         "likelihood_chain_range": list(r["likelihood_range"]),
                         "near_threshold": r["near_threshold"],
-                        "reading": r["reading"] or None} for r in s.rows],
+                        "reading": r["reading"] or None,
+                        "what_to_do": READINGS[r["reading"]] if r["reading"] else None} for r in s.rows],
     }
