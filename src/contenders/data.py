@@ -63,7 +63,6 @@ class Design:
     #: header (rows without a usable outcome are dropped, so these can skip numbers)
     data_rows: np.ndarray | None = field(default=None, repr=False, compare=False)
 
-
     @property
     def censoring(self) -> np.ndarray:
         return np.zeros(self.N, dtype=np.int64) if self.cens is None else self.cens
