@@ -1,6 +1,6 @@
 """Censoring and truncation: the data side (config, flags, validation, the five contract
-inputs, skipping a program that lacks them). The Stan-side checks against SciPy are not
-here yet (see the README's censoring section)."""
+inputs, skipping a program that lacks them, the report's note). The Stan-side checks
+against SciPy are in tests/test_censoring_families.py and tests/test_censored_fit.py."""
 import subprocess
 import sys
 from pathlib import Path
@@ -103,3 +103,17 @@ def test_a_left_censoring_point_outside_a_positive_support_skips_that_candidate(
     funnel.support = "positive"
     check_against_data(funnel, d)
     assert funnel.skip_reason == "1 outcome value(s) are zero or negative; this candidate needs y > 0"
+
+
+def test_the_report_says_how_censored_and_truncated_values_enter_the_checks():
+    from contenders.report import censoring_note
+
+    t = table()
+    assert censoring_note(build_design(t, "y", ["x"])) == ""
+    d = build_design(t, "y", ["x"], censored="c", truncate=(0.0, None))
+    n_right, n_left = int((t["c"] == 1).sum()), int((t["c"] == -1).sum())
+    note = censoring_note(d)
+    assert f"Of the {len(t)} observations, {n_right} right-censored" in note
+    assert f"and {n_left} left-censored" in note
+    assert "censored at the same point" in note and "drawn uncensored" in note
+    assert "truncated to values above 0" in note

@@ -1,7 +1,6 @@
-"""Censored and truncated likelihoods of five built-ins, checked against SciPy.
+"""Censored and truncated likelihoods of the ten built-ins, checked against SciPy.
 
-Programs: shifted_lognormal, lognormal_contaminated, exgaussian, skew_normal,
-inverse_gaussian. Each declares the censoring / truncation inputs of the data interface
+Each built-in declares the censoring / truncation inputs of the data interface
 (cens, has_lower_limit, lower_limit, has_upper_limit, upper_limit); the data are built
 here and the programs are evaluated at fixed parameter values (one fixed_param draw), so
 every check is deterministic.
@@ -15,7 +14,8 @@ cens 1 and max(draw, y) for cens -1.
 
 Source of every reference value: the SciPy reference documentation of
 scipy.stats.rv_continuous (methods logpdf, logcdf, logsf, cdf, sf) and of each
-distribution (scipy.stats.lognorm, uniform, exponnorm, skewnorm, invgauss), with the
+distribution (scipy.stats.norm, lognorm, gamma, weibull_min, t, uniform, exponnorm,
+skewnorm, invgauss), with the
 parameter mappings stated in tests/test_builtins_reference.py (its ``reference``).
 """
 
@@ -28,15 +28,16 @@ from scipy import stats
 from contenders.candidates import inputs_for
 from test_builtins_reference import FAMILY_PARAMS, TRUE_VALUES, _init, _plain_design, reference
 
-FIVE = ["shifted_lognormal", "lognormal_contaminated", "exgaussian", "skew_normal", "inverse_gaussian"]
+TEN = ["normal", "lognormal", "gamma", "weibull", "student_t",
+        "shifted_lognormal", "lognormal_contaminated", "exgaussian", "skew_normal", "inverse_gaussian"]
 CENS_INPUTS = ("cens", "has_lower_limit", "lower_limit", "has_upper_limit", "upper_limit")
 
 
 @pytest.fixture(scope="module")
-def five(engine, builtins):
-    """The five programs, each compiled once (the compiled-program cache is shared)."""
+def ten(engine, builtins):
+    """The ten programs, each compiled once (the compiled-program cache is shared)."""
     out = {}
-    for cid in FIVE:
+    for cid in TEN:
         assert not builtins[cid].problems, builtins[cid].problems
         out[cid] = engine.compile(builtins[cid])
     return out
@@ -145,23 +146,23 @@ def _evaluate(engine, program, c, cid, y, cens, lower=None, upper=None, values=N
 PATTERN = np.array([0, 1, -1] * 4)
 
 
-@pytest.mark.parametrize("cid", FIVE)
-def test_uncensored_without_window_is_unchanged(cid, engine, builtins, five):
+@pytest.mark.parametrize("cid", TEN)
+def test_uncensored_without_window_is_unchanged(cid, engine, builtins, ten):
     """With every cens 0 and no window, log_lik is the plain log density (the formula
     of tests/test_builtins_reference.py) to 1e-10."""
     y = _points(cid, TRUE_VALUES[cid])
-    design, log_lik, y_rep = _evaluate(engine, five[cid], builtins[cid], cid, y, np.zeros(12))
+    design, log_lik, y_rep = _evaluate(engine, ten[cid], builtins[cid], cid, y, np.zeros(12))
     expected = reference(cid, TRUE_VALUES[cid]["intercept"], TRUE_VALUES[cid], design.y).logpdf(design.y)
     np.testing.assert_allclose(log_lik, expected, rtol=1e-10, atol=0)
     assert np.all(np.isfinite(y_rep))
 
 
-@pytest.mark.parametrize("cid", FIVE)
-def test_censored_log_lik_matches_scipy(cid, engine, builtins, five):
+@pytest.mark.parametrize("cid", TEN)
+def test_censored_log_lik_matches_scipy(cid, engine, builtins, ten):
     """Right-censored (log sf) and left-censored (log cdf) observations, no window."""
     values = TRUE_VALUES[cid]
     y = _points(cid, values)
-    design, log_lik, _ = _evaluate(engine, five[cid], builtins[cid], cid, y, PATTERN)
+    design, log_lik, _ = _evaluate(engine, ten[cid], builtins[cid], cid, y, PATTERN)
     dist = scipy_dist(cid, values, design.y)
     # Source: SciPy docs, scipy.stats.rv_continuous.logsf / logcdf / logpdf
     np.testing.assert_allclose(log_lik, expected_log_lik(dist, design.y, PATTERN), rtol=1e-8, atol=1e-12)
@@ -170,8 +171,8 @@ def test_censored_log_lik_matches_scipy(cid, engine, builtins, five):
 
 
 @pytest.mark.parametrize("window", ["both", "lower", "upper", "lower below support"])
-@pytest.mark.parametrize("cid", FIVE)
-def test_truncated_log_lik_matches_scipy(cid, window, engine, builtins, five):
+@pytest.mark.parametrize("cid", TEN)
+def test_truncated_log_lik_matches_scipy(cid, window, engine, builtins, ten):
     """Truncated observations (logpdf - log(cdf(U) - cdf(L))) and right- / left-censored
     and truncated ones (log(cdf(U) - cdf(y)) - log W, log(cdf(y) - cdf(L)) - log W)."""
     values = TRUE_VALUES[cid]
@@ -184,8 +185,9 @@ def test_truncated_log_lik_matches_scipy(cid, window, engine, builtins, five):
     elif window == "lower below support":
         # positive families: a lower limit at or below the support's lower end (the shift,
         # or 0) has F(L) = 0; real families: a limit far below, F(L) ~ 0
-        lo = 0.0 if cid in ("shifted_lognormal", "lognormal_contaminated", "inverse_gaussian") else y.min() - 50
-    design, log_lik, y_rep = _evaluate(engine, five[cid], builtins[cid], cid, y, PATTERN, lo, hi)
+        lo = 0.0 if cid in ("lognormal", "gamma", "weibull", "shifted_lognormal", "lognormal_contaminated",
+                            "inverse_gaussian") else y.min() - 50
+    design, log_lik, y_rep = _evaluate(engine, ten[cid], builtins[cid], cid, y, PATTERN, lo, hi)
     dist = scipy_dist(cid, values, design.y)
     expected = expected_log_lik(dist, design.y, PATTERN, lo, hi)
     # Source: SciPy docs, scipy.stats.rv_continuous.logpdf / cdf (truncated density
@@ -217,12 +219,12 @@ def _rep_case(cid, values):
     return y, cens, lo, hi
 
 
-@pytest.mark.parametrize("cid", FIVE)
-def test_y_rep_truncated_and_censored_like_the_data(cid, engine, builtins, five):
+@pytest.mark.parametrize("cid", TEN)
+def test_y_rep_truncated_and_censored_like_the_data(cid, engine, builtins, ten):
     values = TRUE_VALUES[cid]
     y, cens, lo, hi = _rep_case(cid, values)
-    design, log_lik, y_rep = _evaluate(engine, five[cid], builtins[cid], cid, y, cens, lo, hi,
-                                       seed=31 + FIVE.index(cid))
+    design, log_lik, y_rep = _evaluate(engine, ten[cid], builtins[cid], cid, y, cens, lo, hi,
+                                       seed=31 + TEN.index(cid))
     assert y_rep.shape == (N_REP,)
     assert np.all((y_rep >= lo) & (y_rep <= hi)), "a replicate outside the window"
     dist = scipy_dist(cid, values, design.y)
@@ -257,8 +259,8 @@ def test_y_rep_truncated_and_censored_like_the_data(cid, engine, builtins, five)
         assert 0 < at.sum() < n, side   # both kinds of replicate occur
 
 
-@pytest.mark.parametrize("cid", FIVE)
-def test_y_rep_window_with_almost_no_mass(cid, engine, builtins, five):
+@pytest.mark.parametrize("cid", TEN)
+def test_y_rep_window_with_almost_no_mass(cid, engine, builtins, ten):
     """A narrow window far in the upper tail (mass below 1e-4): rejection gives up after
     its bounded number of tries and the replicate is put at the window edge nearest the
     last draw; every replicate is finite and inside the window, log_lik stays finite."""
@@ -274,7 +276,7 @@ def test_y_rep_window_with_almost_no_mass(cid, engine, builtins, five):
     dist = scipy_dist(cid, values, y)
     mass = dist.cdf(hi) - dist.cdf(lo)
     assert 0 < mass < 1e-4
-    _, log_lik, y_rep = _evaluate(engine, five[cid], builtins[cid], cid, y, np.zeros(12), lo, hi)
+    _, log_lik, y_rep = _evaluate(engine, ten[cid], builtins[cid], cid, y, np.zeros(12), lo, hi)
     assert np.all(np.isfinite(log_lik))
     assert np.all(np.isfinite(y_rep))
     assert np.all((y_rep >= lo) & (y_rep <= hi))
@@ -311,7 +313,7 @@ def _log_cdfs_from_program(engine, program, c, cid, x, values):
 
 @pytest.mark.parametrize("mu, lam", [(1.5, 6.0), (2.0, 0.02), (0.5, 400.0), (1.0, 1e-4)],
                          ids=["lambda>mu", "lambda<<mu", "lambda>>mu", "lambda<<<mu"])
-def test_inverse_gaussian_log_cdf_and_log_sf_on_a_grid(mu, lam, engine, builtins, five):
+def test_inverse_gaussian_log_cdf_and_log_sf_on_a_grid(mu, lam, engine, builtins, ten):
     # Closed form F(x) = Phi(sqrt(lambda/x)(x/mu - 1)) + exp(2 lambda/mu) Phi(-sqrt(lambda/x)(x/mu + 1))
     # (Chhikara & Folks 1989, The Inverse Gaussian Distribution); reference values from
     # SciPy invgauss(mu=mu/lambda, scale=lambda) logcdf / logsf (SciPy docs, scipy.stats.invgauss).
@@ -319,7 +321,7 @@ def test_inverse_gaussian_log_cdf_and_log_sf_on_a_grid(mu, lam, engine, builtins
     ref = stats.invgauss(mu=mu / lam, scale=lam)
     x = mu * np.logspace(-4, 4, 17)          # x / mu from 1e-4 to 1e4: both far tails
     values = {"intercept": np.log(mu), "ratio": lam / mu}
-    log_cdf, log_sf = _log_cdfs_from_program(engine, five[cid], builtins[cid], cid, x, values)
+    log_cdf, log_sf = _log_cdfs_from_program(engine, ten[cid], builtins[cid], cid, x, values)
     ref_cdf, ref_sf = _accurate_pair(ref.logcdf(x), ref.logsf(x))
     np.testing.assert_allclose(log_cdf, ref_cdf, rtol=1e-8, atol=1e-300)
     # The survival far in the upper tail is a difference of two terms whose ratio tends
@@ -332,7 +334,7 @@ def test_inverse_gaussian_log_cdf_and_log_sf_on_a_grid(mu, lam, engine, builtins
         assert log_cdf.min() < -500 and log_sf.min() < -500
 
 
-def test_exgaussian_log_cdf_and_log_sf_on_a_grid(engine, builtins, five):
+def test_exgaussian_log_cdf_and_log_sf_on_a_grid(engine, builtins, ten):
     """The log-space ex-Gaussian CDF / survival of the program against SciPy exponnorm
     (SciPy docs, scipy.stats.exponnorm: K = tau / sigma, loc = eta, scale = sigma) from
     25 SD below to about 300 tau above the location."""
@@ -340,7 +342,7 @@ def test_exgaussian_log_cdf_and_log_sf_on_a_grid(engine, builtins, five):
     values = TRUE_VALUES[cid]                        # eta 1.0, sigma 0.4, tau 1.2
     ref = stats.exponnorm(K=values["tau"] / values["sigma"], loc=values["intercept"], scale=values["sigma"])
     x = np.concatenate([np.linspace(-9.0, 0.0, 7), np.linspace(0.5, 6.0, 8), [10, 20, 40, 100, 200, 400]])
-    log_cdf, log_sf = _log_cdfs_from_program(engine, five[cid], builtins[cid], cid, x, values)
+    log_cdf, log_sf = _log_cdfs_from_program(engine, ten[cid], builtins[cid], cid, x, values)
     ref_cdf, ref_sf = _accurate_pair(ref.logcdf(x), ref.logsf(x))
     np.testing.assert_allclose(log_cdf, ref_cdf, rtol=1e-8, atol=1e-300)
     np.testing.assert_allclose(log_sf, ref_sf, rtol=1e-8, atol=1e-300)
@@ -363,7 +365,7 @@ def _skew_light_tail_log_cdf(z, a):
 
 
 @pytest.mark.parametrize("slant", [4.0, -4.0, 0.5, 30.0])
-def test_skew_normal_log_cdf_and_log_sf_on_a_grid(slant, engine, builtins, five):
+def test_skew_normal_log_cdf_and_log_sf_on_a_grid(slant, engine, builtins, ten):
     """The program's skew-normal CDF / survival against SciPy skewnorm (SciPy docs,
     scipy.stats.skewnorm: a = slant, loc = eta, scale = omega) from the light to the
     heavy tail; in the light tail, where SciPy's own value is good only to about 1e-4
@@ -374,7 +376,7 @@ def test_skew_normal_log_cdf_and_log_sf_on_a_grid(slant, engine, builtins, five)
     eta, omega = values["intercept"], values["omega"]
     z = np.array([-12, -8, -5, -3, -2, -1.5, -1, -0.5, -0.1, 0, 0.3, 1, 2, 3, 5, 8, 12, 20])
     x = eta + omega * z
-    log_cdf, log_sf = _log_cdfs_from_program(engine, five[cid], builtins[cid], cid, x, values)
+    log_cdf, log_sf = _log_cdfs_from_program(engine, ten[cid], builtins[cid], cid, x, values)
     ref = stats.skewnorm(a=slant, loc=eta, scale=omega)
     ref_cdf, ref_sf = _accurate_pair(ref.logcdf(x), ref.logsf(x))
     # the light tail (left for a positive slant, right for a negative one, by the mirror

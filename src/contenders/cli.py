@@ -283,6 +283,35 @@ def cmd_demo(args: argparse.Namespace) -> int:
     return _run_and_report(cfg, " ".join(["contenders", *sys.argv[1:]]))
 
 
+def cmd_example(args: argparse.Namespace) -> int:
+    """Write one of the README's invented example datasets (shifts: repeated response
+    times with a slope per operator; seals: right-censored lifetimes) as CSV into
+    --folder DIR, which must be a folder of your own (never one of the tool's folders),
+    and print the command that analyses it."""
+    from . import examples
+
+    root = Path(__file__).resolve().parents[2]
+    folder = Path(args.folder).expanduser()
+    target = folder.resolve()
+    own = [Path(__file__).resolve().parent, *(root / sub for sub in ("src", "stan", "demo_data", "reports", "tests"))]
+    for place in own:
+        if target == place.resolve() or place.resolve() in target.parents:
+            raise UserError(f"{folder} is inside the tool's own folder {place}; contenders example writes only "
+                            "into a folder of your own: pass --folder DIR elsewhere (nothing was written)")
+    try:
+        path = examples.write(args.name, folder)
+    except OSError as exc:
+        raise UserError(f"{folder}: cannot write the example ({exc.strerror}); choose another --folder")
+    _, about = examples.ABOUT[args.name]
+    print(f"wrote {path} (invented; columns: {about})")
+    run_flags = {
+        "shifts": "--outcome rt_ms --predictors shift --group operator --slopes shift",
+        "seals": "--outcome hours --predictors coolant --censored still_running",
+    }[args.name]
+    print(f"next:  contenders run {path} {run_flags} --out {folder / (args.name + '-report')}")
+    return 0
+
+
 def cmd_new(args: argparse.Namespace) -> int:
     """Write a new candidate file that already keeps the contract, ready to edit. It goes
     into the current folder, or into --candidates FOLDER (created if missing); never into
@@ -433,6 +462,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quick", action="store_true",
                    help="a quick look (4 chains x 250 draws, PSIS-LOO without refits), written to reports/demo-quick")
     p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser("example", help="write an invented example dataset of the README into a folder of yours",
+                       description=cmd_example.__doc__)
+    p.add_argument("name", choices=("shifts", "seals"), help="which dataset")
+    p.add_argument("--folder", metavar="DIR", required=True, help="where to write it (created if missing)")
+    p.set_defaults(func=cmd_example)
 
     p = sub.add_parser("new", help="write a new candidate file that keeps the contract",
                        description=cmd_new.__doc__)

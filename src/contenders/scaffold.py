@@ -15,7 +15,129 @@ sigma_scale    = 1.0   # half-normal scale of sigma (log scale)
 // Starting point: a lognormal with a linear predictor and optional group intercepts and slopes.
 // Change the likelihood in the model block, log_lik and y_rep together, and keep:
 // the inputs below, y[fit_idx] in the likelihood, and log_lik / y_rep for all N.
+// Censoring and truncation (--censored, --truncate): write the family's log_cdfs
+// ([log F, log(1 - F)] at x, in log space), its rng in draw_in_window_rng and its
+// density in obs_log_lik; the functions after them are the same in every candidate.
 functions {
+  // [log F, log(1 - F)] of the lognormal at x: F(x) = Phi((log x - mu) / sigma), 0 at or
+  // below 0; both tails through std_normal_lcdf, which keeps its precision far into the
+  // lower tail (log(1 - Phi(z)) = log Phi(-z))
+  vector log_cdfs(real x, real mu, real sigma) {
+    if (x <= 0) {
+      return [negative_infinity(), 0]';
+    }
+    real z = (log(x) - mu) / sigma;
+    return [std_normal_lcdf(z), std_normal_lcdf(-z)]';
+  }
+  // one draw from the family truncated to the window, by rejection (see window_tries)
+  real draw_in_window_rng(real mu, real sigma, int has_lo, real lo, int has_hi, real hi) {
+    real x = 0;
+    for (t in 1:window_tries()) {
+      x = lognormal_rng(mu, sigma);
+      if (in_window(x, has_lo, lo, has_hi, hi)) {
+        return x;
+      }
+    }
+    return to_window(x, has_lo, lo, has_hi, hi);
+  }
+  // log_lik of one observation (point_log_lik with this family's terms)
+  real obs_log_lik(real y, int cens, real mu, real sigma,
+                   int has_lo, real lo, int has_hi, real hi) {
+    return point_log_lik(y, cens,
+                         cens == 0 ? lognormal_lpdf(y | mu, sigma) : 0,
+                         cens != 0 ? log_cdfs(y, mu, sigma) : [0, 0]',
+                         has_lo, lo, has_lo ? log_cdfs(lo, mu, sigma) : open_below(),
+                         has_hi, hi, has_hi ? log_cdfs(hi, mu, sigma) : open_above());
+  }
+  // ---- censoring and truncation (the same in every built-in; only log_cdfs differs) ----
+  // Log of the family's mass between two points a <= b, from [log F, log(1 - F)] at
+  // each: log(F(b) - F(a)) = log(S(a) - S(b)). The survival form is used when a lies
+  // above the median, so neither form subtracts two numbers close to 1.
+  real log_mass_between(vector at_a, vector at_b) {
+    if (at_a[1] > -log2()) {
+      return log_diff_exp(at_a[2], at_b[2]);
+    }
+    return log_diff_exp(at_b[1], at_a[1]);
+  }
+  // Log likelihood of one observation y: cens 0 its log density, cens 1 right-censored
+  // at y (log(F(U) - F(y))), cens -1 left-censored at y (log(F(y) - F(L))), each
+  // conditioned on the window (L, U) by subtracting log(F(U) - F(L)). at_y, at_lo,
+  // at_hi are [log F, log(1 - F)] at y, L and U; an open side has [-inf, 0] at L and
+  // [0, -inf] at U. With cens 0 and no window this is the log density unchanged.
+  real point_log_lik(real y, int cens, real log_density, vector at_y,
+                     int has_lo, real lo, vector at_lo, int has_hi, real hi, vector at_hi) {
+    real lp;
+    if ((has_lo && y < lo) || (has_hi && y > hi)) {
+      return negative_infinity();          // outside the window: impossible
+    }
+    if (cens == 0) {
+      lp = log_density;
+    } else if (cens == 1) {
+      lp = has_hi ? log_mass_between(at_y, at_hi) : at_y[2];
+    } else {
+      lp = has_lo ? log_mass_between(at_lo, at_y) : at_y[1];
+    }
+    if (has_lo || has_hi) {
+      lp -= log_mass_between(at_lo, at_hi);
+    }
+    return lp;
+  }
+  // [log F, log(1 - F)] at a window limit, or at an open side
+  vector open_below() {
+    return [negative_infinity(), 0]';
+  }
+  vector open_above() {
+    return [0, negative_infinity()]';
+  }
+  // How many of the fitted observations are of one kind (cens value), and their
+  // positions within fit_idx
+  int count_kind(array[] int cens, array[] int fit_idx, int kind) {
+    int n = 0;
+    for (i in 1:size(fit_idx)) {
+      n += cens[fit_idx[i]] == kind;
+    }
+    return n;
+  }
+  array[] int positions_of_kind(array[] int cens, array[] int fit_idx, int kind) {
+    array[count_kind(cens, fit_idx, kind)] int at;
+    int j = 0;
+    for (i in 1:size(fit_idx)) {
+      if (cens[fit_idx[i]] == kind) {
+        j += 1;
+        at[j] = i;
+      }
+    }
+    return at;
+  }
+  // Censor a replicate at the observation's own censoring point: cens 1 -> min(draw, y),
+  // cens -1 -> max(draw, y); an observed value's replicate stays uncensored
+  real censor_like(real draw, int cens, real y) {
+    if (cens == 1) {
+      return fmin(draw, y);
+    }
+    if (cens == -1) {
+      return fmax(draw, y);
+    }
+    return draw;
+  }
+  // A rejection draw stays in the window when it falls in it; after MAX_TRIES draws
+  // outside (window mass below about 0.5 %: all miss with chance (1 - W)^1000), the
+  // replicate is put at the window's edge nearest the last draw.
+  int window_tries() {
+    return 1000;
+  }
+  int in_window(real x, int has_lo, real lo, int has_hi, real hi) {
+    return (!has_lo || x >= lo) && (!has_hi || x <= hi);
+  }
+  real to_window(real x, int has_lo, real lo, int has_hi, real hi) {
+    if (has_lo && x < lo) {
+      return lo;
+    }
+    if (has_hi && x > hi) {
+      return hi;
+    }
+    return x;
+  }
   vector linear_predictor(real intercept, matrix X, vector coef,
                           array[] int group, vector group_z, vector group_sd,
                           matrix Z, matrix slope_z, vector slope_sd, matrix group_corr_L) {
@@ -44,6 +166,11 @@ data {
   array[N] int<lower=0, upper=J> group;         // group of each observation
   int<lower=0> Kz;                         // predictors (columns of X) with a slope per group
   matrix[N, Kz] Z;
+  array[N] int<lower=-1, upper=1> cens;    // 0 observed; 1 right-censored at y[n] (true value larger); -1 left-censored at y[n] (true value smaller)
+  int<lower=0, upper=1> has_lower_limit;   // truncation window: 0 = open below
+  real lower_limit;                        // used only when has_lower_limit = 1
+  int<lower=0, upper=1> has_upper_limit;   // 0 = open above
+  real upper_limit;                        // used only when has_upper_limit = 1
   int<lower=0, upper=N> N_fit;                  // size of the fit subset
   array[N_fit] int<lower=1, upper=N> fit_idx;   // observations in the likelihood
   real<lower=0> y_center;                       // typical value of y
@@ -56,6 +183,11 @@ data {
 transformed data {
   int has_group = J > 0;
   int slopes = has_group * Kz;
+  int windowed = has_lower_limit || has_upper_limit;
+  // positions within fit_idx of the observed, right-censored and left-censored values
+  array[count_kind(cens, fit_idx, 0)] int at_obs = positions_of_kind(cens, fit_idx, 0);
+  array[count_kind(cens, fit_idx, 1)] int at_right = positions_of_kind(cens, fit_idx, 1);
+  array[count_kind(cens, fit_idx, -1)] int at_left = positions_of_kind(cens, fit_idx, -1);
 }
 parameters {
   real intercept;
@@ -82,7 +214,22 @@ model {
   group_sd ~ normal(0, group_sd_scale);
   slope_sd ~ normal(0, group_sd_scale);
   sigma ~ normal(0, sigma_scale);
-  y[fit_idx] ~ lognormal(eta, sigma);
+  if (windowed) {
+    for (i in 1:N_fit) {
+      int n = fit_idx[i];
+      target += obs_log_lik(y[n], cens[n], eta[i], sigma,
+                            has_lower_limit, lower_limit, has_upper_limit, upper_limit);
+    }
+  } else {
+    // no window: the observed values vectorised, the censored ones by their tail terms
+    y[fit_idx[at_obs]] ~ lognormal(eta[at_obs], sigma);
+    for (i in at_right) {
+      target += log_cdfs(y[fit_idx[i]], eta[i], sigma)[2];
+    }
+    for (i in at_left) {
+      target += log_cdfs(y[fit_idx[i]], eta[i], sigma)[1];
+    }
+  }
 }
 generated quantities {
   vector[N] log_lik;
@@ -97,9 +244,20 @@ generated quantities {
     vector[N] eta = linear_predictor(intercept, X, coef, group, group_z, group_sd,
                                      Z, slope_z, slope_sd, group_corr_L);
     for (n in 1:N) {
-      log_lik[n] = lognormal_lpdf(y[n] | eta[n], sigma);
+      log_lik[n] = obs_log_lik(y[n], cens[n], eta[n], sigma,
+                               has_lower_limit, lower_limit, has_upper_limit, upper_limit);
     }
-    y_rep = lognormal_rng(eta, sigma);
+    if (windowed) {
+      for (n in 1:N) {
+        y_rep[n] = draw_in_window_rng(eta[n], sigma,
+                                      has_lower_limit, lower_limit, has_upper_limit, upper_limit);
+      }
+    } else {
+      y_rep = lognormal_rng(eta, sigma);
+    }
+    for (n in 1:N) {
+      y_rep[n] = censor_like(y_rep[n], cens[n], y[n]);
+    }
   }
 }
 """

@@ -892,6 +892,34 @@ def _store(result):
     return FitStore(folder) if folder else None
 
 
+def censoring_note(d) -> str:
+    """What the predictive checks and lineups do with censored and truncated observations
+    (empty when neither was asked for)."""
+    if not d.asks_censoring:
+        return ""
+    parts = []
+    n_right, n_left = int((d.censoring == 1).sum()), int((d.censoring == -1).sum())
+    if n_right or n_left:
+        kinds = []
+        if n_right:
+            kinds.append(f"{fmt.integer(n_right)} right-censored (the true value is larger)")
+        if n_left:
+            kinds.append(f"{fmt.integer(n_left)} left-censored (the true value is smaller)")
+        parts.append(f"Of the {fmt.integer(d.N)} observations, {' and '.join(kinds)}. They enter every "
+                     "statistic, figure and lineup panel at their censoring points, and each candidate's "
+                     "replicate of such an observation is censored at the same point, so like is compared "
+                     "with like. An observed value's own censoring time is unknown, so its replicate is "
+                     "drawn uncensored; statistics of the upper tail (maximum, high quantiles) can therefore "
+                     "differ a little between data and replicates even under a fitting candidate.")
+    lo, hi = d.window
+    if d.window != (None, None):
+        side = (f"from {fmt.num(lo, 4)} to {fmt.num(hi, 4)}" if lo is not None and hi is not None
+                else f"above {fmt.num(lo, 4)}" if lo is not None else f"below {fmt.num(hi, 4)}")
+        parts.append(f"The data were truncated to values {side}: every candidate's likelihood is conditioned "
+                     "on that window and its replicates are drawn inside it.")
+    return " ".join(parts)
+
+
 def _lineups(result, cands) -> list[dict]:
     by_id = {r.id: r for r in cands}
     out = []
@@ -1062,6 +1090,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
         "pit_band": f"{100 * (1 - cfg.pit_alpha):g} %",
         "pit_alpha": fmt.num(cfg.pit_alpha),
         "lineups": lineups,
+        "censoring_note": censoring_note(d),
         "effects_table": effects_table,
         "effect_sentences": [e.sentence for e in effects],
         "effects_min_weight": fmt.num(MIN_WEIGHT),
