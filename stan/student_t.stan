@@ -15,11 +15,24 @@ nu_rate        = 0.1
 // Student-t: y ~ student_t(nu, eta, sigma), identity link.
 // Reference: SciPy t(df = nu, loc = eta, scale = sigma).
 functions {
-  // [log F, log(1 - F)] of the Student-t at x: the smaller tail is
-  // inc_beta(nu / 2, 1 / 2, nu / (nu + t^2)) / 2 with t = (x - mu) / sigma (Abramowitz &
-  // Stegun 26.7.1 with 26.5.27), computed directly; the larger one is log1m_exp of it
+  // [log F, log(1 - F)] of the Student-t at x. In the tails (|t| >= 1, t = (x - mu) / sigma)
+  // the smaller tail is inc_beta(nu / 2, 1 / 2, nu / (nu + t^2)) / 2 (Abramowitz & Stegun
+  // 26.7.1 with 26.5.27), computed directly, and the larger one is log1m_exp of it; in the
+  // body both probabilities are large and the central incomplete beta serves (the tail
+  // form's gradient in nu is not finite at t = 0, where its argument is 1; so is Stan's
+  // student_t_lcdf's, measured); t = 0 itself gives 1/2 each
   vector log_cdfs(real x, real nu, real mu, real sigma) {
     real t = (x - mu) / sigma;
+    if (t == 0) {
+      return [log(0.5), log(0.5)]';
+    }
+    if (abs(t) < 1) {
+      // the body: F = 1/2 + sign(t) inc_beta(1/2, nu / 2, t^2 / (nu + t^2)) / 2
+      // (Abramowitz & Stegun 26.7.1 with 26.5.27)
+      real half_inner = 0.5 * inc_beta(0.5, 0.5 * nu, square(t) / (nu + square(t)));
+      return t > 0 ? [log(0.5 + half_inner), log(0.5 - half_inner)]'
+                   : [log(0.5 - half_inner), log(0.5 + half_inner)]';
+    }
     real small = log(0.5) + log(inc_beta(0.5 * nu, 0.5, nu / (nu + square(t))));
     if (t > 0) {
       return [log1m_exp(small), small]';

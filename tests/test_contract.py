@@ -107,7 +107,12 @@ def test_missing_fit_subset_inputs_are_a_problem(folder):
                         "vector[N] eta = linear_predictor(intercept, X, coef, group,")
     code = code.replace("Z[fit_idx], slope_z", "Z, slope_z")
     code = code.replace("y[fit_idx] ~ lognormal(eta, sigma);", "y ~ lognormal(eta, sigma);")
-    assert "fit_idx" not in code
+    # the censoring helpers take the subset as an argument: rename it there, and give
+    # them every observation where the program used fit_idx
+    code = code.replace("array[] int fit_idx", "array[] int subset").replace("size(fit_idx)", "size(subset)")
+    code = code.replace("cens[fit_idx[i]]", "cens[subset[i]]").replace("within fit_idx", "within the subset")
+    code = code.replace("fit_idx", "linspaced_int_array(N, 1, N)").replace("1:N_fit", "1:N")
+    assert "fit_idx" not in code and "N_fit" not in code.replace("vector[N_fit]", "")
     _write(folder, "no_subset", code)
     c = load_candidate(folder / "no_subset.stan")
     assert any("does not declare the input 'N_fit'" in p for p in c.problems)
@@ -148,7 +153,8 @@ def test_ids_differing_only_in_case_clash(folder):
 def test_y_rep_of_wrong_length_is_caught_before_sampling(engine, tmp_path, rng):
     """Needs one compile of a deliberately wrong program (y_rep of length N - 1)."""
     code = GOOD.replace("array[N] real y_rep;", "array[N - 1] real y_rep;").replace(
-        "y_rep = lognormal_rng(eta, sigma);", "y_rep = lognormal_rng(eta[2:N], sigma);")
+        "y_rep = lognormal_rng(eta, sigma);", "y_rep = lognormal_rng(eta[2:N], sigma);").replace(
+        "      y_rep[n] = censor_like(y_rep[n], cens[n], y[n]);\n", "")
     path = _write(tmp_path, "short_rep", code)
     c = load_candidate(path)
     assert c.valid, c.problems
