@@ -110,6 +110,7 @@ def test_missing_fit_subset_inputs_are_a_problem(folder):
     # the censoring helpers take the subset as an argument: rename it there, and give
     # them every observation where the program used fit_idx
     code = code.replace("array[] int fit_idx", "array[] int subset").replace("size(fit_idx)", "size(subset)")
+    code = code.replace("count_kind(cens, fit_idx, kind)", "count_kind(cens, subset, kind)")
     code = code.replace("cens[fit_idx[i]]", "cens[subset[i]]").replace("within fit_idx", "within the subset")
     code = code.replace("fit_idx", "linspaced_int_array(N, 1, N)").replace("1:N_fit", "1:N")
     assert "fit_idx" not in code and "N_fit" not in code.replace("vector[N_fit]", "")
