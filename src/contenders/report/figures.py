@@ -330,6 +330,16 @@ def _tint(color: str, alpha: float) -> tuple[float, float, float, float]:
     return (*to_rgb(color), alpha)
 
 
+def _shared_legend(fig, x: float, top: float) -> None:
+    """One legend above the panels, each label once (from whichever panel drew it first)."""
+    handles = {}
+    for ax in fig.axes:
+        for h, text in zip(*ax.get_legend_handles_labels()):
+            handles.setdefault(text, h)
+    fig.legend(list(handles.values()), list(handles), loc="upper center", ncol=3, fontsize=7.5, handlelength=1.8,
+               bbox_to_anchor=(x, top))
+
+
 def _flag_frame(ax) -> None:
     for side in ("left", "bottom", "top", "right"):
         ax.spines[side].set_visible(True)
@@ -672,12 +682,7 @@ def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]
         ax.set_yticks([])
         ax.spines["left"].set_visible(False)
         ax.set_title(plain(label, 60))   # a pointwise envelope: a short stroke is no verdict
-    handles = {}
-    for ax in fig.axes:
-        for h, text in zip(*ax.get_legend_handles_labels()):
-            handles.setdefault(text, h)
-    fig.legend(list(handles.values()), list(handles), loc="upper center", ncol=3, fontsize=7.5, handlelength=1.8,
-               bbox_to_anchor=(0.5, 1 - 0.02 / height))
+    _shared_legend(fig, x=0.5, top=1 - 0.02 / height)
     fig.supxlabel(plain(outcome, 60), fontsize=8.5, y=0.1 / height)
     return render(fig, "envelope of the replicated datasets' densities and the density of the observed data "
                        "per candidate")
@@ -788,12 +793,7 @@ def loo_pit_grid(cands: Sequence[tuple[str, object]], ncols: int = 2) -> Rendere
                      fontweight="bold" if flagged else "normal")
         if flagged:
             _flag_frame(ax)
-    handles = {}
-    for ax in fig.axes:
-        for h, text in zip(*ax.get_legend_handles_labels()):
-            handles.setdefault(text, h)
-    fig.legend(list(handles.values()), list(handles), loc="upper center", ncol=3, fontsize=7.5, handlelength=1.8,
-               bbox_to_anchor=(0.55, 1 - 0.04 / height))
+    _shared_legend(fig, x=0.55, top=1 - 0.04 / height)
     fig.supxlabel("LOO-PIT value (low: the observation fell low in its leave-one-out predictive distribution)",
                   fontsize=7.5, y=0.14 / height)
     fig.text(0.012, 0.5, "ECDF minus uniform", rotation=90, va="center", fontsize=7.5)
