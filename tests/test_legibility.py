@@ -212,3 +212,21 @@ def test_sensitivity_reading_codes():
     assert _reading(0.01, 0.01, 0.05) == "steady"
     assert _reading(float("nan"), 0.3, 0.05) == ""
     assert all(READINGS[k] for k in READINGS)
+
+
+def test_worst_k_figure_draws_an_infinite_k_at_the_edge(drawn):
+    # ArviZ reports k = inf when the tail fit fails (seen on survival's capacitor data,
+    # 64 rows, half censored); the figure drew nothing and the report stopped with
+    # "Axis limits cannot be NaN or Inf"
+    ok = SimpleNamespace(pareto_k=np.array([0.1, 0.3, 0.8, 0.2]), k_threshold=0.7, refitted=[2])
+    bad = SimpleNamespace(pareto_k=np.array([np.inf, 0.4, np.nan, 0.9]), k_threshold=0.7, refitted=[])
+    assert figures.pareto_k_worst([(LONG, ok, [2, 3, 4, 5]), ("Normal", bad, [2, 3, 4, 5])]) is not None
+    fig = drawn[-1]
+    ax = fig.axes[1]
+    lo, hi = ax.get_xlim()
+    assert np.isfinite([lo, hi]).all() and hi >= 1.0
+    labels = [t.get_text() for t in ax.get_yticklabels()]
+    assert "row 2 (k = ∞)" in labels and len(labels) == 3   # the NaN row (row 4) is left out
+    widths = sorted(p.get_width() for p in ax.patches)
+    assert widths[-1] == pytest.approx(hi - 0.02)
+    _assert_legible(fig)

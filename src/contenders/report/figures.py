@@ -557,11 +557,14 @@ def pareto_k_worst(cands: Sequence[tuple[str, object, Sequence[int]]]) -> Render
     ``cands`` holds ``(label, out_of_sample, data_rows)``, ``data_rows`` giving each
     observation's row in the data file."""
     cands = [(label, o, rows) for label, o, rows in cands
-             if o is not None and np.isfinite(np.asarray(o.pareto_k, dtype=float)).any()]
+             if o is not None and (~np.isnan(np.asarray(o.pareto_k, dtype=float))).any()]
     if not cands:
         return None
     nrow, ncol = _grid_shape(len(cands), 5)
-    kmax = max(float(np.nanmax(np.asarray(o.pareto_k, dtype=float))) for _, o, _ in cands)
+    # an infinite k (the tail fit failed) is drawn to the panel's edge and labelled so;
+    # the axis is set by the finite values
+    finite = [k[np.isfinite(k)] for k in (np.asarray(o.pareto_k, dtype=float) for _, o, _ in cands)]
+    kmax = max((float(f.max()) for f in finite if f.size), default=1.0)
     top = max(1.0, kmax + 0.08, max(o.k_threshold for _, o, _ in cands) + 0.1)
     width, height = 10.2, 0.35 + 1.42 * nrow
     fig = _new(width, height)
@@ -572,10 +575,10 @@ def pareto_k_worst(cands: Sequence[tuple[str, object, Sequence[int]]]) -> Render
         ax.set_visible(False)
     for ax, (label, o, rows) in zip(axes.flat, cands):
         k = np.asarray(o.pareto_k, dtype=float)
-        order = [i for i in np.argsort(-np.nan_to_num(k, nan=-np.inf), kind="stable") if np.isfinite(k[i])]
+        order = [i for i in np.argsort(-np.nan_to_num(k, nan=-np.inf), kind="stable") if not np.isnan(k[i])]
         order = order[:WORST_SHOWN]
         y = np.arange(len(order))[::-1]
-        vals = k[order]
+        vals = np.minimum(k[order], top - 0.02)
         high = vals > o.k_threshold
         ax.barh(y[~high], vals[~high], height=0.62, color=POSTERIOR, linewidth=0)
         if high.any():
@@ -587,7 +590,7 @@ def pareto_k_worst(cands: Sequence[tuple[str, object, Sequence[int]]]) -> Render
                         markeredgewidth=0.9, linestyle="none", zorder=4)
         ax.axvline(0.5, color=MUTED, linestyle=(0, (1, 1.5)), linewidth=0.9)
         ax.axvline(o.k_threshold, color=LIMIT, linestyle=(0, (4, 2)), linewidth=1.0)
-        ax.set_yticks(y, [f"row {int(rows[i])}" for i in order])
+        ax.set_yticks(y, [f"row {int(rows[i])}" + (" (k = ∞)" if np.isinf(k[i]) else "") for i in order])
         ax.tick_params(axis="y", length=0, labelsize=7)
         ax.set_xlim(min(0.0, float(np.nanmin(vals)) - 0.05), top)
         ax.set_ylim(-0.6, WORST_SHOWN - 0.4)
