@@ -46,6 +46,22 @@ functions {
       real log_cdf = -(1 + square(a)) * rate - log(2 * pi()) + log(integral);
       return [log_cdf, log1m_exp(log_cdf)]';
     }
+    if (abs(z) > 30) {
+      // Far out in either tail Owen's T underflows (below 1e-308 beyond |z| of about 38),
+      // and log(owens_t) has neither a value nor a gradient there. With x = z + s / z the
+      // tail beyond z, 2 int phi(x) Phi(a x) dx, is
+      //   2 phi(z) / |z| * int_0^inf exp(-s) exp(-s^2 / (2 z^2)) Phi(a (z + s / z)) ds,
+      // a smooth integrand for |z| > 30 (Phi stays above Phi(-3.2): a |z| <= 3 here when
+      // z < 0), by the same 16-point Gauss-Laguerre rule.
+      vector[16] s = laguerre_nodes();
+      real g = dot_product(laguerre_weights(),
+                           exp(-square(s / z) / 2) .* Phi(a * (z + s / z)));
+      real log_tail = log2() - square(z) / 2 - 0.5 * log(2 * pi()) - log(abs(z)) + log(g);
+      if (z > 0) {
+        return [log1m_exp(log_tail), log_tail]';
+      }
+      return [log_tail, log1m_exp(log_tail)]';
+    }
     real t = log2() + log(owens_t(z, a));
     real log_sf = fmin(log_sum_exp(std_normal_lcdf(-z), t), 0);
     real log_cdf = log_sf < -log2() ? log1m_exp(log_sf) : log_diff_exp(std_normal_lcdf(z), t);
