@@ -115,5 +115,5 @@ def test_the_report_says_how_censored_and_truncated_values_enter_the_checks():
     note = censoring_note(d)
     assert f"Of the {len(t)} observations, {n_right} right-censored" in note
     assert f"and {n_left} left-censored" in note
-    assert "censored at the same point" in note and "drawn uncensored" in note
+    assert "censored at the same point" in note and "Kaplan-Meier" in note and "LOO-PIT is drawn uniformly" in note
     assert "truncated to values above 0" in note

@@ -31,6 +31,7 @@ from .progress import Progress
 from .store import FitStore, StoredEngine, data_origin, trials_key
 from .errors import UserError
 from .trials.checks import PredictiveChecks, predictive_checks, thin_draws
+from .trials.censored_checks import censor_like_the_data
 from .trials.coefficients import Coefficients, coefficient_summary, summary as coefficients_summary
 from .trials.effects import compare_effects, effect_draws, effects_summary
 from .trials.posterior import Health, fit_with_health
@@ -278,8 +279,11 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         keep = thin_draws(y_rep.shape[0], cfg.check_draws)
         conditions = {col: design.table[col].to_numpy() for col in cfg.conditions}
         res.checks = predictive_checks(design.y, y_rep[keep], log_lik[keep], cfg.thresholds, conditions,
-                                       ppp_extreme=cfg.ppp_extreme, pit_alpha=cfg.pit_alpha)
-        res.y_rep_sample = y_rep[thin_draws(y_rep.shape[0], FIGURE_DRAWS)].astype(np.float32)
+                                       ppp_extreme=cfg.ppp_extreme, pit_alpha=cfg.pit_alpha,
+                                       cens=design.censoring, seed=cfg.seed)
+        figure_draws = thin_draws(y_rep.shape[0], FIGURE_DRAWS)
+        res.y_rep_sample = censor_like_the_data(design.y, design.censoring, y_rep[figure_draws],
+                                                np.random.default_rng(cfg.seed)).astype(np.float32)
         res.effects = effect_draws(y_rep, design.y, design.table, cfg.conditions, cfg.predictors,
                                    reference=cfg.reference)
         del y_rep, log_lik

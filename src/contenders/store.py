@@ -73,7 +73,9 @@ TRIAL_SETTINGS = (
 #: relevant sizes (``[checks] relevant``) are not: readings are made at report time.
 #: Format 8: the LOO-PIT band test (``checks.uniformity_test``) and the quantile checks.
 #: Format 9: power-scaling readings ``pulled_both_ways``, ``set_by_prior``, ``led_by_data``, ``steady``.
-TRIALS_FORMAT = 9
+#: Format 10: with censored observations, replicates censored like the data and the
+#: LOO-PIT randomised over each censored value's range (``trials.censored_checks``).
+TRIALS_FORMAT = 10
 
 
 def trials_key(candidate, design, cfg, engine_version: str) -> str:

@@ -907,10 +907,12 @@ def censoring_note(d) -> str:
             kinds.append(f"{fmt.integer(n_left)} left-censored (the true value is smaller)")
         parts.append(f"Of the {fmt.integer(d.N)} observations, {' and '.join(kinds)}. They enter every "
                      "statistic, figure and lineup panel at their censoring points, and each candidate's "
-                     "replicate of such an observation is censored at the same point, so like is compared "
-                     "with like. An observed value's own censoring time is unknown, so its replicate is "
-                     "drawn uncensored; statistics of the upper tail (maximum, high quantiles) can therefore "
-                     "differ a little between data and replicates even under a fitting candidate.")
+                     "replicate of such an observation is censored at the same point. An observed value's "
+                     "own censoring time is unknown, so for the checks its replicate is censored at a time "
+                     "drawn from the censoring times' distribution (the Kaplan-Meier estimate with the "
+                     "censorings as events), given that it exceeds the observed value; this assumes, as the "
+                     "likelihood does, that censoring does not depend on the outcome. A censored value's "
+                     "LOO-PIT is drawn uniformly over the range its censoring allows.")
     lo, hi = d.window
     if d.window != (None, None):
         side = (f"from {fmt.num(lo, 4)} to {fmt.num(hi, 4)}" if lo is not None and hi is not None

@@ -9,6 +9,7 @@ from typing import Mapping, Sequence
 import numpy as np
 
 from . import statistics as st
+from .censored_checks import censor_like_the_data, randomised_pit
 
 
 @dataclass
@@ -195,11 +196,21 @@ def predictive_checks(
     reff: float = 1.0,
     ppp_extreme: float = 0.01,
     pit_alpha: float = 0.01,
+    cens: np.ndarray | None = None,
+    seed: int = 0,
 ) -> PredictiveChecks:
     """All posterior predictive checks of one candidate; arrays shaped (draws, N).
     ``extreme`` lists the statistics whose ppp-value lies below ``ppp_extreme`` or above
     1 - ``ppp_extreme`` (the run's ``[checks] ppp_extreme``); ``pit_alpha``: the LOO-PIT
-    band holds a uniform ECDF with probability 1 - pit_alpha."""
+    band holds a uniform ECDF with probability 1 - pit_alpha. With ``cens`` (0 observed,
+    1 right-, -1 left-censored) the statistics use replicates censored like the data
+    and the LOO-PIT is randomised over each censored value's range
+    (``censored_checks``), from a generator seeded with ``seed``."""
+    pit_y_rep = y_rep
+    rng = np.random.default_rng(seed)
+    censored = cens is not None and bool((np.asarray(cens) != 0).any())
+    if censored:
+        y_rep = censor_like_the_data(y, cens, y_rep, rng)
     reps = st.compute(y_rep, thresholds)
     obs = st.compute(y, thresholds)
     rows = st.summarise(reps, obs)
@@ -208,7 +219,10 @@ def predictive_checks(
         g_rep = st.grouped(y_rep, labels, thresholds)
         g_obs = st.grouped(y, labels, thresholds)
         grouped_rows[cond] = {lev: st.summarise(g_rep[lev], g_obs[lev]) for lev in g_rep}
-    pit = loo_pit(y, y_rep, log_lik, reff)
+    pit = loo_pit(y, pit_y_rep, log_lik, reff)
+    if censored:
+        below = loo_pit(np.nextafter(np.asarray(y, dtype=float), -np.inf), pit_y_rep, log_lik, reff)
+        pit = randomised_pit(pit, below, cens, rng)
     extreme = [r["statistic"] for r in rows if st.detectable(r["p_value"], ppp_extreme)]
     return PredictiveChecks(rows, grouped_rows, pit, uniformity_test(pit, pit_alpha), extreme, reps,
                             quantile_checks(y, y_rep))
