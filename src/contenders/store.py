@@ -75,7 +75,8 @@ TRIAL_SETTINGS = (
 #: Format 9: power-scaling readings ``pulled_both_ways``, ``set_by_prior``, ``led_by_data``, ``steady``.
 #: Format 10: with censored observations, replicates censored like the data and the
 #: LOO-PIT randomised over each censored value's range (``trials.censored_checks``).
-TRIALS_FORMAT = 10
+#: Format 11: a censored value counts as "at y" within two float32 steps (y_rep is float32).
+TRIALS_FORMAT = 11
 
 
 def trials_key(candidate, design, cfg, engine_version: str) -> str:

@@ -219,10 +219,18 @@ def predictive_checks(
         g_rep = st.grouped(y_rep, labels, thresholds)
         g_obs = st.grouped(y, labels, thresholds)
         grouped_rows[cond] = {lev: st.summarise(g_rep[lev], g_obs[lev]) for lev in g_rep}
-    pit = loo_pit(y, pit_y_rep, log_lik, reff)
     if censored:
-        below = loo_pit(np.nextafter(np.asarray(y, dtype=float), -np.inf), pit_y_rep, log_lik, reff)
-        pit = randomised_pit(pit, below, cens, rng)
+        # a censored value's replicate is the censoring point itself, kept as float32 by
+        # the engines: up to half a float32 step either side of y, so "at y" means within
+        # two float32 steps of it (measured: with an exact comparison about half of the
+        # right-censored values got Pr(y_rep < y) = 1, and the band flagged every candidate)
+        yy = np.asarray(y, dtype=float)
+        tol = 2 * np.spacing(np.abs(yy).astype(np.float32)).astype(float)
+        at = loo_pit(np.where(np.asarray(cens) == -1, yy + tol, yy), pit_y_rep, log_lik, reff)
+        below = loo_pit(yy - tol, pit_y_rep, log_lik, reff)
+        pit = randomised_pit(at, below, cens, rng)
+    else:
+        pit = loo_pit(y, pit_y_rep, log_lik, reff)
     extreme = [r["statistic"] for r in rows if st.detectable(r["p_value"], ppp_extreme)]
     return PredictiveChecks(rows, grouped_rows, pit, uniformity_test(pit, pit_alpha), extreme, reps,
                             quantile_checks(y, y_rep))
