@@ -202,6 +202,11 @@ def test_pareto_k_bands_are_labelled_from_the_run_threshold():
     assert [b[0] for b in k_bands(0.7)] == ["k ≤ 0.5", "0.5 < k ≤ 0.7", "k > 0.7"]
     assert [b[0] for b in k_bands(0.45)] == ["k ≤ 0.45", "k > 0.45"]
     assert k_band_counts(np.array([0.1, 0.5, 0.55, 0.6667, 0.68, np.nan]), t) == [2, 1, 2]   # 0.6667 > 2/3
+    # an infinite k (a failed tail fit, seen on survival's capacitor data) is the worst
+    # there is: top band and first in the list; a missing one (K-fold) in neither
+    from contenders.report.out_of_sample import worst
+    assert k_band_counts(np.array([0.1, np.inf, np.nan]), 0.7) == [1, 0, 1]
+    assert worst(np.array([0.2, np.nan, np.inf, 0.9])) == [2, 3, 0]
 
 
 def test_sensitivity_reading_codes():

@@ -67,18 +67,19 @@ def k_bands(threshold: float) -> list[tuple[str, float, float]]:
 
 
 def k_band_counts(pareto_k: np.ndarray, threshold: float) -> list[int]:
-    """Observations in each band of :func:`k_bands`; a non-finite k (K-fold) is in none."""
+    """Observations in each band of :func:`k_bands`; a missing k (NaN: K-fold) is in
+    none, an infinite one (the tail fit failed) in the top band."""
     k = np.asarray(pareto_k, dtype=float)
-    k = k[np.isfinite(k)]
+    k = k[~np.isnan(k)]
     return [int(((k > lo) & (k <= hi)).sum()) for _, lo, hi in k_bands(threshold)]
 
 
 def worst(pareto_k: np.ndarray, count: int = WORST_LISTED) -> list[int]:
-    """0-based observations with the largest finite Pareto k, largest first (ties in
-    observation order)."""
+    """0-based observations with the largest Pareto k (an infinite one first; a
+    missing one never), largest first (ties in observation order)."""
     k = np.asarray(pareto_k, dtype=float)
-    order = np.argsort(-np.where(np.isfinite(k), k, -np.inf), kind="stable")
-    return [int(i) for i in order if np.isfinite(k[i])][:count]
+    order = np.argsort(-np.where(np.isnan(k), -np.inf, k), kind="stable")
+    return [int(i) for i in order if not np.isnan(k[i])][:count]
 
 
 def data_rows(design) -> np.ndarray:
@@ -197,7 +198,7 @@ def pareto_k_tables(result, cands) -> tuple[Table, Table, bool]:
         for place, i in enumerate(ws, 1):
             worst_t.csv_rows.append([r.id, r.label, place, int(rd[i]), i + 1, float(k[i]), o.k_threshold,
                                      bool(k[i] > o.k_threshold), i in refit])
-        if not np.isfinite(k).any():
+        if np.isnan(k).all():
             cells = [n(fmt.MISSING) for _ in heads]
             listed = "no Pareto k: elpd from held-out fits"
         else:
@@ -205,7 +206,7 @@ def pareto_k_tables(result, cands) -> tuple[Table, Table, bool]:
                      for j, c in enumerate(counts)]
             if len(cells) < len(heads):          # a threshold at or below 0.5: no middle band
                 cells.insert(1, n(fmt.MISSING))
-            listed = "; ".join(("◇ " if k[i] > o.k_threshold else "") + f"{int(rd[i])}: {fmt.fixed(k[i], 2)}"
+            listed = "; ".join(("◇ " if k[i] > o.k_threshold else "") + f"{int(rd[i])}: {'∞' if np.isinf(k[i]) else fmt.fixed(k[i], 2)}"
                                for i in ws)
         bands.add([Cell(r.label, "name", r.id), *cells]
                   + ([] if shared else [n(threshold_text(o.k_threshold))])
