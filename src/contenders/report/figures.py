@@ -45,7 +45,7 @@ import numpy as np  # noqa: E402
 from ..compare import SMALL_DIFFERENCE  # noqa: E402
 from ..trials.statistics import describe  # noqa: E402
 from .figure_store import Lineup, Rendered, next_prefix  # noqa: E402  (records readable without matplotlib)
-from .out_of_sample import STANDING_WORDS, standing_of  # noqa: E402  (no matplotlib there)
+from .out_of_sample import STANDING_WORDS, standing_of, worst  # noqa: E402  (no matplotlib there)
 
 # --- palette and style ------------------------------------------------------------
 
@@ -575,8 +575,7 @@ def pareto_k_worst(cands: Sequence[tuple[str, object, Sequence[int]]]) -> Render
         ax.set_visible(False)
     for ax, (label, o, rows) in zip(axes.flat, cands):
         k = np.asarray(o.pareto_k, dtype=float)
-        order = [i for i in np.argsort(-np.nan_to_num(k, nan=-np.inf), kind="stable") if not np.isnan(k[i])]
-        order = order[:WORST_SHOWN]
+        order = worst(k, WORST_SHOWN)
         y = np.arange(len(order))[::-1]
         vals = np.minimum(k[order], top - 0.02)
         high = vals > o.k_threshold

@@ -30,15 +30,27 @@ def thin_draws(n_total: int, n_keep: int) -> np.ndarray:
     return np.unique(np.linspace(0, n_total - 1, n_keep).round().astype(int))
 
 
-def loo_pit(y: np.ndarray, y_rep: np.ndarray, log_lik: np.ndarray, reff: float = 1.0) -> np.ndarray:
-    """LOO-PIT values with PSIS weights: Pr(y_rep_i <= y_i | y_{-i}) for each i.
-
-    ``y_rep`` and ``log_lik`` have shape (draws, N). Computed with ArviZ's
-    ``psislw`` and ``loo_pit`` (Vehtari, Gelman & Gabry 2017, Statistics and
-    Computing 27, section 2.1, and Gabry et al. 2019, JRSS A 182, section 5)."""
+def loo_log_weights(log_lik: np.ndarray, reff: float = 1.0) -> np.ndarray:
+    """PSIS log weights of leaving each observation out, shape (N, draws), from
+    ``log_lik`` shaped (draws, N) (ArviZ's ``psislw``)."""
     import arviz as az
 
     lw, _ = az.psislw(-np.asarray(log_lik, dtype=float).T, reff=reff)
+    return lw
+
+
+def loo_pit(y: np.ndarray, y_rep: np.ndarray, log_lik: np.ndarray | None = None, reff: float = 1.0,
+            log_weights: np.ndarray | None = None) -> np.ndarray:
+    """LOO-PIT values with PSIS weights: Pr(y_rep_i <= y_i | y_{-i}) for each i.
+
+    ``y_rep`` and ``log_lik`` have shape (draws, N); ``log_weights`` from
+    :func:`loo_log_weights` may be given instead of ``log_lik`` to smooth once for
+    several evaluations. Computed with ArviZ's ``psislw`` and ``loo_pit`` (Vehtari,
+    Gelman & Gabry 2017, Statistics and Computing 27, section 2.1, and Gabry et al.
+    2019, JRSS A 182, section 5)."""
+    import arviz as az
+
+    lw = loo_log_weights(log_lik, reff) if log_weights is None else log_weights
     return np.asarray(az.loo_pit(y=np.asarray(y, dtype=float), y_hat=np.asarray(y_rep, dtype=float).T,
                                  log_weights=lw))
 
@@ -226,8 +238,9 @@ def predictive_checks(
         # right-censored values got Pr(y_rep < y) = 1, and the band flagged every candidate)
         yy = np.asarray(y, dtype=float)
         tol = 2 * np.spacing(np.abs(yy).astype(np.float32)).astype(float)
-        at = loo_pit(np.where(np.asarray(cens) == -1, yy + tol, yy), pit_y_rep, log_lik, reff)
-        below = loo_pit(yy - tol, pit_y_rep, log_lik, reff)
+        lw = loo_log_weights(log_lik, reff)          # smoothed once for both evaluations
+        at = loo_pit(np.where(np.asarray(cens) == -1, yy + tol, yy), pit_y_rep, log_weights=lw)
+        below = loo_pit(yy - tol, pit_y_rep, log_weights=lw)
         pit = randomised_pit(at, below, cens, rng)
     else:
         pit = loo_pit(y, pit_y_rep, log_lik, reff)
