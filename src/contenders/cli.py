@@ -54,7 +54,7 @@ def cmd_check(args: argparse.Namespace) -> int:
     jobs = args.jobs or os.cpu_count() or 1
     if any(c.valid for c in cands):
         print(f"compiling {sum(c.valid for c in cands)} program(s), {jobs} at a time "
-              "(about 45 s each the first time; cached afterwards) ...", flush=True)
+              "(45 to 90 s each the first time; cached afterwards) ...", flush=True)
     programs = compile_all(engine, cands, jobs=jobs, progress=lambda text: print(text, flush=True))
     failed = 0
     for c in cands:

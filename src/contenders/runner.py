@@ -509,8 +509,8 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
     with lock_notices(say if todo else None):   # another process may be compiling one of them
         cold = sum(not engine.is_cached(c) for c in todo)
     if cold:
-        say(f"compiling {cold} program(s) with {engine.name} (about 45 s each, {jobs or cores()} "
-            "at a time; cached for later runs)")
+        say(f"compiling {cold} program(s) with {engine.name} ({jobs or cores()} at a time; "
+            "about 45 s each alone, about 90 s when two build at once; cached for later runs)")
     programs = compile_all(engine, todo, jobs=jobs or cores(), progress=say)
     for c in todo:
         if c.id not in programs:
