@@ -143,9 +143,9 @@ import json, sys, time
 import arviz as az
 import numpy as np
 import stan
-from contenders.candidates import builtin_folder, discover, inputs_for
-from contenders.config import load
-from contenders.runner import load_design
+from contenders.inputs.candidates import builtin_folder, discover, inputs_for
+from contenders.inputs.config import load
+from contenders.pipeline.runner import load_design
 
 cfg = load(sys.argv[1])
 only = sys.argv[2].split(",") if sys.argv[2] else None
@@ -283,11 +283,11 @@ SIZE_CHECK = r'''
 import json, os, sys, tempfile
 import arviz as az
 import numpy as np
-from contenders.candidates import builtin_folder, discover, inputs_for
-from contenders.config import load
+from contenders.inputs.candidates import builtin_folder, discover, inputs_for
+from contenders.inputs.config import load
 from contenders.engines import get_engine
-from contenders.runner import _settings, load_design
-from contenders.store import slim
+from contenders.pipeline.runner import _settings, load_design
+from contenders.pipeline.store import slim
 
 cfg = load(sys.argv[1]).with_(warmup=int(sys.argv[3]))
 cid, stored = sys.argv[2], sys.argv[4]
@@ -326,7 +326,7 @@ def store_size(args) -> dict:
                                               "--warmup", str(args.store_warmup), "--out", str(work / "s"),
                                               "--only", args.store_only))
         sys.path.insert(0, str(ROOT / "src"))
-        from contenders.store import FitStore
+        from contenders.pipeline.store import FitStore
 
         store = FitStore(work / "s" / "fits")
         index = store.index()

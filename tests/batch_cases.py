@@ -24,7 +24,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from contenders.config import RunConfig
+from contenders.inputs.config import RunConfig
 
 N = 90
 #: Short chains for tests; R-hat and ESS limits loosened to match (common practice for
@@ -53,7 +53,7 @@ def config(out: Path, **changes) -> RunConfig:
 def local_batch():
     """One batch through the local executor (two worker processes), run once per session:
     ``(datasets folder, BatchResult)``."""
-    from contenders.batch import run_batch
+    from contenders.pipeline.batch import run_batch
 
     root = Path(tempfile.mkdtemp(prefix="contenders-batch-test-"))
     atexit.register(shutil.rmtree, root, True)

@@ -7,7 +7,7 @@ import os
 import numpy as np
 import pytest
 
-from contenders.candidates import builtin_folder, discover
+from contenders.inputs.candidates import builtin_folder, discover
 from contenders.engines import compile_all, get_engine
 
 

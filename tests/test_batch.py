@@ -13,7 +13,7 @@ import arviz as az
 import pytest
 
 from batch_cases import SETTINGS, local_batch
-from contenders.batch import find_datasets
+from contenders.pipeline.batch import find_datasets
 from contenders.errors import UserError
 
 
@@ -130,7 +130,7 @@ def test_a_folder_without_csv_files_is_one_clear_error(tmp_path):
 def test_batch_exit_status_says_whether_anything_was_ranked(rows, status, monkeypatch, tmp_path, capsys):
     import types
 
-    from contenders import batch as batch_module
+    from contenders.pipeline import batch as batch_module
     from contenders import cli
 
     fake = types.SimpleNamespace(out=tmp_path, rows=[

@@ -1,4 +1,4 @@
-"""Simulation-based calibration (trials/calibration.py and ``contenders calibrate``).
+"""Simulation-based calibration (statistics/calibration.py and ``contenders calibrate``).
 
 References: Talts, Betancourt, Simpson, Vehtari & Gelman (2018), "Validating Bayesian
 inference algorithms with simulation-based calibration", arXiv:1804.06788 (Theorem 1:
@@ -19,9 +19,9 @@ import pandas as pd
 import pytest
 import scipy.stats as sps
 
-from contenders.candidates import builtin_folder
+from contenders.inputs.candidates import builtin_folder
 from contenders.cli import main
-from contenders.trials.calibration import (Calibration, chi_square_uniformity, ecdf_band, ecdf_of_ranks, judge,
+from contenders.statistics.calibration import (Calibration, chi_square_uniformity, ecdf_band, ecdf_of_ranks, judge,
                                            rank_of)
 
 HERE = Path(__file__).parent

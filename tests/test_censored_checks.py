@@ -1,4 +1,4 @@
-"""Predictive checks under censoring (contenders.trials.censored_checks): replicates
+"""Predictive checks under censoring (contenders.statistics.censored_checks): replicates
 censored like the data and the randomised LOO-PIT, checked against exact values and
 by simulation from a known Weibull process (SciPy's weibull_min as the reference
 distribution)."""
@@ -8,8 +8,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
-from contenders.trials.censored_checks import censor_like_the_data, censoring_time_law, randomised_pit
-from contenders.trials.checks import predictive_checks
+from contenders.statistics.censored_checks import censor_like_the_data, censoring_time_law, randomised_pit
+from contenders.statistics.checks import predictive_checks
 
 
 def test_censoring_time_law_is_the_reverse_kaplan_meier_by_hand():

@@ -17,8 +17,8 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from contenders.candidates import inputs_for
-from contenders.data import build_design
+from contenders.inputs.candidates import inputs_for
+from contenders.inputs.data import build_design
 from contenders.engines.base import SamplerSettings
 
 N = 1500

@@ -9,9 +9,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from contenders.candidates import check_against_data, discover
-from contenders.config import _convert
-from contenders.data import build_design
+from contenders.inputs.candidates import check_against_data, discover
+from contenders.inputs.config import _convert
+from contenders.inputs.data import build_design
 from contenders.errors import UserError
 
 HERE = Path(__file__).parent
@@ -106,7 +106,7 @@ def test_a_left_censoring_point_outside_a_positive_support_skips_that_candidate(
 
 
 def test_the_report_says_how_censored_and_truncated_values_enter_the_checks():
-    from contenders.report import censoring_note
+    from contenders.output.report import censoring_note
 
     t = table()
     assert censoring_note(build_design(t, "y", ["x"])) == ""

@@ -25,7 +25,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from contenders.candidates import inputs_for
+from contenders.inputs.candidates import inputs_for
 from test_builtins_reference import FAMILY_PARAMS, TRUE_VALUES, _init, _plain_design, reference
 
 TEN = ["normal", "lognormal", "gamma", "weibull", "student_t",

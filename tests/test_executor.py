@@ -13,11 +13,11 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from contenders.candidates import builtin_folder
-from contenders.config import RunConfig
-from contenders.executor import share
-from contenders.progress import Progress
-from contenders.runner import run
+from contenders.inputs.candidates import builtin_folder
+from contenders.inputs.config import RunConfig
+from contenders.pipeline.executor import share
+from contenders.pipeline.progress import Progress
+from contenders.pipeline.runner import run
 
 
 @given(st.integers(1, 64), st.integers(0, 200))

@@ -9,9 +9,9 @@ import matplotlib.text
 import numpy as np
 import pytest
 
-from contenders.report import _effects_table
-from contenders.report import figures
-from contenders.trials.statistics import describe
+from contenders.output.report import _effects_table
+from contenders.output import figures
+from contenders.statistics.features import describe
 
 LONG = "Lognormal with guesses and lapses"
 
@@ -110,7 +110,7 @@ def _fits_1280(fig) -> None:
 def _checks_of(rng, n=200, shift=0.0, spread=1.0):
     from scipy import stats as sps
 
-    from contenders.trials.checks import predictive_checks
+    from contenders.statistics.checks import predictive_checks
 
     y = rng.lognormal(6.0, 0.35, n)
     y_rep = rng.lognormal(6.0 + shift, 0.35 * spread, (200, n))
@@ -153,7 +153,7 @@ def test_loo_pit_figure_draws_the_band_and_names_a_departure(drawn):
     titles = [ax.get_title(loc="left") for ax in fig.axes if ax.get_visible()]
     assert titles == [f"{LONG}\ninside the 99 % band", "◆ Inverse Gaussian (Wald)\nleaves the 99 % band"]
     # the band's limits are the ones the test used
-    from contenders.trials.checks import band_limits
+    from contenders.statistics.checks import band_limits
 
     z, lower, _ = band_limits(300, 0.99)
     limit = fig.axes[0].lines[0]
@@ -196,7 +196,7 @@ def test_prior_figure_follows_the_same_grammar(drawn):
 def test_pareto_k_bands_are_labelled_from_the_run_threshold():
     # edges 0.5 and min(1 - 1/log10 S, 0.7) (Vehtari et al. 2024, "Pareto smoothed
     # importance sampling", JMLR 25(72)); S = 1000 gives 1 - 1/3 = 0.6667
-    from contenders.report.out_of_sample import k_band_counts, k_bands
+    from contenders.output.out_of_sample import k_band_counts, k_bands
     t = 1 - 1 / np.log10(1000)
     assert [b[0] for b in k_bands(t)] == ["k ≤ 0.5", "0.5 < k ≤ 0.6667", "k > 0.6667"]
     assert [b[0] for b in k_bands(0.7)] == ["k ≤ 0.5", "0.5 < k ≤ 0.7", "k > 0.7"]
@@ -204,13 +204,13 @@ def test_pareto_k_bands_are_labelled_from_the_run_threshold():
     assert k_band_counts(np.array([0.1, 0.5, 0.55, 0.6667, 0.68, np.nan]), t) == [2, 1, 2]   # 0.6667 > 2/3
     # an infinite k (a failed tail fit, seen on survival's capacitor data) is the worst
     # there is: top band and first in the list; a missing one (K-fold) in neither
-    from contenders.report.out_of_sample import worst
+    from contenders.output.out_of_sample import worst
     assert k_band_counts(np.array([0.1, np.inf, np.nan]), 0.7) == [1, 0, 1]
     assert worst(np.array([0.2, np.nan, np.inf, 0.9])) == [2, 3, 0]
 
 
 def test_sensitivity_reading_codes():
-    from contenders.trials.sensitivity import READINGS, _reading
+    from contenders.statistics.sensitivity import READINGS, _reading
     assert _reading(0.2, 0.3, 0.05) == "pulled_both_ways"
     assert _reading(0.2, 0.01, 0.05) == "set_by_prior"
     assert _reading(0.01, 0.3, 0.05) == "led_by_data"

@@ -1,5 +1,5 @@
 """The longer retry of a posterior fit that falls just short on R-hat or ESS
-(trials/posterior.py ``fit_with_health``, ``just_short``), with a fake engine whose
+(statistics/posterior.py ``fit_with_health``, ``just_short``), with a fake engine whose
 draws are made with NumPy, so no Stan program is compiled. R-hat and ESS are ArviZ's
 (rank-normalised split R-hat and bulk/tail ESS: Vehtari, Gelman, Simpson, Carpenter &
 Buerkner 2021, Bayesian Analysis 16(2)); the retry's margins (R-hat below 1.05, ESS at
@@ -11,10 +11,10 @@ import arviz as az
 import numpy as np
 import pytest
 
-from contenders.config import QUICK_PROFILE, RunConfig, load
+from contenders.inputs.config import QUICK_PROFILE, RunConfig, load
 from contenders.engines.base import Draws, Program, SamplerSettings
 from contenders.errors import UserError
-from contenders.trials.posterior import fit_with_health
+from contenders.statistics.posterior import fit_with_health
 
 
 class FakeEngine:

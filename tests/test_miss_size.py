@@ -17,14 +17,14 @@ import pytest
 from scipy import stats as sps
 
 from contenders.cli import main
-from contenders.compare import OutOfSample, compare_candidates
-from contenders.config import RunConfig, apply_flags, from_mapping, parse_flag
+from contenders.statistics.compare import OutOfSample, compare_candidates
+from contenders.inputs.config import RunConfig, apply_flags, from_mapping, parse_flag
 from contenders.errors import UserError
-from contenders.report.format import miss as miss_text
-from contenders.runner import CandidateResult
-from contenders.store import TRIAL_SETTINGS
-from contenders.trials import statistics as st
-from contenders.trials.checks import PredictiveChecks, predictive_checks
+from contenders.output.format import miss as miss_text
+from contenders.pipeline.runner import CandidateResult
+from contenders.pipeline.store import TRIAL_SETTINGS
+from contenders.statistics import features as st
+from contenders.statistics.checks import PredictiveChecks, predictive_checks
 
 HERE = Path(__file__).parent
 Z95 = sps.norm.ppf(0.95)
@@ -273,7 +273,7 @@ def test_run_reports_miss_and_reading_against_closed_form(tmp_path):
                      out=tmp_path / "o", chains=4, warmup=300, draws=1000, prior_draws=100, engine="pystan",
                      jobs=1, conditions=("arm",), quiet=True,
                      hyperparameters={"normal_known_sd": {"prior_sd": tau0}})
-    from contenders.runner import run
+    from contenders.pipeline.runner import run
 
     first = run(base)
     c = first.candidates[0]
@@ -304,7 +304,7 @@ def test_run_reports_miss_and_reading_against_closed_form(tmp_path):
     # relevant sizes: the miss (about 0.2) is below 0.5, so it is detectable but small
     second = run(base.with_(relevant={"mean": 0.5}))
     assert second.fits_sampled == 0
-    from contenders.report import write_report
+    from contenders.output.report import write_report
 
     write_report(second, out)
     summary = json.loads((out / "summary.json").read_text())

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from contenders.trials.checks import (QUANTILE_LEVELS, band_limits, band_text, leaves_band, quantile_checks,
+from contenders.statistics.checks import (QUANTILE_LEVELS, band_limits, band_text, leaves_band, quantile_checks,
                                       quantile_misses, uniformity_test)
 
 
@@ -108,9 +108,9 @@ def test_quantile_checks_name_the_tail_a_candidate_misses():
 def test_a_loo_pit_outside_the_band_is_named_in_the_misses():
     from types import SimpleNamespace
 
-    from contenders.compare import _misfit
-    from contenders.report.tables import misfits
-    from contenders.trials.checks import PredictiveChecks
+    from contenders.statistics.compare import _misfit
+    from contenders.output.tables import misfits
+    from contenders.statistics.checks import PredictiveChecks
 
     pit = np.random.default_rng(5).beta(0.4, 0.4, size=300)
     bad = PredictiveChecks([], {}, pit, uniformity_test(pit, 0.01), [])
@@ -124,9 +124,9 @@ def test_a_loo_pit_outside_the_band_is_named_in_the_misses():
 
 
 def test_pit_alpha_is_read_from_the_configuration_and_checked(tmp_path):
-    from contenders.config import from_mapping
+    from contenders.inputs.config import from_mapping
     from contenders.errors import UserError
-    from contenders.store import TRIAL_SETTINGS
+    from contenders.pipeline.store import TRIAL_SETTINGS
 
     cfg = from_mapping({"checks": {"pit_alpha": 0.05}}, tmp_path)
     assert cfg.pit_alpha == 0.05

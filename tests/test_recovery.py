@@ -15,13 +15,13 @@ import pytest
 from scipy import stats
 
 from contenders.cli import main
-from contenders.config import RunConfig
-from contenders.recovery import (
+from contenders.inputs.config import RunConfig
+from contenders.pipeline.recovery import (
     NO_DECISION, ReplicateFit, decide, evenly_spaced, paired_difference, reading, recover, recovery_matrix,
     wilson_interval, write,
 )
-from contenders.report import write_report
-from contenders.runner import run
+from contenders.output.report import write_report
+from contenders.pipeline.runner import run
 
 
 # --- pure functions -------------------------------------------------------------------

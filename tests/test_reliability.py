@@ -15,11 +15,11 @@ import pandas as pd
 import pytest
 from hypothesis import HealthCheck, given, settings, strategies as hs
 
-from contenders.candidates import builtin_folder
-from contenders.config import RunConfig, from_mapping
-from contenders.data import build_design, read_table
+from contenders.inputs.candidates import builtin_folder
+from contenders.inputs.config import RunConfig, from_mapping
+from contenders.inputs.data import build_design, read_table
 from contenders.errors import UserError
-from contenders.runner import run
+from contenders.pipeline.runner import run
 
 HERE = Path(__file__).parent
 EXE = [sys.executable, "-m", "contenders.cli"]

@@ -14,12 +14,12 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from contenders.candidates import builtin_folder
-from contenders.config import RunConfig
-from contenders.report import SECTIONS, write_report
-from contenders.report import figures
-from contenders.report import format as fmt
-from contenders.runner import run
+from contenders.inputs.candidates import builtin_folder
+from contenders.inputs.config import RunConfig
+from contenders.output.report import SECTIONS, write_report
+from contenders.output import figures
+from contenders.output import format as fmt
+from contenders.pipeline.runner import run
 
 #: A candidate that breaks the contract: it declares no log_lik.
 BROKEN = '''/*
@@ -286,7 +286,7 @@ def test_report_writes_over_an_earlier_one_and_renders_without_optional_parts(re
     failed = [dataclasses.replace(c, status="failed", reason="made to fail for this test", prior=None,
                                   health=None, checks=None, oos=None, y_rep_sample=None)
               for c in result.candidates]
-    from contenders.compare import compare_candidates
+    from contenders.statistics.compare import compare_candidates
 
     empty = dataclasses.replace(result, candidates=failed, comparison=compare_candidates(failed))
     (tmp_path / "report.html").write_text("old")

@@ -1,4 +1,4 @@
-"""Prior and likelihood sensitivity by power-scaling (trials/sensitivity.py), checked
+"""Prior and likelihood sensitivity by power-scaling (statistics/sensitivity.py), checked
 against closed forms of the conjugate normal model and against the published rule of
 Kallioinen, Paananen, Bürkner & Vehtari (2023), "Detecting and diagnosing prior and
 likelihood sensitivity with power-scaling", Statistics and Computing 34, 57."""
@@ -13,13 +13,13 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from contenders.candidates import discover, inputs_for
-from contenders.config import RunConfig
-from contenders.data import build_design
+from contenders.inputs.candidates import discover, inputs_for
+from contenders.inputs.config import RunConfig
+from contenders.inputs.data import build_design
 from contenders.engines import SamplerSettings
-from contenders.report import write_report
-from contenders.runner import run
-from contenders.trials.sensitivity import (THRESHOLD, power_scale_log_weights, power_scaled_mean,
+from contenders.output.report import write_report
+from contenders.pipeline.runner import run
+from contenders.statistics.sensitivity import (THRESHOLD, power_scale_log_weights, power_scaled_mean,
                                            power_scaling)
 
 HERE = Path(__file__).parent

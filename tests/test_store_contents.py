@@ -15,9 +15,9 @@ import time
 import pytest
 
 from contenders import __version__
-from contenders.candidates import builtin_folder, discover
+from contenders.inputs.candidates import builtin_folder, discover
 from contenders.engines.lazy import pystan_version
-from contenders.store import INDEX_NAME, TRIALS_FORMAT, FitStore
+from contenders.pipeline.store import INDEX_NAME, TRIALS_FORMAT, FitStore
 
 EXE = [sys.executable, "-m", "contenders.cli"]
 

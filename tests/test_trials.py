@@ -10,10 +10,10 @@ import pandas as pd
 import pytest
 from scipy import stats as sps
 
-from contenders.config import RunConfig
-from contenders.runner import run
-from contenders.trials import statistics as st
-from contenders.trials.checks import uniformity_test
+from contenders.inputs.config import RunConfig
+from contenders.pipeline.runner import run
+from contenders.statistics import features as st
+from contenders.statistics.checks import uniformity_test
 
 HERE = Path(__file__).parent
 
@@ -189,7 +189,7 @@ def test_sleepstudy_slope_matches_published_value(tmp_path, programs):
     result = run(cfg)
     c = result.candidates[0]
     assert c.health is not None and c.health.divergences == 0
-    from contenders.runner import load_design
+    from contenders.pipeline.runner import load_design
 
     coding = load_design(cfg).coding[0]
     # the coefficient is per SD of Days; divide by that SD for ms per day
@@ -204,7 +204,7 @@ def test_failing_bound_that_a_narrower_prior_fixes_names_the_parameter_and_range
     200 values falls below 100 ms for large sigma only. The lowest tenth of sigma's draws
     keeps every minimum inside (500 - 3.5 * sigma > 100 for sigma below about 110), so
     the reading names sigma and its lowest tenth (checked against a direct count)."""
-    from contenders.trials.prior import summarise_prior
+    from contenders.statistics.prior import summarise_prior
 
     rng = np.random.default_rng(4)
     sigma = np.abs(rng.normal(0, 300, 1000))
@@ -230,7 +230,7 @@ def test_failing_bound_from_the_family_structure_says_priors_will_not_fix_it():
     2000)^1440 (exact computation), and the lognormal part is narrow and high at once,
     so no tenth of any one parameter's draws gives even a quarter of plausible datasets
     under the demo's bounds."""
-    from contenders.trials.prior import summarise_prior
+    from contenders.statistics.prior import summarise_prior
 
     rng = np.random.default_rng(5)
     S, N = 1000, 1440

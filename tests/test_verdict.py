@@ -10,15 +10,15 @@ import arviz as az
 import numpy as np
 import pytest
 
-from contenders.candidates import support_problem
-from contenders.compare import OutOfSample, compare_candidates, standings
+from contenders.inputs.candidates import support_problem
+from contenders.statistics.compare import OutOfSample, compare_candidates, standings
 from contenders.engines.base import Draws, SamplerSettings
-from contenders.report import _certainty
-from contenders.report import format as fmt
-from contenders.report.tables import p_cell
-from contenders.runner import QUICK_LOOK, CandidateResult
-from contenders.trials.checks import PredictiveChecks
-from contenders.trials.posterior import diagnose
+from contenders.output.report import _certainty
+from contenders.output import format as fmt
+from contenders.output.tables import p_cell
+from contenders.pipeline.runner import QUICK_LOOK, CandidateResult
+from contenders.statistics.checks import PredictiveChecks
+from contenders.statistics.posterior import diagnose
 
 # --- lme4's sleepstudy: the case where the verdict contradicted itself ----------------------
 #
@@ -286,7 +286,7 @@ def test_verdict_advice_on_flagged_priors_follows_what_the_prior_trial_found():
     # The demo's case (README, Prior predictive trial): the lognormal's failing minimum can
     # be fixed by a narrower prior on one parameter, while the guesses of the lognormal
     # with guesses and lapses put the minimum below its bound whatever the priors.
-    from contenders.compare import _prior_advice
+    from contenders.statistics.compare import _prior_advice
 
     def flagged(label, *readings):
         return SimpleNamespace(label=label, prior=SimpleNamespace(failing=[{"reading": r} for r in readings]))

@@ -16,9 +16,9 @@ import pandas as pd
 import pytest
 from scipy import stats as sps
 
-from contenders.compare import OutOfSample, elpd_data, estimate, weights, weights_key
-from contenders.report import figure_store
-from contenders.store import FitStore
+from contenders.statistics.compare import OutOfSample, elpd_data, estimate, weights, weights_key
+from contenders.output import figure_store
+from contenders.pipeline.store import FitStore
 
 SRC = Path(__file__).resolve().parents[1] / "src"
 HEAVY = ("arviz", "xarray", "scipy", "matplotlib", "stan", "cmdstanpy")
@@ -174,7 +174,7 @@ def test_weights_key_changes_with_any_input(rng):
 # --- figures ----------------------------------------------------------------------------------
 
 def test_stored_figure_is_the_figure_drawn_afresh(tmp_path):
-    from contenders.report import figures
+    from contenders.output import figures
 
     rows = [{"rank": 1, "id": "a", "label": "A", "elpd_diff": 0.0, "elpd_diff_se": 0.0},
             {"rank": 2, "id": "b", "label": "B", "elpd_diff": 3.5, "elpd_diff_se": 1.2}]

@@ -4,7 +4,7 @@ __version__ = "0.1.0"
 
 
 def run(config):
-    """Run a comparison; see :func:`contenders.runner.run`."""
-    from .runner import run as _run
+    """Run a comparison; see :func:`contenders.pipeline.runner.run`."""
+    from contenders.pipeline.runner import run as _run
 
     return _run(config)

@@ -16,7 +16,7 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-from .base import Draws, Engine, Program, SamplerSettings, SamplingError
+from contenders.engines.base import Draws, Engine, Program, SamplerSettings, SamplingError
 
 ENGINE_NAMES = ("auto", "pystan", "cmdstanpy")
 
@@ -97,7 +97,7 @@ def resolve_engine(name: str = "auto") -> tuple[str, str]:
     found, else ``pystan``, with a notice when a CmdStan was pointed at (CMDSTAN set, or
     ~/.cmdstan present) but cannot be used, so the fallback is never silent. A user error
     for an unknown name, or for ``cmdstanpy`` without a usable CmdStan."""
-    from ..errors import UserError
+    from contenders.errors import UserError
 
     if name not in ENGINE_NAMES:
         raise UserError(f"engine '{name}' is not known; choose one of: {', '.join(ENGINE_NAMES)}")
@@ -118,10 +118,10 @@ def get_engine(name: str = "auto") -> Engine:
     """Return the engine called ``name``; ``auto`` prefers CmdStanPy when a usable CmdStan is found."""
     name, _notice = resolve_engine(name)
     if name == "cmdstanpy":
-        from .cmdstanpy_engine import CmdStanPyEngine
+        from contenders.engines.cmdstanpy_engine import CmdStanPyEngine
 
         return CmdStanPyEngine()
-    from .pystan_engine import PyStanEngine
+    from contenders.engines.pystan_engine import PyStanEngine
 
     return PyStanEngine()
 
@@ -148,7 +148,7 @@ def compile_all(engine: Engine, candidates, jobs: int = 1, progress=None) -> dic
     import sys
     import time
 
-    from .base import lock_notices
+    from contenders.engines.base import lock_notices
 
     say = progress or (lambda _text: None)
     todo = [c for c in candidates if c.valid]

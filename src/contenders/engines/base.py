@@ -14,7 +14,7 @@ from typing import TYPE_CHECKING, Any, Callable, Mapping
 
 import numpy as np
 
-from ..candidates import Candidate
+from contenders.inputs.candidates import Candidate
 
 if TYPE_CHECKING:   # ArviZ is imported where draws are made or read, not here
     import arviz as az

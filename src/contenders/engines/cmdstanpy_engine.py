@@ -22,9 +22,9 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from ..candidates import Candidate
-from ..cleanup import while_writing
-from .base import OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError, compile_lock
+from contenders.inputs.candidates import Candidate
+from contenders.cleanup import while_writing
+from contenders.engines.base import OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError, compile_lock
 
 
 def _cache_root() -> Path:
@@ -51,7 +51,7 @@ def _chains_at_once(chains: int) -> int:
     the cores this process may use (not every chain at once on a small machine)."""
     if CHAIN_WORKERS[0]:
         return max(1, min(chains, CHAIN_WORKERS[0]))
-    from ..executor import cores
+    from contenders.pipeline.executor import cores
 
     return max(1, min(chains, cores()))
 
@@ -137,7 +137,7 @@ class CmdStanPyEngine(Engine):
     name = "cmdstanpy"
 
     def __init__(self, cmdstan: str | os.PathLike | None = None) -> None:
-        from . import cmdstanpy_version_line, find_cmdstan
+        from contenders.engines import cmdstanpy_version_line, find_cmdstan
 
         _quiet_logger()
         if cmdstan is None:

@@ -9,14 +9,14 @@ from __future__ import annotations
 
 import sys
 
-from ..candidates import load_candidate
-from . import SamplingError, get_engine
+from contenders.inputs.candidates import load_candidate
+from contenders.engines import SamplingError, get_engine
 
 
 def main(argv: list[str]) -> int:
     engine_name, path = argv
-    from . import compile_one_notice
-    from .base import lock_notices
+    from contenders.engines import compile_one_notice
+    from contenders.engines.base import lock_notices
 
     candidate = load_candidate(path)
     try:

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from typing import Any, Mapping
 
-from .base import Draws, Engine, Program, SamplerSettings
+from contenders.engines.base import Draws, Engine, Program, SamplerSettings
 
 
 def pystan_version() -> str:
@@ -26,7 +26,7 @@ class LazyEngine(Engine):
     """``get_engine(name)``, loaded on first use; ``auto`` is resolved at once."""
 
     def __init__(self, name: str = "auto") -> None:
-        from . import cmdstanpy_version_line, find_cmdstan, resolve_engine
+        from contenders.engines import cmdstanpy_version_line, find_cmdstan, resolve_engine
 
         name, self.notice = resolve_engine(name)
         self.name = name
@@ -37,7 +37,7 @@ class LazyEngine(Engine):
     def loaded(self) -> Engine:
         """The real engine (loaded now if it was not yet)."""
         if self._engine is None:
-            from . import get_engine
+            from contenders.engines import get_engine
 
             self._engine = get_engine(self.name)
         return self._engine

@@ -24,9 +24,9 @@ from typing import Any, Mapping
 import arviz as az
 import numpy as np
 
-from ..candidates import Candidate
-from ..cleanup import while_writing
-from .base import (OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError, compile_lock,
+from contenders.inputs.candidates import Candidate
+from contenders.cleanup import while_writing
+from contenders.engines.base import (OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError, compile_lock,
                    raise_if_interrupted)
 
 

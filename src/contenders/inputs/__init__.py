@@ -1,0 +1,1 @@
+"""What a run reads: configuration, the data table, the candidate programs."""

@@ -1,0 +1,1 @@
+"""What a run writes: the report, its figures, tables and number formatting."""

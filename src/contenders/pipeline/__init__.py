@@ -1,0 +1,1 @@
+"""Running the trials: the runner, executors, the fit store, batch and recovery."""

@@ -1,0 +1,1 @@
+"""Pure statistics over arrays: test statistics, checks, comparison, effects."""

@@ -1,0 +1,249 @@
+"""Posterior predictive checks: test statistics, grouped statistics, quantiles and LOO-PIT."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from functools import lru_cache
+from typing import Mapping, Sequence
+
+import numpy as np
+
+from contenders.statistics import features as st
+from contenders.statistics.censored_checks import censor_like_the_data, randomised_pit
+
+
+@dataclass
+class PredictiveChecks:
+    rows: list[dict]                                  # one per statistic, with p_value
+    grouped: dict[str, dict[str, list[dict]]]         # condition -> level -> rows
+    loo_pit: np.ndarray                               # one value per observation
+    loo_pit_test: dict                                # uniformity_test: inside, band, where it leaves
+    extreme: list[str]                                # statistics with p beyond ppp_extreme (detectable)
+    stat_draws: dict[str, np.ndarray] = field(repr=False, default_factory=dict)
+    quantiles: list[dict] = field(default_factory=list)   # quantile_checks: one row per level
+
+
+def thin_draws(n_total: int, n_keep: int) -> np.ndarray:
+    """Evenly spaced indices of ``n_keep`` out of ``n_total`` draws (all if fewer)."""
+    if n_keep >= n_total:
+        return np.arange(n_total)
+    return np.unique(np.linspace(0, n_total - 1, n_keep).round().astype(int))
+
+
+def loo_log_weights(log_lik: np.ndarray, reff: float = 1.0) -> np.ndarray:
+    """PSIS log weights of leaving each observation out, shape (N, draws), from
+    ``log_lik`` shaped (draws, N) (ArviZ's ``psislw``)."""
+    import arviz as az
+
+    lw, _ = az.psislw(-np.asarray(log_lik, dtype=float).T, reff=reff)
+    return lw
+
+
+def loo_pit(y: np.ndarray, y_rep: np.ndarray, log_lik: np.ndarray | None = None, reff: float = 1.0,
+            log_weights: np.ndarray | None = None) -> np.ndarray:
+    """LOO-PIT values with PSIS weights: Pr(y_rep_i <= y_i | y_{-i}) for each i.
+
+    ``y_rep`` and ``log_lik`` have shape (draws, N); ``log_weights`` from
+    :func:`loo_log_weights` may be given instead of ``log_lik`` to smooth once for
+    several evaluations. Computed with ArviZ's ``psislw`` and ``loo_pit`` (Vehtari,
+    Gelman & Gabry 2017, Statistics and Computing 27, section 2.1, and Gabry et al.
+    2019, JRSS A 182, section 5)."""
+    import arviz as az
+
+    lw = loo_log_weights(log_lik, reff) if log_weights is None else log_weights
+    return np.asarray(az.loo_pit(y=np.asarray(y, dtype=float), y_hat=np.asarray(y_rep, dtype=float).T,
+                                 log_weights=lw))
+
+
+#: Most evaluation points of the LOO-PIT band (fewer when there are fewer observations).
+BAND_POINTS = 100
+
+
+@lru_cache(maxsize=16)
+def _band(n: int, points: int, prob: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Evaluation points and the simultaneous band's lower and upper ECDF limits for ``n``
+    uniform values (ArviZ's ``ecdf_confidence_band``, optimised method). Depends only on
+    ``n``, the number of points and ``prob``, so it is computed once per size."""
+    from arviz.stats.ecdf_utils import ecdf_confidence_band
+
+    z = np.linspace(0.0, 1.0, points + 1)[1:-1]
+    lower, upper = ecdf_confidence_band(n, z, z, prob=prob, method="optimized")
+    return z, np.asarray(lower, dtype=float), np.asarray(upper, dtype=float)
+
+
+def band_limits(n: int, prob: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The evaluation points ``z`` (``min(n, BAND_POINTS)`` equal parts of (0, 1), the
+    end points left out) and the simultaneous ``prob`` band of the ECDF of ``n``
+    independent uniform(0, 1) values at them: (z, lower, upper)."""
+    return _band(int(n), int(min(n, BAND_POINTS)), float(prob))
+
+
+def _stretches(z: np.ndarray, mask: np.ndarray) -> list[list[float]]:
+    """Runs of consecutive True in ``mask`` as [first z, last z]."""
+    out, start = [], None
+    for i, m in enumerate(mask):
+        if m and start is None:
+            start = i
+        if start is not None and (not m or i == len(mask) - 1):
+            stop = i if m else i - 1
+            out.append([round(float(z[start]), 4), round(float(z[stop]), 4)])
+            start = None
+    return out
+
+
+def uniformity_test(pit: np.ndarray, alpha: float = 0.01) -> dict:
+    """Graphical uniformity test of the LOO-PIT values: does their empirical distribution
+    function stay inside the simultaneous ``1 - alpha`` band of uniform(0, 1) at every
+    evaluation point? Under uniformity it does with probability ``1 - alpha`` at once
+    over all points (Säilynoja, Bürkner & Vehtari 2022, "Graphical test for discrete
+    uniformity and its applications in goodness-of-fit evaluation and multiple sample
+    comparison", Statistics and Computing 32:32, section 2; the band is ArviZ's
+    ``ecdf_confidence_band``). LOO-PIT values are not quite independent, so read a
+    departure together with the figure.
+
+    Returns ``inside`` (True when the ECDF never leaves the band), ``band`` (its
+    probability), ``points`` (evaluation points), ``outside_points`` (how many lie
+    outside), ``above`` and ``below`` (stretches of LOO-PIT values, [from, to], where the
+    ECDF is above the upper or below the lower limit), ``largest_gap`` (the largest
+    distance outside the band, 0 when inside), ``n`` and ``method``."""
+    pit = np.asarray(pit, dtype=float)
+    pit = np.sort(pit[np.isfinite(pit)])
+    prob = 1.0 - float(alpha)
+    base = {"band": prob, "n": int(pit.size),
+            "method": f"simultaneous {100 * prob:g} % band of the LOO-PIT ECDF under uniformity "
+                      "(Säilynoja, Bürkner & Vehtari 2022)"}
+    if pit.size < 2:
+        return {**base, "inside": None, "points": 0, "outside_points": 0, "above": [], "below": [],
+                "largest_gap": None}
+    z, lower, upper = band_limits(pit.size, prob)
+    ecdf = np.searchsorted(pit, z, side="right") / pit.size
+    above, below = ecdf > upper, ecdf < lower
+    gap = np.maximum(ecdf - upper, lower - ecdf)
+    return {**base, "inside": bool(not (above.any() or below.any())), "points": int(z.size),
+            "outside_points": int((above | below).sum()), "above": _stretches(z, above),
+            "below": _stretches(z, below), "largest_gap": float(max(gap.max(), 0.0))}
+
+
+def leaves_band(test: dict | None) -> bool:
+    """True when the LOO-PIT uniformity test says the ECDF leaves its band."""
+    return bool(test) and test.get("inside") is False
+
+
+def band_text(test: dict | None) -> str:
+    """Where the LOO-PIT ECDF leaves its band, in words: "above the 99 % band at LOO-PIT
+    0.59–0.98; below it at 0.02–0.40"; "" when it stays inside or was not tested."""
+    if not leaves_band(test):
+        return ""
+
+    def spans(xs):
+        return ", ".join(f"{a:.2f}" if a == b else f"{a:.2f}–{b:.2f}" for a, b in xs)
+
+    band = f"{100 * test['band']:g} % band"
+    parts = []
+    if test["above"]:
+        parts.append(f"above the {band} at LOO-PIT {spans(test['above'])}")
+    if test["below"]:
+        parts.append(("below it" if parts else f"below the {band}") + f" at LOO-PIT {spans(test['below'])}")
+    return "; ".join(parts)
+
+
+#: Quantile levels of the quantile check: 5 %, 10 %, ..., 95 %.
+QUANTILE_LEVELS = tuple(round(0.05 * k, 2) for k in range(1, 20))
+
+
+def quantile_checks(y: np.ndarray, y_rep: np.ndarray, levels: Sequence[float] = QUANTILE_LEVELS,
+                    interval: float = 0.95) -> list[dict]:
+    """Observed quantiles of ``y`` against the same quantile of each replicated dataset
+    (rows of ``y_rep``, shape (draws, N)); NumPy's default (linear) quantile throughout.
+
+    One row per level: ``level``, ``observed``, the replicated quantiles' ``median``,
+    their central ``interval`` (``lower``, ``upper``) and 50 % interval (``lower50``,
+    ``upper50``), ``share_above`` (share of replicated datasets whose quantile is at or
+    above the observed one) and ``miss``: "replicates low" or "replicates high" when the
+    observed quantile lies outside the interval, else ""."""
+    y = np.asarray(y, dtype=float)
+    y = y[np.isfinite(y)]
+    y_rep = np.atleast_2d(np.asarray(y_rep, dtype=float))
+    lv = np.asarray(levels, dtype=float)
+    obs = np.quantile(y, lv)
+    reps = np.nanquantile(y_rep, lv, axis=1)          # (levels, draws)
+    tail = (1 - interval) / 2
+    rows = []
+    for k, q in enumerate(lv):
+        r = reps[k][np.isfinite(reps[k])]
+        if r.size == 0:
+            rows.append({"level": float(q), "observed": float(obs[k]), "median": np.nan, "lower": np.nan,
+                         "upper": np.nan, "lower50": np.nan, "upper50": np.nan, "share_above": np.nan,
+                         "miss": ""})
+            continue
+        lo, lo50, med, hi50, hi = np.quantile(r, [tail, 0.25, 0.5, 0.75, 1 - tail])
+        miss = "replicates high" if obs[k] < lo else "replicates low" if obs[k] > hi else ""
+        rows.append({"level": float(q), "observed": float(obs[k]), "median": float(med),
+                     "lower": float(lo), "upper": float(hi), "lower50": float(lo50), "upper50": float(hi50),
+                     "share_above": float(np.mean(r >= obs[k])), "miss": miss})
+    return rows
+
+
+def quantile_misses(rows: Sequence[dict]) -> list[str]:
+    """Where in the distribution the replicated quantiles miss the observed ones, as
+    short phrases: "5–15 % (replicates high)"."""
+    out, run = [], []
+    for row in list(rows) + [{"miss": None, "level": None}]:
+        if run and row["miss"] != run[-1]["miss"]:
+            a, b = run[0]["level"], run[-1]["level"]
+            span = f"{100 * a:.0f} %" if a == b else f"{100 * a:.0f}–{100 * b:.0f} %"
+            out.append(f"{span} ({run[0]['miss']})")
+            run = []
+        if row["miss"]:
+            run.append(row)
+    return out
+
+
+def predictive_checks(
+    y: np.ndarray,
+    y_rep: np.ndarray,
+    log_lik: np.ndarray,
+    thresholds: Sequence[float] = (),
+    conditions: Mapping[str, np.ndarray] | None = None,
+    reff: float = 1.0,
+    ppp_extreme: float = 0.01,
+    pit_alpha: float = 0.01,
+    cens: np.ndarray | None = None,
+    seed: int = 0,
+) -> PredictiveChecks:
+    """All posterior predictive checks of one candidate; arrays shaped (draws, N).
+    ``extreme`` lists the statistics whose ppp-value lies below ``ppp_extreme`` or above
+    1 - ``ppp_extreme`` (the run's ``[checks] ppp_extreme``); ``pit_alpha``: the LOO-PIT
+    band holds a uniform ECDF with probability 1 - pit_alpha. With ``cens`` (0 observed,
+    1 right-, -1 left-censored) the statistics use replicates censored like the data
+    and the LOO-PIT is randomised over each censored value's range
+    (``censored_checks``), from a generator seeded with ``seed``."""
+    pit_y_rep = y_rep
+    rng = np.random.default_rng(seed)
+    censored = cens is not None and bool((np.asarray(cens) != 0).any())
+    if censored:
+        y_rep = censor_like_the_data(y, cens, y_rep, rng)
+    reps = st.compute(y_rep, thresholds)
+    obs = st.compute(y, thresholds)
+    rows = st.summarise(reps, obs)
+    grouped_rows: dict[str, dict[str, list[dict]]] = {}
+    for cond, labels in (conditions or {}).items():
+        g_rep = st.grouped(y_rep, labels, thresholds)
+        g_obs = st.grouped(y, labels, thresholds)
+        grouped_rows[cond] = {lev: st.summarise(g_rep[lev], g_obs[lev]) for lev in g_rep}
+    if censored:
+        # a censored value's replicate is the censoring point itself, kept as float32 by
+        # the engines: up to half a float32 step either side of y, so "at y" means within
+        # two float32 steps of it (measured: with an exact comparison about half of the
+        # right-censored values got Pr(y_rep < y) = 1, and the band flagged every candidate)
+        yy = np.asarray(y, dtype=float)
+        tol = 2 * np.spacing(np.abs(yy).astype(np.float32)).astype(float)
+        lw = loo_log_weights(log_lik, reff)          # smoothed once for both evaluations
+        at = loo_pit(np.where(np.asarray(cens) == -1, yy + tol, yy), pit_y_rep, log_weights=lw)
+        below = loo_pit(yy - tol, pit_y_rep, log_weights=lw)
+        pit = randomised_pit(at, below, cens, rng)
+    else:
+        pit = loo_pit(y, pit_y_rep, log_lik, reff)
+    extreme = [r["statistic"] for r in rows if st.detectable(r["p_value"], ppp_extreme)]
+    return PredictiveChecks(rows, grouped_rows, pit, uniformity_test(pit, pit_alpha), extreme, reps,
+                            quantile_checks(y, y_rep))

@@ -1,0 +1,225 @@
+"""Coefficients and group-level terms in the outcome's own units.
+
+The candidates see predictors centred and scaled (``data.build_design``): a numeric
+column x enters as (x - c) / s, with c its mean and s its sample SD, and a text column
+as indicators centred at their means. A built-in's linear predictor is
+``eta = intercept + X * coef + group_sd * group_z[group]``. So, from the posterior draws:
+
+* per unit of a numeric predictor, eta changes by ``coef / s``; for an indicator, by
+  ``coef`` between its level and the reference level;
+* at every raw predictor equal to 0 (and every indicator at its reference level), for a
+  group at the centre of the group distribution, eta is
+  ``intercept - sum_k coef_k * c_k / s_k``;
+* under an identity link these are in the outcome's units; under a log link exp() of
+  them is: the change becomes a ratio per unit, the intercept a value of the outcome.
+
+Each is computed draw by draw, then summarised (posterior mean and central 95 %
+interval), so the intervals of derived values are exact up to Monte Carlo error. A
+candidate whose link is not known (not an unchanged built-in) gets the internal values
+only, with the reason.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+
+#: Probability of the central posterior intervals shown.
+LEVEL = 0.95
+
+#: Groups shown at each end (lowest, highest) when the group terms are summarised.
+EXTREMES = 2
+
+
+def base_name(parameter: str) -> str:
+    """``group_z[3]`` -> ``group_z``."""
+    return parameter.split("[", 1)[0]
+
+
+def group_terms(sizes: Mapping[str, int], J: int, K: int = -1) -> set[str]:
+    """Names of the parameters that hold one value per group: one-dimensional with J
+    elements (J > 0). ``coef`` counts only when J differs from K, the number of
+    predictors (with J = K its length says nothing)."""
+    if J <= 0:
+        return set()
+    return {name for name, size in sizes.items()
+            if size == J and not (name == "coef" and J == K) and name != "log_lik"}
+
+
+def sizes_of(parameters: Sequence[str]) -> dict[str, int]:
+    """Element counts per parameter from flattened names (``coef[1]``, ``coef[2]``...)."""
+    out: dict[str, int] = {}
+    for p in parameters:
+        out[base_name(p)] = out.get(base_name(p), 0) + 1
+    return out
+
+
+def _summary(draws: np.ndarray, level: float = LEVEL) -> tuple[float, float, float]:
+    d = np.asarray(draws, dtype=float).reshape(-1)
+    d = d[np.isfinite(d)]
+    if d.size == 0:
+        return math.nan, math.nan, math.nan
+    lo, hi = np.quantile(d, [(1 - level) / 2, (1 + level) / 2])
+    return float(d.mean()), float(lo), float(hi)
+
+
+@dataclass
+class Coefficients:
+    """One candidate's coefficients on both scales and its group terms, summarised.
+
+    ``rows``: one per coefficient, then the intercept at zero (``kind`` is
+    ``numeric``, ``indicator`` or ``intercept``). ``groups``: one row per group
+    (``level``, the internal term and its offset of eta) and ``group_note`` the
+    summary of them. ``link`` is ``identity``, ``log`` or ``""`` (not known, see
+    ``reason``)."""
+
+    link: str = ""
+    sets: str = ""
+    moves: str = ""
+    reason: str = ""
+    outcome: str = ""
+    rows: list[dict] = field(default_factory=list)
+    group_column: str | None = None
+    group_parameter: str = ""
+    group_sd_parameter: str = ""
+    group_sd: tuple[float, float, float] | None = None
+    groups: list[dict] = field(default_factory=list)
+    #: slopes per group (built-ins' ``slope_sd``, ``group_corr_L``): per slope column, the
+    #: SD of the groups' slopes (internal, and per unit of the column) and the correlation
+    #: of the groups' slopes with their intercepts
+    slopes: list[dict] = field(default_factory=list)
+
+
+def _draws(posterior, name: str) -> np.ndarray | None:
+    if name not in posterior:
+        return None
+    v = np.asarray(posterior[name].values, dtype=float)
+    return v.reshape(v.shape[0] * v.shape[1], -1)
+
+
+def _zero_label(coding) -> str:
+    parts, seen = [], set()
+    for c in coding:
+        if c.level is None:
+            parts.append(f"{c.source} = 0")
+        elif c.source not in seen:
+            parts.append(f"{c.source} = {c.reference}")
+            seen.add(c.source)
+    return ", ".join(parts)
+
+
+def coefficient_summary(posterior, design, link=None, reason: str = "") -> Coefficients | None:
+    """The coefficients of a built-in-shaped program (parameters ``intercept`` and
+    ``coef`` with one value per column of X) on the internal and the outcome's scale,
+    and its group terms (``group_z`` scaled by ``group_sd[1]``). ``link`` is a
+    :class:`contenders.inputs.candidates.Link` or ``None`` (internal values only, ``reason``
+    says why). Returns ``None`` when the program has neither coefficients nor group
+    terms to show."""
+    coding = list(design.coding)
+    out = Coefficients(link=link.kind if link else "", sets=link.sets if link else "",
+                       moves=link.moves if link else "", reason=reason, outcome=design.outcome)
+    intercept, coef = _draws(posterior, "intercept"), _draws(posterior, "coef")
+    log = link is not None and link.kind == "log"
+    to_outcome = np.exp if log else (lambda v: v)
+    if coding and intercept is not None and coef is not None and coef.shape[1] == len(coding):
+        eta0 = intercept[:, 0].copy()
+        for k, c in enumerate(coding):
+            internal = _summary(coef[:, k])
+            per_unit = coef[:, k] / c.scale
+            eta0 -= coef[:, k] * c.center / c.scale
+            if c.level is None:
+                what = f"per unit of {c.source}"
+                kind = "numeric"
+            else:
+                what = f"{c.source} = {c.level} against {c.reference}"
+                kind = "indicator"
+            value = _summary(to_outcome(per_unit)) if link else (math.nan,) * 3
+            if link is None:
+                units = ""
+            elif log:
+                units = f"ratio {what}" if kind == "numeric" else f"ratio, {what}"
+            else:
+                units = f"{design.outcome} {what}" if kind == "numeric" else f"{design.outcome}, {what}"
+            out.rows.append({"parameter": f"coef[{k + 1}]", "name": c.name, "kind": kind, "column": c.source,
+                             "level": c.level, "reference": c.reference, "center": c.center, "scale": c.scale,
+                             "internal": internal, "value": value, "units": units})
+        where = _zero_label(coding)
+        out.rows.append({"parameter": "intercept", "name": f"intercept at {where}", "kind": "intercept",
+                         "column": None, "level": None, "reference": None, "center": None, "scale": None,
+                         "internal": _summary(intercept[:, 0]),
+                         "value": _summary(to_outcome(eta0)) if link else (math.nan,) * 3,
+                         "units": (f"{design.outcome} ({link.sets} at {where})" if link else "")})
+    # group terms: the built-ins' group_z with group_sd[1]; any other program's vector of
+    # one value per group is summarised by its own draws
+    J = design.J
+    if J > 0:
+        names = [n for n in posterior.data_vars if posterior[n].ndim == 3 and posterior[n].shape[2] == J]
+        found = group_terms({n: J for n in names}, J, design.K)
+        term = "group_z" if "group_z" in found else (sorted(found)[0] if found else "")
+        if term:
+            z = _draws(posterior, term)
+            sd = _draws(posterior, "group_sd")
+            scaled = term == "group_z" and sd is not None and sd.shape[1] == 1 and link is not None
+            offsets = z * sd[:, :1] if scaled else z
+            out.group_column, out.group_parameter = design.group_column, term
+            if sd is not None and sd.shape[1] == 1:
+                out.group_sd_parameter, out.group_sd = "group_sd[1]", _summary(sd[:, 0])
+            for j in range(J):
+                out.groups.append({"level": design.group_levels[j], "parameter": f"{term}[{j + 1}]",
+                                   "internal": _summary(z[:, j]),
+                                   "offset": _summary(offsets[:, j]) if scaled else (math.nan,) * 3,
+                                   "value": _summary(to_outcome(offsets[:, j])) if scaled else (math.nan,) * 3})
+    slope_sd, factor = _draws(posterior, "slope_sd"), _draws(posterior, "group_corr_L")
+    if J > 0 and design.slopes and slope_sd is not None and slope_sd.shape[1] == len(design.slopes):
+        size = len(design.slopes) + 1
+        for k, col in enumerate(design.slopes):
+            c = coding[col]
+            # correlation of slope k with the intercepts: Omega = L L', and L's first row is
+            # (1, 0, ..., 0), so Omega[k + 1, 1] = L[k + 1, 1] (row-major flattening)
+            corr = factor[:, (k + 1) * size] if factor is not None and factor.shape[1] == size * size else None
+            per = "per unit of " + c.source if c.level is None else f"{c.source} = {c.level} against {c.reference}"
+            out.slopes.append({"parameter": f"slope_sd[{k + 1}]", "name": c.name, "column": c.source,
+                               "internal": _summary(slope_sd[:, k]),
+                               "per_unit": _summary(slope_sd[:, k] / c.scale),
+                               "units": ("" if link is None else
+                                         f"{design.outcome} {per}" if not log else f"log scale, {per}"),
+                               "correlation": _summary(corr) if corr is not None else (math.nan,) * 3})
+    if not out.rows and not out.groups:
+        return None
+    return out
+
+
+def extremes(c: Coefficients, n: int = EXTREMES) -> tuple[list[dict], list[dict]]:
+    """The ``n`` groups with the lowest and the ``n`` with the highest posterior mean
+    offset (the internal term when the offset is not known), lowest first."""
+    key = (lambda g: g["offset"][0]) if c.groups and np.isfinite(c.groups[0]["offset"][0]) \
+        else (lambda g: g["internal"][0])
+    ordered = sorted(c.groups, key=key)
+    n = min(n, len(ordered) // 2)
+    return ordered[:n], ordered[len(ordered) - n:][::-1]
+
+
+def summary(c: Coefficients | None) -> dict[str, Any] | None:
+    """JSON-ready record for ``summary.json``."""
+    if c is None:
+        return None
+    return {
+        "link": c.link or None, "linear_predictor_sets": c.sets or None, "reason": c.reason or None,
+        "coefficients": [{"parameter": r["parameter"], "name": r["name"], "units": r["units"] or None,
+                          "internal_mean": r["internal"][0], "internal_q025": r["internal"][1],
+                          "internal_q975": r["internal"][2], "mean": r["value"][0], "q025": r["value"][1],
+                          "q975": r["value"][2]} for r in c.rows],
+        "groups": {"column": c.group_column, "parameter": c.group_parameter, "count": len(c.groups),
+                   "sd_parameter": c.group_sd_parameter or None,
+                   "sd": list(c.group_sd) if c.group_sd else None} if c.groups else None,
+        "slopes": [{"parameter": s["parameter"], "name": s["name"], "units": s["units"] or None,
+                    "sd_internal_mean": s["internal"][0], "sd_mean": s["per_unit"][0],
+                    "sd_q025": s["per_unit"][1], "sd_q975": s["per_unit"][2],
+                    "correlation_with_intercept_mean": s["correlation"][0],
+                    "correlation_q025": s["correlation"][1], "correlation_q975": s["correlation"][2]}
+                   for s in getattr(c, "slopes", [])],
+    }
+

@@ -1,0 +1,406 @@
+"""Effects across candidates: does the conclusion depend on which candidate is picked?
+
+An effect here is a summary of a dataset that an analyst reads as the answer to a
+question: the difference in mean (or median) outcome between a level of a condition
+and its reference level, or the least-squares slope of the outcome on a numeric
+predictor. Each is computed the same way on the observed data and on every replicated
+dataset ``y_rep`` of a candidate, so it needs nothing of the candidate but its
+replicated data under the observed design; any dropped-in candidate works.
+
+The replicated values are posterior predictive draws of the effect in a new dataset of
+the same size and design. They carry the candidate's posterior uncertainty about the
+process plus the sampling noise of one dataset of this size, so their interval is
+wider than an interval for the candidate's expected effect (for a difference of two
+means of a well-specified candidate, by about the square root of two).
+
+Pure functions over arrays; a dataset is the last axis, so one call handles the
+observed data (shape ``(N,)``) and every replicated dataset at once (``(S, N)``).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Mapping, Sequence
+
+import numpy as np
+import pandas as pd
+
+from contenders.statistics.checks import thin_draws
+
+#: Replicated effect draws kept per candidate and effect.
+MAX_DRAWS = 1000
+
+#: Probability of the central intervals.
+LEVEL = 0.95
+
+#: Candidates with a stacking weight below this do not count when asking whether
+#: candidates agree (the verdict's rule in compare.py; common practice, no source).
+MIN_WEIGHT = 0.05
+
+#: Statuses of candidates whose effects are shown: ranked, or sampled but unhealthy
+#: (shown for information, never weighted). Failed and skipped ones are left out.
+SAMPLED = ("ok", "unhealthy")
+
+KINDS = {"mean_difference": "difference in mean", "median_difference": "difference in median",
+         "slope": "least-squares slope"}
+
+
+# --- one dataset's effects -------------------------------------------------------------
+
+def reference_and_levels(labels: Sequence, reference: str | None = None) -> tuple[str, list[str]]:
+    """The reference level (``reference`` when given, else the first in sorted order
+    of the text of the labels, as ``data.build_design`` codes a text column) and the
+    other levels, sorted."""
+    from contenders.inputs.data import levels_with_reference
+
+    return levels_with_reference(labels, reference)
+
+
+def level_differences(y: np.ndarray, labels: Sequence, statistic: str = "mean",
+                      reference: str | None = None) -> dict[str, np.ndarray]:
+    """Difference of ``statistic`` (``mean`` or ``median``) of the outcome between each
+    level of ``labels`` and the reference level, along the last axis of ``y``.
+
+    Returns ``{level: values}``; ``values`` has the shape of ``y`` without its last
+    axis. Medians use NumPy's default linear interpolation (type 7 of Hyndman & Fan
+    1996), as the checks do. A dataset holding a non-finite value anywhere gives NaN
+    (as in ``statistics.compute``), even where a median would stay finite."""
+    y = np.asarray(y, dtype=float)
+    text = np.asarray(labels).astype(str)
+    ref, others = reference_and_levels(text, reference)
+    fn = {"mean": np.mean, "median": np.median}[statistic]
+    finite = np.all(np.isfinite(y), axis=-1)
+    with np.errstate(invalid="ignore", over="ignore"):
+        base = fn(y[..., text == ref], axis=-1)
+        out = {}
+        for level in others:
+            d = fn(y[..., text == level], axis=-1) - base
+            out[level] = np.where(finite & np.isfinite(d), d, np.nan)
+    return out
+
+
+def slope(y: np.ndarray, x: Sequence[float]) -> np.ndarray:
+    """Least-squares slope of ``y`` on ``x`` (with an intercept) along the last axis:
+    sum((x - mean x) y) / sum((x - mean x)^2), the ordinary least-squares estimate of a
+    straight line. It is the marginal slope, not adjusted for other predictors. A
+    dataset holding a non-finite value gives NaN."""
+    y = np.asarray(y, dtype=float)
+    x = np.asarray(x, dtype=float)
+    dx = x - x.mean()
+    with np.errstate(invalid="ignore", over="ignore"):
+        b = (y @ dx) / float(dx @ dx)
+    return np.where(np.isfinite(b), b, np.nan)
+
+
+def numeric_columns(table: pd.DataFrame, columns: Sequence[str]) -> list[str]:
+    """The columns among ``columns`` that ``data.build_design`` treats as numeric
+    (numeric dtype, not boolean)."""
+    return [c for c in columns if c in table.columns and pd.api.types.is_numeric_dtype(table[c])
+            and not pd.api.types.is_bool_dtype(table[c])]
+
+
+# --- one candidate's effects ------------------------------------------------------------
+
+@dataclass
+class Effect:
+    """One effect of one candidate: the observed value and the replicated draws."""
+
+    key: str                  # stable name, for example "cue=on-off:mean_difference"
+    kind: str                 # mean_difference | median_difference | slope
+    column: str               # condition or predictor column
+    level: str | None         # level compared with the reference (conditions only)
+    reference: str | None     # reference level (conditions only)
+    observed: float
+    mean: float               # mean of the replicated draws
+    lower: float              # 2.5 % quantile of the replicated draws
+    upper: float              # 97.5 % quantile
+    n_draws: int              # finite replicated draws kept
+    n_missing: int            # replicated datasets whose effect was not finite
+    draws: np.ndarray = field(repr=False, default_factory=lambda: np.zeros(0))
+
+    @property
+    def title(self) -> str:
+        """Plain description, for example "cue: on minus off, difference in mean"."""
+        if self.kind == "slope":
+            return f"{self.column}: least-squares slope"
+        return f"{self.column}: {self.level} minus {self.reference}, {KINDS[self.kind]}"
+
+
+def summarise(draws: np.ndarray, level: float = LEVEL) -> tuple[float, float, float, int]:
+    """Mean and central ``level`` interval (quantiles, NumPy's linear interpolation) of
+    the finite draws, and their count; NaN when there are none."""
+    d = np.asarray(draws, dtype=float)
+    d = d[np.isfinite(d)]
+    if d.size == 0:
+        return math.nan, math.nan, math.nan, 0
+    lo, hi = np.quantile(d, [(1 - level) / 2, (1 + level) / 2])
+    return float(d.mean()), float(lo), float(hi), int(d.size)
+
+
+def _effect(key, kind, column, level, reference, observed, reps) -> Effect:
+    reps = np.asarray(reps, dtype=float)
+    mean, lo, hi, n = summarise(reps)
+    return Effect(key, kind, column, level, reference, float(observed), mean, lo, hi, n,
+                  int(reps.size - n), reps[np.isfinite(reps)])
+
+
+def effect_draws(
+    y_rep: np.ndarray,
+    y: np.ndarray,
+    table: pd.DataFrame | None,
+    conditions: Sequence[str] = (),
+    predictors: Sequence[str] = (),
+    max_draws: int = MAX_DRAWS,
+    reference: Mapping[str, str] | None = None,
+) -> list[Effect]:
+    """Every effect of one candidate, from its replicated datasets.
+
+    ``y_rep`` is (draws, N) and ``y`` (N,), in the outcome's own units; ``table`` holds
+    the rows of the design in the same order (``Design.table``). For each condition
+    column, each level other than the reference gives a difference in mean and a
+    difference in median (level minus reference); each numeric column among
+    ``predictors`` gives a least-squares slope in outcome units per unit of that
+    column, from the raw column (not the centred and scaled one the candidates see).
+    ``reference`` maps a condition column to its reference level (by default the
+    first level in sorted order). At most ``max_draws`` evenly spaced draws are used."""
+    reference = dict(reference or {})
+    if table is None or y_rep is None or np.size(y_rep) == 0:
+        return []
+    y_rep = np.asarray(y_rep)
+    reps = np.asarray(y_rep[thin_draws(y_rep.shape[0], max_draws)], dtype=float)
+    out: list[Effect] = []
+    for col in conditions:
+        if col not in table.columns:
+            continue
+        labels = table[col].astype(str).to_numpy()
+        ref, _ = reference_and_levels(labels, reference.get(col))
+        for stat in ("mean", "median"):
+            obs = level_differences(y, labels, stat, ref)
+            rep = level_differences(reps, labels, stat, ref)
+            kind = f"{stat}_difference"
+            for level in obs:
+                out.append(_effect(f"{col}={level}-{ref}:{kind}", kind, col, level, ref, obs[level], rep[level]))
+    for col in numeric_columns(table, predictors):
+        x = table[col].to_numpy(dtype=float)
+        if np.ptp(x) == 0:
+            continue
+        out.append(_effect(f"{col}:slope", "slope", col, None, None, float(slope(y, x)), slope(reps, x)))
+    return out
+
+
+# --- across candidates ------------------------------------------------------------------
+
+def allocate(weights: Sequence[float], size: int) -> np.ndarray:
+    """Split ``size`` draws among candidates in proportion to ``weights``: each gets
+    the whole part of weight * size, and the draws left over go one each to the largest
+    remainders (ties to the earlier candidate). The largest-remainder rule of
+    apportionment (Hamilton's method; common practice, no source)."""
+    w = np.asarray(weights, dtype=float)
+    if w.ndim != 1 or w.size == 0 or np.any(~np.isfinite(w)) or np.any(w < 0) or w.sum() <= 0:
+        raise ValueError("weights must be finite, non-negative and not all zero")
+    share = w / w.sum() * size
+    counts = np.floor(share).astype(int)
+    left = size - int(counts.sum())
+    order = np.argsort(-(share - counts), kind="stable")
+    counts[order[:left]] += 1
+    return counts
+
+
+def combine(
+    per_candidate_draws: Sequence[np.ndarray],
+    weights: Sequence[float],
+    rng: np.random.Generator,
+    size: int | None = None,
+) -> np.ndarray:
+    """A sample from the mixture of the candidates' replicated effect draws with the
+    given (stacking) weights.
+
+    Method: ``allocate`` fixes how many of the ``size`` combined draws come from each
+    candidate (its weight times ``size``, rounded by largest remainder), so a
+    candidate's share is exact to one draw rather than random; the draws themselves
+    are taken from the candidate's finite draws by ``rng`` without replacement (when
+    more are needed than it has, every draw is used whole times and the rest are taken
+    without replacement). Deterministic given the generator's seed. ``size`` defaults
+    to the largest number of draws of any candidate with positive weight."""
+    draws = [np.asarray(d, dtype=float)[np.isfinite(np.asarray(d, dtype=float))] for d in per_candidate_draws]
+    w = np.asarray(weights, dtype=float)
+    if len(draws) != w.size:
+        raise ValueError("one weight per candidate is needed")
+    w = np.where([d.size > 0 for d in draws], w, 0.0)
+    if size is None:
+        size = max((d.size for d, wi in zip(draws, w) if wi > 0), default=0)
+    if size == 0 or not np.any(w > 0):
+        return np.zeros(0)
+    out = []
+    for d, n in zip(draws, allocate(w, size)):
+        if n == 0:
+            continue
+        whole, rest = divmod(int(n), d.size)
+        out.append(np.tile(d, whole))
+        out.append(d[np.sort(rng.choice(d.size, size=rest, replace=False))])
+    return np.concatenate(out)
+
+
+def direction(lower: float, upper: float) -> str:
+    """``above zero``, ``below zero`` or ``includes zero``, from an interval."""
+    if lower > 0:
+        return "above zero"
+    if upper < 0:
+        return "below zero"
+    return "includes zero"
+
+
+def _g(x: float) -> str:
+    """Three significant digits, all digits before the point kept."""
+    if x is None or not np.isfinite(x):
+        return "undefined"
+    if x == 0:
+        return "0"
+    decimals = max(0, 2 - int(math.floor(math.log10(abs(x)))))
+    return f"{x:.{decimals}f}"
+
+
+def _iv(lo: float, hi: float) -> str:
+    return f"{_g(lo)} to {_g(hi)}"
+
+
+@dataclass
+class Agreement:
+    reading: str        # agree | depends | single | none
+    sentence: str
+
+
+def agreement(title: str, rows: Sequence[Mapping], observed: float, combined: Mapping | None = None,
+              min_weight: float = MIN_WEIGHT) -> Agreement:
+    """Whether the healthy candidates with non-negligible weight reach the same
+    conclusion about one effect, as a cautious sentence.
+
+    ``rows`` hold, per candidate, ``label``, ``weight`` (stacking weight; None when
+    not ranked), ``lower`` and ``upper`` (95 % interval). Candidates agree when every
+    pair of intervals overlaps (the largest lower end is at most the smallest upper
+    end) and every interval falls on the same side of zero (all above, all below, or
+    all including it); otherwise the conclusion depends on the choice. Rows with weight
+    below ``min_weight`` or without an interval are left out."""
+    use = [r for r in rows if r.get("weight") is not None and r["weight"] >= min_weight
+           and np.isfinite(r["lower"]) and np.isfinite(r["upper"])]
+    misses = [r["label"] for r in use if not r["lower"] <= observed <= r["upper"]]
+    miss = (f" The observed value ({_g(observed)}) lies outside the 95 % interval of "
+            + ", ".join(misses) + ": replicated data from "
+            + ("that candidate do" if len(misses) == 1 else "those candidates do")
+            + " not reproduce this effect, so treat its estimate with suspicion.") if misses else ""
+    if not use:
+        return Agreement("none", f"{title}: no ranked candidate has a stacking weight of at least "
+                                 f"{min_weight:g}, so there is nothing to compare.")
+    if len(use) == 1:
+        r = use[0]
+        return Agreement("single", (
+            f"{title}: only {r['label']} carries a stacking weight of at least {min_weight:g} "
+            f"({r['weight']:.2f}); its 95 % interval is {_iv(r['lower'], r['upper'])} "
+            f"({direction(r['lower'], r['upper'])}). With a single candidate in play there is no "
+            "agreement to check; look at the other candidates' intervals before relying on it." + miss))
+    names = ", ".join(f"{r['label']} ({r['weight']:.2f})" for r in use)
+    sides = {direction(r["lower"], r["upper"]) for r in use}
+    overlap = max(r["lower"] for r in use) <= min(r["upper"] for r in use)
+    comb = (f" (stacking-weighted combination {_g(combined['mean'])}, 95 % interval "
+            f"{_iv(combined['lower'], combined['upper'])})") if combined else ""
+    if overlap and len(sides) == 1:
+        side = sides.pop()
+        if side == "includes zero":
+            what = ("agree only in that none of them separates this effect from zero: every 95 % interval "
+                    "includes zero")
+            after = ("The data leave the direction open under each of these candidates; that is not "
+                     "evidence that the effect is absent.")
+        else:
+            what = f"agree: every 95 % interval lies {side}"
+            after = ("The conclusion does not hinge on the choice among these candidates; that is not "
+                     "proof of the effect, since all of them may share the same blind spots.")
+        return Agreement("agree", (
+            f"{title}: the {len(use)} candidates with stacking weight of at least {min_weight:g} "
+            f"({names}) {what}, and the intervals overlap{comb}. {after}" + miss))
+    parts = "; ".join(f"{r['label']} {_iv(r['lower'], r['upper'])} ({direction(r['lower'], r['upper'])})"
+                      for r in use)
+    why = []
+    if len(sides) > 1:
+        why.append("the intervals fall on different sides of zero")
+    if not overlap:
+        why.append("not all intervals overlap")
+    return Agreement("depends", (
+        f"{title}: the conclusion depends on the choice of candidate, because "
+        + " and ".join(why) + f" (95 % intervals: {parts}){comb}. Report the effect under each of "
+        "these candidates, or settle the choice of candidate on other grounds first." + miss))
+
+
+@dataclass
+class EffectAcross:
+    """One effect under every candidate that reached the predictive checks."""
+
+    key: str
+    kind: str
+    column: str
+    level: str | None
+    reference: str | None
+    title: str
+    observed: float
+    rows: list[dict]                 # per candidate, ranked first by elpd; see compare_effects
+    combined: dict | None            # mean, lower, upper, n_draws of the weighted mixture
+    reading: str                     # agree | depends | single | none
+    sentence: str
+    combined_draws: np.ndarray = field(repr=False, default_factory=lambda: np.zeros(0))
+
+
+def compare_effects(results: Sequence, comparison_rows: Sequence[Mapping], seed: int = 0,
+                    min_weight: float = MIN_WEIGHT) -> list[EffectAcross]:
+    """Gather each effect across candidates, combine the ranked candidates' draws by
+    stacking weight, and read whether they agree.
+
+    ``results`` are candidate results with ``id``, ``label``, ``status`` and
+    ``effects`` (lists of :class:`Effect`); only those whose status is in ``SAMPLED``
+    (ranked, or sampled but unhealthy) are shown. ``comparison_rows`` are the ranked
+    rows (``id``, ``rank``, ``stacking_weight``), best first. Rows of the output come
+    in that order, then candidates that were not ranked (weight None). The combination
+    uses the generator ``numpy.random.default_rng([seed, k])`` for the k-th effect."""
+    ranked = {row["id"]: row for row in comparison_rows}
+    results = [r for r in results if r.status in SAMPLED and getattr(r, "effects", None)]
+    order = [r for row in comparison_rows for r in results if r.id == row["id"]]
+    order += [r for r in results if r.id not in ranked]
+    keys: dict[str, Effect] = {}
+    for r in order:
+        for e in r.effects or []:
+            keys.setdefault(e.key, e)
+    out = []
+    for k, (key, first) in enumerate(keys.items()):
+        rows, weighted, weights = [], [], []
+        for r in order:
+            e = next((e for e in r.effects or [] if e.key == key), None)
+            if e is None:
+                continue
+            row = ranked.get(r.id)
+            w = row["stacking_weight"] if row else None
+            rows.append({"id": r.id, "label": r.label, "status": r.status, "rank": row["rank"] if row else None,
+                         "weight": w, "mean": e.mean, "lower": e.lower, "upper": e.upper,
+                         "direction": direction(e.lower, e.upper) if e.n_draws else None,
+                         "observed_inside": bool(e.lower <= e.observed <= e.upper) if e.n_draws else None,
+                         "n_draws": e.n_draws, "n_missing": e.n_missing, "draws": e.draws})
+            if w is not None and e.n_draws:
+                weighted.append(e.draws)
+                weights.append(w)
+        combined, mix = None, np.zeros(0)
+        if len(weights) >= 2 and sum(weights) > 0:
+            mix = combine(weighted, weights, np.random.default_rng([int(seed), k]))
+            mean, lo, hi, n = summarise(mix)
+            combined = {"mean": mean, "lower": lo, "upper": hi, "n_draws": n}
+        verdict = agreement(first.title, rows, first.observed, combined, min_weight)
+        out.append(EffectAcross(key, first.kind, first.column, first.level, first.reference, first.title,
+                                first.observed, rows, combined, verdict.reading, verdict.sentence, mix))
+    return out
+
+
+def effects_summary(effects: Sequence[EffectAcross]) -> list[dict]:
+    """The ``effects`` block of summary.json: plain numbers, no draws."""
+    return [{
+        "key": e.key, "kind": e.kind, "column": e.column, "level": e.level, "reference": e.reference,
+        "description": e.title, "observed": e.observed,
+        "candidates": [{k: v for k, v in row.items() if k != "draws"} for row in e.rows],
+        "stacking_combined": e.combined, "reading": e.reading, "sentence": e.sentence,
+    } for e in effects]

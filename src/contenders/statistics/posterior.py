@@ -1,0 +1,236 @@
+"""Posterior fit with sampler health, and the automatic adapt_delta escalation.
+
+Diagnostics and thresholds:
+
+* rank-normalised split R-hat and bulk/tail ESS of every parameter (Vehtari, Gelman,
+  Simpson, Carpenter & Buerkner 2021, "Rank-normalization, folding, and localization:
+  an improved R-hat for assessing convergence of MCMC", Bayesian Analysis 16(2)):
+  R-hat below 1.01 and ESS above 100 per chain; computed with ArviZ;
+* divergent transitions (any is a problem) and iterations that hit the maximum tree
+  depth (an efficiency warning);
+* E-BFMI per chain below 0.3 is flagged (Betancourt 2016, "Diagnosing suboptimal
+  cotangent disintegrations in Hamiltonian Monte Carlo", arXiv:1604.00695).
+
+When a fit has divergent transitions it is refitted with each higher ``adapt_delta``
+of the escalation in turn until none remain. When the accepted fit then falls just
+short on R-hat or ESS alone (no divergent transitions, E-BFMI fine, R-hat below 1.05,
+ESS at least its floor divided by the factor), it is fitted once more with warmup and
+draws times ``longer`` (the run's ``longer_retry``): R-hat from 1,000 draws per chain
+varies by about +-0.005 between seeds for a well-behaved posterior (measured here, see
+``config.QUICK_PROFILE``), so 1.012 can be chance; longer chains settle it, and ESS
+grows about in proportion to the draws (common practice, no source). A fit far off
+(R-hat 1.05 or more, or any divergent transition left) is not retried: more of the same
+sampling does not fix a posterior the sampler cannot explore. Every attempt is recorded.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
+from typing import Any, Mapping, Sequence
+
+import math
+
+import numpy as np
+
+from contenders.engines.base import Draws, Engine, Program, SamplerSettings
+
+
+@dataclass
+class Attempt:
+    adapt_delta: float
+    divergences: int
+    seconds: float                 # sampling, without the waiting below
+    wait_seconds: float = 0.0      # waiting for a free chain slot, no chain of the fit running
+    warmup: int = 0                # per chain
+    draws: int = 0                 # per chain
+
+
+@dataclass
+class Health:
+    """Sampler diagnostics of the final attempt and the record of all attempts."""
+
+    rhat_max: float
+    rhat_worst: str
+    ess_bulk_min: float
+    ess_tail_min: float
+    ess_worst: str
+    divergences: int
+    treedepth_hits: int
+    ebfmi: list[float]
+    adapt_delta: float
+    attempts: list[Attempt]
+    healthy: bool
+    problems: list[str]
+    warnings: list[str]
+    table: list[dict] = field(default_factory=list)   # per parameter element
+    warmup: int = 0                # per chain, of the accepted fit
+    draws: int = 0                 # per chain, of the accepted fit
+
+    @property
+    def posterior_means(self) -> dict[str, float]:
+        return {row["parameter"]: row["mean"] for row in self.table}
+
+
+def _flatten(ds, var_names: Sequence[str]) -> dict[str, float]:
+    out = {}
+    for name in var_names:
+        if name not in ds:
+            continue
+        values = np.asarray(ds[name].values, dtype=float)
+        if values.ndim == 0:
+            out[name] = float(values)
+        else:
+            for idx in np.ndindex(values.shape):
+                out[f"{name}[{','.join(str(i + 1) for i in idx)}]"] = float(values[idx])
+    return out
+
+
+def diagnose(
+    draws: Draws,
+    parameters: Sequence[str],
+    rhat_max: float = 1.01,
+    ess_per_chain_min: float = 100.0,
+    ebfmi_min: float = 0.3,
+    attempts: Sequence[Attempt] = (),
+) -> Health:
+    """Compute every diagnostic of one run and decide whether it is healthy."""
+    import arviz as az
+
+    from contenders.output.format import against, limit   # a value beside its threshold shows the side it is on
+
+    idata = draws.idata
+    settings = draws.settings
+    names = [p for p in parameters if p in idata.posterior]
+    rhat = _flatten(az.rhat(idata, var_names=names, method="rank"), names)
+    bulk = _flatten(az.ess(idata, var_names=names, method="bulk"), names)
+    tail = _flatten(az.ess(idata, var_names=names, method="tail"), names)
+    post = idata.posterior
+    mean = _flatten(post[names].mean(dim=("chain", "draw")), names)
+    sd = _flatten(post[names].std(dim=("chain", "draw")), names)
+    q05 = _flatten(post[names].quantile(0.05, dim=("chain", "draw")), names)
+    q95 = _flatten(post[names].quantile(0.95, dim=("chain", "draw")), names)
+    # elements equal in every draw of every chain are fixed by the program's structure (the
+    # first row of a Cholesky factor of a correlation matrix is 1, 0, ..., 0), not stuck:
+    # chains stuck at their random initial values would differ from one another
+    spread = _flatten(post[names].max(dim=("chain", "draw")) - post[names].min(dim=("chain", "draw")), names)
+    for k in [k for k, v in spread.items() if v == 0 and post.sizes["chain"] * post.sizes["draw"] > 1]:
+        for d in (rhat, bulk, tail):
+            d.pop(k, None)
+    table = [{"parameter": k, "mean": mean[k], "sd": sd[k], "q05": q05[k], "q95": q95[k],
+              "rhat": rhat[k], "ess_bulk": bulk[k], "ess_tail": tail[k]} for k in rhat]
+    finite_rhat = {k: v for k, v in rhat.items() if np.isfinite(v)}
+    worst_r = max(finite_rhat, key=finite_rhat.get) if finite_rhat else ""
+    worst_e = min(bulk, key=lambda k: min(bulk[k], tail[k])) if bulk else ""
+    ss = idata.sample_stats
+    divergences = int(np.asarray(ss["diverging"].values).sum())
+    hits = int((np.asarray(ss["tree_depth"].values) >= settings.max_treedepth).sum())
+    ebfmi = [float(v) for v in np.atleast_1d(az.bfmi(idata))]
+    min_ess = ess_per_chain_min * settings.chains
+
+    problems, warnings = [], []
+    r_max = max(finite_rhat.values()) if finite_rhat else float("nan")
+    if any(not np.isfinite(v) for v in rhat.values()):
+        problems.append("R-hat could not be computed for some parameters (constant draws: the chains are stuck)")
+    if np.isfinite(r_max) and r_max >= rhat_max:
+        problems.append(
+            f"R-hat {against(r_max, rhat_max, 3)} for {worst_r} is not below {limit(rhat_max)}: chains "
+            "disagree; run longer "
+            "(more warmup and draws) or reparameterise"
+        )
+    e_bulk = min(bulk.values()) if bulk else float("nan")
+    e_tail = min(tail.values()) if tail else float("nan")
+    if min(e_bulk, e_tail) < min_ess:
+        problems.append(
+            f"effective sample size {against(min(e_bulk, e_tail), min_ess, 0)} for {worst_e} is below "
+            f"{limit(min_ess)} ({limit(ess_per_chain_min)} per chain): increase draws"
+        )
+    if divergences:
+        problems.append(
+            f"{divergences} divergent transitions at adapt_delta {settings.adapt_delta}: the posterior "
+            "has regions the sampler cannot explore; reparameterise or use stronger priors"
+        )
+    low = [i + 1 for i, v in enumerate(ebfmi) if v < ebfmi_min]
+    if low:
+        problems.append(
+            f"E-BFMI below {limit(ebfmi_min)} in chain(s) "
+            + ", ".join(f"{i} ({against(ebfmi[i - 1], ebfmi_min, 2)})" for i in low)
+            + ": the sampler moves "
+            "poorly between energy levels; reparameterise (for example non-centred group effects)"
+        )
+    if hits:
+        warnings.append(
+            f"{hits} iterations hit the maximum tree depth {settings.max_treedepth}: sampling is "
+            "inefficient; raise max_treedepth or reparameterise"
+        )
+    return Health(
+        rhat_max=r_max, rhat_worst=worst_r, ess_bulk_min=e_bulk, ess_tail_min=e_tail,
+        ess_worst=worst_e, divergences=divergences, treedepth_hits=hits, ebfmi=ebfmi,
+        adapt_delta=settings.adapt_delta, attempts=list(attempts), healthy=not problems,
+        problems=problems, warnings=warnings, table=table, warmup=settings.warmup, draws=settings.draws,
+    )
+
+
+#: A fit whose R-hat is at or above this is far off, not just short: no longer retry
+#: (the older rule of thumb for R-hat; common practice, no source).
+RHAT_FAR = 1.05
+
+
+def just_short(health: Health, longer: float, rhat_max: float = 1.01, ess_per_chain_min: float = 100.0,
+               ebfmi_min: float = 0.3, chains: int = 4) -> bool:
+    """Whether an unhealthy fit fell short on R-hat or ESS only, and by little enough that
+    chains ``longer`` times as long can be expected to settle it."""
+    if health.healthy or longer <= 1 or health.divergences or any(v < ebfmi_min for v in health.ebfmi):
+        return False
+    if not np.isfinite(health.rhat_max) or health.rhat_max >= max(RHAT_FAR, rhat_max):
+        return False
+    ess = min(health.ess_bulk_min, health.ess_tail_min)
+    return bool(np.isfinite(ess) and ess >= ess_per_chain_min * chains / longer)
+
+
+def fit_with_health(
+    engine: Engine,
+    program: Program,
+    data: Mapping[str, Any],
+    settings: SamplerSettings,
+    parameters: Sequence[str],
+    escalation: Sequence[float] = (0.95, 0.99),
+    longer: float = 1.0,
+    **thresholds: float,
+) -> tuple[Draws, Health]:
+    """Sample; on divergent transitions refit at each higher adapt_delta in turn; when the
+    result falls just short on R-hat or ESS (see :func:`just_short`), fit once more with
+    warmup and draws ``longer`` times as many."""
+    steps = [settings.adapt_delta] + sorted(d for d in escalation if d > settings.adapt_delta)
+    attempts: list[Attempt] = []
+
+    def one(run: SamplerSettings) -> Draws:
+        draws = engine.sample(program, data, run)
+        n_div = int(np.asarray(draws.idata.sample_stats["diverging"].values).sum())
+        attempts.append(Attempt(run.adapt_delta, n_div, draws.sample_seconds, draws.wait_seconds,
+                                run.warmup, run.draws))
+        return draws
+
+    for i, delta in enumerate(steps):
+        draws = one(replace(settings, adapt_delta=delta))
+        if attempts[-1].divergences == 0 or i == len(steps) - 1:
+            break
+        del draws
+    health = diagnose(draws, parameters, attempts=attempts, **thresholds)
+    escalated = len(attempts) > 1
+    short = health.problems
+    if just_short(health, longer, chains=settings.chains, **thresholds):
+        run = replace(settings, adapt_delta=health.adapt_delta, warmup=math.ceil(settings.warmup * longer),
+                      draws=math.ceil(settings.draws * longer))
+        del draws
+        draws = one(run)
+        health = diagnose(draws, parameters, attempts=attempts, **thresholds)
+        health.warnings.insert(0, (
+            f"fitted again with {run.warmup} warmup iterations and {run.draws} draws per chain (instead of "
+            f"{settings.warmup} and {settings.draws}), since the first fit fell just short ("
+            + "; ".join(p.split(":")[0] for p in short)
+            + ("); the longer fit passes" if health.healthy else "); the longer fit does not pass either")))
+    if escalated:
+        record = "; ".join(f"adapt_delta {a.adapt_delta}: {a.divergences} divergences"
+                           for a in attempts if a.draws == settings.draws)
+        health.warnings.insert(0, f"refitted after divergent transitions ({record})")
+    return draws, health
