@@ -15,7 +15,8 @@ from contenders.statistics.compare import (
     compare_candidates, estimate, log_mean_exp, make_folds, weights,
 )
 from contenders.inputs.config import RunConfig
-from contenders.pipeline.runner import CandidateResult, load_design, run
+from contenders.pipeline.runner import load_design, run
+from contenders.records import CandidateResult
 
 HERE = Path(__file__).parent
 

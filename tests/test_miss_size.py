@@ -21,7 +21,7 @@ from contenders.statistics.compare import OutOfSample, compare_candidates
 from contenders.inputs.config import RunConfig, apply_flags, from_mapping, parse_flag
 from contenders.errors import UserError
 from contenders.output.format import miss as miss_text
-from contenders.pipeline.runner import CandidateResult
+from contenders.records import CandidateResult
 from contenders.pipeline.store import TRIAL_SETTINGS
 from contenders.statistics import features as st
 from contenders.statistics.checks import PredictiveChecks, predictive_checks

@@ -120,10 +120,10 @@ def _csv_text(study: CalibrationStudy) -> str:
 
 
 def study_dict(study: CalibrationStudy) -> dict[str, Any]:
-    from contenders.pipeline.runner import _clean
+    from contenders.output.summary import json_safe
 
     cfg = study.config
-    return _clean({
+    return json_safe({
         "data": {"file": cfg.data, "outcome": cfg.outcome, "n": study.design.N,
                  "predictors": [c.name for c in study.design.coding], "group": cfg.group},
         "simulations": study.simulations, "kept_draws": study.kept_draws,

@@ -1,6 +1,6 @@
 """The comparison report: one self-contained HTML page and a CSV file of every table.
 
-``write_report(result, out_dir)`` reads a :class:`contenders.pipeline.runner.RunResult` (it never
+``write_report(result, out_dir)`` reads a :class:`contenders.records.RunResult` (it never
 changes it) and writes ``report.html`` with figures and styles inline, plus the CSV
 files, each to a temporary file in ``out_dir`` renamed into place, so an interrupted
 run never leaves half a file. Every number on the page is formatted in Python
@@ -23,7 +23,7 @@ import numpy as np
 from jinja2 import Environment, FileSystemLoader, StrictUndefined
 
 from contenders.statistics.compare import SMALL_DIFFERENCE
-from contenders.statistics.effects import MIN_WEIGHT, compare_effects, direction
+from contenders.statistics.effects import MIN_WEIGHT, direction
 from contenders.statistics.features import describe
 from contenders.output import recovery_section
 from contenders.output.figure_store import drawn
@@ -884,12 +884,9 @@ def _files(result, cands) -> Table:
 
 
 def _store(result):
-    """The run's fit store, which also keeps drawn figures (see :mod:`.figure_store`)."""
-    from contenders.pipeline.store import FitStore
-
-    cfg, out = getattr(result, "config", None), getattr(result, "out", None)
-    folder = getattr(cfg, "store", None) or (Path(out) / "fits" if out is not None else None)
-    return FitStore(folder) if folder else None
+    """The run's fit store (``RunResult.store``), which also keeps drawn figures (see
+    :mod:`.figure_store`); None: figures are drawn and not kept."""
+    return getattr(result, "store", None)
 
 
 def censoring_note(d) -> str:
@@ -1004,7 +1001,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
 
     lineups = _lineups(result, cands)
 
-    effects = compare_effects(result.candidates, result.comparison.rows, cfg.seed)
+    effects = result.effects   # compared once, by the runner
     effects_table = _effects_table(result, effects) if effects else None
     figs["effects"] = drawn(store, "effects_across", effects, {e.key: _effect_units(e, d.outcome) for e in effects})
 

@@ -183,13 +183,13 @@ INDEX_COLUMNS = ("dataset", "file", "status", "reason", "n", "outcome", "winner"
 
 def index_records(batch: BatchResult) -> list[dict[str, Any]]:
     """One plain record per dataset (the content of index.json)."""
-    from contenders.pipeline.runner import _clean
+    from contenders.output.summary import json_safe
 
     records = []
     for r in batch.rows:
         d = asdict(r)
         d["weights"] = {cid: r.weights.get(cid) for cid in batch.candidates} if r.status == "ok" else {}
-        records.append(_clean(d))
+        records.append(json_safe(d))
     return records
 
 

@@ -12,16 +12,17 @@ import math
 import os
 import platform
 import time
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any, Mapping, Sequence
 
 import numpy as np
 
 from contenders import __version__
-from contenders.statistics.compare import Comparison, OutOfSample, Plan, compare_candidates, plan_estimate
+from contenders.statistics.compare import Plan, compare_candidates, plan_estimate
 from contenders.inputs.candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for, link_of
 from contenders.inputs.config import RunConfig
+from contenders.output.summary import write_summary
+from contenders.records import CandidateResult, RunResult
 from contenders.inputs.data import Design, build_design, check_reference, read_table
 from contenders.engines import SamplingError, compile_all, get_engine
 from contenders.engines.base import SamplerSettings
@@ -30,14 +31,13 @@ from contenders.pipeline.executor import make_executor, report
 from contenders.pipeline.progress import Progress
 from contenders.pipeline.store import FitStore, StoredEngine, data_origin, trials_key
 from contenders.errors import UserError
-from contenders.statistics.checks import PredictiveChecks, predictive_checks, thin_draws
+from contenders.statistics.checks import predictive_checks, thin_draws
 from contenders.statistics.censored_checks import censor_like_the_data
-from contenders.statistics.coefficients import Coefficients, coefficient_summary, summary as coefficients_summary
-from contenders.statistics.effects import compare_effects, effect_draws, effects_summary
-from contenders.statistics.posterior import Health, fit_with_health
-from contenders.statistics.prior import PriorTrial, summarise_prior
-from contenders.statistics.sensitivity import Sensitivity, power_scaling, summary as sensitivity_summary
-from contenders.statistics.features import INTERVAL
+from contenders.statistics.coefficients import coefficient_summary
+from contenders.statistics.effects import compare_effects, effect_draws
+from contenders.statistics.posterior import fit_with_health
+from contenders.statistics.prior import summarise_prior
+from contenders.statistics.sensitivity import power_scaling
 
 #: Replicated datasets kept per candidate for figures (the checks use ``check_draws``).
 FIGURE_DRAWS = 100
@@ -57,53 +57,6 @@ def stored_engine(engine_name: str, store_folder: str, cfg: RunConfig) -> Stored
     """The engine a task samples with: answers from the fit store at ``store_folder``
     and stores every new fit, recording the run's data file in the store's index."""
     return StoredEngine(get_engine(engine_name), FitStore(store_folder, data_origin(cfg)), y_rep_draws(cfg))
-
-
-@dataclass
-class CandidateResult:
-    id: str
-    label: str
-    about: str
-    support: str
-    status: str                        # ok | unhealthy | skipped | failed
-    reason: str = ""
-    code: str = ""
-    code_hash: str = ""
-    hyperparameters: dict[str, Any] = field(default_factory=dict)
-    prior: PriorTrial | None = None
-    health: Health | None = None
-    checks: PredictiveChecks | None = None
-    oos: OutOfSample | None = None
-    refit_divergences: int = 0
-    tied_with: list[str] = field(default_factory=list)   # ranked candidates tied within Monte Carlo error
-    y_rep_sample: np.ndarray | None = field(default=None, repr=False)
-    seconds: dict[str, float] = field(default_factory=dict)
-    fit_files: list[str] = field(default_factory=list)   # stored fits (NetCDF) of this candidate
-    stage: str = ""                    # stage reached (or failed at)
-    fits_sampled: int = 0              # fits sampled for this candidate in this run
-    fits_reused: int = 0               # fits loaded from the fit store
-    from_store: bool = False           # the whole result was read from the fit store
-    posterior_file: str = ""           # stored NetCDF of the accepted posterior fit
-    effects: list = field(default_factory=list)   # replicated effects (statistics/effects.py)
-    sensitivity: Sensitivity | None = None   # power-scaling of prior and likelihood (needs lprior)
-    coefficients: Coefficients | None = None   # coefficients in the outcome's units, group terms
-    pending: Any = field(default=None, repr=False)   # RefitsDue while refits run elsewhere
-
-
-@dataclass
-class RunResult:
-    config: RunConfig
-    design: Design
-    candidates: list[CandidateResult]
-    comparison: Comparison
-    engine: str
-    versions: dict[str, str]
-    data_hash: str
-    seconds: float
-    out: Path
-    fits_sampled: int = 0
-    fits_reused: int = 0
-    recovery: Any = None               # recovery.Recovery when model recovery was run
 
 
 def _file_hash(path: Path) -> str:
@@ -548,6 +501,7 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
         config=cfg, design=design, candidates=ordered, comparison=comparison, engine=engine.name,
         versions=versions(engine), data_hash=_file_hash(cfg.data) if cfg.data else "",
         seconds=time.perf_counter() - start, out=out, fits_sampled=sampled, fits_reused=reused,
+        effects=compare_effects(ordered, comparison.rows, cfg.seed), store=store,
     )
     write_summary(result)
     return result
@@ -637,123 +591,3 @@ def versions(engine) -> dict[str, str]:
     }
 
 
-def _clean(value: Any) -> Any:
-    """JSON-safe: NaN and infinities become null; numpy scalars become Python numbers."""
-    if isinstance(value, dict):
-        return {str(k): _clean(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_clean(v) for v in value]
-    if isinstance(value, (np.floating, float)):
-        v = float(value)
-        return v if math.isfinite(v) else None
-    if isinstance(value, np.integer):
-        return int(value)
-    if isinstance(value, Path):
-        return str(value)
-    return value
-
-
-def ppc_entries(rows: Sequence[dict], ppp_extreme: float = 0.01,
-                relevant: Mapping[str, float] | None = None) -> dict[str, dict[str, Any]]:
-    """``summary.json``'s entry per statistic: observed value, p-value, the replicated
-    median and 90 % interval, the miss in the statistic's units and as a share of the
-    observed SD, the relevant size set for it and the reading (statistics/features.py)."""
-    from contenders.statistics.features import read_rows
-
-    relevant = relevant or {}
-    return {row["statistic"]: {"observed": row["observed"], "p_value": row["p_value"],
-                               "replicated_q50": row.get("q50"), "replicated_q05": row.get("q05"),
-                               "replicated_q95": row.get("q95"), "miss": row.get("miss"),
-                               "miss_share_sd": row.get("miss_share_sd"),
-                               "relevant": relevant.get(row["statistic"]), "reading": code}
-            for row, code in zip(rows, read_rows(rows, ppp_extreme, relevant))}
-
-
-def candidate_summary(r: CandidateResult, comparison: Comparison, cfg: RunConfig | None = None) -> dict[str, Any]:
-    h, p, k, o = r.health, r.prior, r.checks, r.oos
-    extreme, relevant = (cfg.ppp_extreme, cfg.relevant) if cfg is not None else (0.01, {})
-    row = next((row for row in comparison.rows if row["id"] == r.id), {})
-    return {
-        "id": r.id, "label": r.label, "status": r.status, "reason": r.reason,
-        "rhat_max": h.rhat_max if h else None,
-        "ess_bulk_min": h.ess_bulk_min if h else None,
-        "ess_tail_min": h.ess_tail_min if h else None,
-        "divergences": h.divergences if h else None,
-        "treedepth_hits": h.treedepth_hits if h else None,
-        "ebfmi": h.ebfmi if h else None,
-        "adapt_delta": h.adapt_delta if h else None,
-        "warmup": h.warmup if h else None,
-        "draws": h.draws if h else None,
-        "adapt_delta_attempts": [asdict(a) for a in h.attempts] if h else [],
-        "prior_plausible_share": p.plausible_share if p else None,
-        "prior_flagged": p.flagged if p else None,
-        "ppc": ppc_entries(k.rows, extreme, relevant) if k else {},
-        "ppc_grouped": {cond: {lev: ppc_entries(rows, extreme, relevant) for lev, rows in levels.items()}
-                        for cond, levels in k.grouped.items()} if k else {},
-        "loo_pit_test": k.loo_pit_test if k else None,
-        "quantiles": k.quantiles if k else [],
-        "elpd_loo": o.elpd if o else None,
-        "elpd_loo_se": o.se if o else None,
-        "p_loo": o.p if o else None,
-        "elpd_diff": row.get("elpd_diff"),
-        "elpd_diff_se": row.get("elpd_diff_se"),
-        "stacking_weight": row.get("stacking_weight"),
-        "pseudo_bma_weight": row.get("pseudo_bma_weight"),
-        "pareto_k_max": o.k_max if o else None,
-        "n_high_pareto_k": o.n_high_k if o else None,
-        "n_refits": o.n_refits if o else None,
-        "refitted_observations": [i + 1 for i in o.refitted] if o else [],
-        "elpd_method": o.method if o else None,
-        "elpd_mcse": o.mcse if o else None,
-        "tied_with": r.tied_with,
-        "power_scaling": sensitivity_summary(r.sensitivity),
-        "coefficients": coefficients_summary(r.coefficients),
-        "rank": row.get("rank"),
-        "shared_rank": row.get("shared_rank"),     # "4–5" when tied within Monte Carlo error
-        "standing": row.get("standing"),           # best, tied, close, uncertain, worse (compare.standings)
-        "hyperparameters": r.hyperparameters,
-        "code_sha256": r.code_hash,
-        "seconds": r.seconds,
-        "fit_files": r.fit_files,
-    }
-
-
-def summary_dict(result: RunResult) -> dict[str, Any]:
-    cfg = result.config
-    return _clean({
-        "contenders_version": __version__,
-        "profile": "quick look" if cfg.quick else "full",
-        "data": {"file": cfg.data, "sha256": result.data_hash, "outcome": cfg.outcome,
-                 "n": result.design.N, "dropped_rows": result.design.dropped_rows,
-                 "predictors": [c.name for c in result.design.coding], "group": cfg.group,
-                 "conditions": list(cfg.conditions), "y_center": result.design.y_center,
-                 "y_scale": result.design.y_scale,
-                 "censored_column": cfg.censored,
-                 "censored_right": int((result.design.censoring == 1).sum()),
-                 "censored_left": int((result.design.censoring == -1).sum()),
-                 "truncation": {"lower": result.design.window[0], "upper": result.design.window[1]}},
-        "sampler": {"engine": result.engine, "chains": cfg.chains, "warmup": cfg.warmup,
-                    "draws": cfg.draws, "seed": cfg.seed, "adapt_delta": cfg.adapt_delta,
-                    "max_treedepth": cfg.max_treedepth},
-        "versions": result.versions,
-        "seconds": result.seconds,
-        "fits": {"sampled": result.fits_sampled, "from_store": result.fits_reused,
-                 "store": cfg.store or result.out / "fits"},
-        "ranking": result.comparison.ranking,
-        "preferred": result.comparison.preferred,
-        "verdict": " ".join(result.comparison.verdict),
-        "verdict_lead": " ".join(result.comparison.lead),
-        "verdict_details": " ".join(result.comparison.details),
-        "checks": {"ppp_extreme": cfg.ppp_extreme, "interval": INTERVAL, "relevant": dict(cfg.relevant)},
-        "candidates": [candidate_summary(r, result.comparison, cfg) for r in result.candidates],
-        "effects": effects_summary(compare_effects(result.candidates, result.comparison.rows, cfg.seed)),
-    })
-
-
-def write_summary(result: RunResult) -> Path:
-    """Write ``summary.json`` atomically (temporary file, then rename)."""
-    path = result.out / "summary.json"
-    tmp = path.with_suffix(".json.tmp")
-    tmp.write_text(json.dumps(summary_dict(result), indent=2))
-    os.replace(tmp, path)
-    return path
