@@ -17,7 +17,7 @@ import pytest
 from scipy import stats as sps
 
 from contenders.statistics.compare import OutOfSample, elpd_data, estimate, weights, weights_key
-from contenders.output import figure_store
+from contenders.output import figure_records, figure_store
 from contenders.pipeline.store import FitStore
 
 SRC = Path(__file__).resolve().parents[1] / "src"
@@ -179,15 +179,15 @@ def test_stored_figure_is_the_figure_drawn_afresh(tmp_path):
     rows = [{"rank": 1, "id": "a", "label": "A", "elpd_diff": 0.0, "elpd_diff_se": 0.0},
             {"rank": 2, "id": "b", "label": "B", "elpd_diff": 3.5, "elpd_diff_se": 1.2}]
     store = FitStore(tmp_path)
-    start = figure_store._NEXT_ID[0]
+    start = figure_records.NEXT_ID[0]
     fresh = figures.elpd_differences(rows)
-    after = figure_store._NEXT_ID[0]
-    figure_store._NEXT_ID[0] = start
+    after = figure_records.NEXT_ID[0]
+    figure_records.NEXT_ID[0] = start
     first = figure_store.drawn(store, "elpd_differences", rows)     # drawn, then stored
-    assert figure_store._NEXT_ID[0] == after
-    figure_store._NEXT_ID[0] = start
+    assert figure_records.NEXT_ID[0] == after
+    figure_records.NEXT_ID[0] = start
     again = figure_store.drawn(store, "elpd_differences", rows)     # read back
-    assert figure_store._NEXT_ID[0] == after                        # ids advance as if drawn
+    assert figure_records.NEXT_ID[0] == after                        # ids advance as if drawn
     assert str(fresh.html) == str(first.html) == str(again.html)
     assert len(list((tmp_path / "figures").glob("*.pickle"))) == 1
     changed = [dict(rows[0]), dict(rows[1], elpd_diff_se=1.3)]

@@ -8,57 +8,24 @@ shape and bytes), the first SVG id number it will use, the source of this packag
 the matplotlib and NumPy versions. An equal key gives the same markup byte for byte, so
 a report written from stored figures is identical to one drawn afresh.
 
-The records the drawing functions return (:class:`Rendered`, :class:`Lineup`) live
-here, not in :mod:`.figures`, so reading them back does not import matplotlib.
+The records the drawing functions return (:class:`Rendered`, :class:`Lineup`) and the
+SVG id counter live in :mod:`.figure_records`, which imports nothing of matplotlib, so
+reading stored figures back does not import it and :mod:`.figures` does not import this
+module.
 """
 
 from __future__ import annotations
 
 import dataclasses
 import hashlib
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-from markupsafe import Markup
+from contenders.output import figure_records
 
 #: Bumped whenever stored figures change meaning.
 FIGURES_FORMAT = 1
-
-
-@dataclass
-class Rendered:
-    """One figure, ready to place in the page."""
-
-    html: Markup
-    kind: str          # "svg" or "png"
-    size: int          # bytes of markup
-
-    def __html__(self) -> str:  # lets the template print it directly
-        return str(self.html)
-
-
-@dataclass
-class Lineup:
-    panels: list[Rendered]      # 20 small histograms, in reading order
-    answer: int                 # 1-based position of the observed data
-    replicate_rows: list[int]   # rows of y_rep_sample used, in panel order (observed skipped)
-    edges: np.ndarray           # the bins shared by every panel
-    counts: list[np.ndarray]    # the histogram of each panel, in reading order
-
-
-# --- SVG ids ------------------------------------------------------------------------------
-
-#: Number of the next figure's SVG id prefix (``f1-``, ``f2-``, ...), unique in a page.
-_NEXT_ID = [1]
-
-
-def next_prefix() -> str:
-    """The id prefix of the next SVG figure drawn in this process."""
-    number = _NEXT_ID[0]
-    _NEXT_ID[0] += 1
-    return f"f{number}-"
 
 
 # --- keys ---------------------------------------------------------------------------------
@@ -139,7 +106,7 @@ def drawn(store, name: str, *args: Any, **kwargs: Any):
     """``figures.<name>(*args, **kwargs)``, read from ``store`` (a
     :class:`contenders.pipeline.store.FitStore`, or None) when drawn before from equal inputs."""
     if store is not None:
-        first = _NEXT_ID[0]
+        first = figure_records.NEXT_ID[0]
         try:
             key = figure_key(name, args, kwargs, first)
         except Unhashable:
@@ -147,11 +114,11 @@ def drawn(store, name: str, *args: Any, **kwargs: Any):
         if key:
             found = store.load_value("figures", key)
             if found is not None:
-                value, _NEXT_ID[0] = found
+                value, figure_records.NEXT_ID[0] = found
                 return value
     from contenders.output import figures
 
     value = getattr(figures, name)(*args, **kwargs)
     if store is not None and key:
-        store.save_value("figures", key, (value, _NEXT_ID[0]))
+        store.save_value("figures", key, (value, figure_records.NEXT_ID[0]))
     return value
