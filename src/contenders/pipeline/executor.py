@@ -26,6 +26,8 @@ import signal
 import threading
 from typing import Any, Callable
 
+from contenders.machine import cores
+
 #: The function a task calls to report a stage; set in each worker process.
 _REPORT: list[Callable[[str, str], None]] = [lambda _cid, _stage: None]
 
@@ -34,13 +36,6 @@ def report(candidate_id: str, stage: str) -> None:
     """Tell whoever started the run that ``candidate_id`` has reached ``stage``."""
     with contextlib.suppress(Exception):
         _REPORT[0](candidate_id, stage)
-
-
-def cores() -> int:
-    """Cores this process may use (the affinity mask where the platform has one)."""
-    with contextlib.suppress(AttributeError):
-        return max(1, len(os.sched_getaffinity(0)))
-    return max(1, os.cpu_count() or 1)
 
 
 def share(jobs: int, tasks: int) -> tuple[int, int]:
