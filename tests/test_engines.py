@@ -172,11 +172,10 @@ def test_chain_processes_end_when_their_parent_is_killed(tmp_path):
     script = tmp_path / "parent.py"
     script.write_text(
         "import os\n"
-        "import httpstan.services_stub as stub\n"
-        "from contenders.engines import pystan_engine as pe\n"
-        "pe.PARENT_CHECK_SECONDS = 0.2\n"
-        "pe.set_chain_workers(1)\n"
-        "print(stub.executor.submit(os.getpid).result(), flush=True)\n"
+        "from contenders.engines import httpstan_direct as hd\n"
+        "hd.PARENT_CHECK_SECONDS = 0.2\n"
+        "pool = hd.ChainPool(1)\n"
+        "print(pool.submit(os.getpid).result(), flush=True)\n"
         "os._exit(0)\n")
     # read the one line, not to end of file: a surviving chain process keeps the pipe open
     proc = subprocess.Popen([sys.executable, str(script)], stdout=subprocess.PIPE, text=True)
@@ -368,12 +367,13 @@ def test_waiting_for_a_free_chain_slot_is_counted_apart_from_sampling(engine, pr
     import threading
     import time
 
-    from contenders.engines import pystan_engine
-    from contenders.engines.pystan_engine import _Waiting
+    from contenders.engines.httpstan_direct import Waiting
+    from contenders.engines.pystan_engine import PyStanEngine
+    from contenders.machine import ChainShare
 
     # the bookkeeping itself, on a hand-driven clock
     now = [0.0]
-    w = _Waiting(clock=lambda: now[0])
+    w = Waiting(clock=lambda: now[0])
     w.before_acquire(); now[0] = 5.0; w.acquired()          # 5 s with nothing running: waiting
     w.before_acquire(); now[0] = 8.0; w.chain_done()        # 3 s with chain 1 running: work
     now[0] = 10.0; w.acquired()                             # 2 s with nothing running: waiting
@@ -382,16 +382,15 @@ def test_waiting_for_a_free_chain_slot_is_counted_apart_from_sampling(engine, pr
 
     slots = threading.Semaphore(1)
     slots.acquire()
-    saved = pystan_engine.CHAIN_SLOTS[0]
-    pystan_engine.CHAIN_SLOTS[0] = slots
+    sharing = PyStanEngine(ChainShare(slots=slots))   # its own share: the session's engine keeps none
     threading.Timer(2.0, slots.release).start()
     try:
         c = builtins["normal"]
         start = time.perf_counter()
-        draws = engine.sample(programs["normal"], inputs_for(c, design), SMALL)
+        draws = sharing.sample(programs["normal"], inputs_for(c, design), SMALL)
         took = time.perf_counter() - start
     finally:
-        pystan_engine.CHAIN_SLOTS[0] = saved
+        sharing.close()
     assert 1.9 <= draws.wait_seconds <= 2.5
     assert draws.sample_seconds > 0
     assert draws.sample_seconds + draws.wait_seconds <= took

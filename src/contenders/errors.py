@@ -21,3 +21,8 @@ class UserError(Exception):
 
     def __str__(self) -> str:  # pragma: no cover - trivial
         return self.message
+
+
+class SamplingError(RuntimeError):
+    """Stan could not run a candidate (initialisation failed, an exception in the
+    program, ...). The message carries Stan's own words."""

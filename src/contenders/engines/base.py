@@ -14,6 +14,7 @@ from typing import TYPE_CHECKING, Any, Callable, Mapping
 
 import numpy as np
 
+from contenders.errors import SamplingError  # noqa: F401 - re-exported: engines raise it
 from contenders.inputs.candidates import Candidate
 
 if TYPE_CHECKING:   # ArviZ is imported where draws are made or read, not here
@@ -94,11 +95,6 @@ def compile_lock(key: str, what: str = ""):
             yield
         finally:
             fcntl.flock(handle, fcntl.LOCK_UN)
-
-
-class SamplingError(RuntimeError):
-    """Stan could not run a candidate (initialisation failed, an exception in the
-    program, ...). The message carries Stan's own words."""
 
 
 @dataclass(frozen=True)

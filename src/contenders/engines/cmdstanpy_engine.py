@@ -24,6 +24,7 @@ import numpy as np
 
 from contenders.inputs.candidates import Candidate
 from contenders.cleanup import while_writing
+from contenders.machine import cores
 from contenders.engines.base import OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError, compile_lock
 
 
@@ -51,8 +52,6 @@ def _chains_at_once(chains: int) -> int:
     the cores this process may use (not every chain at once on a small machine)."""
     if CHAIN_WORKERS[0]:
         return max(1, min(chains, CHAIN_WORKERS[0]))
-    from contenders.pipeline.executor import cores
-
     return max(1, min(chains, cores()))
 
 

@@ -2,17 +2,22 @@
 
 PyStan compiles each program once into httpstan's cache (under the user's cache
 folder) and reuses it for every dataset. Sampling calls httpstan's compiled program
-directly, one chain per forked process, and parses its output as it is written (see
-``_sample_direct``); the draws are exactly PyStan's for the same seed. The one-draw
-evaluations (``single_draw``) still go through PyStan, which caches each fit on disk;
-this engine deletes those files once read."""
+directly, one chain per forked process that the engine owns, and parses its output as
+it is written (``httpstan_direct``, written for httpstan 4.13); the draws are exactly
+PyStan's for the same seed. With another httpstan version the engine samples through
+PyStan's public interface instead (``stan.build`` then ``model.sample``: the same draws,
+more slowly) and says so once per process. The one-draw evaluations (``single_draw``)
+go through PyStan either way, which caches each fit on disk; this engine deletes those
+files once read.
+
+An engine's state is its own: its chain processes and its share of the cores
+(``machine.ChainShare``; by default this process's, which the run's executor sets).
+"""
 
 from __future__ import annotations
 
 import asyncio
-import concurrent.futures
 import contextlib
-import contextvars
 import io
 import os
 import re
@@ -24,13 +29,13 @@ from typing import Any, Mapping
 import arviz as az
 import numpy as np
 
-from contenders.inputs.candidates import Candidate
-from contenders.cleanup import while_writing
+from contenders import machine
+from contenders.engines import httpstan_direct as direct
 from contenders.engines.base import (OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError, compile_lock,
-                   raise_if_interrupted)
+                                     raise_if_interrupted)
+from contenders.inputs.candidates import Candidate
 
 
-#: Socket files made by the httpstan call running in the current asyncio task.
 def one_interpreter_name() -> str:
     """Give the running interpreter one name per environment, and return it.
 
@@ -56,57 +61,18 @@ def one_interpreter_name() -> str:
 one_interpreter_name()
 
 
-_CALL_SOCKETS: contextvars.ContextVar[list | None] = contextvars.ContextVar("call_sockets", default=None)
-
-
-def _removing_call_sockets() -> None:
-    """Make httpstan remove the Unix socket file each sampler call creates: its
-    ``services_stub.call`` binds one in the temporary folder and never unlinks it, so
-    every one-draw evaluation left an empty ``httpstan_*.sock`` behind. The call's own
-    ``mkstemp`` names are recorded (a context variable, so concurrent calls keep theirs
-    apart) and unlinked once the call has closed its socket. Installed once."""
-    import tempfile as real_tempfile
-    import types
-
-    import httpstan.services_stub as stub
-
-    if getattr(stub.call, "_removes_sockets", False):
-        return
-    original = stub.call
-
-    def mkstemp(*args, **kwargs):
-        handle, name = real_tempfile.mkstemp(*args, **kwargs)
-        made = _CALL_SOCKETS.get()
-        if made is not None:
-            made.append(name)
-        return handle, name
-
-    async def call(*args, **kwargs):
-        made: list[str] = []
-        token = _CALL_SOCKETS.set(made)
-        try:
-            return await original(*args, **kwargs)
-        finally:
-            _CALL_SOCKETS.reset(token)
-            for name in made:
-                with contextlib.suppress(OSError):
-                    os.unlink(name)
-
-    call._removes_sockets = True
-    stub.tempfile = types.SimpleNamespace(mkstemp=mkstemp)   # the module's only use of it
-    stub.call = call                                         # httpstan looks it up per call
-
-
 @contextlib.contextmanager
 def _forgetting_fits():
     """Run PyStan calls while noting the names of the fits its httpstan client reads,
     then delete exactly those cached fit files (the client class is swapped for the
-    duration; PyStan looks it up at call time). The calls' socket files go too
-    (``_removing_call_sockets``)."""
+    duration; PyStan looks it up at call time). With the httpstan version
+    ``httpstan_direct`` was written for, the calls' socket files go too
+    (``httpstan_direct.remove_call_sockets``)."""
     import httpstan.cache
     import stan.common
 
-    _removing_call_sockets()
+    if direct.compatible():
+        direct.remove_call_sockets()
 
     original = stan.common.HttpstanClient
     names: list[str] = []
@@ -159,368 +125,6 @@ def _quiet():
             buf.write(sink.read().decode("utf-8", "replace")[-20000:])
 
 
-_SAMPLE_FUNCTION = "stan::services::sample::hmc_nuts_diag_e_adapt"
-_LOGGED: dict[int, str] = {}
-CHAIN_WORKERS = [0]   # 0: httpstan's default (one per core)
-#: A semaphore shared by the run's worker processes (one slot per core), or None: each
-#: chain takes a slot while it runs, so workers together never run more chains than
-#: cores, yet a worker left alone runs as many as its pool allows.
-CHAIN_SLOTS: list = [None]
-
-
-def set_chain_workers(n: int) -> None:
-    """Run at most ``n`` chains at once in this process (httpstan runs chains in a pool of
-    forked processes, one per core by default). Used by the run's executor so that
-    candidates fitted side by side do not oversubscribe the cores. Takes effect before
-    the first sampling call in the process; later calls replace the pool."""
-    import concurrent.futures
-    import multiprocessing as mp
-
-    import httpstan.services_stub as stub
-
-    n = max(1, int(n))
-    if CHAIN_WORKERS[0] == n:
-        return
-    old = stub.executor
-    stub.executor = concurrent.futures.ProcessPoolExecutor(
-        max_workers=n, mp_context=mp.get_context("fork"), initializer=_init_chain_process)
-    CHAIN_WORKERS[0] = n
-    with contextlib.suppress(Exception):
-        old.shutdown(wait=False)
-
-
-def _init_chain_process() -> None:
-    """Chain processes ignore Ctrl-C (their parent handles it, as in httpstan) and die
-    at once on SIGTERM, whatever handler the forking process had installed. They also
-    end when the process that forked them is gone (a worker killed outright, say by a
-    cluster), instead of waiting on its queue for ever: a thread looks every
-    ``PARENT_CHECK_SECONDS`` whether the parent changed."""
-    import signal
-    import threading
-
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-    signal.signal(signal.SIGTERM, signal.SIG_DFL)
-    parent = os.getppid()
-
-    def watch() -> None:
-        while os.getppid() == parent:
-            time.sleep(PARENT_CHECK_SECONDS)
-        os._exit(1)
-
-    threading.Thread(target=watch, name="parent-watch", daemon=True).start()
-
-
-PARENT_CHECK_SECONDS = 2.0
-
-
-class _Waiting:
-    """Seconds a fit spends waiting for a free chain slot while none of its own chains
-    runs: the time other fits of the run hold every slot. Time when one of its chains
-    runs and the next waits for a slot is work, not waiting (the fit is progressing)."""
-
-    def __init__(self, clock=time.perf_counter) -> None:
-        import threading
-
-        self.clock = clock
-        self.seconds = 0.0
-        self._lock = threading.Lock()
-        self._running = 0
-        self._acquiring = False
-        self._idle_from: float | None = None
-
-    def before_acquire(self) -> None:
-        with self._lock:
-            self._acquiring = True
-            if self._running == 0:
-                self._idle_from = self.clock()
-
-    def acquired(self) -> None:
-        with self._lock:
-            if self._idle_from is not None:
-                self.seconds += self.clock() - self._idle_from
-                self._idle_from = None
-            self._acquiring = False
-            self._running += 1
-
-    def chain_done(self) -> None:
-        with self._lock:
-            self._running -= 1
-            if self._running == 0 and self._acquiring:
-                self._idle_from = self.clock()
-
-
-def _sample_direct(model, settings: SamplerSettings, waiting: "_Waiting | None" = None):
-    """NUTS with httpstan's compiled program, one chain per forked process, read directly.
-
-    The same stan::services call with the same arguments as PyStan's ``model.sample``
-    (chain ids 1..chains, the model's seed, httpstan's defaults for everything else), so
-    the draws are identical; but httpstan's server is not involved. Each chain process
-    runs the sampler in one thread and, in another, reads the sampler's JSON lines from
-    its socket as they are written, parsing each draw into arrays at once; it hands the
-    arrays back through a raw file that this process reads into place. Through PyStan's
-    server the same output is compressed, cached, decompressed and sent over HTTP, which
-    cost about 40 % of a core beside each chain; PyStan also keeps every chain's raw JSON
-    text and a float64 copy of all draws at once (4.7 GB for one fit at N = 10,000).
-    ``log_lik`` stays float64 (LOO needs it); ``y_rep`` is kept as float32, which holds
-    any latency to 7 significant digits.
-
-    Returns ``(arrays, stats)``: per variable an array (chains, draws, *dims), and per
-    sampler statistic an array (chains, draws). ``waiting`` (a ``_Waiting``) measures the
-    time spent waiting for chain slots (``CHAIN_SLOTS``) with no chain of this fit running."""
-    import json as _json
-
-    import httpstan.services_stub as stub
-    from stan.model import DataJSONEncoder
-
-    # the data exactly as httpstan's server would receive it (JSON: lists, ints, floats)
-    data = _json.loads(DataJSONEncoder().encode(dict(model.data)))
-    kwargs = _service_arguments(model, settings)
-    layout = _layout(model)
-    arrays = {name: np.empty((settings.chains, settings.draws, *shape), dtype=dtype, order="C")
-              for name, (shape, dtype, _lo, _hi) in layout.items()}
-    stats: dict[str, np.ndarray] = {}
-    logged: list[str] = []
-    # the folder is removed by cleanup.remove_all if this process is stopped meanwhile
-    with tempfile.TemporaryDirectory(prefix="contenders_chains_") as folder, while_writing(folder):
-        slots = CHAIN_SLOTS[0]
-        futures = []
-        errors = []
-        try:
-            waiting = waiting or _Waiting()
-            for chain in range(1, settings.chains + 1):
-                if slots is not None:
-                    waiting.before_acquire()
-                    slots.acquire()
-                    waiting.acquired()
-                try:
-                    future = stub.executor.submit(_run_chain, model.model_name, data,
-                                                  dict(kwargs, chain=chain), layout, settings.draws, folder)
-                except BaseException:
-                    if slots is not None:
-                        waiting.chain_done()
-                        slots.release()
-                    raise
-                if slots is not None:
-                    def done(_f, slots=slots, waiting=waiting) -> None:
-                        waiting.chain_done()
-                        slots.release()
-
-                    future.add_done_callback(done)
-                futures.append(future)
-            for i, future in enumerate(futures):
-                answer = future.result()
-                logged.extend(answer["logged"])
-                if answer["error"] or errors:
-                    errors.append(answer["error"])
-                    for later in futures[i + 1:]:
-                        later.cancel()
-                    continue
-                for k in answer["stats"]:
-                    stats.setdefault(k, np.empty((settings.chains, settings.draws)))
-                    _read_into(stats[k][i], os.path.join(folder, f"{i + 1}.{k}"))
-                for name in layout:
-                    _read_into(arrays[name][i], os.path.join(folder, f"{i + 1}.{name}"))
-        except concurrent.futures.CancelledError:
-            pass
-        finally:
-            # the folder holds the chains' sockets: leave no chain running when it goes
-            for future in futures:
-                future.cancel()
-            concurrent.futures.wait(futures)
-        if errors:
-            raise RuntimeError(next(e for e in errors if e))
-    _LOGGED[id(model)] = "\n".join(dict.fromkeys(logged))
-    return arrays, stats
-
-
-def _service_arguments(model, settings: SamplerSettings) -> dict[str, Any]:
-    """Arguments of the sampler call, filled with httpstan's defaults as its server does."""
-    import httpstan.models
-    import httpstan.services.arguments as arguments
-
-    given = {"init": {}, "random_seed": model.random_seed, "num_warmup": settings.warmup,
-             "num_samples": settings.draws, "delta": settings.adapt_delta,
-             "max_depth": settings.max_treedepth, "chain": 1}
-    module = httpstan.models.import_services_extension_module(model.model_name)
-    names = arguments.function_arguments(_SAMPLE_FUNCTION.rsplit("::", 1)[1], module)
-    del module
-    for name in names:
-        if name not in given and name != "data":
-            given[name] = arguments.lookup_default(arguments.Method.SAMPLE, name)
-    return given
-
-
-def _read_into(target: np.ndarray, path: str) -> None:
-    """Fill a C-contiguous array from a raw file written by ``ndarray.tofile``."""
-    if target.size == 0:  # e.g. log_lik when no observation is fitted
-        return
-    with open(path, "rb") as fh:
-        got = fh.readinto(memoryview(target).cast("B"))
-    os.unlink(path)
-    if got != target.nbytes:
-        raise RuntimeError(f"a chain's output file held {got} bytes, expected {target.nbytes}")
-
-
-def _run_chain(model_name: str, data: dict, kwargs: dict, layout, draws: int, folder: str) -> dict:
-    """In a chain process: run one chain and parse its output while it is written.
-
-    The sampler (C++, which releases the GIL) runs in a thread and writes JSON lines to
-    a Unix socket; this thread reads them and fills one chain's arrays, then writes each
-    array to ``folder/<chain>.<name>`` for the parent to read."""
-    import select
-    import socket
-    import threading
-
-    import httpstan.models
-
-    module = httpstan.models.import_services_extension_module(model_name)
-    function = getattr(module, _SAMPLE_FUNCTION.rsplit("::", 1)[1] + "_wrapper")
-    chain = kwargs["chain"]
-    reader = _ChainReader(layout, draws)
-    outcome: dict[str, Any] = {}
-    path = os.path.join(folder, f"{chain}.sock")
-
-    finished = threading.Event()
-    failure: list[BaseException] = []
-
-    def read(server: socket.socket) -> None:
-        pending: dict[socket.socket, bytearray] = {}
-        quiet = 0
-        try:
-            while True:
-                readable, _, _ = select.select([server, *pending], [], [], 0.05)
-                for s in readable:
-                    if s is server:
-                        conn, _ = server.accept()
-                        pending[conn] = bytearray()
-                        continue
-                    chunk = s.recv(1 << 20)
-                    buf = pending[s]
-                    if not chunk:
-                        if buf:
-                            reader.line(bytes(buf))
-                        del pending[s]
-                        s.close()
-                        continue
-                    buf += chunk
-                    end = buf.rfind(b"\n")
-                    if end >= 0:
-                        block = bytes(buf[:end])
-                        del buf[:end + 1]
-                        for line in block.split(b"\n"):
-                            reader.line(line)
-                if not readable and finished.is_set():
-                    quiet += 1
-                    # every writer closes its connection when the sampler returns; one
-                    # left open (a writer leaked by a C++ exception) must not hang us
-                    if not pending or quiet > 20:
-                        break
-                else:
-                    quiet = 0
-        except BaseException as exc:  # noqa: BLE001 - handed to the calling thread
-            failure.append(exc)
-        finally:
-            for s in pending:
-                s.close()
-
-    # the sampler runs in this (the main) thread: Stan's C++ needs its larger stack
-    with socket.socket(socket.AF_UNIX, socket.SOCK_STREAM) as server:
-        server.bind(path)
-        server.listen(8)
-        thread = threading.Thread(target=read, args=(server,), daemon=True)
-        thread.start()
-        try:
-            outcome["code"] = function(path, data, **kwargs)
-        except Exception as exc:  # Stan's exceptions reach here as RuntimeError
-            outcome["error"] = str(exc)
-        finally:
-            finished.set()
-            thread.join()
-    if failure:
-        raise failure[0]
-    error = outcome.get("error")
-    if error is None and outcome.get("code", 0) != 0:
-        error = " ".join(reader.errors) or f"the sampler returned error code {outcome.get('code')}"
-    elif error is not None and reader.errors:
-        error = f"{error} {' '.join(reader.errors[:4])}"
-    if error is None and reader.draw != draws:
-        error = f"chain {chain} returned {reader.draw} draws, expected {draws}"
-    if error is None:
-        for name, values in {**reader.arrays, **reader.stats}.items():
-            if values.size:
-                values.tofile(os.path.join(folder, f"{chain}.{name}"))
-    return {"stats": list(reader.stats), "logged": reader.logged, "error": error}
-
-
-class _ChainReader:
-    """Parses one chain's JSON lines (httpstan's writer format) into arrays."""
-
-    def __init__(self, layout, draws: int):
-        import simdjson
-
-        self.layout = layout
-        self.draws = draws
-        self.arrays = {name: np.empty((draws, *shape), dtype=dtype)
-                       for name, (shape, dtype, _lo, _hi) in layout.items()}
-        self.stats: dict[str, np.ndarray] = {}
-        self.logged: list[str] = []
-        self.errors: list[str] = []
-        self.draw = 0
-        self._parser = simdjson.Parser()
-
-    def line(self, line: bytes) -> None:
-        import json as _json
-
-        import simdjson
-
-        head = line[:48]
-        if b'"logger"' in head:
-            if b"info:Iteration" in line or b"Elapsed Time" in line or b'"info:"' in line:
-                return
-            try:
-                value = str(_json.loads(line)["values"][0])
-            except Exception:
-                return
-            if value.startswith(("error:", "warn:")):
-                self.errors.append(value.split(":", 1)[1].strip())
-            value = value.replace("info:", "").replace("error:", "").replace("warn:", "").strip()
-            if value and not value.startswith(_BOILERPLATE) and not value.startswith("seconds"):
-                self.logged.append(value)
-            return
-        if b'"sample"' not in head:
-            return
-        try:
-            values = self._parser.parse(line)["values"]
-            if not isinstance(values, simdjson.Object):
-                return
-            keys = None if self.stats else tuple(values.keys())
-            row = np.fromiter(values.values(), dtype=np.float64)
-            del values
-        except ValueError:  # nan or infinity, which simdjson does not parse
-            values = _json.loads(line)["values"]
-            if not isinstance(values, dict):
-                return
-            keys = None if self.stats else tuple(values.keys())
-            row = np.asarray([float(v) for v in values.values()], dtype=np.float64)
-        if not self.stats:
-            for k in keys:
-                if k.endswith("__"):
-                    self.stats[k] = np.empty(self.draws)
-        if self.draw >= self.draws:
-            raise RuntimeError("a chain returned more draws than asked for")
-        n_stats = len(self.stats)
-        for j, values in enumerate(self.stats.values()):
-            values[self.draw] = row[j]
-        params = row[n_stats:]
-        for name, (shape, _dtype, lo, hi) in self.layout.items():
-            if shape:
-                # Stan writes arrays in column-major order
-                self.arrays[name][self.draw] = params[lo:hi].reshape(shape, order="F")
-            else:
-                self.arrays[name][self.draw] = params[lo]
-        self.draw += 1
-
-
 def _layout(model) -> dict[str, tuple[tuple[int, ...], Any, int, int]]:
     """For each variable of the program: shape, dtype kept, and its slice in a draw."""
     layout = {}
@@ -533,8 +137,32 @@ def _layout(model) -> dict[str, tuple[tuple[int, ...], Any, int, int]]:
     return layout
 
 
-_BOILERPLATE = ("Gradient evaluation took", "1000 transitions using", "Adjust your expectations",
-                "Elapsed Time", "Iteration")
+
+def _sample_public(model, settings: SamplerSettings):
+    """NUTS through PyStan's public interface (``model.sample``), for an httpstan version
+    that ``httpstan_direct`` was not written for: the same call with the same arguments as
+    the fast path (chain ids 1..chains, the model's seed), so the same draws, returned in
+    the same form ``(arrays, stats)`` with the same dtypes. Slower: all chains run at once
+    in httpstan's own processes (one per core; the engine's share is not applied) and
+    PyStan holds every draw as text and as float64 meanwhile."""
+    with _forgetting_fits():
+        fit = _interrupted_if_none(model.sample(
+            num_chains=settings.chains, num_warmup=settings.warmup, num_samples=settings.draws,
+            delta=settings.adapt_delta, max_depth=settings.max_treedepth))
+    chains, draws = settings.chains, settings.draws
+
+    def per_chain(values: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
+        # PyStan's fit[name] has shape (*dims, draws * chains), the chain index fastest
+        values = np.asarray(values).reshape(*shape, draws, chains)
+        return np.moveaxis(values, (-1, -2), (0, 1))
+
+    arrays = {name: np.ascontiguousarray(per_chain(fit[name], shape), dtype=dtype)
+              for name, (shape, dtype, _lo, _hi) in _layout(model).items()}
+    stats = {name: np.ascontiguousarray(per_chain(fit[name], ()), dtype=np.float64)
+             for name in fit.sample_and_sampler_param_names}
+    return arrays, stats
+
+
 _STAT_NAMES = {"lp__": "lp", "accept_stat__": "acceptance_rate", "stepsize__": "step_size",
                "treedepth__": "tree_depth", "n_leapfrog__": "n_steps", "divergent__": "diverging",
                "energy__": "energy"}
@@ -589,13 +217,14 @@ def _module_ready(model_name: str) -> bool:
     return False
 
 
-def stop_workers() -> None:
-    """Terminate httpstan's sampling worker processes (forked once per Python process).
-    Called on Ctrl-C: without it, workers whose parent has gone stay behind, holding the
-    parent's output pipes open. The callers then remove the chains' temporary folders
-    (``cleanup.remove_all``)."""
-    import sys
-
+def stop_workers(join: float | None = None) -> None:
+    """Terminate the chain processes of every PyStan engine of this process
+    (``httpstan_direct.close_all``) and httpstan's own, which serve PyStan's public calls.
+    Called on Ctrl-C, SIGTERM and a worker's exit: without it, chain processes whose
+    parent has gone stay behind, holding the parent's output pipes open. The callers then
+    remove the chains' temporary folders (``cleanup.remove_all``). ``join``: seconds to
+    wait for each process to end (none: do not wait)."""
+    direct.close_all(join)
     stub = sys.modules.get("httpstan.services_stub")
     executor = getattr(stub, "executor", None)
     if executor is not None:
@@ -605,6 +234,21 @@ def stop_workers() -> None:
         for proc in processes:
             with contextlib.suppress(Exception):
                 proc.terminate()
+        if join is not None:
+            for proc in processes:
+                with contextlib.suppress(Exception):
+                    proc.join(timeout=join)
+
+
+#: Whether this process has said that it samples through PyStan's public interface.
+_FALLBACK_SAID = [False]
+
+
+def _say_fallback_once() -> None:
+    """Print ``httpstan_direct.fallback_notice()`` to stderr, the first time only."""
+    if not _FALLBACK_SAID[0]:
+        _FALLBACK_SAID[0] = True
+        print(direct.fallback_notice(), file=sys.stderr, flush=True)
 
 
 def _interrupted_if_none(value):
@@ -642,7 +286,31 @@ REQUEST_LIMIT_SECONDS = 300
 
 
 class PyStanEngine(Engine):
+    """``share``: how many chains this engine runs at once (``machine.ChainShare``); by
+    default this process's share, which the run's executor sets. The engine owns its
+    chain processes (a ``httpstan_direct.ChainPool``, made at the first sampling call and
+    remade when the share changes); ``close()`` ends them."""
+
     name = "pystan"
+
+    def __init__(self, share: machine.ChainShare | None = None) -> None:
+        self.share = share if share is not None else machine.THIS_PROCESS
+        self._pool: direct.ChainPool | None = None
+
+    def _chain_pool(self) -> direct.ChainPool:
+        """The engine's chain processes, as many as its share allows."""
+        workers = self.share.limit()
+        if self._pool is None or self._pool.workers != workers:
+            if self._pool is not None:
+                self._pool.close()
+            self._pool = direct.ChainPool(workers)
+        return self._pool
+
+    def close(self) -> None:
+        """End the engine's chain processes (they also end with this process)."""
+        if self._pool is not None:
+            self._pool.close(terminate=True, join=5)
+            self._pool = None
 
     def version(self) -> str:
         # from the installed packages' metadata: importing PyStan costs a second, which a
@@ -711,12 +379,20 @@ class PyStanEngine(Engine):
                                     f"{_short(exc, file_name=program.candidate_id + '.stan')}\n{_stan_message(buf.getvalue())}") from None
 
     def sample(self, program: Program, data: Mapping[str, Any], settings: SamplerSettings) -> Draws:
+        fast = direct.compatible()
+        if not fast:
+            _say_fallback_once()
         model = self._build(program, data, settings.seed)
         start = time.perf_counter()
-        waiting = _Waiting()
+        waiting = direct.Waiting()
+        logged = ""
         with _quiet() as buf:
             try:
-                arrays, stats = _sample_direct(model, settings, waiting)
+                if fast:
+                    arrays, stats, logged = direct.sample_direct(model, settings, _layout(model),
+                                                                 self._chain_pool(), self.share.slots, waiting)
+                else:
+                    arrays, stats = _sample_public(model, settings)
             except (RuntimeError, ValueError) as exc:
                 raise SamplingError(
                     f"{program.candidate_id}: sampling failed: {_short(exc, file_name=program.candidate_id + '.stan')}\n{_stan_message(buf.getvalue())}"
@@ -729,14 +405,17 @@ class PyStanEngine(Engine):
         del arrays, stats
         wait = min(waiting.seconds, seconds)
         return Draws(idata, self.name, program.compile_seconds, seconds - wait, settings,
-                     _stan_message(buf.getvalue() + _LOGGED.get(id(model), "")), wait_seconds=wait)
+                     _stan_message(buf.getvalue() + logged), wait_seconds=wait)
 
     def single_draw(
         self, program: Program, data: Mapping[str, Any], seed: int,
         init: Mapping[str, Any] | None = None,
     ) -> dict[str, np.ndarray]:
         model = self._build(program, data, seed)
-        with _forgetting_fits(), _quiet() as buf:
+        # httpstan's server runs the call; with the httpstan this engine knows, in the
+        # engine's own chain processes (not the one per core httpstan forks at import)
+        serving = direct.serving_from(self._chain_pool()) if direct.compatible() else contextlib.nullcontext()
+        with serving, _forgetting_fits(), _quiet() as buf:
             try:
                 fit = _interrupted_if_none(
                     model.fixed_param(num_chains=1, num_samples=1, init=[dict(init or {})]))

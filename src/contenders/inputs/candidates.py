@@ -398,7 +398,7 @@ def check_outputs(c: Candidate, engine, program, design: Design, seed: int = 1) 
     """Evaluate the program once at random initial values with an empty fit subset and
     record a problem unless ``log_lik`` and ``y_rep`` each hold N finite-or-infinite
     numbers. No sampling is done."""
-    from contenders.engines.base import SamplingError
+    from contenders.errors import SamplingError
 
     try:
         draw = engine.single_draw(program, inputs_for(c, design, np.arange(0)), seed)

@@ -26,6 +26,8 @@ import signal
 import threading
 from typing import Any, Callable
 
+from contenders.machine import THIS_PROCESS, cores
+
 #: The function a task calls to report a stage; set in each worker process.
 _REPORT: list[Callable[[str, str], None]] = [lambda _cid, _stage: None]
 
@@ -34,13 +36,6 @@ def report(candidate_id: str, stage: str) -> None:
     """Tell whoever started the run that ``candidate_id`` has reached ``stage``."""
     with contextlib.suppress(Exception):
         _REPORT[0](candidate_id, stage)
-
-
-def cores() -> int:
-    """Cores this process may use (the affinity mask where the platform has one)."""
-    with contextlib.suppress(AttributeError):
-        return max(1, len(os.sched_getaffinity(0)))
-    return max(1, os.cpu_count() or 1)
 
 
 def share(jobs: int, tasks: int) -> tuple[int, int]:
@@ -52,32 +47,30 @@ def share(jobs: int, tasks: int) -> tuple[int, int]:
 
 
 def _set_chain_workers(engine_name: str, n: int) -> int:
-    """Limit the chains this process runs at once; return the previous limit (0: none)."""
+    """Limit the chains this process runs at once; return the previous limit (0: none).
+    The PyStan engine reads this process's share (``machine.THIS_PROCESS``) at each
+    sampling call."""
     if engine_name == "pystan":
-        from contenders.engines import pystan_engine as module
-    else:
-        from contenders.engines import cmdstanpy_engine as module
+        previous = THIS_PROCESS.chains_at_once
+        THIS_PROCESS.chains_at_once = max(1, int(n))
+        return previous
+    from contenders.engines import cmdstanpy_engine as module
+
     previous = module.CHAIN_WORKERS[0]
     module.set_chain_workers(n)
     return previous
 
 
 def _close_chain_pool() -> None:
+    """End this process's Stan chain processes (PyStan's), idle by now: the worker only
+    exits between tasks."""
     import sys
 
-    stub = sys.modules.get("httpstan.services_stub")
-    if stub is None:
+    if "contenders.engines.pystan_engine" not in sys.modules:
         return
-    pool = stub.executor
-    processes = list((getattr(pool, "_processes", None) or {}).values())
-    with contextlib.suppress(Exception):
-        pool.shutdown(wait=False, cancel_futures=True)
-    for proc in processes:   # idle by now: the worker only exits between tasks
-        with contextlib.suppress(Exception):
-            proc.terminate()
-    for proc in processes:
-        with contextlib.suppress(Exception):
-            proc.join(timeout=5)
+    from contenders.engines.pystan_engine import stop_workers
+
+    stop_workers(join=5)
 
 
 def _worker_init(engine_name: str, chain_workers: int, events, slots=None) -> None:
@@ -105,11 +98,11 @@ def _worker_init(engine_name: str, chain_workers: int, events, slots=None) -> No
 
     signal.signal(signal.SIGTERM, on_term)
     _set_chain_workers(engine_name, chain_workers)
-    if slots is not None and engine_name in ("pystan", "cmdstanpy"):
-        if engine_name == "pystan":
-            from contenders.engines import pystan_engine as module
-        else:
-            from contenders.engines import cmdstanpy_engine as module
+    if slots is not None and engine_name == "pystan":
+        THIS_PROCESS.slots = slots
+    elif slots is not None and engine_name == "cmdstanpy":
+        from contenders.engines import cmdstanpy_engine as module
+
         module.CHAIN_SLOTS[0] = slots
     # Stan's chain processes are children of this worker; a worker's exit waits for its
     # children, so stop them first. multiprocessing runs finalisers with an exit priority

@@ -1,0 +1,103 @@
+"""The PyStan engine's fast sampler is used only with the httpstan it was written for;
+with any other version the engine samples through PyStan's public interface, says so
+once, and gives the same draws."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from contenders.engines import SamplerSettings
+from contenders.engines import httpstan_direct as hd
+from contenders.engines import pystan_engine as pe
+from contenders.inputs.candidates import inputs_for
+from contenders.inputs.data import build_design
+
+TINY = SamplerSettings(chains=2, warmup=100, draws=60, seed=23)
+
+
+@pytest.fixture(scope="module")
+def design():
+    rng = np.random.default_rng(8)
+    n = 24
+    table = pd.DataFrame({
+        "rt": rng.lognormal(6.0, 0.3, n),
+        "cue": np.tile(["off", "on"], n // 2),
+        "who": np.repeat(["a", "b", "c"], n // 3),
+    })
+    return build_design(table, "rt", ["cue"], "who")
+
+
+def test_the_version_check_accepts_the_installed_httpstan_4_13_and_no_other():
+    from importlib.metadata import version
+
+    assert hd.DETECTED == version("httpstan")
+    assert hd.DETECTED.startswith("4.13.")
+    assert hd.compatible() is True
+    assert hd.compatible("4.13.0") and hd.compatible("4.13.9")
+    for other in ("4.12.0", "4.14.0", "5.13.0", "4", "", "not installed", "4.x"):
+        assert hd.compatible(other) is False, other
+
+
+def _refuse(*_a, **_k):
+    raise AssertionError("httpstan's inside was touched with an httpstan it was not written for")
+
+
+def test_another_httpstan_samples_through_pystan_with_one_notice_and_the_same_draws(
+        engine, programs, builtins, design, capfd, monkeypatch):
+    import httpstan.cache
+
+    data = inputs_for(builtins["lognormal"], design)
+    fast = engine.sample(programs["lognormal"], data, TINY)
+    capfd.readouterr()
+
+    monkeypatch.setattr(hd, "DETECTED", "4.14.2")     # the detected version, not the package
+    monkeypatch.setattr(pe, "_FALLBACK_SAID", [False])
+    for name in ("sample_direct", "remove_call_sockets", "serving_from", "ChainPool"):
+        monkeypatch.setattr(hd, name, _refuse)
+    slow = engine.sample(programs["lognormal"], data, TINY)
+    again = engine.sample(programs["lognormal"], data, TINY)
+    values = engine.single_draw(programs["lognormal"], data, seed=5)   # PyStan's fixed_param
+    err = capfd.readouterr().err
+
+    notice = ("contenders: httpstan 4.14 is not the 4.13 this engine's fast sampler was written for; "
+              "sampling through PyStan's public interface instead (slower, same draws)")
+    assert err.count(notice) == 1, err
+    assert err.count("contenders:") == 1, err
+    assert values["y_rep"].shape == (design.N,)
+    # the same draws as the fast path, which tests/test_engines.py
+    # (test_pystan_lean_reader_gives_pystans_own_draws) checks against PyStan's own
+    # model.sample read by az.from_pystan: the outside reference for both
+    for draws in (slow, again):
+        for group in ("posterior", "sample_stats", "log_likelihood", "posterior_predictive", "observed_data"):
+            ours, theirs = getattr(fast.idata, group), getattr(draws.idata, group)
+            assert set(ours.data_vars) == set(theirs.data_vars), group
+            for name in ours.data_vars:
+                assert ours[name].dtype == theirs[name].dtype, (group, name)
+                assert ours[name].dims == theirs[name].dims, (group, name)
+                np.testing.assert_array_equal(ours[name].values, theirs[name].values, err_msg=f"{group}/{name}")
+        assert draws.sample_seconds > 0 and draws.wait_seconds == 0.0
+    fits = httpstan.cache.model_directory(programs["lognormal"].handle) / "fits"
+    assert not fits.exists() or not any(fits.iterdir()), "httpstan's on-disk fit copies are removed"
+
+
+def test_two_engines_in_one_process_keep_their_own_chain_processes(programs, builtins, design):
+    from contenders.engines.pystan_engine import PyStanEngine
+    from contenders.machine import ChainShare
+
+    one, two = PyStanEngine(ChainShare(chains_at_once=1)), PyStanEngine(ChainShare(chains_at_once=2))
+    try:
+        data = inputs_for(builtins["normal"], design)
+        a = one.sample(programs["normal"], data, TINY)
+        b = two.sample(programs["normal"], data, TINY)
+        assert one._pool is not two._pool
+        assert (one._pool.workers, two._pool.workers) == (1, 2)
+        # how many chains run at once never changes the draws
+        np.testing.assert_array_equal(a.idata.posterior["sigma"].values, b.idata.posterior["sigma"].values)
+        one.close()
+        assert one._pool is None and two._pool is not None
+        two.single_draw(programs["normal"], data, seed=3)   # the other engine goes on
+    finally:
+        one.close()
+        two.close()
