@@ -71,35 +71,29 @@ def cmd_check(args: argparse.Namespace) -> int:
     return 1 if failed else 0
 
 
-#: Settings given on the command line of ``run`` (and ``demo``), in help order.
-RUN_FLAGS = (
-    "outcome", "predictors", "group", "slopes", "censored", "truncate", "conditions", "reference", "typical_value", "typical_spread", "candidates",
-    "only", "out", "store", "chains", "warmup", "draws", "prior_draws", "seed", "jobs", "engine", "adapt_delta",
-    "escalation", "longer_retry", "max_treedepth", "thresholds", "bounds", "rhat_max", "ess_per_chain_min", "ebfmi_min",
-    "implausible_share", "check_draws", "ppp_extreme", "relevant", "pit_alpha", "cross_validation", "refit_cap", "folds",
-    "replicates", "cluster",
-)
-#: Shorter spellings the issue tracker and README use.
-ALIASES = {"conditions": ["--condition"], "thresholds": ["--threshold"]}
+def _run_flags() -> tuple[str, ...]:
+    """The settings given as a value on the command line of ``run`` (and ``recovery``,
+    ``calibrate``, ``batch``), in help order; ``--quiet``, ``--quick`` and ``--hyper``
+    are read on their own."""
+    from contenders.inputs.settings import SETTINGS
+
+    return tuple(s.name for s in SETTINGS if s.flag and s.action == "store")
 
 
 def _add_run_flags(p: argparse.ArgumentParser) -> None:
-    from contenders.inputs.config import _TYPES, HELP, section_of
+    """``--config`` and the flag of every setting in ``SETTINGS`` that has one."""
+    from contenders.inputs.settings import SETTINGS
 
-    metavars = {"path": "DIR", "str": "COL", "strs": "A,B", "float": "X", "posfloat": "X", "posint": "N",
-                "int0": "N", "prob": "P", "probs": "P,P", "factor": "F", "floats": "T,T", "engine": "NAME",
-                "bounds": "STAT=LOW:HIGH,...", "sizes": "STAT=SIZE,...", "levels": "COL=LEVEL,...", "cv": "METHOD", "folds": "K", "bool": "", "reps": "R",
-                "address": "tcp://HOST:PORT", "window": "L:U"}
     p.add_argument("--config", metavar="FILE", help="TOML configuration file; flags override its keys")
-    for name in RUN_FLAGS:
-        flag = "--" + name.replace("_", "-")
-        metavar = "ID,ID" if name == "only" else metavars[_TYPES[name]]
-        p.add_argument(flag, *ALIASES.get(name, []), dest=name, metavar=metavar, default=None,
-                       help=f"{HELP[name]} (configuration: {section_of(name)})")
-    p.add_argument("--hyper", action="append", default=[], metavar="ID.NAME=VALUE",
-                   help=HELP["hyperparameters"] + " (configuration: [hyperparameters.ID] NAME)")
-    p.add_argument("--quiet", action="store_true", default=None, help=HELP["quiet"])
-    p.add_argument("--quick", action="store_true", default=None, help=HELP["quick"] + " (configuration: [run] quick)")
+    for s in SETTINGS:
+        if not s.flag:
+            continue
+        text = f"{s.help} (configuration: {s.where})" if s.help_names_key else s.help
+        if s.action == "store_true":
+            p.add_argument(s.flag, *s.aliases, dest=s.name, action=s.action, default=None, help=text)
+        else:   # store, or append (every --hyper item is kept)
+            p.add_argument(s.flag, *s.aliases, dest=s.name, action=s.action, metavar=s.metavar,
+                           default=[] if s.action == "append" else None, help=text)
 
 
 def _config_from_args(args: argparse.Namespace, data: str | None):
@@ -108,14 +102,14 @@ def _config_from_args(args: argparse.Namespace, data: str | None):
     cfg = load(args.config) if args.config else RunConfig()
     if getattr(args, "quick", None) or cfg.quick:   # the profile first, so flags given with it win
         cfg = quick_profile(cfg)
-    flags = {name: parse_flag(name, getattr(args, name)) for name in RUN_FLAGS
+    flags = {name: parse_flag(name, getattr(args, name)) for name in _run_flags()
              if getattr(args, name) is not None}
     if data:
         flags["data"] = data
     if args.quiet:
         flags["quiet"] = True
     cfg = apply_flags(cfg, flags)
-    extra = parse_hyper_flags(args.hyper)
+    extra = parse_hyper_flags(args.hyperparameters)
     if extra:
         merged = {k: dict(v) for k, v in cfg.hyperparameters.items()}
         for cid, values in extra.items():

@@ -1,7 +1,9 @@
 """Run configuration: a TOML file and command-line flags become one frozen dataclass.
 
 Every key has a documented meaning in README.md ("Configuration"). Unknown keys and
-values of the wrong type are errors that name the key and the valid choices.
+values of the wrong type are errors that name the key and the valid choices. The
+settings themselves (kind of value, TOML key, flag, help text, default) are listed once,
+in ``contenders.inputs.settings.SETTINGS``; this module checks and converts the values.
 """
 
 from __future__ import annotations
@@ -9,106 +11,85 @@ from __future__ import annotations
 import math
 import os
 import tomllib
-from dataclasses import dataclass, field, fields, replace
+from dataclasses import dataclass, fields, replace
 from pathlib import Path
 from typing import Any, Mapping
 
 from contenders.errors import UserError
+from contenders.inputs.settings import BY_NAME, SECTIONS, SETTINGS, Setting, defaults_from_table
 
 #: Test statistics computed on every dataset (observed, prior and posterior replicates).
 DEFAULT_STATISTICS = ("mean", "sd", "min", "max", "q05", "q50", "q95", "skewness")
 
 
 @dataclass(frozen=True)
+@defaults_from_table
 class RunConfig:
     """Everything one comparison run needs. Paths are resolved against the folder of
-    the configuration file (or the working folder for flags)."""
+    the configuration file (or the working folder for flags). Each field's default, TOML
+    key, flag and help text are its entry in ``contenders.inputs.settings.SETTINGS``; the
+    order of the fields is the order in which messages list a TOML section's keys."""
 
-    data: Path | None = None
-    outcome: str | None = None
-    predictors: tuple[str, ...] = ()
-    group: str | None = None
-    conditions: tuple[str, ...] = ()
-    slopes: tuple[str, ...] = ()            # predictors with a slope per group
-    censored: str | None = None             # censoring column: 0 observed, 1 right-, -1 left-censored
-    truncate: tuple[float | None, float | None] = (None, None)   # truncation window, None = open
-    reference: Mapping[str, str] = field(default_factory=dict)   # column -> reference level
-    typical_value: float | None = None
-    typical_spread: float | None = None
-    candidates: Path | None = None          # None: the built-in candidates
-    only: tuple[str, ...] = ()              # run only these candidate ids
-    out: Path = Path("reports/run")
-    store: Path | None = None               # stored fits; None: OUT/fits
-    chains: int = 4
-    warmup: int = 1000
-    draws: int = 1000
-    prior_draws: int = 1000                 # prior predictive draws, over all chains
-    seed: int = 20261201
-    adapt_delta: float = 0.8
-    escalation: tuple[float, ...] = (0.95, 0.99)
-    longer_retry: float = 2.0               # warmup and draws times this on one retry; 1: never
-    max_treedepth: int = 10
-    jobs: int = 0                           # 0: all cores
-    engine: str = "auto"
-    thresholds: tuple[float, ...] = ()      # statistics "share of y below t"
-    bounds: Mapping[str, tuple[float, float]] = field(default_factory=dict)
-    rhat_max: float = 1.01
-    ess_per_chain_min: float = 100.0
-    ebfmi_min: float = 0.3
-    implausible_share: float = 0.5          # flag priors with less plausible mass than this
-    check_draws: int = 1000                 # replicated datasets used for the checks
-    ppp_extreme: float = 0.01               # p-values beyond this (or 1 - it) count as misfit
-    relevant: Mapping[str, float] = field(default_factory=dict)   # statistic -> smallest miss that matters
-    pit_alpha: float = 0.01                 # LOO-PIT band holds a uniform ECDF with prob. 1 - this
-    cross_validation: str = "loo"           # loo | kfold | leave_group_out
-    refit_cap: int = 10                     # exact refits per candidate before K-fold
-    folds: int = 10
-    hyperparameters: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
-    quiet: bool = False
-    replicates: int = 0                     # model recovery: datasets per candidate (0: none)
-    cluster: str = ""                       # Dask scheduler address; empty: this machine
-    quick: bool = False                     # a quick look (QUICK_PROFILE); never a full result
+    data: Path | None
+    outcome: str | None
+    predictors: tuple[str, ...]
+    group: str | None
+    conditions: tuple[str, ...]
+    slopes: tuple[str, ...]
+    censored: str | None
+    truncate: tuple[float | None, float | None]
+    reference: Mapping[str, str]
+    typical_value: float | None
+    typical_spread: float | None
+    candidates: Path | None
+    only: tuple[str, ...]
+    out: Path
+    store: Path | None
+    chains: int
+    warmup: int
+    draws: int
+    prior_draws: int
+    seed: int
+    adapt_delta: float
+    escalation: tuple[float, ...]
+    longer_retry: float
+    max_treedepth: int
+    jobs: int
+    engine: str
+    thresholds: tuple[float, ...]
+    bounds: Mapping[str, tuple[float, float]]
+    rhat_max: float
+    ess_per_chain_min: float
+    ebfmi_min: float
+    check_draws: int
+    implausible_share: float
+    ppp_extreme: float
+    relevant: Mapping[str, float]
+    pit_alpha: float
+    cross_validation: str
+    refit_cap: int
+    folds: int
+    hyperparameters: Mapping[str, Mapping[str, Any]]
+    quiet: bool
+    replicates: int
+    cluster: str
+    quick: bool
 
     def with_(self, **changes: Any) -> "RunConfig":
         return replace(self, **changes)
 
 
-# TOML layout: section -> {key: field name}
-_LAYOUT: dict[str, dict[str, str]] = {
-    "data": {"file": "data", "outcome": "outcome", "predictors": "predictors", "group": "group",
-             "conditions": "conditions", "slopes": "slopes", "censored": "censored", "truncate": "truncate", "reference": "reference", "typical_value": "typical_value",
-             "typical_spread": "typical_spread"},
-    "candidates": {"folder": "candidates", "only": "only"},
-    "sampler": {"chains": "chains", "warmup": "warmup", "draws": "draws",
-                "prior_draws": "prior_draws", "seed": "seed", "adapt_delta": "adapt_delta",
-                "escalation": "escalation", "longer_retry": "longer_retry", "max_treedepth": "max_treedepth"},
-    "checks": {"thresholds": "thresholds", "bounds": "bounds", "check_draws": "check_draws",
-               "implausible_share": "implausible_share", "ppp_extreme": "ppp_extreme",
-               "relevant": "relevant", "pit_alpha": "pit_alpha"},
-    "comparison": {"cross_validation": "cross_validation", "refit_cap": "refit_cap", "folds": "folds"},
-    "health": {"rhat_max": "rhat_max", "ess_per_chain_min": "ess_per_chain_min",
-               "ebfmi_min": "ebfmi_min"},
-    "run": {"out": "out", "store": "store", "jobs": "jobs", "engine": "engine", "quiet": "quiet",
-            "cluster": "cluster", "quick": "quick"},
-    "recovery": {"replicates": "replicates"},
-}
-_SECTIONS = tuple(_LAYOUT) + ("hyperparameters",)
+def _layout() -> dict[str, dict[str, Setting]]:
+    """TOML layout: section -> {key: setting}, each section's keys in RunConfig's field order."""
+    layout: dict[str, dict[str, Setting]] = {section: {} for section in SECTIONS if section != "hyperparameters"}
+    for f in fields(RunConfig):
+        setting = BY_NAME[f.name]
+        if setting.key is not None:
+            layout[setting.section][setting.key] = setting
+    return layout
 
-_TYPES: dict[str, str] = {
-    "data": "path", "outcome": "str", "predictors": "strs", "group": "str", "conditions": "strs", "slopes": "strs", "censored": "str", "truncate": "window", "reference": "levels",
-    "typical_value": "float", "typical_spread": "posfloat", "candidates": "path", "only": "strs",
-    "out": "path", "store": "path", "chains": "posint", "warmup": "int0", "draws": "posint", "prior_draws": "posint",
-    "seed": "int0", "adapt_delta": "prob", "escalation": "probs", "longer_retry": "factor",
-    "max_treedepth": "posint",
-    "jobs": "int0", "engine": "engine", "thresholds": "floats", "bounds": "bounds",
-    "rhat_max": "posfloat", "ess_per_chain_min": "posfloat", "ebfmi_min": "posfloat",
-    "implausible_share": "prob", "check_draws": "posint", "quiet": "bool", "ppp_extreme": "prob", "pit_alpha": "prob",
-    "relevant": "sizes",
-    "cross_validation": "cv", "refit_cap": "int0", "folds": "folds",
-    "replicates": "reps",
-    "cluster": "address",
-    "quick": "bool",
-}
+
+_LAYOUT = _layout()
 
 _DESCRIBE = {
     "path": "a path in quotes", "str": "text in quotes", "strs": "a list of column names",
@@ -128,7 +109,7 @@ _DESCRIBE = {
 
 
 def _convert(key: str, value: Any, base: Path) -> Any:
-    kind = _TYPES[key]
+    kind = BY_NAME[key].kind
 
     def bad() -> UserError:
         return UserError(f"configuration key '{key}' must be {_DESCRIBE[kind]}; got {value!r}")
@@ -292,9 +273,9 @@ def from_mapping(raw: Mapping[str, Any], base: Path, source: str = "configuratio
     """Build a :class:`RunConfig` from parsed TOML (sections as in the README)."""
     values: dict[str, Any] = {}
     for section, content in raw.items():
-        if section not in _SECTIONS:
+        if section not in SECTIONS:
             raise UserError(
-                f"{source}: unknown section [{section}]; the sections are: " + ", ".join(_SECTIONS)
+                f"{source}: unknown section [{section}]; the sections are: " + ", ".join(SECTIONS)
             )
         if not isinstance(content, Mapping):
             raise UserError(f"{source}: [{section}] must be a table of key = value lines")
@@ -312,7 +293,7 @@ def from_mapping(raw: Mapping[str, Any], base: Path, source: str = "configuratio
                     f"{source}: unknown key '{key}' in [{section}]; the keys there are: "
                     + ", ".join(_LAYOUT[section])
                 )
-            name = _LAYOUT[section][key]
+            name = _LAYOUT[section][key].name
             values[name] = _convert(name, value, base)
     cfg = RunConfig(**values)
     _check_statistic_names(cfg)
@@ -343,7 +324,7 @@ def apply_flags(cfg: RunConfig, flags: Mapping[str, Any], base: Path | None = No
             continue
         if name not in names:
             raise UserError(f"unknown setting '{name}'")
-        changes[name] = _convert(name, value, base) if name in _TYPES else value
+        changes[name] = _convert(name, value, base) if BY_NAME[name].kind else value
     cfg = replace(cfg, **changes)
     _check_statistic_names(cfg)
     return cfg
@@ -375,78 +356,17 @@ def quick_profile(cfg: RunConfig) -> RunConfig:
 
 
 #: One line per setting: used for ``--help`` and the README's configuration reference.
-HELP: dict[str, str] = {
-    "data": "CSV data file with a header row",
-    "outcome": "column holding the outcome",
-    "predictors": "predictor columns, comma-separated (numeric: centred and scaled; text: indicators)",
-    "group": "grouping column for varying intercepts (participants, items, machines)",
-    "conditions": "columns whose levels get their own predictive checks, comma-separated",
-    "slopes": ("predictors whose slope varies by group (each group's deviation, correlated with its intercept), "
-               "comma-separated; each must be among the predictors, and a group column is needed"),
-    "censored": ("censoring column: 0 observed, 1 right-censored at the value (true value larger), "
-                 "-1 left-censored at the value (true value smaller)"),
-    "truncate": "truncation window L:U of the outcome, either side may be empty (e.g. 0: or :3000)",
-    "reference": "reference level of a text predictor or condition column, e.g. density=dense,cue=off "
-                 "(default: the first level in sorted order); coefficients and effects are each level "
-                 "minus the reference",
-    "typical_value": "typical value of the outcome for default priors (default: its median)",
-    "typical_spread": "typical spread of the outcome for default priors (default: its SD)",
-    "candidates": "folder of .stan candidate files (default: the built-in candidates)",
-    "only": "run only these candidate ids, comma-separated",
-    "out": "output folder for report.html, summary.json and tables",
-    "store": "folder of stored fits, reused by later runs (default: OUT/fits)",
-    "chains": "Markov chains per fit",
-    "warmup": "warmup iterations per chain",
-    "draws": "kept draws per chain",
-    "prior_draws": "prior predictive draws in all (over all chains)",
-    "seed": "random seed of every fit",
-    "adapt_delta": "Stan's target acceptance rate for the first fit",
-    "escalation": "higher adapt_delta values tried in turn after divergent transitions",
-    "longer_retry": ("when R-hat or ESS falls just short (R-hat below 1.05, ESS at least its floor divided by "
-                     "this, no divergent transitions), fit once more with warmup and draws times this (1: never)"),
-    "max_treedepth": "Stan's maximum tree depth",
-    "jobs": "cores the run may use: programs compiled, candidates fitted side by side and chains at once (0: all cores)",
-    "engine": "Stan engine: auto (CmdStanPy when CmdStan is installed, else PyStan), pystan, cmdstanpy",
-    "thresholds": "extra statistics: share of observations below each value, comma-separated",
-    "bounds": "plausibility bounds for the prior trial, e.g. mean=150:5000,min=100:inf",
-    "rhat_max": "R-hat must be below this",
-    "ess_per_chain_min": "bulk and tail ESS must exceed this many per chain",
-    "ebfmi_min": "E-BFMI below this flags a chain",
-    "implausible_share": "flag candidates whose share of plausible prior draws is below this",
-    "check_draws": "replicated datasets used for the predictive checks",
-    "ppp_extreme": "posterior predictive p-values below this or above 1 minus this count as misfit",
-    "relevant": ("smallest miss that matters per statistic, in its units (outcome units; a share for below_T), "
-                 "e.g. mean=10,min=50: the verdict then names only misses larger than this"),
-    "pit_alpha": "LOO-PIT values count as miscalibrated when their ECDF leaves the simultaneous 1 - this band",
-    "cross_validation": "loo (PSIS-LOO, exact refits, K-fold above the cap), kfold, or leave_group_out",
-    "refit_cap": "exact leave-one-out refits per candidate before falling back to K-fold",
-    "folds": "number of folds K for K-fold cross-validation",
-    "hyperparameters": "prior hyperparameter overrides, e.g. lognormal.sigma_scale=0.5 (repeatable)",
-    "quiet": "print nothing but errors",
-    "replicates": "model recovery: datasets simulated from each ranked candidate, each fitted by every "
-                  "candidate (0: none with run; recovery uses 20)",
-    "cluster": "run the fits on an existing Dask cluster at this scheduler address, e.g. tcp://HOST:PORT "
-               "(default: worker processes on this machine)",
-    "quick": "a quick look: 4 chains x 250 draws (250 warmup), 200 prior draws, no adapt_delta escalation or longer retry, "
-             "R-hat below 1.05 and ESS of 25 per chain accepted, PSIS-LOO without refits; marked 'quick look' in the verdict, written to "
-             "reports/quick unless --out is given, never over a full run's output; flags given with it still win",
-}
+HELP: dict[str, str] = {s.name: s.help for s in SETTINGS}
 
 
 def section_of(name: str) -> str:
     """The TOML section and key a setting lives under, as ``[section] key``."""
-    if name == "hyperparameters":
-        return "[hyperparameters.ID] NAME"
-    for section, keys in _LAYOUT.items():
-        for key, field_name in keys.items():
-            if field_name == name:
-                return f"[{section}] {key}"
-    raise KeyError(name)
+    return BY_NAME[name].where
 
 
 def parse_flag(name: str, text: str) -> Any:
     """A command-line value as the TOML value it spells, for the named setting."""
-    kind = _TYPES.get(name)
+    kind = BY_NAME[name].kind if name in BY_NAME else None
     if kind in ("path", "str", "engine", "cv", "address", "window"):
         return text
     if kind in ("strs",):
@@ -455,7 +375,7 @@ def parse_flag(name: str, text: str) -> Any:
         try:
             return [_number(v) for v in text.split(",") if v.strip()]
         except ValueError:
-            raise UserError(f"--{name.replace('_', '-')} must be {_DESCRIBE[kind]}; got {text!r}") from None
+            raise UserError(f"{_flag(name)} must be {_DESCRIBE[kind]}; got {text!r}") from None
     if kind == "levels":
         levels = {}
         for part in filter(None, (p.strip() for p in text.split(","))):
@@ -488,7 +408,13 @@ def parse_flag(name: str, text: str) -> Any:
     try:
         return _number(text)
     except ValueError:
-        raise UserError(f"--{name.replace('_', '-')} must be {_DESCRIBE[kind]}; got {text!r}") from None
+        raise UserError(f"{_flag(name)} must be {_DESCRIBE[kind]}; got {text!r}") from None
+
+
+def _flag(name: str) -> str:
+    """The command-line flag of a setting, for messages."""
+    setting = BY_NAME.get(name)
+    return setting.flag if setting and setting.flag else "--" + name.replace("_", "-")
 
 
 def _number(text: str) -> int | float:

@@ -35,6 +35,7 @@ import numpy as np
 
 from contenders.cleanup import while_writing
 from contenders.engines.base import Draws, Engine, Program, SamplerSettings, raise_if_interrupted
+from contenders.inputs.settings import BY_NAME, SETTINGS
 
 
 def fit_key(code: str, data: Mapping[str, Any], settings: SamplerSettings, engine: str) -> str:
@@ -57,12 +58,9 @@ def fit_key(code: str, data: Mapping[str, Any], settings: SamplerSettings, engin
     return h.hexdigest()
 
 
-#: Settings of a run that change a candidate's trial results (and so their stored copy).
-TRIAL_SETTINGS = (
-    "chains", "warmup", "draws", "prior_draws", "seed", "adapt_delta", "max_treedepth", "escalation",
-    "longer_retry", "rhat_max", "ess_per_chain_min", "ebfmi_min", "thresholds", "bounds", "implausible_share",
-    "check_draws", "pit_alpha", "conditions", "reference", "cross_validation", "refit_cap", "folds", "ppp_extreme",
-)
+#: Settings of a run that change a candidate's trial results (and so their stored copy):
+#: those marked ``enters_trials_key`` in ``contenders.inputs.settings.SETTINGS``.
+TRIAL_SETTINGS = tuple(s.name for s in SETTINGS if s.enters_trials_key)
 #: Bumped whenever the stored trial results change shape. Format 4: plain data only (no
 #: ArviZ objects), so reading them back imports neither ArviZ nor xarray. Format 5:
 #: coefficients in the outcome's units and group terms (``CandidateResult.coefficients``),
@@ -97,9 +95,12 @@ def trials_key(candidate, design, cfg, engine_version: str) -> str:
         h.update(str(value.shape).encode())
         h.update(value.tobytes())
     h.update(candidate.code.encode())
-    settings = {k: getattr(cfg, k) for k in TRIAL_SETTINGS}
-    if getattr(cfg, "quick", False):   # a quick look is never read back as a full result
-        settings["quick"] = True
+    settings = {}
+    for name in TRIAL_SETTINGS:
+        if BY_NAME[name].kind != "bool":
+            settings[name] = getattr(cfg, name)
+        elif getattr(cfg, name, False):   # only when true: a quick look is never read back as a full result
+            settings[name] = True
     h.update(json.dumps(settings, sort_keys=True, default=str).encode())
     h.update(f"{engine_version}|contenders {__version__}|format {TRIALS_FORMAT}".encode())
     return h.hexdigest()
