@@ -136,7 +136,7 @@ class CmdStanPyEngine(Engine):
     name = "cmdstanpy"
 
     def __init__(self, cmdstan: str | os.PathLike | None = None) -> None:
-        from contenders.engines import cmdstanpy_version_line, find_cmdstan
+        from contenders.engines.cmdstan_home import cmdstanpy_version_line, find_cmdstan
 
         _quiet_logger()
         if cmdstan is None:

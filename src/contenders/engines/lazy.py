@@ -26,7 +26,8 @@ class LazyEngine(Engine):
     """``get_engine(name)``, loaded on first use; ``auto`` is resolved at once."""
 
     def __init__(self, name: str = "auto") -> None:
-        from contenders.engines import cmdstanpy_version_line, find_cmdstan, resolve_engine
+        from contenders.engines import resolve_engine
+        from contenders.engines.cmdstan_home import cmdstanpy_version_line, find_cmdstan
 
         name, self.notice = resolve_engine(name)
         self.name = name

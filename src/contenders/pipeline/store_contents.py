@@ -139,7 +139,7 @@ def _engine_versions() -> set[str]:
     with contextlib.suppress(Exception):
         found.add(pystan_version())
     with contextlib.suppress(Exception):
-        from contenders.engines import cmdstanpy_version_line, find_cmdstan
+        from contenders.engines.cmdstan_home import cmdstanpy_version_line, find_cmdstan
 
         folder, _why = find_cmdstan()
         if folder is not None:
