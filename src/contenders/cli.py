@@ -207,7 +207,7 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
     OUT/calibration.html, calibration.json and calibration.csv; exit status 1 when a
     candidate fails. Every fit is stored, so an interrupted study resumes."""
     from contenders.output.calibration_page import write_calibration
-    from contenders.statistics.calibration import calibrate
+    from contenders.pipeline.calibration import calibrate
 
     cfg = _config_from_args(args, args.data)
     if args.names:
