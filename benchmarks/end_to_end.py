@@ -286,7 +286,7 @@ import numpy as np
 from contenders.inputs.candidates import builtin_folder, discover, inputs_for
 from contenders.inputs.config import load
 from contenders.engines import get_engine
-from contenders.pipeline.runner import _settings, load_design
+from contenders.pipeline.runner import load_design, sampler_settings
 from contenders.pipeline.store import slim
 
 cfg = load(sys.argv[1]).with_(warmup=int(sys.argv[3]))
@@ -296,7 +296,7 @@ c = next(c for c in discover(builtin_folder()) if c.id == cid)
 engine = get_engine("pystan")
 program = engine.compile(c)
 data = inputs_for(c, design, None, cfg.hyperparameters.get(c.id))
-draws = engine.sample(program, data, _settings(cfg))
+draws = engine.sample(program, data, sampler_settings(cfg))
 old = os.path.join(tempfile.mkdtemp(prefix="contenders-old-"), "old.nc")
 draws.idata.to_netcdf(old)   # as the store wrote fits before: float64 log_lik, every y_rep draw
 old_bytes = os.path.getsize(old)

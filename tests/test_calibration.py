@@ -1,4 +1,5 @@
-"""Simulation-based calibration (statistics/calibration.py and ``contenders calibrate``).
+"""Simulation-based calibration (statistics/calibration.py, pipeline/calibration.py and
+``contenders calibrate``).
 
 References: Talts, Betancourt, Simpson, Vehtari & Gelman (2018), "Validating Bayesian
 inference algorithms with simulation-based calibration", arXiv:1804.06788 (Theorem 1:

@@ -21,7 +21,7 @@ from contenders.pipeline.recovery import (
     wilson_interval, write,
 )
 from contenders.output.report import write_report
-from contenders.pipeline.runner import run
+from contenders.pipeline.runner import run_with_programs
 
 
 # --- pure functions -------------------------------------------------------------------
@@ -135,15 +135,15 @@ def _study(tmp_path, y, only, replicates):
     cfg = RunConfig(data=path, outcome="rt", only=only, out=tmp_path / "out", chains=2, warmup=250, draws=250,
                     prior_draws=100, check_draws=100, engine="pystan", jobs=2, seed=20261201,
                     rhat_max=1.05, ess_per_chain_min=50, replicates=replicates)
-    result = run(cfg)
-    result.recovery = recover(result, replicates)
-    return result
+    result, programs = run_with_programs(cfg)
+    result.recovery = recover(result, programs, replicates)
+    return result, programs
 
 
 def test_normal_and_strongly_skewed_lognormal_are_recovered(tmp_path, programs):
     # invented data: lognormal, median 500, sigma 0.7 on the log scale, N = 250
     y = np.exp(np.random.default_rng(20261201).normal(np.log(500), 0.7, 250))
-    result = _study(tmp_path, y, ("normal", "lognormal"), 5)
+    result, programs = _study(tmp_path, y, ("normal", "lognormal"), 5)
     rec = result.recovery
     assert result.comparison.ranking[0] == "lognormal" and rec.observed_winner == "lognormal"
     assert rec.n_fits + sum(f.status == "outside_support" for f in rec.fits) == 2 * 5 * 2
@@ -161,7 +161,7 @@ def test_normal_and_strongly_skewed_lognormal_are_recovered(tmp_path, programs):
     assert any("can be told apart" in s for s in rec.reading)
     assert rec.estimated_seconds > 0
     # a second analysis (or one resumed after an interruption) finds every fit in the store
-    again = recover(result, 5)
+    again = recover(result, programs, 5)
     assert again.stored_before == again.n_fits == rec.n_fits
     assert [r.elpd for r in again.runs] == [r.elpd for r in rec.runs]
     # outputs: JSON, CSV and the report section
@@ -180,7 +180,7 @@ def test_lognormal_and_gamma_at_low_skew_and_small_n_are_confused(tmp_path, prog
     # invented data: lognormal, median 500, sigma 0.15 on the log scale (skewness about
     # 0.45), N = 24; a gamma with shape about 44 looks almost the same
     y = np.exp(np.random.default_rng(7).normal(np.log(500), 0.15, 24))
-    result = _study(tmp_path, y, ("lognormal", "gamma"), 6)
+    result, _programs = _study(tmp_path, y, ("lognormal", "gamma"), 6)
     rec = result.recovery
     m = rec.by_elpd
     # measured: gamma data won 3 gamma / 3 lognormal; lognormal data 5 lognormal / 1 gamma

@@ -136,17 +136,17 @@ BATCH_EXIT_STATUS = ("exit status: 0 when at least one dataset ranked a candidat
 
 def _run_and_report(cfg, command_line: str) -> int:
     from contenders.output.report import write_report
-    from contenders.pipeline.runner import run
+    from contenders.pipeline.runner import run_with_programs
 
     say = (lambda _t: None) if cfg.quiet else (lambda t: print(t, flush=True))
-    result = run(cfg, progress=say)
+    result, programs = run_with_programs(cfg, progress=say)
     if cfg.replicates:   # model recovery (contenders recovery, or [recovery] replicates)
         from contenders.pipeline.recovery import recover, write as write_recovery
 
         from contenders.pipeline.store import FitStore
 
         with FitStore(cfg.store or Path(cfg.out) / "fits").in_use():   # prune waits for it
-            result.recovery = recover(result, cfg.replicates, progress=say)
+            result.recovery = recover(result, programs, cfg.replicates, progress=say)
         write_recovery(result.recovery, result.out)
     report = write_report(result, result.out, command_line=command_line)
     if not cfg.quiet:
@@ -201,7 +201,7 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
     OUT/calibration.html, calibration.json and calibration.csv; exit status 1 when a
     candidate fails. Every fit is stored, so an interrupted study resumes."""
     from contenders.output.calibration_page import write_calibration
-    from contenders.statistics.calibration import calibrate
+    from contenders.pipeline.calibration import calibrate
 
     cfg = _config_from_args(args, args.data)
     if args.names:

@@ -13,7 +13,8 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from contenders.statistics.calibration import Calibration, CalibrationStudy, calibration_dict, ecdf_band, ecdf_of_ranks
+from contenders.pipeline.calibration import CalibrationStudy
+from contenders.statistics.calibration import Calibration, calibration_dict, ecdf_band, ecdf_of_ranks
 from contenders.output import figures
 from contenders.output import format as fmt
 from contenders.output.figures import BAND, INK, MUTED, _flag_frame, _grid_shape, _new, _styled, plain, render

@@ -1,1 +1,2 @@
-"""Running the trials: the runner, executors, the fit store, batch and recovery."""
+"""Running the trials: the runner, executors and the task loop they share (tasks.py), the
+fit store, batch, model recovery and the calibration study."""

@@ -1,8 +1,8 @@
 """Running the tasks of a run on an existing Dask cluster (``--cluster tcp://HOST:PORT``).
 
 The same interface as the local executors (:class:`contenders.pipeline.executor.Executor`):
-``submit(fn, *args)`` returns a :class:`concurrent.futures.Future`, so the code that
-gathers results (``concurrent.futures.as_completed``) does not change. Scheduling,
+``submit(fn, *args)`` returns a :class:`concurrent.futures.Future`, so the task loop that
+gathers results (:mod:`contenders.pipeline.tasks`) does not change. Scheduling,
 retries and worker failures are Dask's (the ``distributed`` package); each task is
 submitted with ``retries`` so a fit whose worker was lost is run again elsewhere.
 

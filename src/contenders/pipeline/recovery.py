@@ -333,21 +333,22 @@ def _clock(seconds: float) -> str:
 
 # --- the analysis -------------------------------------------------------------------------
 
-def recover(result, replicates: int = DEFAULT_REPLICATES, progress: Callable[[str], None] | None = None,
-            threshold: float = CONFUSED) -> Recovery:
+def recover(result, programs, replicates: int = DEFAULT_REPLICATES,
+            progress: Callable[[str], None] | None = None, threshold: float = CONFUSED) -> Recovery:
     """Run the model-recovery analysis on the ranked candidates of ``result`` (a
-    :class:`contenders.pipeline.runner.RunResult`) with ``replicates`` datasets per candidate."""
-    import concurrent.futures as cf
-
+    :class:`contenders.pipeline.runner.RunResult`) with ``replicates`` datasets per
+    candidate. ``programs`` (a :class:`contenders.pipeline.runner.RunPrograms`, from
+    ``runner.run_with_programs``) holds the candidates as the run read and checked them,
+    and the programs it compiled; the others are compiled (from the engine's cache) here."""
     import arviz as az
 
     from contenders.inputs.candidates import check_against_data, inputs_for
     from contenders.engines import compile_all, get_engine
-    from contenders.engines.base import raise_if_interrupted
-    from contenders.pipeline.executor import cores, make_executor, share
+    from contenders.pipeline.executor import cores, share
     from contenders.pipeline.progress import Progress
-    from contenders.pipeline.runner import _settings, fit_task, select_candidates, with_outcome
+    from contenders.pipeline.runner import fit_task, sampler_settings, with_outcome
     from contenders.pipeline.store import FitStore, fit_key
+    from contenders.pipeline.tasks import Task, run_tasks
 
     if isinstance(replicates, bool) or not isinstance(replicates, int) or replicates < 2:
         raise UserError(f"model recovery needs at least 2 replicated datasets per candidate; got "
@@ -371,9 +372,7 @@ def recover(result, replicates: int = DEFAULT_REPLICATES, progress: Callable[[st
                       f"this run has {len(ids)}")
         say(rec.reason)
         return rec
-    cands = {c.id: c for c in select_candidates(cfg) if c.id in ids}
-    for c in cands.values():
-        check_against_data(c, design, cfg.hyperparameters.get(c.id))
+    cands = {m: programs.candidates[m] for m in ids}   # checked against the data by the run
     engine = get_engine(result.engine)
     store = FitStore(cfg.store or Path(cfg.out) / "fits")
 
@@ -405,12 +404,12 @@ def recover(result, replicates: int = DEFAULT_REPLICATES, progress: Callable[[st
                 fits.append(ReplicateFit(g, i, m, "outside_support", probe.skip_reason.removeprefix("skipped: ")))
                 continue
             key = fit_key(c.code, inputs_for(c, rep_design, None, cfg.hyperparameters.get(m)),
-                          replace(_settings(cfg), seed=seed), version)
+                          replace(sampler_settings(cfg), seed=seed), version)
             tasks.append((g, i, m, rep_design, seed, store.path(key).exists()))
     jobs = cfg.jobs or cores()
     rec.n_fits = len(tasks)
     rec.stored_before = sum(t[5] for t in tasks)
-    workers, _chains = share(jobs, max(1, len(tasks)))   # as make_executor below
+    workers, _chains = share(jobs, max(1, len(tasks)))   # as run_tasks below
     rec.workers = workers
     todo_seconds = sum(by_id[m].seconds.get("posterior", math.nan) for _g, _i, m, _d, _s, stored in tasks
                        if not stored)
@@ -423,31 +422,24 @@ def recover(result, replicates: int = DEFAULT_REPLICATES, progress: Callable[[st
         + f"; estimated {_clock(rec.estimated_seconds)} on {workers} worker(s), from the sampling times "
           "measured in the run (loading and PSIS-LOO add a little)")
 
-    compile_all(engine, list(cands.values()), jobs=jobs)   # cached by the run: usually instant
+    # programs the run did not compile (its trials came from the fit store): from the engine's cache
+    compile_all(engine, [c for m, c in cands.items() if m not in programs.compiled], jobs=jobs)
     shown = Progress(ids, workers=workers, quiet=progress is None or cfg.quiet)
     per_g = {g: sum(t[0] == g for t in tasks) for g in ids}
     done_g = {g: 0 for g in ids}
-    executor = make_executor(result.engine, jobs, len(tasks), cluster=cfg.cluster)
-    try:
-        with shown.ticker():
-            futures = {}
-            for g, i, m, rep_design, seed, _stored in tasks:
-                futures[executor.submit(fit_task, cands[m], rep_design, cfg, result.engine,
-                                        str(store.folder), keep_loo, seed)] = (g, i, m)
-            for future in cf.as_completed(list(futures)):
-                g, i, m = futures[future]
-                try:
-                    health, kept = future.result()
-                except Exception as exc:   # a worker died: recorded, the others go on
-                    health, kept = None, f"worker: {type(exc).__name__}: {exc}"
-                fits.append(_record(g, i, m, health, kept))
-                done_g[g] += 1
-                shown.event(g, "done" if done_g[g] == per_g[g] else f"posterior: {done_g[g]} of {per_g[g]} fits")
-                raise_if_interrupted()
-        executor.close()
-    except BaseException:
-        executor.close(cancel=True)
-        raise
+
+    def fit(g: str, i: int, m: str, rep_design, seed: int) -> Task:
+        def done(answer) -> None:
+            health, kept = answer
+            fits.append(_record(g, i, m, health, kept))
+            done_g[g] += 1
+            shown.event(g, "done" if done_g[g] == per_g[g] else f"posterior: {done_g[g]} of {per_g[g]} fits")
+
+        return Task(fit_task, (cands[m], rep_design, cfg, result.engine, str(store.folder), keep_loo, seed), done,
+                    lambda message: (None, message))
+
+    run_tasks([fit(g, i, m, rep_design, seed) for g, i, m, rep_design, seed, _stored in tasks], result.engine,
+              jobs, shown, cluster=cfg.cluster)
 
     order = {m: k for k, m in enumerate(ids)}
     fits.sort(key=lambda f: (order[f.generator], f.replicate, order[f.candidate]))

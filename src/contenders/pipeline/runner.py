@@ -27,7 +27,7 @@ from contenders.inputs.data import Design, build_design, check_reference, read_t
 from contenders.engines import SamplingError, compile_all, get_engine
 from contenders.engines.base import SamplerSettings
 from contenders.engines.lazy import LazyEngine
-from contenders.pipeline.executor import make_executor, report
+from contenders.pipeline.executor import report
 from contenders.pipeline.progress import Progress
 from contenders.pipeline.store import FitStore, StoredEngine, data_origin, trials_key
 from contenders.errors import UserError
@@ -137,7 +137,10 @@ def _unknown_hyper_message(c: Candidate, name: str) -> str:
             + " Its hyperparameters are: " + (", ".join(valid) or "(none)") + "; nothing was fitted.")
 
 
-def _settings(cfg: RunConfig, draws: int | None = None, chains: int | None = None) -> SamplerSettings:
+def sampler_settings(cfg: RunConfig, draws: int | None = None, chains: int | None = None) -> SamplerSettings:
+    """The sampler settings of ``cfg`` (its chains, warmup, draws, adapt_delta, tree depth
+    and seed), with ``draws`` per chain and ``chains`` in place of the run's when given.
+    Studies that fit simulated datasets use it to find their fits in the fit store."""
     return SamplerSettings(
         chains=chains or cfg.chains, warmup=cfg.warmup, draws=draws or cfg.draws,
         adapt_delta=cfg.adapt_delta, max_treedepth=cfg.max_treedepth, seed=cfg.seed,
@@ -196,7 +199,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         prior_chains = min(cfg.chains, cfg.prior_draws)
         pdraws = engine.sample(
             program, inputs_for(c, design, np.arange(0), cfg.hyperparameters.get(c.id)),
-            _settings(cfg, draws=max(1, math.ceil(cfg.prior_draws / prior_chains)), chains=prior_chains),
+            sampler_settings(cfg, draws=max(1, math.ceil(cfg.prior_draws / prior_chains)), chains=prior_chains),
         )
         res.seconds["prior"] = pdraws.sample_seconds
         res.seconds["prior_wait"] = pdraws.wait_seconds
@@ -210,7 +213,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         res.stage = "posterior"
         report(c.id, "posterior")
         draws, health = fit_with_health(
-            engine, program, inputs_for(c, design, None, cfg.hyperparameters.get(c.id)), _settings(cfg),
+            engine, program, inputs_for(c, design, None, cfg.hyperparameters.get(c.id)), sampler_settings(cfg),
             c.parameter_names, cfg.escalation, cfg.longer_retry, rhat_max=cfg.rhat_max,
             ess_per_chain_min=cfg.ess_per_chain_min, ebfmi_min=cfg.ebfmi_min,
         )
@@ -305,7 +308,7 @@ def refit_held_out(c: Candidate, engine, program, design: Design, cfg: RunConfig
     The seed depends on ``j`` only, so the refits give the same draws wherever they run."""
     fitted, held = due.plan.fits[j]
     report(c.id, f"out-of-sample: refit {j + 1} of {len(due.plan.fits)}")
-    settings = replace(_settings(cfg), adapt_delta=due.adapt_delta, seed=cfg.seed + 1001 + j,
+    settings = replace(sampler_settings(cfg), adapt_delta=due.adapt_delta, seed=cfg.seed + 1001 + j,
                        warmup=due.warmup or cfg.warmup, draws=due.draws or cfg.draws)
     d = engine.sample(program, inputs_for(c, design, fitted, cfg.hyperparameters.get(c.id)), settings)
     # the store keeps a refit's held-out observations only: pick them by label
@@ -390,7 +393,7 @@ def fit_task(c: Candidate, design: Design, cfg: RunConfig, engine_name: str, sto
     engine = stored_engine(engine_name, store_folder, cfg)
     try:
         program = engine.compile(c)
-        settings = replace(_settings(cfg), seed=cfg.seed if seed is None else seed)
+        settings = replace(sampler_settings(cfg), seed=cfg.seed if seed is None else seed)
         draws, health = fit_with_health(
             engine, program, inputs_for(c, design, None, cfg.hyperparameters.get(c.id)), settings,
             c.parameter_names, cfg.escalation, cfg.longer_retry, rhat_max=cfg.rhat_max,
@@ -410,6 +413,22 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
     line per candidate is shown; without it the run is silent. Candidates run side by
     side on ``cfg.jobs`` cores (see :mod:`contenders.pipeline.executor`); a candidate whose trials
     were already computed with the same inputs is read from the fit store."""
+    return run_with_programs(cfg, progress)[0]
+
+
+@dataclass
+class RunPrograms:
+    """The candidates of a run as the run read them and checked them against its data,
+    and the programs it compiled (``{id: Program}``; none for candidates whose trials
+    came from the fit store): what a study of the run's fits (``recovery.recover``)
+    fits with, instead of reading the candidates again."""
+
+    candidates: dict[str, Candidate]
+    compiled: dict[str, Any]
+
+
+def run_with_programs(cfg: RunConfig, progress=None) -> tuple[RunResult, RunPrograms]:
+    """:func:`run`, also returning the run's candidates and compiled programs."""
     say = progress or (lambda _text: None)
     start = time.perf_counter()
     design = load_design(cfg)
@@ -430,7 +449,7 @@ def run(cfg: RunConfig, progress=None) -> RunResult:
 
 
 def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: list[Candidate], out: Path,
-         store: FitStore) -> RunResult:
+         store: FitStore) -> tuple[RunResult, RunPrograms]:
     engine = StoredEngine(LazyEngine(cfg.engine), store)   # loaded only if something must be fitted
     for c in cands:
         check_against_data(c, design, cfg.hyperparameters.get(c.id))
@@ -477,15 +496,7 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
     shown = Progress([c.id for c in cands], workers=workers, quiet=progress is None or cfg.quiet)
     for cid, r in results.items():
         shown.event(cid, "stored" if getattr(r, "from_store", False) else r.status)
-    executor = make_executor(engine.name, jobs or cores(), len(todo), on_event=shown.event,
-                             cluster=cfg.cluster if todo else "")
-    try:
-        with shown.ticker():
-            _run_tasks(executor, todo, design, cfg, engine.name, store, keys, results, shown)
-        executor.close()
-    except BaseException:
-        executor.close(cancel=True)
-        raise
+    _run_tasks(todo, design, cfg, engine.name, jobs or cores(), store, keys, results, shown)
     ordered = [results[c.id] for c in cands]
     for r in ordered:
         if r.status in ("failed", "skipped", "unhealthy"):
@@ -504,7 +515,7 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
         effects=compare_effects(ordered, comparison.rows, cfg.seed), store=store,
     )
     write_summary(result)
-    return result
+    return result, RunPrograms({c.id: c for c in cands}, programs)
 
 
 #: The first sentence of a quick look's verdict.
@@ -527,17 +538,15 @@ def _never_over_a_full_result(out: Path) -> None:
                         "choose another folder with --out (the default for --quick is reports/quick)")
 
 
-def _run_tasks(executor, todo: list[Candidate], design: Design, cfg: RunConfig, engine_name: str,
+def _run_tasks(todo: list[Candidate], design: Design, cfg: RunConfig, engine_name: str, jobs: int,
                store: FitStore, keys: dict[str, str], results: dict, shown: Progress) -> None:
-    """Every candidate's trials as one task each; the exact refits a candidate's
-    out-of-sample estimate needs then go to the same executor as tasks of their own, so a
-    candidate with many refits spreads over the free workers. A candidate is finished
-    (and its results stored) when its last refit is back."""
-    import concurrent.futures as cf
+    """Every candidate's trials as one task each (:mod:`contenders.pipeline.tasks`); the
+    exact refits a candidate's out-of-sample estimate needs then go to the same executor
+    as tasks of their own, so a candidate with many refits spreads over the free workers.
+    A candidate is finished (and its results stored) when its last refit is back."""
+    from contenders.pipeline.tasks import Task, run_tasks
 
     folder = str(store.folder)
-    running: dict[cf.Future, tuple] = {}
-    refits: dict[str, list] = {}         # candidate id -> outcomes (None while running)
 
     def finished(c: Candidate, r: CandidateResult) -> None:
         results[c.id] = r
@@ -545,41 +554,35 @@ def _run_tasks(executor, todo: list[Candidate], design: Design, cfg: RunConfig, 
             store.save_trials(keys[c.id], r)
         shown.event(c.id, "done" if r.status == "ok" else r.status)
 
-    for c in todo:
-        running[executor.submit(candidate_task, c, design, cfg, engine_name, folder)] = ("trials", c, 0)
-    while running:
-        done, _ = cf.wait(list(running), return_when=cf.FIRST_COMPLETED)
-        for future in done:
-            kind, c, j = running.pop(future)
-            try:
-                answer = future.result()
-            except Exception as exc:   # a worker died: recorded, the others go on
-                answer = exc
-            if kind == "trials":
-                r = answer if not isinstance(answer, Exception) else CandidateResult(
-                    c.id, c.label, c.about, c.support, "failed",
-                    f"worker: {type(answer).__name__}: {answer}", c.code, c.code_hash)
-                results[c.id] = r
-                if r.pending is None:
-                    finished(c, r)
-                    continue
-                refits[c.id] = [None] * len(r.pending.plan.fits)
-                shown.event(c.id, f"out-of-sample: {len(refits[c.id])} refit(s)")
-                for k in range(len(refits[c.id])):
-                    f = executor.submit(refit_task, c, design, cfg, engine_name, folder, r.pending, k)
-                    running[f] = ("refit", c, k)
-                continue
-            if isinstance(answer, Exception):
-                answer = RefitOutcome(None, error=f"worker: {type(answer).__name__}: {answer}")
-            outcomes = refits[c.id]
-            outcomes[j] = answer
+    def trials(c: Candidate) -> Task:
+        def done(r: CandidateResult) -> list[Task]:
+            results[c.id] = r
+            if r.pending is None:
+                finished(c, r)
+                return []
+            outcomes: list = [None] * len(r.pending.plan.fits)   # None while running
+            shown.event(c.id, f"out-of-sample: {len(outcomes)} refit(s)")
+            return [refit(c, r, outcomes, k) for k in range(len(outcomes))]
+
+        def lost(message: str) -> CandidateResult:
+            return CandidateResult(c.id, c.label, c.about, c.support, "failed", message, c.code, c.code_hash)
+
+        return Task(candidate_task, (c, design, cfg, engine_name, folder), done, lost)
+
+    def refit(c: Candidate, r: CandidateResult, outcomes: list, k: int) -> Task:
+        def done(answer: RefitOutcome) -> None:
+            outcomes[k] = answer
             left = sum(o is None for o in outcomes)
             if left:
                 shown.event(c.id, f"out-of-sample: {left} refit(s) to go")
-                continue
-            r = results[c.id]
+                return
             finish_refits(r, r.pending, outcomes)
             finished(c, r)
+
+        return Task(refit_task, (c, design, cfg, engine_name, folder, r.pending, k), done,
+                    lambda message: RefitOutcome(None, error=message))
+
+    run_tasks([trials(c) for c in todo], engine_name, jobs, shown, cluster=cfg.cluster)
 
 
 def versions(engine) -> dict[str, str]:
