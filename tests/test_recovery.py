@@ -16,9 +16,10 @@ from scipy import stats
 
 from contenders.cli import main
 from contenders.inputs.config import RunConfig
-from contenders.pipeline.recovery import (
-    NO_DECISION, ReplicateFit, decide, evenly_spaced, paired_difference, reading, recover, recovery_matrix,
-    wilson_interval, write,
+from contenders.output.recovery_files import reading, write
+from contenders.pipeline.recovery import recover
+from contenders.statistics.recovery import (
+    NO_DECISION, ReplicateFit, decide, evenly_spaced, paired_difference, recovery_matrix, wilson_interval,
 )
 from contenders.output.report import write_report
 from contenders.pipeline.runner import run_with_programs

@@ -2,13 +2,13 @@
 ``[recovery] replicates`` was set): what was simulated, the plain reading, the two
 recovery matrices with Monte Carlo intervals and the fits that had problems. Numbers
 are formatted here; ``templates/recovery.html.j2`` lays them out. The analysis itself
-is :mod:`contenders.pipeline.recovery` (Wilson & Collins 2019, eLife 8:e49547)."""
+is :mod:`contenders.statistics.recovery` (Wilson & Collins 2019, eLife 8:e49547)."""
 
 from __future__ import annotations
 
 from typing import Any
 
-from contenders.pipeline.recovery import NO_DECISION, Matrix, Recovery
+from contenders.statistics.recovery import NO_DECISION, Matrix, Recovery
 from contenders.output import format as fmt
 from contenders.output.tables import Cell, Table, n
 
