@@ -5,7 +5,8 @@ The runner (pipeline/runner.py) fills them; later steps read them and never writ
 Each trial's own result is a record of the module that computes it (``PriorTrial`` in
 statistics/prior.py, ``Health`` in statistics/posterior.py, ``PredictiveChecks`` in
 statistics/checks.py, ``OutOfSample`` and ``Comparison`` in statistics/compare.py,
-``Sensitivity``, ``Coefficients``); a candidate's and a run's are here.
+``Sensitivity``, ``Coefficients``); a candidate's and a run's are here, and a
+calibration study's (``contenders calibrate``).
 """
 
 from __future__ import annotations
@@ -18,6 +19,7 @@ import numpy as np
 
 from contenders.inputs.config import RunConfig
 from contenders.inputs.data import Design
+from contenders.statistics.calibration import Calibration
 from contenders.statistics.checks import PredictiveChecks
 from contenders.statistics.coefficients import Coefficients
 from contenders.statistics.compare import Comparison, OutOfSample
@@ -86,3 +88,17 @@ class RunResult:
     #: the run's fit store (pipeline/store.py ``FitStore``); the report keeps drawn figures
     #: in it. None: figures are drawn and not kept.
     store: Any = field(default=None, repr=False)
+
+
+@dataclass
+class CalibrationStudy:
+    """Every candidate's calibration and what the study was run with."""
+
+    config: RunConfig
+    design: Design
+    candidates: list[Calibration]
+    simulations: int
+    kept_draws: int
+    seconds: float
+    engine: str
+    engine_version: str

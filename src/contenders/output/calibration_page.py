@@ -13,7 +13,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from contenders.pipeline.calibration import CalibrationStudy
+from contenders.records import CalibrationStudy
 from contenders.statistics.calibration import Calibration, calibration_dict, ecdf_band, ecdf_of_ranks
 from contenders.output import figures
 from contenders.output import format as fmt

@@ -29,7 +29,7 @@ from __future__ import annotations
 import json
 import math
 import time
-from dataclasses import dataclass, replace
+from dataclasses import replace
 from functools import partial
 from pathlib import Path
 from typing import Callable, Sequence
@@ -40,24 +40,11 @@ from contenders.errors import UserError
 from contenders.inputs.candidates import Candidate, check_against_data, check_outputs, inputs_for
 from contenders.inputs.config import RunConfig
 from contenders.inputs.data import Design, support_problem
+from contenders.records import CalibrationStudy
 from contenders.statistics.calibration import KEPT_DRAWS, Calibration, flat_names, judge, stack_parameters
 
 #: Prior predictive draws made per simulation before even thinning to the simulations.
 PRIOR_THIN = 5
-
-
-@dataclass
-class CalibrationStudy:
-    """Every candidate's calibration and what the study was run with."""
-
-    config: RunConfig
-    design: Design
-    candidates: list[Calibration]
-    simulations: int
-    kept_draws: int
-    seconds: float
-    engine: str
-    engine_version: str
 
 
 def keep_thinned(draws, health, names: Sequence[str], kept: int) -> dict:

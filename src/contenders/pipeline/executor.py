@@ -216,17 +216,3 @@ class ProcessExecutor(Executor):
         with contextlib.suppress(Exception):
             self._events.close()
 
-
-def make_executor(engine_name: str, jobs: int, tasks: int,
-                  on_event: Callable[[str, str], None] | None = None, cluster: str = "") -> Executor:
-    """The executor for ``tasks`` tasks on ``jobs`` cores (0: all cores), or on the Dask
-    cluster whose scheduler is at ``cluster`` (see :mod:`contenders.pipeline.executor_dask`)."""
-    if cluster:
-        from contenders.pipeline.executor_dask import DaskExecutor
-
-        return DaskExecutor(cluster, engine_name, on_event)
-    jobs = jobs or cores()
-    workers, chain_workers = share(jobs, tasks)
-    if workers == 1:
-        return InlineExecutor(engine_name, chain_workers, on_event)
-    return ProcessExecutor(engine_name, workers, chain_workers, on_event, cores=jobs)

@@ -8,7 +8,7 @@ tasks, which are sent at once: a candidate's exact refits follow its trials), an
 ``lost(message)``, which turns an exception raised by the task or its worker into the
 answer that stands in for it (one task failing never stops the others).
 
-:func:`run_tasks` makes the executor (``pipeline.executor.make_executor``) with
+:func:`run_tasks` makes the executor (``make_executor``) with
 ``progress.event`` as its ``on_event``, so the stages that tasks report from their
 workers reach the progress lines; it keeps the live block redrawn while tasks run,
 and on any exception (Ctrl-C included) stops the workers at once and re-raises.
@@ -23,6 +23,9 @@ import contextlib
 import itertools
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable
+
+from contenders.machine import cores
+from contenders.pipeline.executor import Executor, InlineExecutor, ProcessExecutor, share
 
 
 @dataclass
@@ -40,6 +43,21 @@ def worker_failure(exc: BaseException) -> str:
     return f"worker: {type(exc).__name__}: {exc}"
 
 
+def make_executor(engine_name: str, jobs: int, tasks: int,
+                  on_event: Callable[[str, str], None] | None = None, cluster: str = "") -> Executor:
+    """The executor for ``tasks`` tasks on ``jobs`` cores (0: all cores), or on the Dask
+    cluster whose scheduler is at ``cluster`` (see :mod:`contenders.pipeline.executor_dask`)."""
+    if cluster:
+        from contenders.pipeline.executor_dask import DaskExecutor   # imports distributed
+
+        return DaskExecutor(cluster, engine_name, on_event)
+    jobs = jobs or cores()
+    workers, chain_workers = share(jobs, tasks)
+    if workers == 1:
+        return InlineExecutor(engine_name, chain_workers, on_event)
+    return ProcessExecutor(engine_name, workers, chain_workers, on_event, cores=jobs)
+
+
 def run_tasks(tasks: Iterable[Task], engine_name: str, jobs: int, progress=None, cluster: str = "",
               count: int | None = None) -> None:
     """Run ``tasks`` and their follow-ups to the end.
@@ -51,7 +69,6 @@ def run_tasks(tasks: Iterable[Task], engine_name: str, jobs: int, progress=None,
     :class:`contenders.pipeline.progress.Progress` or None) receives the stages the tasks
     report and is redrawn while they run. A task's arguments are not kept once it is sent."""
     from contenders.engines.base import raise_if_interrupted
-    from contenders.pipeline.executor import make_executor
 
     count = len(tasks) if count is None else count   # type: ignore[arg-type]
     on_event = progress.event if progress is not None else None
