@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any, Mapping
 
 from contenders.errors import UserError
+from contenders.statistics import rules
 
 #: Test statistics computed on every dataset (observed, prior and posterior replicates).
 DEFAULT_STATISTICS = ("mean", "sd", "min", "max", "q05", "q50", "q95", "skewness")
@@ -52,14 +53,14 @@ class RunConfig:
     engine: str = "auto"
     thresholds: tuple[float, ...] = ()      # statistics "share of y below t"
     bounds: Mapping[str, tuple[float, float]] = field(default_factory=dict)
-    rhat_max: float = 1.01
-    ess_per_chain_min: float = 100.0
-    ebfmi_min: float = 0.3
-    implausible_share: float = 0.5          # flag priors with less plausible mass than this
+    rhat_max: float = rules.RHAT_MAX
+    ess_per_chain_min: float = rules.ESS_PER_CHAIN_MIN
+    ebfmi_min: float = rules.EBFMI_MIN
+    implausible_share: float = rules.IMPLAUSIBLE_SHARE          # flag priors with less plausible mass than this
     check_draws: int = 1000                 # replicated datasets used for the checks
-    ppp_extreme: float = 0.01               # p-values beyond this (or 1 - it) count as misfit
+    ppp_extreme: float = rules.PPP_EXTREME               # p-values beyond this (or 1 - it) count as misfit
     relevant: Mapping[str, float] = field(default_factory=dict)   # statistic -> smallest miss that matters
-    pit_alpha: float = 0.01                 # LOO-PIT band holds a uniform ECDF with prob. 1 - this
+    pit_alpha: float = rules.PIT_ALPHA                 # LOO-PIT band holds a uniform ECDF with prob. 1 - this
     cross_validation: str = "loo"           # loo | kfold | leave_group_out
     refit_cap: int = 10                     # exact refits per candidate before K-fold
     folds: int = 10
@@ -359,7 +360,7 @@ def apply_flags(cfg: RunConfig, flags: Mapping[str, Any], base: Path | None = No
 #: ESS 246 to 365 of 1,000 draws) and ranked only the other two, which said more about
 #: the short chains than about the candidates. Flags given beside ``--quick`` still win.
 QUICK_PROFILE: dict[str, Any] = {"chains": 4, "warmup": 250, "draws": 250, "prior_draws": 200,
-                                 "escalation": (), "longer_retry": 1.0, "rhat_max": 1.05,
+                                 "escalation": (), "longer_retry": 1.0, "rhat_max": rules.RHAT_FAR,
                                  "ess_per_chain_min": 25.0}
 #: Where a quick look writes when no output folder is given (a full run's is reports/run).
 QUICK_OUT = Path("reports/quick")

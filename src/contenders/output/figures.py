@@ -42,7 +42,7 @@ from matplotlib.ticker import (  # noqa: E402
 from markupsafe import Markup, escape  # noqa: E402
 import numpy as np  # noqa: E402
 
-from contenders.statistics.compare import SMALL_DIFFERENCE  # noqa: E402
+from contenders.statistics.rules import SMALL_DIFFERENCE  # noqa: E402
 from contenders.statistics.features import describe  # noqa: E402
 from contenders.output.figure_store import Lineup, Rendered, next_prefix  # noqa: E402  (records readable without matplotlib)
 from contenders.output.out_of_sample import STANDING_WORDS, standing_of, worst  # noqa: E402  (no matplotlib there)

@@ -22,8 +22,8 @@ from typing import Any, Sequence
 import numpy as np
 from jinja2 import Environment, FileSystemLoader, StrictUndefined
 
-from contenders.statistics.compare import SMALL_DIFFERENCE
-from contenders.statistics.effects import MIN_WEIGHT, compare_effects, direction
+from contenders.statistics.rules import MIN_WEIGHT, SE_FACTOR, SMALL_DIFFERENCE
+from contenders.statistics.effects import compare_effects, direction
 from contenders.statistics.features import describe
 from contenders.output import recovery_section
 from contenders.output.figure_store import drawn
@@ -259,7 +259,7 @@ def _certainty(result) -> Table:
         row = rows[cid]
         st = standings.get(cid)
         kind = st.kind if st else ("best" if row["rank"] == 1 else "uncertain")
-        beyond = row["rank"] > 1 and row["elpd_diff"] > 2 * row["elpd_diff_se"]   # the raw fact, for the CSV
+        beyond = row["rank"] > 1 and row["elpd_diff"] > SE_FACTOR * row["elpd_diff_se"]   # the raw fact, for the CSV
         text = STANDING_TEXT[kind].format(small=fmt.num(SMALL_DIFFERENCE))
         if st is not None and st.why:
             text += f" ({st.why})"

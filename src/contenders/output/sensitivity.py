@@ -6,7 +6,8 @@ from __future__ import annotations
 from typing import Any, Sequence
 
 from contenders.statistics.coefficients import base_name, group_terms, sizes_of
-from contenders.statistics.sensitivity import ACT_ON, K_RELIABLE, READINGS, THRESHOLD
+from contenders.statistics.rules import SENSITIVITY_K_RELIABLE as K_RELIABLE, SENSITIVITY_THRESHOLD as THRESHOLD
+from contenders.statistics.sensitivity import ACT_ON, READINGS
 from contenders.output import format as fmt
 from contenders.output.tables import Cell, Table, n
 

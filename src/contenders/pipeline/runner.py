@@ -38,6 +38,7 @@ from contenders.statistics.posterior import Health, fit_with_health
 from contenders.statistics.prior import PriorTrial, summarise_prior
 from contenders.statistics.sensitivity import Sensitivity, power_scaling, summary as sensitivity_summary
 from contenders.statistics.features import INTERVAL
+from contenders.statistics.rules import PPP_EXTREME
 
 #: Replicated datasets kept per candidate for figures (the checks use ``check_draws``).
 FIGURE_DRAWS = 100
@@ -653,7 +654,7 @@ def _clean(value: Any) -> Any:
     return value
 
 
-def ppc_entries(rows: Sequence[dict], ppp_extreme: float = 0.01,
+def ppc_entries(rows: Sequence[dict], ppp_extreme: float = PPP_EXTREME,
                 relevant: Mapping[str, float] | None = None) -> dict[str, dict[str, Any]]:
     """``summary.json``'s entry per statistic: observed value, p-value, the replicated
     median and 90 % interval, the miss in the statistic's units and as a share of the

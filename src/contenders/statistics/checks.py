@@ -10,6 +10,7 @@ import numpy as np
 
 from contenders.statistics import features as st
 from contenders.statistics.censored_checks import censor_like_the_data, randomised_pit
+from contenders.statistics.rules import PIT_ALPHA, PPP_EXTREME
 
 
 @dataclass
@@ -91,7 +92,7 @@ def _stretches(z: np.ndarray, mask: np.ndarray) -> list[list[float]]:
     return out
 
 
-def uniformity_test(pit: np.ndarray, alpha: float = 0.01) -> dict:
+def uniformity_test(pit: np.ndarray, alpha: float = PIT_ALPHA) -> dict:
     """Graphical uniformity test of the LOO-PIT values: does their empirical distribution
     function stay inside the simultaneous ``1 - alpha`` band of uniform(0, 1) at every
     evaluation point? Under uniformity it does with probability ``1 - alpha`` at once
@@ -206,8 +207,8 @@ def predictive_checks(
     thresholds: Sequence[float] = (),
     conditions: Mapping[str, np.ndarray] | None = None,
     reff: float = 1.0,
-    ppp_extreme: float = 0.01,
-    pit_alpha: float = 0.01,
+    ppp_extreme: float = PPP_EXTREME,
+    pit_alpha: float = PIT_ALPHA,
     cens: np.ndarray | None = None,
     seed: int = 0,
 ) -> PredictiveChecks:

@@ -28,8 +28,7 @@ import numpy as np
 # ArviZ and SciPy are imported inside the functions that compute with them: a rerun
 # whose results all come from the fit store (see ``weights``) never needs them.
 
-#: elpd differences below this are "small" (Sivula et al.).
-SMALL_DIFFERENCE = 4.0
+from contenders.statistics.rules import MIN_WEIGHT, PPP_EXTREME, SE_FACTOR, SMALL_DIFFERENCE, TIE_MCSE_FACTOR
 
 
 @dataclass
@@ -378,7 +377,7 @@ def order_with_ties(ranked: list) -> list:
         if tiers:
             prev = tiers[-1][-1]
             gap = prev.oos.elpd - r.oos.elpd
-            noise = 2 * np.sqrt(np.nan_to_num(prev.oos.mcse) ** 2 + np.nan_to_num(r.oos.mcse) ** 2)
+            noise = TIE_MCSE_FACTOR * np.sqrt(np.nan_to_num(prev.oos.mcse) ** 2 + np.nan_to_num(r.oos.mcse) ** 2)
             if gap <= noise:
                 tiers[-1].append(r)
                 continue
@@ -424,7 +423,7 @@ def _own_kind(position: int, tied_with_best: bool, diff: float, diff_se: float) 
         return "tied"
     if diff < SMALL_DIFFERENCE:
         return "close"
-    if diff < 2 * diff_se:
+    if diff < SE_FACTOR * diff_se:
         return "uncertain"
     return "worse"
 
@@ -584,7 +583,7 @@ def _stacking_sentence(ranked, stack_w, st: dict[str, Standing], rows: dict[str,
     predicts poorly (the mixture uses it for those)."""
     best = ranked[0]
     by_id = {r.id: r for r in ranked}
-    top = sorted(((w, rid) for rid, w in stack_w.items() if w >= 0.05), key=lambda t: (-t[0], t[1]))
+    top = sorted(((w, rid) for rid, w in stack_w.items() if w >= MIN_WEIGHT), key=lambda t: (-t[0], t[1]))
     parts = []
     for w, rid in top:
         text = f"{by_id[rid].label} ({w:.2f}"
@@ -597,7 +596,7 @@ def _stacking_sentence(ranked, stack_w, st: dict[str, Standing], rows: dict[str,
     sentence = ("Stacking, which looks for the mixture of candidates that predicts best, puts its weight on "
                 + "; ".join(parts))
     if best.id not in {rid for _, rid in top}:
-        sentence += (f"; {best.label} gets less than 0.05: a mixture of the others predicts better than one "
+        sentence += (f"; {best.label} gets less than {MIN_WEIGHT:g}: a mixture of the others predicts better than one "
                      "that adds it (candidates that complement each other can outweigh the single best one)")
     return sentence + "."
 
@@ -665,7 +664,7 @@ def _prior_advice(flagged) -> str:
     return "".join(f" {p[:1].upper()}{p[1:]}." for p in parts)
 
 
-def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.01,
+def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = PPP_EXTREME,
                        store=None,
                        relevant: Mapping[str, float] | None = None) -> Comparison:
     """Rank healthy candidates by elpd and write the verdict.

@@ -27,16 +27,13 @@ import numpy as np
 import pandas as pd
 
 from contenders.statistics.checks import thin_draws
+from contenders.statistics.rules import MIN_WEIGHT
 
 #: Replicated effect draws kept per candidate and effect.
 MAX_DRAWS = 1000
 
 #: Probability of the central intervals.
 LEVEL = 0.95
-
-#: Candidates with a stacking weight below this do not count when asking whether
-#: candidates agree (the verdict's rule in compare.py; common practice, no source).
-MIN_WEIGHT = 0.05
 
 #: Statuses of candidates whose effects are shown: ranked, or sampled but unhealthy
 #: (shown for information, never weighted). Failed and skipped ones are left out.

@@ -19,6 +19,7 @@ from typing import Iterable, Mapping, Sequence
 import numpy as np
 
 from contenders.inputs.config import DEFAULT_STATISTICS
+from contenders.statistics.rules import PPP_EXTREME
 
 #: Plain-language names of the statistics, for reports.
 DESCRIPTIONS = {
@@ -160,7 +161,7 @@ def detectable(p: float, ppp_extreme: float) -> bool:
     return bool(p is not None and np.isfinite(p) and (p < ppp_extreme or p > 1 - ppp_extreme))
 
 
-def reading(p: float, size: float, relevant: float | None, ppp_extreme: float = 0.01) -> str:
+def reading(p: float, size: float, relevant: float | None, ppp_extreme: float = PPP_EXTREME) -> str:
     """One reading code of ``READINGS`` for a statistic: its ppp-value ``p``, its miss
     ``size`` (``miss``) and the relevant size set for it (``None``: none set).
 

@@ -33,6 +33,7 @@ import math
 import numpy as np
 
 from contenders.engines.base import Draws, Engine, Program, SamplerSettings
+from contenders.statistics.rules import EBFMI_MIN, ESS_PER_CHAIN_MIN, RHAT_FAR, RHAT_MAX
 
 
 @dataclass
@@ -88,9 +89,9 @@ def _flatten(ds, var_names: Sequence[str]) -> dict[str, float]:
 def diagnose(
     draws: Draws,
     parameters: Sequence[str],
-    rhat_max: float = 1.01,
-    ess_per_chain_min: float = 100.0,
-    ebfmi_min: float = 0.3,
+    rhat_max: float = RHAT_MAX,
+    ess_per_chain_min: float = ESS_PER_CHAIN_MIN,
+    ebfmi_min: float = EBFMI_MIN,
     attempts: Sequence[Attempt] = (),
 ) -> Health:
     """Compute every diagnostic of one run and decide whether it is healthy."""
@@ -170,13 +171,8 @@ def diagnose(
     )
 
 
-#: A fit whose R-hat is at or above this is far off, not just short: no longer retry
-#: (the older rule of thumb for R-hat; common practice, no source).
-RHAT_FAR = 1.05
-
-
-def just_short(health: Health, longer: float, rhat_max: float = 1.01, ess_per_chain_min: float = 100.0,
-               ebfmi_min: float = 0.3, chains: int = 4) -> bool:
+def just_short(health: Health, longer: float, rhat_max: float = RHAT_MAX, ess_per_chain_min: float = ESS_PER_CHAIN_MIN,
+               ebfmi_min: float = EBFMI_MIN, chains: int = 4) -> bool:
     """Whether an unhealthy fit fell short on R-hat or ESS only, and by little enough that
     chains ``longer`` times as long can be expected to settle it."""
     if health.healthy or longer <= 1 or health.divergences or any(v < ebfmi_min for v in health.ebfmi):

@@ -26,6 +26,7 @@ from typing import Mapping, Sequence
 import numpy as np
 
 from contenders.statistics import features as st
+from contenders.statistics.rules import IMPLAUSIBLE_SHARE
 
 
 @dataclass
@@ -136,7 +137,7 @@ def summarise_prior(
     y: np.ndarray,
     bounds: Mapping[str, tuple[float, float]],
     thresholds: Sequence[float] = (),
-    implausible_share: float = 0.5,
+    implausible_share: float = IMPLAUSIBLE_SHARE,
     parameters: Mapping[str, np.ndarray] | None = None,
 ) -> PriorTrial:
     """``y_rep`` has shape (draws, N). A draw is plausible when every bounded statistic

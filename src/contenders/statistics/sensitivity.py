@@ -39,15 +39,17 @@ from typing import Sequence
 import numpy as np
 
 from contenders.statistics.posterior import _flatten
+from contenders.statistics.rules import SENSITIVITY_DELTA, SENSITIVITY_K_RELIABLE, SENSITIVITY_THRESHOLD
 
-#: The paper's threshold for a sensitivity worth a look.
-THRESHOLD = 0.05
+#: The paper's threshold for a sensitivity worth a look (``rules.SENSITIVITY_THRESHOLD``).
+THRESHOLD = SENSITIVITY_THRESHOLD
 
-#: Finite-difference step of the derivative (the paper's and ArviZ's default).
-DELTA = 0.01
+#: Finite-difference step of the derivative (``rules.SENSITIVITY_DELTA``).
+DELTA = SENSITIVITY_DELTA
 
-#: Pareto k above this: the importance weights, and so the diagnostic, are unreliable.
-K_RELIABLE = 0.7
+#: Pareto k above this: the importance weights, and so the diagnostic, are unreliable
+#: (``rules.SENSITIVITY_K_RELIABLE``).
+K_RELIABLE = SENSITIVITY_K_RELIABLE
 
 #: Every reading code with the sentence the report shows, which says what to do.
 READINGS = {
