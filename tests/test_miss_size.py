@@ -17,7 +17,8 @@ import pytest
 from scipy import stats as sps
 
 from contenders.cli import main
-from contenders.statistics.compare import OutOfSample, compare_candidates
+from contenders.output.readings import compare_candidates
+from contenders.statistics.compare import OutOfSample
 from contenders.inputs.config import RunConfig, apply_flags, from_mapping, parse_flag
 from contenders.errors import UserError
 from contenders.output.format import miss as miss_text

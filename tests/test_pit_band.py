@@ -108,7 +108,7 @@ def test_quantile_checks_name_the_tail_a_candidate_misses():
 def test_a_loo_pit_outside_the_band_is_named_in_the_misses():
     from types import SimpleNamespace
 
-    from contenders.statistics.compare import _misfit
+    from contenders.output.readings import _misfit
     from contenders.output.tables import misfits
     from contenders.statistics.checks import PredictiveChecks
 

@@ -11,7 +11,8 @@ import numpy as np
 import pytest
 
 from contenders.inputs.candidates import support_problem
-from contenders.statistics.compare import OutOfSample, compare_candidates, standings
+from contenders.output.readings import compare_candidates, standing_why
+from contenders.statistics.compare import OutOfSample, standings
 from contenders.engines.base import Draws, SamplerSettings
 from contenders.output.report import _certainty
 from contenders.output import format as fmt
@@ -145,8 +146,8 @@ def test_standing_rule_keeps_clearly_worse_a_tail():
                     row("e", 31, 20), row("f", 90, 10)])
     assert [st[c].kind for c in "abcdef"] == ["best", "tied", "close", "uncertain", "uncertain", "worse"]
     assert st["a"].rank == st["b"].rank == "1–2" and st["f"].rank == "6"
-    assert st["d"].why.startswith("ranked above E, which cannot be separated from the best")
-    assert st["e"].why == "" and st["f"].why == ""
+    assert standing_why(st["d"]).startswith("ranked above E, which cannot be separated from the best")
+    assert standing_why(st["e"]) == "" and standing_why(st["f"]) == ""
 
 
 # --- the lead -----------------------------------------------------------------------------------
@@ -286,7 +287,7 @@ def test_verdict_advice_on_flagged_priors_follows_what_the_prior_trial_found():
     # The demo's case (README, Prior predictive trial): the lognormal's failing minimum can
     # be fixed by a narrower prior on one parameter, while the guesses of the lognormal
     # with guesses and lapses put the minimum below its bound whatever the priors.
-    from contenders.statistics.compare import _prior_advice
+    from contenders.output.readings import _prior_advice
 
     def flagged(label, *readings):
         return SimpleNamespace(label=label, prior=SimpleNamespace(failing=[{"reading": r} for r in readings]))

@@ -25,6 +25,7 @@ from jinja2 import Environment, FileSystemLoader, StrictUndefined
 from contenders.statistics.rules import MIN_WEIGHT, SE_FACTOR, SMALL_DIFFERENCE
 from contenders.statistics.effects import compare_effects, direction
 from contenders.statistics.features import describe
+from contenders.output import readings
 from contenders.output import recovery_section
 from contenders.output.figure_store import drawn
 from contenders.output import format as fmt
@@ -261,8 +262,8 @@ def _certainty(result) -> Table:
         kind = st.kind if st else ("best" if row["rank"] == 1 else "uncertain")
         beyond = row["rank"] > 1 and row["elpd_diff"] > SE_FACTOR * row["elpd_diff_se"]   # the raw fact, for the CSV
         text = STANDING_TEXT[kind].format(small=fmt.num(SMALL_DIFFERENCE))
-        if st is not None and st.why:
-            text += f" ({st.why})"
+        if st is not None and readings.standing_why(st):
+            text += f" ({readings.standing_why(st)})"
         t.add([
             Cell(row["label"], "name", cid),
             n(_with_se(row["elpd"], row["se"])),

@@ -19,7 +19,8 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from contenders import __version__
-from contenders.statistics.compare import Comparison, OutOfSample, Plan, compare_candidates, plan_estimate
+from contenders.output.readings import compare_candidates
+from contenders.statistics.compare import Comparison, OutOfSample, Plan, plan_estimate
 from contenders.inputs.candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for, link_of
 from contenders.inputs.config import RunConfig
 from contenders.inputs.data import Design, build_design, check_reference, read_table

@@ -1,4 +1,7 @@
-"""Out-of-sample comparison: PSIS-LOO with exact refits, K-fold, weights and a verdict.
+"""Out-of-sample comparison: PSIS-LOO with exact refits, K-fold, weights, ranking and standings.
+
+Numbers, flags and standings only: the verdict's sentences are written from them by
+``contenders.output.readings``; the thresholds are in ``contenders.statistics.rules``.
 
 Sources:
 
@@ -21,14 +24,14 @@ from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass, field
-from typing import Callable, Mapping, Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 
 # ArviZ and SciPy are imported inside the functions that compute with them: a rerun
 # whose results all come from the fit store (see ``weights``) never needs them.
 
-from contenders.statistics.rules import MIN_WEIGHT, PPP_EXTREME, SE_FACTOR, SMALL_DIFFERENCE, TIE_MCSE_FACTOR
+from contenders.statistics.rules import SE_FACTOR, SMALL_DIFFERENCE, TIE_MCSE_FACTOR
 
 
 @dataclass
@@ -306,7 +309,9 @@ def estimate(
 class Comparison:
     """The ranking and the verdict. ``lead`` is two or three sentences (what to use, how
     sure that is, what the preferred candidates miss); ``details`` every other sentence,
-    most important first; ``verdict`` both, lead first."""
+    most important first; ``verdict`` both, lead first. ``rank_candidates`` leaves
+    ``lead`` and ``details`` empty; ``contenders.output.readings.compare_candidates``
+    fills them (``readings.verdict``)."""
 
     ranking: list[str]
     rows: list[dict]              # per ranked candidate, best first
@@ -402,14 +407,18 @@ class Standing:
     difference, or not separable from a candidate that is); ``worse`` (clearly worse:
     more than 4 elpd and two SE behind, and so is every candidate ranked below it).
     ``rank``: its place, shared by candidates tied within Monte Carlo error ("4–5").
-    ``why``: a phrase when the kind comes from another candidate, not from its own
-    difference (for example "tied within Monte Carlo error with Weibull")."""
+    ``lifted``: why the kind comes from another candidate, not from its own difference:
+    ``"tied"`` (tied within Monte Carlo error with the candidates ``lifted_by``, labels)
+    or ``"above"`` (ranked above ``lifted_by[0]``, which cannot be separated from the
+    best, so not called clearly worse); ``""`` when its own difference sets it. The
+    words are ``contenders.output.readings.standing_why``."""
 
     kind: str
     rank: str
     position: int
     tied_with: list[str] = field(default_factory=list)
-    why: str = ""
+    lifted: str = ""
+    lifted_by: list[str] = field(default_factory=list)
 
     @property
     def preferred(self) -> bool:
@@ -469,225 +478,78 @@ def standings(rows: Sequence[dict]) -> dict[str, Standing]:
             kind, lifted_by = "uncertain", below[0]
         for pos, r in enumerate(tier, first):
             k = "best" if pos == 1 else ("tied" if kind == "best" else kind)
-            why = ""
+            lifted, by = "", []
             if STANDINGS.index(own[r["id"]]) > STANDINGS.index(k) and k != "tied":
                 mates = [m["id"] for m in tier if m is not r and own[m["id"]] == kind]
                 if mates:
-                    why = "tied within Monte Carlo error with " + ", ".join(labels[m] for m in mates)
+                    lifted, by = "tied", [labels[m] for m in mates]
                 else:
-                    why = (f"ranked above {labels[lifted_by]}, which cannot be separated from the best, "
-                           "so not called clearly worse")
-            out[r["id"]] = Standing(k, rank, pos, [m["id"] for m in tier if m is not r], why)
+                    lifted, by = "above", [labels[lifted_by]]
+            out[r["id"]] = Standing(k, rank, pos, [m["id"] for m in tier if m is not r], lifted, by)
         if kind != "worse":
             below.insert(0, tier[0]["id"])
     return out
 
 
-def _place(st: Standing, n: int) -> str:
-    """"ranks first", "ranks 3 of 5", "ranks 4–5 of 5 (tied within Monte Carlo error)"."""
-    if st.rank == "1":
-        return "ranks first"
-    return f"ranks {st.rank} of {n}" + (" (tied within Monte Carlo error)" if "–" in st.rank else "")
+def better_share(pointwise: np.ndarray, best_pointwise: np.ndarray) -> float:
+    """Share of observations whose out-of-sample density one candidate predicts better
+    than the best one does.
 
+    Parameters
+    ----------
+    pointwise : numpy.ndarray
+        Pointwise elpd of the candidate, shape (N,).
+    best_pointwise : numpy.ndarray
+        Pointwise elpd of the best candidate, same shape.
 
-def _p_is(text: str) -> str:
-    """"p = 0.004", or "p < 0.001" when the value is written as a bound."""
-    return "p " + text if text[:1] in "<>" else "p = " + text
-
-
-def _misfit(r, ppp_extreme: float, relevant: Mapping[str, float] | None = None) -> list[str]:
-    """Short descriptions of the predictive checks a candidate fails, each with the size
-    of its miss (observed minus the nearest end of the replicated 90 % interval). With
-    relevant sizes set, a statistic that has one is named only when its miss is larger
-    (``statistics.named_misses``); one without a relevant size is named when detectable."""
-    from contenders.output.format import miss_words, pvalue_against
-    from contenders.statistics.features import describe, named_misses, unit_of
-
-    if r.checks is None:
-        return []
-    out = []
-    relevant = relevant or {}
-    for row in named_misses(r.checks.rows, ppp_extreme, relevant):
-        p = row["p_value"]
-        by = miss_words(row.get("miss", float("nan")), row.get("miss_share_sd"), unit_of(row["statistic"]))
-        if by:
-            what = f"observed {row['observed']:.4g}, {by}"
-        else:   # p = Pr(T(y_rep) >= T(y)): near 0, replicates fall short of the observed value
-            what = f"replicates {'lower' if p < 0.5 else 'higher'} than the observed {row['observed']:.4g}"
-        unset = "; no relevant size set" if relevant and row["statistic"] not in relevant else ""
-        out.append(f"{describe(row['statistic'])} ({what}; "
-                   f"{_p_is(pvalue_against(p, ppp_extreme, 1 - ppp_extreme))}{unset})")
-    from contenders.statistics.checks import band_text
-
-    where = band_text(r.checks.loo_pit_test)   # the band's level is the run's pit_alpha
-    if where:
-        out.append(f"calibration (LOO-PIT ECDF {where})")
-    return out
-
-
-def _small_misses(r, ppp_extreme: float, relevant: Mapping[str, float]) -> int:
-    """How many of a candidate's statistics are detectably off by less than their
-    relevant size (``statistics.reading`` "small")."""
-    from contenders.statistics.features import read_rows
-
-    if r.checks is None or not relevant:
-        return 0
-    return sum(code == "small" for code in read_rows(r.checks.rows, ppp_extreme, relevant))
-
-
-def _relevance_sentence(ranked, misses: dict, ppp_extreme: float, relevant: Mapping[str, float]) -> str:
-    """What the named misses were judged against: no relevant sizes (every detectable miss
-    is named, however small), or the sizes set and how many smaller misses were left out."""
-    from contenders.output.format import miss
-    from contenders.statistics.features import describe, unit_of
-
-    if not relevant:
-        if not any(misses.values()):
-            return ""
-        return ("No relevant sizes are set ([checks] relevant), so every detectable miss is named, however "
-                "small it is in the outcome's units (with many observations a difference too small to matter "
-                "is still detected); set one per statistic to name only the misses that matter.")
-    sizes = ", ".join(f"{describe(k)} = {miss(v, None, unit_of(k)).lstrip('+')}" for k, v in relevant.items())
-    small = {r.label: _small_misses(r, ppp_extreme, relevant) for r in ranked}
-    left = sum(small.values())
-    text = (f"Misses of a statistic with a relevant size ({sizes}) are named only when larger than that "
-            "size")
-    if left:
-        who = _labels([f"{k} {v}" for k, v in small.items() if v])
-        text += (f"; {left} detectable but smaller miss{'es are' if left > 1 else ' is'} left out ({who}; "
-                 "see Predictive checks)")
-    return text + "."
-
-
-def _behind(row: dict) -> str:
-    return f"{row['elpd_diff']:.1f} behind, SE {row['elpd_diff_se']:.1f}"
-
-
-def _labels(names: Sequence[str]) -> str:
-    """"A", "A and B", "A, B and C"."""
-    names = list(names)
-    return names[0] if len(names) == 1 else ", ".join(names[:-1]) + " and " + names[-1]
-
-
-def _better_share(r, best) -> float:
-    """Share of observations whose out-of-sample density candidate ``r`` predicts better
-    than ``best`` does (pointwise elpd higher)."""
-    a, b = np.asarray(r.oos.pointwise, dtype=float), np.asarray(best.oos.pointwise, dtype=float)
+    Returns
+    -------
+    float
+        Share of the observations (both values finite) where ``pointwise`` is higher;
+        NaN when none is finite.
+    """
+    a, b = np.asarray(pointwise, dtype=float), np.asarray(best_pointwise, dtype=float)
     ok = np.isfinite(a) & np.isfinite(b)
     return float(np.mean(a[ok] > b[ok])) if ok.any() else float("nan")
 
 
-def _stacking_sentence(ranked, stack_w, st: dict[str, Standing], rows: dict[str, dict]) -> str:
-    """Where stacking puts its weight, and in one phrase why a weight surprises: a
-    candidate far behind in elpd with a real weight covers observations the best one
-    predicts poorly (the mixture uses it for those)."""
-    best = ranked[0]
-    by_id = {r.id: r for r in ranked}
-    top = sorted(((w, rid) for rid, w in stack_w.items() if w >= MIN_WEIGHT), key=lambda t: (-t[0], t[1]))
-    parts = []
-    for w, rid in top:
-        text = f"{by_id[rid].label} ({w:.2f}"
-        if rid != best.id and st[rid].kind in ("uncertain", "worse"):
-            share = _better_share(by_id[rid], best)
-            text += (f", though {rows[rid]['elpd_diff']:.1f} elpd behind: it predicts "
-                     f"{100 * share:.0f} % of the observations better than {best.label}, and the mixture "
-                     "uses it for those")
-        parts.append(text + ")")
-    sentence = ("Stacking, which looks for the mixture of candidates that predicts best, puts its weight on "
-                + "; ".join(parts))
-    if best.id not in {rid for _, rid in top}:
-        sentence += (f"; {best.label} gets less than {MIN_WEIGHT:g}: a mixture of the others predicts better than one "
-                     "that adds it (candidates that complement each other can outweigh the single best one)")
-    return sentence + "."
-
-
-def _how_sure(ranked, st: dict[str, Standing], rows: dict[str, dict]) -> str:
-    """The lead's second sentence: how far behind the others are, group by standing."""
-    def are(group) -> str:
-        return "is" if len(group) == 1 else "are"
-
-    def span(group) -> str:
-        if len(group) == 1:
-            row = rows[group[0].id]
-            return f"{row['elpd_diff']:.1f} elpd behind (SE {row['elpd_diff_se']:.1f})"
-        lo, hi = (f"{f(rows[r.id]['elpd_diff'] for r in group):.1f}" for f in (min, max))
-        return f"{lo} elpd behind" if lo == hi else f"{lo} to {hi} elpd behind"
-
-    parts = []
-    others = ranked[1:]
-    for kind in ("tied", "close", "uncertain"):
-        group = [r for r in others if st[r.id].kind == kind]
-        if not group:
-            continue
-        names = _labels([r.label for r in group])
-        if kind == "tied":
-            parts.append(f"{names} {are(group)} tied with it within Monte Carlo error (the order would change "
-                         "with the seed)")
-        elif kind == "close":
-            parts.append(f"{names} {are(group)} {span(group)}, too little to separate (below "
-                         f"{SMALL_DIFFERENCE:g})")
-        else:
-            lifted = any(st[r.id].why for r in group)
-            parts.append(f"{names} {are(group)} {span(group)}, within two SE of the difference"
-                         + (" or tied with one that is" if lifted else "") + ": the order is uncertain")
-    worse = [r for r in others if st[r.id].kind == "worse"]
-    if worse and not parts:
-        parts.append(f"{_labels([r.label for r in worse[:1]])}, the next, is {span(worse[:1])}, more than "
-                     f"{SMALL_DIFFERENCE:g} elpd and two standard errors of the difference")
-        worse = worse[1:]
-    if worse:
-        parts.append(f"{len(worse)} other{'s are' if len(worse) > 1 else ' is'} clearly worse "
-                     f"({min(rows[r.id]['elpd_diff'] for r in worse):.1f} elpd behind or more)")
-    return "How sure: " + "; ".join(parts) + "."
-
-
-def _prior_advice(flagged) -> str:
-    """What to do about flagged priors, by what the prior trial found for each failing
-    bound (statistics/prior.py): narrower priors can help, or the family itself puts the
-    statistic outside the bound and no prior will fix it."""
-    def readings(r) -> set:
-        return {f.get("reading") for f in (getattr(r.prior, "failing", None) or [])}
-
-    narrow = [r.label for r in flagged if readings(r) & {"narrow_one", "narrow_several"}]
-    structure = [r.label for r in flagged if readings(r) and readings(r) <= {"structure"}]
-    unread = [r.label for r in flagged if r.label not in narrow and r.label not in structure]
-    parts = []
-    if narrow:
-        parts.append(f"Narrower priors can help {_labels(narrow)}: the prior predictive section names the "
-                     "parameter and the range to narrow towards ([hyperparameters.ID])")
-    if structure:
-        parts.append(f"no narrower prior will fix {_labels(structure)}: the family itself puts the failing "
-                     "statistic outside its bound; revisit the bound or the family")
-    if unread:
-        parts.append(f"for {_labels(unread)}, the prior predictive section shows which statistic is "
-                     "implausible; narrow its priors under [hyperparameters.ID] or revisit the bounds")
-    return "".join(f" {p[:1].upper()}{p[1:]}." for p in parts)
-
-
-def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = PPP_EXTREME,
-                       store=None,
-                       relevant: Mapping[str, float] | None = None) -> Comparison:
-    """Rank healthy candidates by elpd and write the verdict.
+def rank_candidates(results: Sequence, seed: int = 0, store=None) -> Comparison:
+    """Rank the healthy candidates by elpd: rows, standings and the preferred candidates.
 
     Rules (see ``standings``, the one rule every sentence and table reads): a
-    difference below 4 elpd is small (Sivula et al.); a difference within two SE of the
-    paired difference is uncertain (common practice, no source, for the factor 2);
-    candidates tied within Monte Carlo error share one standing and one rank; a
-    candidate with a posterior predictive p-value below ``ppp_extreme`` or above 1 -
-    ``ppp_extreme`` for any statistic, or LOO-PIT values whose ECDF leaves the
-    simultaneous band of the run's ``pit_alpha`` (``checks.uniformity_test``), is
-    named as misfitting even when it ranks well (the p-value threshold is common
-    practice, no source); unhealthy, failed and skipped candidates are not ranked.
-    ``store``: see ``weights``. ``relevant`` (statistic -> smallest miss that
-    matters, ``[checks] relevant``): a statistic that has one is named only when its miss
-    exceeds it, and a sentence says what the misses were judged against.
+    difference below ``rules.SMALL_DIFFERENCE`` elpd is small (Sivula et al.); a
+    difference within ``rules.SE_FACTOR`` SE of the paired difference is uncertain
+    (common practice, no source); candidates tied within Monte Carlo error share one
+    standing and one rank (``order_with_ties``); unhealthy, failed and skipped
+    candidates are not ranked. The verdict's words are written by
+    ``contenders.output.readings.verdict``; here ``lead`` and ``details`` stay empty.
 
-    The verdict comes as a lead of two or three sentences (what to use, how sure,
-    what misses) and the details.
+    Parameters
+    ----------
+    results : sequence of CandidateResult
+        Every candidate of the run; those with status ``"ok"`` and an out-of-sample
+        estimate (``oos``) are ranked. Their ``tied_with`` is set.
+    seed : int
+        Seed of the Bayesian bootstrap of the pseudo-BMA+ weights.
+    store : FitStore, optional
+        Where computed weights are kept (see ``weights``).
+
+    Returns
+    -------
+    Comparison
+        ``ranking`` (ids, best first), ``rows`` (one dict per ranked candidate: elpd,
+        SE, p, difference to the best and its SE, weights, Pareto k, method, Monte
+        Carlo SE, standing and shared rank), ``preferred`` (ids of the candidates not
+        clearly worse) and ``standings``.
+
+    References
+    ----------
+    Vehtari, Gelman & Gabry (2017), Statistics and Computing 27, 1413-1432 (elpd and
+    its SE); Yao, Vehtari, Simpson & Gelman (2018), Bayesian Analysis 13(3) (stacking
+    and pseudo-BMA+ weights); Sivula, Magnusson, Matamoros & Vehtari (2025), Bayesian
+    Analysis, arXiv:2008.10296 (small differences).
     """
     ranked = [r for r in results if r.status == "ok" and r.oos is not None]
-    lead: list[str] = []
-    details: list[str] = []
     rows: list[dict] = []
     preferred: list[str] = []
     st: dict[str, Standing] = {}
@@ -695,7 +557,6 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = PP
         est = {r.id: r.oos for r in ranked}
         stack_w, bma_w, diffs = weights(est, seed, store)
         ranked = order_with_ties(ranked)
-        best = ranked[0]
         for pos, r in enumerate(ranked, 1):
             d, dse = diffs[r.id]
             rows.append({
@@ -706,113 +567,8 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = PP
                 "mcse": r.oos.mcse, "tied_with": list(r.tied_with),
             })
         st = standings(rows)
-        by_row = {row["id"]: row for row in rows}
         for row in rows:
             row["standing"] = st[row["id"]].kind
             row["shared_rank"] = st[row["id"]].rank
         preferred = [r.id for r in ranked if st[r.id].preferred]
-        names = {r.id: r.label for r in ranked}
-        relevant = dict(relevant or {})
-        misses = {r.id: _misfit(r, ppp_extreme, relevant) for r in ranked}
-
-        # --- the lead: what to use, how sure, what misses
-        others = [names[cid] for cid in preferred if cid != best.id]
-        worse = [r for r in ranked if st[r.id].kind == "worse"]
-        if len(ranked) == 1:
-            lead.append(f"{best.label} is the only candidate that could be ranked, so there is nothing to "
-                        "compare it with; judge it on the predictive checks alone.")
-        elif not others:
-            lead.append(f"Use {best.label}: it predicts new data best of the {len(ranked)} ranked candidates "
-                        "and clearly ahead of every other.")
-        else:
-            lead.append(f"Consider {best.label} first, together with {_labels(others)}: the data cannot "
-                        "separate them by predictive accuracy.")
-        if len(ranked) > 1:
-            lead.append(_how_sure(ranked, st, by_row))
-        missing = [cid for cid in preferred if misses[cid]]
-        if missing:
-            features = []
-            for cid in missing:
-                for m in misses[cid]:
-                    f = m.split(" (")[0]
-                    if f not in features:
-                        features.append(f)
-            who = ("it" if missing == [best.id] and len(preferred) == 1 else _labels([names[c] for c in missing]))
-            lead.append(f"But {who} {'misses' if who == 'it' or len(missing) == 1 else 'miss'} features of "
-                        f"the data ({', '.join(features)}); do not trust {'its' if len(missing) == 1 else 'their'} "
-                        "predictions of these.")
-        elif relevant and any(_small_misses(r, ppp_extreme, relevant) for r in ranked if r.id in preferred):
-            lead.append(("It misses no" if len(preferred) == 1 else "None of them misses a") + " feature by more "
-                        "than the relevant sizes set ([checks] relevant), though smaller misses are "
-                        "detectable; checks can reveal misfit, not prove fit.")
-        else:
-            lead.append(("It fails no" if len(preferred) == 1 else "None of them fails a") + " predictive check; "
-                        "checks can reveal misfit, not prove fit.")
-
-        # --- the details
-        tied = [r for r in ranked if st[r.id].kind == "tied"]
-        if tied:
-            details.append(
-                f"{_labels([best.label] + [r.label for r in tied])} predict best, tied within Monte Carlo error "
-                f"(elpd {best.oos.elpd:.1f}, SE {best.oos.se:.1f}; their order would change with the seed, so "
-                "they are listed by id).")
-        elif len(ranked) == 1:
-            details.append(f"{best.label}: elpd {best.oos.elpd:.1f} (SE {best.oos.se:.1f}).")
-        else:
-            details.append(
-                f"{best.label} predicts best: elpd {best.oos.elpd:.1f} (SE {best.oos.se:.1f}), "
-                f"pseudo-BMA+ weight {bma_w[best.id]:.2f}.")
-        if len(ranked) > 1:
-            details.append(_stacking_sentence(ranked, stack_w, st, by_row))
-
-        def entry(r) -> str:
-            why = st[r.id].why
-            return f"{r.label} ({_behind(by_row[r.id])}{'; ' + why if why else ''})"
-
-        close = [entry(r) for r in ranked if st[r.id].kind == "close"]
-        uncertain = [entry(r) for r in ranked if st[r.id].kind == "uncertain"]
-        if close:
-            details.append(
-                "Within 4 elpd of it, too close to tell apart by predictive accuracy: " + "; ".join(close)
-                + ". Choose among these on the predictive checks, interpretability and theory.")
-        if uncertain:
-            details.append("Behind it, but by less than two standard errors of the difference (or not separable "
-                           "from one that is), so the order is uncertain: " + "; ".join(uncertain) + ".")
-        if worse:
-            details.append("Clearly worse at prediction (more than 4 elpd and two standard errors behind): "
-                           + "; ".join(entry(r) for r in worse) + ".")
-        lower = []
-        for r in ranked:
-            if not misses[r.id]:
-                continue
-            if st[r.id].preferred:
-                details.append(f"{r.label} {_place(st[r.id], len(ranked))} but its replicated data miss: "
-                               + "; ".join(misses[r.id])
-                               + ". Do not trust its predictions of these features; a family that can "
-                                 "produce them may do better.")
-            else:
-                lower.append(f"{r.label} ({', '.join(m.split(' (')[0] for m in misses[r.id])})")
-        if lower:
-            details.append("Clearly worse candidates whose replicated data also miss features of the data: "
-                           + "; ".join(lower) + " (details under Predictive checks).")
-        judged = _relevance_sentence(ranked, misses, ppp_extreme, relevant)
-        if judged:
-            details.append(judged)
-    else:
-        lead.append("No candidate could be ranked: every candidate was skipped, failed or is unhealthy "
-                    "(see below). Fix the problems named there and run again.")
-    flagged = [r for r in results if r.prior is not None and r.prior.flagged]
-    if flagged:
-        details.append(
-            "Priors that put most of their mass on implausible datasets (share of prior draws inside every "
-            "plausibility bound): " + "; ".join(f"{r.label} {100 * r.prior.plausible_share:.0f} %" for r in flagged)
-            + "." + _prior_advice(flagged))
-    for r in results:
-        reason = (r.reason or "").splitlines()[0] if r.reason else ""
-        if r.status == "unhealthy":
-            details.append(f"{r.label} is not ranked because the sampler did not converge: {reason.rstrip('.')}.")
-        elif r.status == "failed":
-            details.append(f"{r.label} could not be run: {reason.rstrip('.')}.")
-        elif r.status == "skipped":
-            details.append(f"{r.label} was skipped: {reason.rstrip('.')}.")
-    return Comparison([row["id"] for row in rows], rows, lead, preferred, details, st)
+    return Comparison([row["id"] for row in rows], rows, [], preferred, [], st)
