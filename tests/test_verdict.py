@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from contenders.inputs.candidates import support_problem
-from contenders.output.readings import compare_candidates, standing_why
+from contenders.output.readings import compare_candidates, standing_why, word_health
 from contenders.statistics.compare import OutOfSample, standings
 from contenders.engines.base import Draws, SamplerSettings
 from contenders.output.report import _certainty
@@ -248,7 +248,7 @@ def test_sampler_health_message_shows_the_digits_of_the_failure():
     threshold = round(rhat, 3) - 0.0001 if round(rhat, 3) > rhat else rhat - (rhat - round(rhat, 3)) / 2
     assert round(rhat, 3) <= threshold + 1e-4 and rhat > threshold
     draws = Draws(idata, "test", 0.0, 0.0, SamplerSettings(chains=4, draws=500))
-    h = diagnose(draws, ["mu"], rhat_max=threshold, ess_per_chain_min=1.0, ebfmi_min=0.0)
+    h = word_health(diagnose(draws, ["mu"], rhat_max=threshold, ess_per_chain_min=1.0, ebfmi_min=0.0))
     message = next(p for p in h.problems if p.startswith("R-hat"))
     shown = float(re.match(r"R-hat ([0-9.]+) for mu is not below", message).group(1))
     assert shown >= threshold and shown == pytest.approx(rhat, abs=1e-4), (message, rhat, threshold)

@@ -339,3 +339,50 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = PP
     comparison = rank_candidates(results, seed, store)
     comparison.lead, comparison.details = verdict(results, comparison, ppp_extreme, relevant)
     return comparison
+
+
+# --- sampler health ---------------------------------------------------------------------
+
+def health_text(finding: Mapping) -> str:
+    """One finding of ``statistics.posterior.diagnose`` or ``fit_with_health`` in words:
+    what is wrong and what to do (a value beside its threshold shows the side it is on,
+    ``format.against``)."""
+    f = finding
+    code = f["code"]
+    if code == "rhat_nan":
+        return "R-hat could not be computed for some parameters (constant draws: the chains are stuck)"
+    if code == "rhat":
+        return (f"R-hat {fmt.against(f['value'], f['limit'], 3)} for {f['parameter']} is not below "
+                f"{fmt.limit(f['limit'])}: chains disagree; run longer (more warmup and draws) or reparameterise")
+    if code == "ess":
+        return (f"effective sample size {fmt.against(f['value'], f['limit'], 0)} for {f['parameter']} is below "
+                f"{fmt.limit(f['limit'])} ({fmt.limit(f['per_chain'])} per chain): increase draws")
+    if code == "divergences":
+        return (f"{f['count']} divergent transitions at adapt_delta {f['adapt_delta']}: the posterior "
+                "has regions the sampler cannot explore; reparameterise or use stronger priors")
+    if code == "ebfmi":
+        return (f"E-BFMI below {fmt.limit(f['limit'])} in chain(s) "
+                + ", ".join(f"{i} ({fmt.against(v, f['limit'], 2)})" for i, v in zip(f["chains"], f["values"]))
+                + ": the sampler moves poorly between energy levels; reparameterise (for example non-centred "
+                  "group effects)")
+    if code == "treedepth":
+        return (f"{f['count']} iterations hit the maximum tree depth {f['max_treedepth']}: sampling is "
+                "inefficient; raise max_treedepth or reparameterise")
+    if code == "longer":
+        return (f"fitted again with {f['warmup']} warmup iterations and {f['draws']} draws per chain (instead of "
+                f"{f['first_warmup']} and {f['first_draws']}), since the first fit fell just short ("
+                + "; ".join(health_text(p).split(":")[0] for p in f["short"])
+                + ("); the longer fit passes" if f["passes"] else "); the longer fit does not pass either"))
+    if code == "escalated":
+        record = "; ".join(f"adapt_delta {delta}: {n} divergences" for delta, n in f["attempts"])
+        return f"refitted after divergent transitions ({record})"
+    raise ValueError(f"unknown sampler-health finding {code!r}")
+
+
+def word_health(health):
+    """Write a ``Health`` record's ``problems`` and ``warnings`` from its ``findings``
+    (in their order) and return the record: the one place where sampler health becomes
+    words. The run calls it on every fit (``pipeline/runner.py``)."""
+    health.problems = [health_text(f) for f in health.findings if f["severity"] == "problem"]
+    health.warnings = [health_text(f) for f in health.findings if f["severity"] == "warning"]
+    return health

@@ -19,7 +19,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from contenders import __version__
-from contenders.output.readings import compare_candidates
+from contenders.output.readings import compare_candidates, word_health
 from contenders.statistics.compare import Comparison, OutOfSample, Plan, plan_estimate
 from contenders.inputs.candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for, link_of
 from contenders.inputs.config import RunConfig
@@ -263,7 +263,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
             c.parameter_names, cfg.escalation, cfg.longer_retry, rhat_max=cfg.rhat_max,
             ess_per_chain_min=cfg.ess_per_chain_min, ebfmi_min=cfg.ebfmi_min,
         )
-        res.health = health
+        res.health = health = word_health(health)
         res.seconds["posterior"] = sum(a.seconds for a in health.attempts)
         res.seconds["posterior_wait"] = sum(a.wait_seconds for a in health.attempts)
         stored = getattr(engine, "paths", {}).get(c.id)
@@ -445,6 +445,7 @@ def fit_task(c: Candidate, design: Design, cfg: RunConfig, engine_name: str, sto
             c.parameter_names, cfg.escalation, cfg.longer_retry, rhat_max=cfg.rhat_max,
             ess_per_chain_min=cfg.ess_per_chain_min, ebfmi_min=cfg.ebfmi_min,
         )
+        health = word_health(health)
         kept = keep(draws, health)
         del draws
         return health, kept

@@ -61,11 +61,14 @@ class Health:
     adapt_delta: float
     attempts: list[Attempt]
     healthy: bool
-    problems: list[str]
-    warnings: list[str]
+    problems: list[str]            # in words: contenders.output.readings.word_health fills them
+    warnings: list[str]            # from ``findings``
     table: list[dict] = field(default_factory=list)   # per parameter element
     warmup: int = 0                # per chain, of the accepted fit
     draws: int = 0                 # per chain, of the accepted fit
+    #: what the diagnostics found, as codes with their values (see ``diagnose``), in the
+    #: order the words list them; ``severity`` "problem" makes the fit unhealthy
+    findings: list[dict] = field(default_factory=list)
 
     @property
     def posterior_means(self) -> dict[str, float]:
@@ -94,10 +97,43 @@ def diagnose(
     ebfmi_min: float = EBFMI_MIN,
     attempts: Sequence[Attempt] = (),
 ) -> Health:
-    """Compute every diagnostic of one run and decide whether it is healthy."""
-    import arviz as az
+    """Compute every diagnostic of one run and decide whether it is healthy.
 
-    from contenders.output.format import against, limit   # a value beside its threshold shows the side it is on
+    Parameters
+    ----------
+    draws : Draws
+        The fit: its InferenceData (posterior and sample statistics ``diverging``,
+        ``tree_depth``, ``energy``) and the sampler settings it ran with.
+    parameters : sequence of str
+        Parameters to diagnose (those present in the posterior; vectors are flattened,
+        1-based). Elements equal in every draw (fixed by the program) are left out.
+    rhat_max : float
+        Rank-normalised split R-hat must be below this (``rules.RHAT_MAX``).
+    ess_per_chain_min : float
+        Bulk and tail ESS must be at least this times the chains (``rules.ESS_PER_CHAIN_MIN``).
+    ebfmi_min : float
+        E-BFMI of every chain must be at least this (``rules.EBFMI_MIN``).
+    attempts : sequence of Attempt
+        The record of the fits made so far (kept in the result).
+
+    Returns
+    -------
+    Health
+        The diagnostics, the per-parameter table and ``findings``: one dict per finding
+        with ``code`` (``rhat_nan``, ``rhat``, ``ess``, ``divergences``, ``ebfmi`` are
+        problems; ``treedepth`` is a warning), ``severity`` and the values the words
+        need. ``healthy`` is True without problems. ``problems`` and ``warnings`` are
+        left empty: ``contenders.output.readings.word_health`` writes them.
+
+    References
+    ----------
+    Vehtari, Gelman, Simpson, Carpenter & Bürkner (2021), "Rank-normalization, folding,
+    and localization: an improved R-hat for assessing convergence of MCMC", Bayesian
+    Analysis 16(2) (R-hat, bulk and tail ESS; computed with ArviZ). Betancourt (2016),
+    "Diagnosing suboptimal cotangent disintegrations in Hamiltonian Monte Carlo",
+    arXiv:1604.00695 (E-BFMI; ArviZ's ``bfmi``).
+    """
+    import arviz as az
 
     idata = draws.idata
     settings = draws.settings
@@ -128,46 +164,34 @@ def diagnose(
     ebfmi = [float(v) for v in np.atleast_1d(az.bfmi(idata))]
     min_ess = ess_per_chain_min * settings.chains
 
-    problems, warnings = [], []
+    findings: list[dict] = []
+
+    def found(code: str, severity: str = "problem", **values) -> None:
+        findings.append({"code": code, "severity": severity, **values})
+
     r_max = max(finite_rhat.values()) if finite_rhat else float("nan")
     if any(not np.isfinite(v) for v in rhat.values()):
-        problems.append("R-hat could not be computed for some parameters (constant draws: the chains are stuck)")
+        found("rhat_nan")
     if np.isfinite(r_max) and r_max >= rhat_max:
-        problems.append(
-            f"R-hat {against(r_max, rhat_max, 3)} for {worst_r} is not below {limit(rhat_max)}: chains "
-            "disagree; run longer "
-            "(more warmup and draws) or reparameterise"
-        )
+        found("rhat", value=r_max, limit=rhat_max, parameter=worst_r)
     e_bulk = min(bulk.values()) if bulk else float("nan")
     e_tail = min(tail.values()) if tail else float("nan")
     if min(e_bulk, e_tail) < min_ess:
-        problems.append(
-            f"effective sample size {against(min(e_bulk, e_tail), min_ess, 0)} for {worst_e} is below "
-            f"{limit(min_ess)} ({limit(ess_per_chain_min)} per chain): increase draws"
-        )
+        found("ess", value=min(e_bulk, e_tail), limit=min_ess, per_chain=ess_per_chain_min, parameter=worst_e)
     if divergences:
-        problems.append(
-            f"{divergences} divergent transitions at adapt_delta {settings.adapt_delta}: the posterior "
-            "has regions the sampler cannot explore; reparameterise or use stronger priors"
-        )
+        found("divergences", count=divergences, adapt_delta=settings.adapt_delta)
     low = [i + 1 for i, v in enumerate(ebfmi) if v < ebfmi_min]
     if low:
-        problems.append(
-            f"E-BFMI below {limit(ebfmi_min)} in chain(s) "
-            + ", ".join(f"{i} ({against(ebfmi[i - 1], ebfmi_min, 2)})" for i in low)
-            + ": the sampler moves "
-            "poorly between energy levels; reparameterise (for example non-centred group effects)"
-        )
+        found("ebfmi", chains=low, values=[ebfmi[i - 1] for i in low], limit=ebfmi_min)
     if hits:
-        warnings.append(
-            f"{hits} iterations hit the maximum tree depth {settings.max_treedepth}: sampling is "
-            "inefficient; raise max_treedepth or reparameterise"
-        )
+        found("treedepth", "warning", count=hits, max_treedepth=settings.max_treedepth)
     return Health(
         rhat_max=r_max, rhat_worst=worst_r, ess_bulk_min=e_bulk, ess_tail_min=e_tail,
         ess_worst=worst_e, divergences=divergences, treedepth_hits=hits, ebfmi=ebfmi,
-        adapt_delta=settings.adapt_delta, attempts=list(attempts), healthy=not problems,
-        problems=problems, warnings=warnings, table=table, warmup=settings.warmup, draws=settings.draws,
+        adapt_delta=settings.adapt_delta, attempts=list(attempts),
+        healthy=not any(f["severity"] == "problem" for f in findings),
+        problems=[], warnings=[], table=table, warmup=settings.warmup, draws=settings.draws,
+        findings=findings,
     )
 
 
@@ -213,20 +237,18 @@ def fit_with_health(
         del draws
     health = diagnose(draws, parameters, attempts=attempts, **thresholds)
     escalated = len(attempts) > 1
-    short = health.problems
+    short = [f for f in health.findings if f["severity"] == "problem"]
     if just_short(health, longer, chains=settings.chains, **thresholds):
         run = replace(settings, adapt_delta=health.adapt_delta, warmup=math.ceil(settings.warmup * longer),
                       draws=math.ceil(settings.draws * longer))
         del draws
         draws = one(run)
         health = diagnose(draws, parameters, attempts=attempts, **thresholds)
-        health.warnings.insert(0, (
-            f"fitted again with {run.warmup} warmup iterations and {run.draws} draws per chain (instead of "
-            f"{settings.warmup} and {settings.draws}), since the first fit fell just short ("
-            + "; ".join(p.split(":")[0] for p in short)
-            + ("); the longer fit passes" if health.healthy else "); the longer fit does not pass either")))
+        health.findings.insert(0, {"code": "longer", "severity": "warning", "warmup": run.warmup,
+                                   "draws": run.draws, "first_warmup": settings.warmup,
+                                   "first_draws": settings.draws, "short": short, "passes": health.healthy})
     if escalated:
-        record = "; ".join(f"adapt_delta {a.adapt_delta}: {a.divergences} divergences"
-                           for a in attempts if a.draws == settings.draws)
-        health.warnings.insert(0, f"refitted after divergent transitions ({record})")
+        health.findings.insert(0, {"code": "escalated", "severity": "warning",
+                                   "attempts": [(a.adapt_delta, a.divergences) for a in attempts
+                                                if a.draws == settings.draws]})
     return draws, health
