@@ -16,6 +16,8 @@ from __future__ import annotations
 
 from typing import Mapping, Sequence
 
+import numpy as np
+
 from contenders.output import format as fmt
 from contenders.statistics.checks import band_text
 from contenders.statistics.compare import Comparison, Standing, better_share, rank_candidates
@@ -386,3 +388,66 @@ def word_health(health):
     health.problems = [health_text(f) for f in health.findings if f["severity"] == "problem"]
     health.warnings = [health_text(f) for f in health.findings if f["severity"] == "warning"]
     return health
+
+
+# --- prior predictive trial -------------------------------------------------------------
+
+def bound_sentence(r: dict) -> str:
+    """One reading of a failing bound (``statistics.prior.read_bound``) in words: where the
+    draws fall and what to do about it (used in the prior trial's message)."""
+    what = describe(r["statistic"])
+    side = []
+    if r["below"] > 0:
+        side.append(f"{100 * r['below']:.0f} % below {r['low']:g}")
+    if r["above"] > 0:
+        side.append(f"{100 * r['above']:.0f} % above {r['high']:g}")
+    if r["nonfinite"] > 0:
+        side.append(f"{100 * r['nonfinite']:.0f} % not finite")
+    if np.isinf(r["high"]):
+        where = f"at least {r['low']:g}"
+    elif np.isinf(r["low"]):
+        where = f"at most {r['high']:g}"
+    else:
+        where = f"inside {r['low']:g} to {r['high']:g}"
+    text = f"{what}: {100 * r['inside']:.0f} % of prior draws {where}"
+    if side:
+        text += " (" + ", ".join(side) + ")"
+    lo, hi = r["best_range"] or (np.nan, np.nan)
+    if r["fixable"] is True:
+        text += (f"; narrower priors can fix this: of the prior draws with {r['best_parameter']} between "
+                 f"{lo:.3g} and {hi:.3g} (a tenth of them), {100 * r['best_share']:.0f} % are plausible (inside every "
+                 "bound), so narrow "
+                 f"the prior on {r['best_parameter']} toward that range (this candidate's [hyperparameters] in "
+                 "the configuration)")
+    elif r["reading"] == "narrow_several":
+        text += (f"; no one prior fixes this alone: the best tenth of one parameter's prior draws "
+                 f"({r['best_parameter']} between {lo:.3g} and {hi:.3g}) gives {100 * r['best_share']:.0f} % "
+                 "plausible datasets; narrow several of this candidate's priors together ([hyperparameters] in "
+                 "the configuration) and run again")
+    elif r["reading"] == "structure":
+        text += (f"; narrower priors will not fix this: in no tenth of any parameter's prior draws are more "
+                 f"than {100 * r['best_share']:.0f} % plausible (best: {r['best_parameter']} between {lo:.3g} and "
+                 f"{hi:.3g}), so the family's structure, not the width of its priors, puts the {what} there; "
+                 "check that this bound applies to this family, and judge it on the posterior checks")
+    else:
+        text += "; tighten this candidate's priors (its [hyperparameters] in the configuration) or check the bound"
+    return text
+
+
+def prior_message(trial) -> str:
+    """The prior predictive trial's finding in words: the share of plausible prior
+    datasets and, when flagged, the reading of each failing bound (``bound_sentence``)."""
+    share = trial.plausible_share
+    if share is None:
+        return "no plausibility bounds configured; compare the prior statistics with the observed ones"
+    if trial.flagged:
+        return (f"only {100 * share:.0f} % of prior draws give plausible data; "
+                + "; ".join(bound_sentence(r) for r in trial.failing))
+    return f"{100 * share:.0f} % of prior draws give data inside every plausibility bound"
+
+
+def word_prior(trial):
+    """Write a ``PriorTrial``'s ``message`` (``prior_message``) and return the record; the
+    run calls it on every prior trial (``pipeline/runner.py``)."""
+    trial.message = prior_message(trial)
+    return trial

@@ -19,7 +19,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from contenders import __version__
-from contenders.output.readings import compare_candidates, word_health
+from contenders.output.readings import compare_candidates, word_health, word_prior
 from contenders.statistics.compare import Comparison, OutOfSample, Plan, plan_estimate
 from contenders.inputs.candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for, link_of
 from contenders.inputs.config import RunConfig
@@ -249,11 +249,11 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         )
         res.seconds["prior"] = pdraws.sample_seconds
         res.seconds["prior_wait"] = pdraws.wait_seconds
-        res.prior = summarise_prior(
+        res.prior = word_prior(summarise_prior(
             _stack(pdraws.idata.posterior_predictive, "y_rep"), design.y, cfg.bounds,
             cfg.thresholds, cfg.implausible_share,
             parameters=prior_parameters(pdraws.idata.posterior, c.parameter_names, design.J, design.K),
-        )
+        ))
         del pdraws
         # 2. posterior fit with sampler health
         res.stage = "posterior"

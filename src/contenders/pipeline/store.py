@@ -76,8 +76,8 @@ TRIAL_SETTINGS = (
 #: Format 10: with censored observations, replicates censored like the data and the
 #: LOO-PIT randomised over each censored value's range (``trials.censored_checks``).
 #: Format 11: a censored value counts as "at y" within two float32 steps (y_rep is float32).
-#: Format 12: sampler health keeps its findings as codes (``Health.findings``); the words are
-#: written from them (``output.readings.word_health``).
+#: Format 12: sampler health keeps its findings as codes (``Health.findings``); its words and
+#: the prior trial's message are written from the numbers (``output.readings``).
 TRIALS_FORMAT = 12
 
 
