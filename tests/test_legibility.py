@@ -11,7 +11,7 @@ import pytest
 
 from contenders.output.report import _effects_table
 from contenders.output import figures
-from contenders.statistics.features import describe
+from contenders.output.readings import describe
 
 LONG = "Lognormal with guesses and lapses"
 

@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from contenders.statistics.checks import (QUANTILE_LEVELS, band_limits, band_text, leaves_band, quantile_checks,
-                                      quantile_misses, uniformity_test)
+from contenders.output.readings import band_text, quantile_misses
+from contenders.statistics.checks import QUANTILE_LEVELS, band_limits, leaves_band, quantile_checks, uniformity_test
 
 
 @pytest.mark.parametrize("n, alpha", [(50, 0.05), (200, 0.01)])

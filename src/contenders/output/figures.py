@@ -43,7 +43,7 @@ from markupsafe import Markup, escape  # noqa: E402
 import numpy as np  # noqa: E402
 
 from contenders.statistics.rules import SMALL_DIFFERENCE  # noqa: E402
-from contenders.statistics.features import describe  # noqa: E402
+from contenders.output.readings import describe  # noqa: E402
 from contenders.output.figure_store import Lineup, Rendered, next_prefix  # noqa: E402  (records readable without matplotlib)
 from contenders.output.out_of_sample import STANDING_WORDS, standing_of, worst  # noqa: E402  (no matplotlib there)
 
@@ -815,7 +815,7 @@ def quantile_grid(cands: Sequence[tuple[str, object]], outcome: str = "outcome",
     candidate's misses are more than four times another's, then each has its own."""
     import textwrap
 
-    from contenders.statistics.checks import quantile_misses
+    from contenders.output.readings import quantile_misses
 
     cands = [(label, c) for label, c in cands if c is not None and getattr(c, "quantiles", None)]
     if not cands:

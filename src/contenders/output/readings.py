@@ -19,10 +19,78 @@ from typing import Mapping, Sequence
 import numpy as np
 
 from contenders.output import format as fmt
-from contenders.statistics.checks import band_text
+from contenders.statistics.checks import leaves_band
 from contenders.statistics.compare import Comparison, Standing, better_share, rank_candidates
-from contenders.statistics.features import describe, named_misses, read_rows, unit_of
+from contenders.statistics.features import named_misses, read_rows, unit_of
 from contenders.statistics.rules import MIN_WEIGHT, PPP_EXTREME, SMALL_DIFFERENCE
+
+
+# --- statistics and their readings ------------------------------------------------------
+
+#: Plain-language names of the statistics, for reports.
+DESCRIPTIONS = {
+    "mean": "mean",
+    "sd": "standard deviation",
+    "min": "minimum",
+    "max": "maximum",
+    "q05": "5 % quantile",
+    "q50": "median",
+    "q95": "95 % quantile",
+    "skewness": "skewness",
+}
+
+
+def describe(name: str) -> str:
+    """The plain-language name of a test statistic: "standard deviation", "share below 300"."""
+    if name.startswith("below_"):
+        return f"share below {name[6:]}"
+    return DESCRIPTIONS.get(name, name)
+
+
+#: What each reading code of one statistic (``statistics.features.reading``) means, in words.
+CHECK_READINGS = {
+    "fits": "not detectably off",
+    "detectable": "detectably off; no relevant size set",
+    "small": "detectably off, but by less than the relevant size",
+    "relevant": "off by more than the relevant size",
+    "possibly_relevant": "outside the interval by more than the relevant size, but not detectably off",
+    "unknown": "no p-value",
+}
+
+
+# --- posterior predictive checks -------------------------------------------------------
+
+def band_text(test: dict | None) -> str:
+    """Where the LOO-PIT ECDF leaves its band, in words: "above the 99 % band at LOO-PIT
+    0.59–0.98; below it at 0.02–0.40"; "" when it stays inside or was not tested."""
+    if not leaves_band(test):
+        return ""
+
+    def spans(xs):
+        return ", ".join(f"{a:.2f}" if a == b else f"{a:.2f}–{b:.2f}" for a, b in xs)
+
+    band = f"{100 * test['band']:g} % band"
+    parts = []
+    if test["above"]:
+        parts.append(f"above the {band} at LOO-PIT {spans(test['above'])}")
+    if test["below"]:
+        parts.append(("below it" if parts else f"below the {band}") + f" at LOO-PIT {spans(test['below'])}")
+    return "; ".join(parts)
+
+
+def quantile_misses(rows: Sequence[dict]) -> list[str]:
+    """Where in the distribution the replicated quantiles miss the observed ones, as
+    short phrases: "5–15 % (replicates high)"."""
+    out, run = [], []
+    for row in list(rows) + [{"miss": None, "level": None}]:
+        if run and row["miss"] != run[-1]["miss"]:
+            a, b = run[0]["level"], run[-1]["level"]
+            span = f"{100 * a:.0f} %" if a == b else f"{100 * a:.0f}–{100 * b:.0f} %"
+            out.append(f"{span} ({run[0]['miss']})")
+            run = []
+        if row["miss"]:
+            run.append(row)
+    return out
 
 
 # --- standings and the verdict ----------------------------------------------------------

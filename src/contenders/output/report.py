@@ -24,7 +24,7 @@ from jinja2 import Environment, FileSystemLoader, StrictUndefined
 
 from contenders.statistics.rules import MIN_WEIGHT, SE_FACTOR, SMALL_DIFFERENCE
 from contenders.statistics.effects import compare_effects, direction
-from contenders.statistics.features import describe
+from contenders.output.readings import describe
 from contenders.output import readings
 from contenders.output import recovery_section
 from contenders.output.figure_store import drawn
@@ -486,7 +486,8 @@ def _check_table(checks, extreme: float, relevant=None) -> Table:
 
 def _pit_table(cands) -> Table:
     """The LOO-PIT band test per candidate: inside or not, where the ECDF leaves the band."""
-    from contenders.statistics.checks import band_text, leaves_band
+    from contenders.output.readings import band_text
+    from contenders.statistics.checks import leaves_band
 
     t = Table("loo_pit.csv", ["Candidate", "ECDF inside the band", "Where it leaves the band",
                               "Reading and what to do next"],
@@ -523,7 +524,7 @@ def _pit_table(cands) -> Table:
 def _quantile_table(cands) -> Table:
     """Where each candidate's replicated quantiles miss the observed ones; the CSV has
     every level of every candidate."""
-    from contenders.statistics.checks import quantile_misses
+    from contenders.output.readings import quantile_misses
 
     t = Table("quantiles.csv", ["Candidate", "Observed quantiles outside the replicated 95 % interval"],
               csv_headers=["id", "label", "level", "observed", "replicated_median", "lower_95", "upper_95",

@@ -8,7 +8,8 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from contenders.statistics.features import READINGS, describe, named_misses, reading, unit_of
+from contenders.output.readings import CHECK_READINGS as READINGS, describe
+from contenders.statistics.features import named_misses, reading, unit_of
 from contenders.output import format as fmt
 from contenders.statistics.rules import SE_FACTOR
 
@@ -95,7 +96,7 @@ def misfits(checks, strong: float, relevant=None) -> list[str]:
     return out
 
 
-#: The reading of a statistic as a table shows it: a mark and words (statistics.READINGS).
+#: The reading of a statistic as a table shows it: a mark and words (readings.CHECK_READINGS).
 READING_CELL = {
     "fits": ("", ""),
     "detectable": ("◆ ", "flag"),

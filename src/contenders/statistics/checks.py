@@ -130,24 +130,6 @@ def leaves_band(test: dict | None) -> bool:
     return bool(test) and test.get("inside") is False
 
 
-def band_text(test: dict | None) -> str:
-    """Where the LOO-PIT ECDF leaves its band, in words: "above the 99 % band at LOO-PIT
-    0.59–0.98; below it at 0.02–0.40"; "" when it stays inside or was not tested."""
-    if not leaves_band(test):
-        return ""
-
-    def spans(xs):
-        return ", ".join(f"{a:.2f}" if a == b else f"{a:.2f}–{b:.2f}" for a, b in xs)
-
-    band = f"{100 * test['band']:g} % band"
-    parts = []
-    if test["above"]:
-        parts.append(f"above the {band} at LOO-PIT {spans(test['above'])}")
-    if test["below"]:
-        parts.append(("below it" if parts else f"below the {band}") + f" at LOO-PIT {spans(test['below'])}")
-    return "; ".join(parts)
-
-
 #: Quantile levels of the quantile check: 5 %, 10 %, ..., 95 %.
 QUANTILE_LEVELS = tuple(round(0.05 * k, 2) for k in range(1, 20))
 
@@ -183,21 +165,6 @@ def quantile_checks(y: np.ndarray, y_rep: np.ndarray, levels: Sequence[float] = 
                      "lower": float(lo), "upper": float(hi), "lower50": float(lo50), "upper50": float(hi50),
                      "share_above": float(np.mean(r >= obs[k])), "miss": miss})
     return rows
-
-
-def quantile_misses(rows: Sequence[dict]) -> list[str]:
-    """Where in the distribution the replicated quantiles miss the observed ones, as
-    short phrases: "5–15 % (replicates high)"."""
-    out, run = [], []
-    for row in list(rows) + [{"miss": None, "level": None}]:
-        if run and row["miss"] != run[-1]["miss"]:
-            a, b = run[0]["level"], run[-1]["level"]
-            span = f"{100 * a:.0f} %" if a == b else f"{100 * a:.0f}–{100 * b:.0f} %"
-            out.append(f"{span} ({run[0]['miss']})")
-            run = []
-        if row["miss"]:
-            run.append(row)
-    return out
 
 
 def predictive_checks(

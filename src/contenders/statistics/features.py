@@ -21,19 +21,6 @@ import numpy as np
 from contenders.inputs.config import DEFAULT_STATISTICS
 from contenders.statistics.rules import PPP_EXTREME
 
-#: Plain-language names of the statistics, for reports.
-DESCRIPTIONS = {
-    "mean": "mean",
-    "sd": "standard deviation",
-    "min": "minimum",
-    "max": "maximum",
-    "q05": "5 % quantile",
-    "q50": "median",
-    "q95": "95 % quantile",
-    "skewness": "skewness",
-}
-
-
 #: Statistics measured in the outcome's own units (their miss is also given as a share
 #: of the observed SD). ``skewness`` has no unit; ``below_T`` is a share of observations.
 OUTCOME_UNITS = ("mean", "sd", "min", "max", "q05", "q50", "q95")
@@ -41,15 +28,9 @@ OUTCOME_UNITS = ("mean", "sd", "min", "max", "q05", "q50", "q95")
 #: The central interval of the replicated values that a miss is measured from.
 INTERVAL = 0.90
 
-#: Reading codes of one statistic (``reading``), and what each means in words.
-READINGS = {
-    "fits": "not detectably off",
-    "detectable": "detectably off; no relevant size set",
-    "small": "detectably off, but by less than the relevant size",
-    "relevant": "off by more than the relevant size",
-    "possibly_relevant": "outside the interval by more than the relevant size, but not detectably off",
-    "unknown": "no p-value",
-}
+#: Reading codes of one statistic (``reading``); their words are
+#: ``contenders.output.readings.CHECK_READINGS``.
+READING_CODES = ("fits", "detectable", "small", "relevant", "possibly_relevant", "unknown")
 
 
 def unit_of(name: str) -> str:
@@ -65,12 +46,6 @@ def threshold_name(t: float) -> str:
 
 def statistic_names(thresholds: Iterable[float] = ()) -> tuple[str, ...]:
     return DEFAULT_STATISTICS + tuple(threshold_name(t) for t in thresholds)
-
-
-def describe(name: str) -> str:
-    if name.startswith("below_"):
-        return f"share below {name[6:]}"
-    return DESCRIPTIONS.get(name, name)
 
 
 def compute(y: np.ndarray, thresholds: Sequence[float] = ()) -> dict[str, np.ndarray]:
@@ -162,7 +137,7 @@ def detectable(p: float, ppp_extreme: float) -> bool:
 
 
 def reading(p: float, size: float, relevant: float | None, ppp_extreme: float = PPP_EXTREME) -> str:
-    """One reading code of ``READINGS`` for a statistic: its ppp-value ``p``, its miss
+    """One reading code of ``READING_CODES`` for a statistic: its ppp-value ``p``, its miss
     ``size`` (``miss``) and the relevant size set for it (``None``: none set).
 
     The one definition every table and sentence reads (our own rule, no source):
@@ -186,7 +161,7 @@ def reading(p: float, size: float, relevant: float | None, ppp_extreme: float = 
     Returns
     -------
     str
-        A key of ``READINGS``.
+        One of ``READING_CODES``.
     """
     if p is None or not np.isfinite(p):
         return "unknown"
