@@ -14,13 +14,17 @@ fills ``Comparison.lead`` and ``details`` (``verdict``); the run calls it
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Mapping, Sequence
+
+import math
 
 import numpy as np
 
 from contenders.output import format as fmt
 from contenders.statistics.checks import leaves_band
 from contenders.statistics.compare import Comparison, Standing, better_share, rank_candidates
+from contenders.statistics.effects import agreement_reading, direction, effects_across
 from contenders.statistics.features import named_misses, read_rows, unit_of
 from contenders.statistics.rules import MIN_WEIGHT, PPP_EXTREME, SMALL_DIFFERENCE
 
@@ -519,3 +523,128 @@ def word_prior(trial):
     run calls it on every prior trial (``pipeline/runner.py``)."""
     trial.message = prior_message(trial)
     return trial
+
+
+# --- power-scaling sensitivity ----------------------------------------------------------
+
+#: Every power-scaling reading code (``statistics.sensitivity.READING_CODES``) with the
+#: sentence the report shows, which says what to do.
+SENSITIVITY_READINGS = {
+    "pulled_both_ways": "Pulled both ways: the prior and the data push it in different directions. "
+                        "Check that the prior's centre and width say what you meant; if they do, the data "
+                        "disagree with it, so show the result under a wider prior as well.",
+    "set_by_prior": "Set by the prior: the data add little about it. Keep the prior only if it was chosen "
+                    "on purpose and say so when reporting; otherwise widen it, or collect data that "
+                    "inform this parameter.",
+    "led_by_data": "Led by the data: the prior hardly matters. Nothing to do.",
+    "steady": "Steady: barely moves when either the prior or the data are scaled. Nothing to do.",
+    "": "Not computed (a non-finite value). Nothing to read.",
+}
+
+
+def sensitivity_summary(s) -> dict | None:
+    """The JSON-ready record of one candidate's sensitivity (``summary.json``), each
+    parameter's reading with what to do about it (``SENSITIVITY_READINGS``)."""
+    if s is None:
+        return None
+    return {
+        "threshold": s.threshold, "draws": s.n_draws, "pareto_k": s.pareto_k, "reliable": s.reliable,
+        "problem": s.problem or None,
+        "parameters": [{"parameter": r["parameter"], "prior": r["prior"], "likelihood": r["likelihood"],
+                        "prior_chain_range": list(r["prior_range"]),
+                        "likelihood_chain_range": list(r["likelihood_range"]),
+                        "near_threshold": r["near_threshold"],
+                        "reading": r["reading"] or None,
+                        "what_to_do": SENSITIVITY_READINGS[r["reading"]] if r["reading"] else None} for r in s.rows],
+    }
+
+
+# --- effects across candidates ----------------------------------------------------------
+
+def _g(x: float) -> str:
+    """Three significant digits, all digits before the point kept."""
+    if x is None or not np.isfinite(x):
+        return "undefined"
+    if x == 0:
+        return "0"
+    decimals = max(0, 2 - int(math.floor(math.log10(abs(x)))))
+    return f"{x:.{decimals}f}"
+
+
+def _iv(lo: float, hi: float) -> str:
+    return f"{_g(lo)} to {_g(hi)}"
+
+
+@dataclass
+class Agreement:
+    reading: str        # agree | depends | single | none
+    sentence: str
+
+
+def agreement(title: str, rows: Sequence[Mapping], observed: float, combined: Mapping | None = None,
+              min_weight: float = MIN_WEIGHT) -> Agreement:
+    """Whether the healthy candidates with non-negligible weight reach the same
+    conclusion about one effect (``statistics.effects.agreement_reading``), as a cautious
+    sentence.
+
+    ``rows`` hold, per candidate, ``label``, ``weight`` (stacking weight; None when
+    not ranked), ``lower`` and ``upper`` (95 % interval). Candidates agree when every
+    pair of intervals overlaps (the largest lower end is at most the smallest upper
+    end) and every interval falls on the same side of zero (all above, all below, or
+    all including it); otherwise the conclusion depends on the choice. Rows with weight
+    below ``min_weight`` or without an interval are left out."""
+    facts = agreement_reading(rows, observed, min_weight)
+    use, misses = facts["use"], facts["misses"]
+    miss = (f" The observed value ({_g(observed)}) lies outside the 95 % interval of "
+            + ", ".join(misses) + ": replicated data from "
+            + ("that candidate do" if len(misses) == 1 else "those candidates do")
+            + " not reproduce this effect, so treat its estimate with suspicion.") if misses else ""
+    if not use:
+        return Agreement("none", f"{title}: no ranked candidate has a stacking weight of at least "
+                                 f"{min_weight:g}, so there is nothing to compare.")
+    if len(use) == 1:
+        r = use[0]
+        return Agreement("single", (
+            f"{title}: only {r['label']} carries a stacking weight of at least {min_weight:g} "
+            f"({r['weight']:.2f}); its 95 % interval is {_iv(r['lower'], r['upper'])} "
+            f"({direction(r['lower'], r['upper'])}). With a single candidate in play there is no "
+            "agreement to check; look at the other candidates' intervals before relying on it." + miss))
+    names = ", ".join(f"{r['label']} ({r['weight']:.2f})" for r in use)
+    sides = set(facts["sides"])
+    comb = (f" (stacking-weighted combination {_g(combined['mean'])}, 95 % interval "
+            f"{_iv(combined['lower'], combined['upper'])})") if combined else ""
+    if facts["reading"] == "agree":
+        side = sides.pop()
+        if side == "includes zero":
+            what = ("agree only in that none of them separates this effect from zero: every 95 % interval "
+                    "includes zero")
+            after = ("The data leave the direction open under each of these candidates; that is not "
+                     "evidence that the effect is absent.")
+        else:
+            what = f"agree: every 95 % interval lies {side}"
+            after = ("The conclusion does not hinge on the choice among these candidates; that is not "
+                     "proof of the effect, since all of them may share the same blind spots.")
+        return Agreement("agree", (
+            f"{title}: the {len(use)} candidates with stacking weight of at least {min_weight:g} "
+            f"({names}) {what}, and the intervals overlap{comb}. {after}" + miss))
+    parts = "; ".join(f"{r['label']} {_iv(r['lower'], r['upper'])} ({direction(r['lower'], r['upper'])})"
+                      for r in use)
+    why = []
+    if len(sides) > 1:
+        why.append("the intervals fall on different sides of zero")
+    if not facts["overlap"]:
+        why.append("not all intervals overlap")
+    return Agreement("depends", (
+        f"{title}: the conclusion depends on the choice of candidate, because "
+        + " and ".join(why) + f" (95 % intervals: {parts}){comb}. Report the effect under each of "
+        "these candidates, or settle the choice of candidate on other grounds first." + miss))
+
+
+def compare_effects(results: Sequence, comparison_rows: Sequence[Mapping], seed: int = 0,
+                    min_weight: float = MIN_WEIGHT) -> list:
+    """Each effect across candidates (``statistics.effects.effects_across``) with its
+    agreement sentence (``agreement``) written into ``sentence``."""
+    effects = effects_across(results, comparison_rows, seed, min_weight)
+    for e in effects:
+        e.sentence = agreement(e.title, e.rows, e.observed, e.combined, min_weight).sentence
+    return effects

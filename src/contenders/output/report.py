@@ -23,7 +23,8 @@ import numpy as np
 from jinja2 import Environment, FileSystemLoader, StrictUndefined
 
 from contenders.statistics.rules import MIN_WEIGHT, SE_FACTOR, SMALL_DIFFERENCE
-from contenders.statistics.effects import compare_effects, direction
+from contenders.output.readings import compare_effects
+from contenders.statistics.effects import direction
 from contenders.output.readings import describe
 from contenders.output import readings
 from contenders.output import recovery_section

@@ -34,10 +34,12 @@ from contenders.errors import UserError
 from contenders.statistics.checks import PredictiveChecks, predictive_checks, thin_draws
 from contenders.statistics.censored_checks import censor_like_the_data
 from contenders.statistics.coefficients import Coefficients, coefficient_summary, summary as coefficients_summary
-from contenders.statistics.effects import compare_effects, effect_draws, effects_summary
+from contenders.output.readings import compare_effects
+from contenders.statistics.effects import effect_draws, effects_summary
 from contenders.statistics.posterior import Health, fit_with_health
 from contenders.statistics.prior import PriorTrial, summarise_prior
-from contenders.statistics.sensitivity import Sensitivity, power_scaling, summary as sensitivity_summary
+from contenders.output.readings import sensitivity_summary
+from contenders.statistics.sensitivity import Sensitivity, power_scaling
 from contenders.statistics.features import INTERVAL
 from contenders.statistics.rules import PPP_EXTREME
 

@@ -248,84 +248,48 @@ def direction(lower: float, upper: float) -> str:
     return "includes zero"
 
 
-def _g(x: float) -> str:
-    """Three significant digits, all digits before the point kept."""
-    if x is None or not np.isfinite(x):
-        return "undefined"
-    if x == 0:
-        return "0"
-    decimals = max(0, 2 - int(math.floor(math.log10(abs(x)))))
-    return f"{x:.{decimals}f}"
-
-
-def _iv(lo: float, hi: float) -> str:
-    return f"{_g(lo)} to {_g(hi)}"
-
-
-@dataclass
-class Agreement:
-    reading: str        # agree | depends | single | none
-    sentence: str
-
-
-def agreement(title: str, rows: Sequence[Mapping], observed: float, combined: Mapping | None = None,
-              min_weight: float = MIN_WEIGHT) -> Agreement:
+def agreement_reading(rows: Sequence[Mapping], observed: float, min_weight: float = MIN_WEIGHT) -> dict:
     """Whether the healthy candidates with non-negligible weight reach the same
-    conclusion about one effect, as a cautious sentence.
+    conclusion about one effect.
 
-    ``rows`` hold, per candidate, ``label``, ``weight`` (stacking weight; None when
-    not ranked), ``lower`` and ``upper`` (95 % interval). Candidates agree when every
-    pair of intervals overlaps (the largest lower end is at most the smallest upper
-    end) and every interval falls on the same side of zero (all above, all below, or
-    all including it); otherwise the conclusion depends on the choice. Rows with weight
-    below ``min_weight`` or without an interval are left out."""
+    Candidates agree when every pair of intervals overlaps (the largest lower end is at
+    most the smallest upper end) and every interval falls on the same side of zero (all
+    above, all below, or all including it); otherwise the conclusion depends on the
+    choice. Rows with weight below ``min_weight`` or without an interval are left out.
+
+    Parameters
+    ----------
+    rows : sequence of mapping
+        Per candidate: ``label``, ``weight`` (stacking weight; None when not ranked),
+        ``lower`` and ``upper`` (the 95 % interval of its replicated effect).
+    observed : float
+        The effect in the observed data.
+    min_weight : float
+        Smallest stacking weight that counts (``rules.MIN_WEIGHT``).
+
+    Returns
+    -------
+    dict
+        ``reading`` (``agree``, ``depends``, ``single`` or ``none``), ``use`` (the rows
+        that count), ``misses`` (labels of those whose interval excludes ``observed``),
+        ``sides`` (the ``direction`` of each row that counts, in order) and
+        ``overlap`` (every pair of intervals overlaps). The sentence is
+        ``contenders.output.readings.agreement``.
+    """
     use = [r for r in rows if r.get("weight") is not None and r["weight"] >= min_weight
            and np.isfinite(r["lower"]) and np.isfinite(r["upper"])]
     misses = [r["label"] for r in use if not r["lower"] <= observed <= r["upper"]]
-    miss = (f" The observed value ({_g(observed)}) lies outside the 95 % interval of "
-            + ", ".join(misses) + ": replicated data from "
-            + ("that candidate do" if len(misses) == 1 else "those candidates do")
-            + " not reproduce this effect, so treat its estimate with suspicion.") if misses else ""
+    sides = [direction(r["lower"], r["upper"]) for r in use]
+    overlap = bool(use) and max(r["lower"] for r in use) <= min(r["upper"] for r in use)
     if not use:
-        return Agreement("none", f"{title}: no ranked candidate has a stacking weight of at least "
-                                 f"{min_weight:g}, so there is nothing to compare.")
-    if len(use) == 1:
-        r = use[0]
-        return Agreement("single", (
-            f"{title}: only {r['label']} carries a stacking weight of at least {min_weight:g} "
-            f"({r['weight']:.2f}); its 95 % interval is {_iv(r['lower'], r['upper'])} "
-            f"({direction(r['lower'], r['upper'])}). With a single candidate in play there is no "
-            "agreement to check; look at the other candidates' intervals before relying on it." + miss))
-    names = ", ".join(f"{r['label']} ({r['weight']:.2f})" for r in use)
-    sides = {direction(r["lower"], r["upper"]) for r in use}
-    overlap = max(r["lower"] for r in use) <= min(r["upper"] for r in use)
-    comb = (f" (stacking-weighted combination {_g(combined['mean'])}, 95 % interval "
-            f"{_iv(combined['lower'], combined['upper'])})") if combined else ""
-    if overlap and len(sides) == 1:
-        side = sides.pop()
-        if side == "includes zero":
-            what = ("agree only in that none of them separates this effect from zero: every 95 % interval "
-                    "includes zero")
-            after = ("The data leave the direction open under each of these candidates; that is not "
-                     "evidence that the effect is absent.")
-        else:
-            what = f"agree: every 95 % interval lies {side}"
-            after = ("The conclusion does not hinge on the choice among these candidates; that is not "
-                     "proof of the effect, since all of them may share the same blind spots.")
-        return Agreement("agree", (
-            f"{title}: the {len(use)} candidates with stacking weight of at least {min_weight:g} "
-            f"({names}) {what}, and the intervals overlap{comb}. {after}" + miss))
-    parts = "; ".join(f"{r['label']} {_iv(r['lower'], r['upper'])} ({direction(r['lower'], r['upper'])})"
-                      for r in use)
-    why = []
-    if len(sides) > 1:
-        why.append("the intervals fall on different sides of zero")
-    if not overlap:
-        why.append("not all intervals overlap")
-    return Agreement("depends", (
-        f"{title}: the conclusion depends on the choice of candidate, because "
-        + " and ".join(why) + f" (95 % intervals: {parts}){comb}. Report the effect under each of "
-        "these candidates, or settle the choice of candidate on other grounds first." + miss))
+        reading = "none"
+    elif len(use) == 1:
+        reading = "single"
+    elif overlap and len(set(sides)) == 1:
+        reading = "agree"
+    else:
+        reading = "depends"
+    return {"reading": reading, "use": use, "misses": misses, "sides": sides, "overlap": overlap}
 
 
 @dataclass
@@ -342,14 +306,15 @@ class EffectAcross:
     rows: list[dict]                 # per candidate, ranked first by elpd; see compare_effects
     combined: dict | None            # mean, lower, upper, n_draws of the weighted mixture
     reading: str                     # agree | depends | single | none
-    sentence: str
+    sentence: str                    # in words: contenders.output.readings.compare_effects fills it
     combined_draws: np.ndarray = field(repr=False, default_factory=lambda: np.zeros(0))
 
 
-def compare_effects(results: Sequence, comparison_rows: Sequence[Mapping], seed: int = 0,
-                    min_weight: float = MIN_WEIGHT) -> list[EffectAcross]:
+def effects_across(results: Sequence, comparison_rows: Sequence[Mapping], seed: int = 0,
+                   min_weight: float = MIN_WEIGHT) -> list[EffectAcross]:
     """Gather each effect across candidates, combine the ranked candidates' draws by
-    stacking weight, and read whether they agree.
+    stacking weight, and read whether they agree (``agreement_reading``; the sentence is
+    left empty for ``contenders.output.readings.compare_effects`` to write).
 
     ``results`` are candidate results with ``id``, ``label``, ``status`` and
     ``effects`` (lists of :class:`Effect`); only those whose status is in ``SAMPLED``
@@ -387,9 +352,9 @@ def compare_effects(results: Sequence, comparison_rows: Sequence[Mapping], seed:
             mix = combine(weighted, weights, np.random.default_rng([int(seed), k]))
             mean, lo, hi, n = summarise(mix)
             combined = {"mean": mean, "lower": lo, "upper": hi, "n_draws": n}
-        verdict = agreement(first.title, rows, first.observed, combined, min_weight)
+        verdict = agreement_reading(rows, first.observed, min_weight)
         out.append(EffectAcross(key, first.kind, first.column, first.level, first.reference, first.title,
-                                first.observed, rows, combined, verdict.reading, verdict.sentence, mix))
+                                first.observed, rows, combined, verdict["reading"], "", mix))
     return out
 
 

@@ -16,7 +16,8 @@ The diagnostic itself is ArviZ's (:func:`arviz.psens`); this module supplies the
 prior (the program's ``lprior`` generated quantity) and the summed ``log_lik``, adds
 the Pareto k of the importance weights (the paper's reliability check: above 0.7 the
 weights are not trustworthy) and reads each parameter's pair of values as the paper
-does, in this project's words (``_reading``, :data:`READINGS`):
+does, in this project's codes (``_reading``, :data:`READING_CODES`; their sentences are
+``contenders.output.readings.SENSITIVITY_READINGS``):
 
 * ``pulled_both_ways``: prior and likelihood sensitivity both at least 0.05; the prior
   and the data pull the parameter in different directions (the paper's sign of a
@@ -51,18 +52,9 @@ DELTA = SENSITIVITY_DELTA
 #: (``rules.SENSITIVITY_K_RELIABLE``).
 K_RELIABLE = SENSITIVITY_K_RELIABLE
 
-#: Every reading code with the sentence the report shows, which says what to do.
-READINGS = {
-    "pulled_both_ways": "Pulled both ways: the prior and the data push it in different directions. "
-                        "Check that the prior's centre and width say what you meant; if they do, the data "
-                        "disagree with it, so show the result under a wider prior as well.",
-    "set_by_prior": "Set by the prior: the data add little about it. Keep the prior only if it was chosen "
-                    "on purpose and say so when reporting; otherwise widen it, or collect data that "
-                    "inform this parameter.",
-    "led_by_data": "Led by the data: the prior hardly matters. Nothing to do.",
-    "steady": "Steady: barely moves when either the prior or the data are scaled. Nothing to do.",
-    "": "Not computed (a non-finite value). Nothing to read.",
-}
+#: Every reading code (``""``: not computed); the sentence of each, which says what to do, is
+#: ``contenders.output.readings.SENSITIVITY_READINGS``.
+READING_CODES = ("pulled_both_ways", "set_by_prior", "led_by_data", "steady", "")
 
 #: The readings that ask the user to act.
 ACT_ON = ("pulled_both_ways", "set_by_prior")
@@ -77,8 +69,8 @@ class Sensitivity:
     ``likelihood_range`` (lowest and highest value over chains computed one chain at a
     time: a rough view of the Monte Carlo spread; with fewer draws the single-chain
     values run somewhat higher), ``near_threshold`` (a single-chain range crosses the
-    threshold, so the reading could change with other draws) and ``reading`` (a key of
-    :data:`READINGS`).
+    threshold, so the reading could change with other draws) and ``reading`` (one of
+    :data:`READING_CODES`).
     ``pareto_k`` gives the largest Pareto k of the importance weights per component."""
 
     rows: list[dict] = field(default_factory=list)
@@ -120,7 +112,7 @@ def power_scaled_mean(values: np.ndarray, log_component: np.ndarray, alpha: floa
 
 
 def _reading(prior: float, likelihood: float, threshold: float) -> str:
-    """The reading code (a key of :data:`READINGS`) of one parameter's pair of values."""
+    """The reading code (one of :data:`READING_CODES`) of one parameter's pair of values."""
     if not (np.isfinite(prior) and np.isfinite(likelihood)):
         return ""
     if prior >= threshold:
@@ -189,19 +181,3 @@ def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
     except Exception as exc:   # reported on the page; the candidate's other trials go on
         return Sensitivity(problem=f"power-scaling could not be computed: {type(exc).__name__}: {exc}",
                            threshold=threshold)
-
-
-def summary(s: Sensitivity | None) -> dict | None:
-    """The JSON-ready record of one candidate's sensitivity (``summary.json``)."""
-    if s is None:
-        return None
-    return {
-        "threshold": s.threshold, "draws": s.n_draws, "pareto_k": s.pareto_k, "reliable": s.reliable,
-        "problem": s.problem or None,
-        "parameters": [{"parameter": r["parameter"], "prior": r["prior"], "likelihood": r["likelihood"],
-                        "prior_chain_range": list(r["prior_range"]),
-                        "likelihood_chain_range": list(r["likelihood_range"]),
-                        "near_threshold": r["near_threshold"],
-                        "reading": r["reading"] or None,
-                        "what_to_do": READINGS[r["reading"]] if r["reading"] else None} for r in s.rows],
-    }
