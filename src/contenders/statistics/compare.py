@@ -62,7 +62,20 @@ class OutOfSample:
 
 
 def log_mean_exp(log_lik: np.ndarray, axis: int = 0) -> np.ndarray:
-    """log of the mean of exp(x) along ``axis``, computed stably."""
+    """log of the mean of exp(x) along an axis, computed stably.
+
+    Parameters
+    ----------
+    log_lik : numpy.ndarray
+        Log values (for example log-likelihood draws, draws on axis 0).
+    axis : int
+        The axis to average over.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``logsumexp(log_lik, axis) - log(n)`` (SciPy's ``logsumexp``).
+    """
     from scipy.special import logsumexp
 
     n = log_lik.shape[axis]
@@ -99,9 +112,28 @@ def _psis_by_chain(log_lik: np.ndarray) -> np.ndarray:
 
 
 def make_folds(n: int, k: int, strata: np.ndarray | None = None, seed: int = 0) -> np.ndarray:
-    """Fold number (0..k-1) of each observation. With ``strata`` every fold receives
-    an (almost) equal share of each stratum: members of a stratum are shuffled and
-    dealt to the folds in turn, starting where the previous stratum stopped."""
+    """Fold number (0..k-1) of each observation.
+
+    With ``strata`` every fold receives an (almost) equal share of each stratum: members
+    of a stratum are shuffled and dealt to the folds in turn, starting where the previous
+    stratum stopped.
+
+    Parameters
+    ----------
+    n : int
+        Number of observations.
+    k : int
+        Number of folds.
+    strata : numpy.ndarray, optional
+        Each observation's stratum (for example its group).
+    seed : int
+        Seed of the shuffle.
+
+    Returns
+    -------
+    numpy.ndarray
+        Integer fold of each observation, shape (n,).
+    """
     rng = np.random.default_rng(seed)
     folds = np.empty(n, dtype=np.int64)
     if strata is None:
@@ -124,9 +156,19 @@ def _totals(pointwise: np.ndarray, lppd: float) -> dict:
 
 
 def elpd_data(e: OutOfSample):
-    """The ArviZ ``ELPDData`` of one estimate, built from its plain fields (for
-    ``arviz.compare``, which reads elpd, SE, p, the pointwise values, the warning flag
-    and the scale)."""
+    """The ArviZ ``ELPDData`` of one estimate, built from its plain fields.
+
+    Parameters
+    ----------
+    e : OutOfSample
+        The estimate.
+
+    Returns
+    -------
+    arviz.ELPDData
+        elpd, SE, p, draws, pointwise values, Pareto k, scale ``log`` and the k threshold,
+        as ``arviz.compare`` reads them.
+    """
     import xarray as xr
     from arviz.stats.stats_utils import ELPDData
 
@@ -165,6 +207,21 @@ class Plan:
     refitted: list[int] = field(default_factory=list)
 
     def finish(self, held_out: Sequence[np.ndarray] = ()) -> OutOfSample:
+        """The estimate, with each refit's held-out values in place of the PSIS ones.
+
+        Parameters
+        ----------
+        held_out : sequence of numpy.ndarray
+            Per refit of ``fits``, in order, its ``log_lik`` draws of the held-out
+            observations, shape (S, held out).
+
+        Returns
+        -------
+        OutOfSample
+            elpd (sum of the pointwise values), its SE and p (Vehtari, Gelman & Gabry
+            2017, as ArviZ's ``loo`` computes them), and the Monte Carlo SE from the
+            batches of draws (batch means; common practice, no source).
+        """
         if len(held_out) != len(self.fits):
             raise ValueError(f"{len(self.fits)} refits planned, {len(held_out)} results given")
         pointwise, per_chain = self.pointwise.copy(), self.per_chain.copy()
@@ -225,7 +282,36 @@ def plan_estimate(
     why_plain: str = "quick look",
 ) -> Plan:
     """PSIS-LOO of one candidate and the refits the estimate needs (see ``estimate``).
-    With ``strategy`` "psis" there are none; ``why_plain`` says why in the method."""
+
+    Parameters
+    ----------
+    idata : arviz.InferenceData
+        The fit, with ``log_lik`` (chain, draw, obs) in ``log_likelihood``.
+    strategy : str
+        ``loo``, ``kfold``, ``leave_group_out`` or ``psis`` (PSIS-LOO as it is, no refit).
+    refit_cap : int
+        Most exact refits before the estimate falls back to K-fold.
+    folds : int
+        Folds of K-fold.
+    groups : numpy.ndarray, optional
+        Each observation's group (leave-one-group-out; strata of the folds).
+    seed : int
+        Seed of the folds.
+    why_plain : str
+        Why ``psis`` makes no refit, for the method's description.
+
+    Returns
+    -------
+    Plan
+        The refits to run (fitted and held-out observations) and what ``Plan.finish``
+        needs to complete the estimate.
+
+    References
+    ----------
+    Vehtari, Gelman & Gabry (2017), Statistics and Computing 27, 1413-1432 (PSIS-LOO,
+    exact refits and K-fold); Vehtari, Simpson, Gelman, Yao & Gabry (2024), JMLR 25(72)
+    (the Pareto k threshold, ArviZ's ``good_k``).
+    """
     import warnings
 
     import arviz as az
@@ -291,15 +377,31 @@ def estimate(
     groups: np.ndarray | None = None,
     seed: int = 0,
 ) -> OutOfSample:
-    """elpd of one candidate.
+    """elpd of one candidate, its refits run here one after the other.
 
-    ``strategy`` ``loo``: PSIS-LOO; observations whose Pareto k exceeds the threshold
-    are refitted exactly with that observation held out, up to ``refit_cap``; above
-    the cap the whole estimate falls back to K-fold. ``kfold``: K-fold for every
-    candidate. ``leave_group_out``: each level of ``groups`` held out in turn
-    (predicting new groups, a different quantity from LOO). ``refit(fitted)`` returns
-    log_lik draws (S, N) of a fit to the observations ``fitted``; here the refits run
-    one after the other (the runner sends them to its executor instead).
+    Parameters
+    ----------
+    idata : arviz.InferenceData
+        The fit, with ``log_lik``.
+    refit : callable
+        ``refit(fitted)`` returns log_lik draws (S, N) of a fit to the 0-based
+        observations ``fitted``.
+    strategy : str
+        ``loo``: PSIS-LOO, observations whose Pareto k exceeds the threshold refitted
+        exactly with that observation held out, up to ``refit_cap``, above it K-fold;
+        ``kfold``: K-fold for every candidate; ``leave_group_out``: each level of
+        ``groups`` held out in turn (predicting new groups, a different quantity).
+    refit_cap, folds, groups, seed
+        See ``plan_estimate``.
+
+    Returns
+    -------
+    OutOfSample
+        elpd, SE, p, pointwise values, Pareto k, method, refits and Monte Carlo SE.
+
+    References
+    ----------
+    Vehtari, Gelman & Gabry (2017), Statistics and Computing 27, 1413-1432.
     """
     plan = plan_estimate(idata, strategy, refit_cap, folds, groups, seed)
     return plan.finish([refit(fitted)[:, idx] for fitted, idx in plan.fits])
@@ -330,9 +432,21 @@ WEIGHTS_FORMAT = 1
 
 
 def weights_key(estimates: dict[str, OutOfSample], seed: int = 0) -> str:
-    """SHA-256 of everything ``arviz.compare`` reads of the given estimates (ids in
-    order, elpd, SE, p, draws, pointwise values), the seed of the Bayesian bootstrap and
-    the installed ArviZ version: equal keys give equal weights."""
+    """SHA-256 of everything ``arviz.compare`` reads of the given estimates.
+
+    Parameters
+    ----------
+    estimates : dict of str to OutOfSample
+        The estimates compared, in order.
+    seed : int
+        Seed of the Bayesian bootstrap.
+
+    Returns
+    -------
+    str
+        Hex digest of ids, elpd, SE, p, draws, pointwise values, the seed and the
+        installed ArviZ version: equal keys give equal weights.
+    """
     from importlib.metadata import version
 
     h = hashlib.sha256(f"weights {WEIGHTS_FORMAT}|arviz {version('arviz')}|seed {seed}".encode())
@@ -345,12 +459,32 @@ def weights_key(estimates: dict[str, OutOfSample], seed: int = 0) -> str:
 
 
 def weights(estimates: dict[str, OutOfSample], seed: int = 0, store=None) -> tuple[dict, dict, dict]:
-    """Stacking weights, pseudo-BMA+ weights (Bayesian bootstrap) and the ArviZ table
-    (elpd_diff, dse) for the given candidates.
+    """Stacking weights, pseudo-BMA+ weights and the differences to the best.
 
-    With ``store`` (a :class:`contenders.pipeline.store.FitStore`) the answer is read from it
-    when these exact estimates were compared before (``weights_key``), and stored
-    otherwise, so a rerun from the fit store does not import ArviZ."""
+    With ``store`` the answer is read from it when these exact estimates were compared
+    before (``weights_key``), and stored otherwise, so a rerun from the fit store does
+    not import ArviZ.
+
+    Parameters
+    ----------
+    estimates : dict of str to OutOfSample
+        Candidate id -> estimate.
+    seed : int
+        Seed of the Bayesian bootstrap of the pseudo-BMA+ weights.
+    store : FitStore, optional
+        ``contenders.pipeline.store.FitStore`` keeping computed weights.
+
+    Returns
+    -------
+    tuple of dict
+        ``(stacking, pseudo_bma, diffs)``: id -> weight, id -> weight and id ->
+        ``(elpd_diff, dse)`` (ArviZ's ``compare``).
+
+    References
+    ----------
+    Yao, Vehtari, Simpson & Gelman (2018), "Using stacking to average Bayesian
+    predictive distributions", Bayesian Analysis 13(3).
+    """
     if len(estimates) == 1:
         (cid,) = estimates
         return {cid: 1.0}, {cid: 1.0}, {cid: (0.0, 0.0)}
@@ -373,9 +507,22 @@ def weights(estimates: dict[str, OutOfSample], seed: int = 0, store=None) -> tup
 
 
 def order_with_ties(ranked: list) -> list:
-    """Sort by elpd, best first; candidates whose elpd differ by less than twice the
-    combined Monte Carlo SE of the two estimates are tied (their order would change
-    with the seed) and are listed in id order within the tie."""
+    """Sort by elpd, best first, with ties within Monte Carlo error.
+
+    Candidates whose elpd differ by at most ``rules.TIE_MCSE_FACTOR`` combined Monte
+    Carlo SE of the two estimates are tied (their order would change with the seed) and
+    are listed in id order within the tie.
+
+    Parameters
+    ----------
+    ranked : list
+        Candidate results with ``id`` and ``oos`` (elpd, mcse); their ``tied_with`` is set.
+
+    Returns
+    -------
+    list
+        The same results, ordered.
+    """
     ordered = sorted(ranked, key=lambda r: -r.oos.elpd)
     tiers: list[list] = []
     for r in ordered:
@@ -438,17 +585,33 @@ def _own_kind(position: int, tied_with_best: bool, diff: float, diff_se: float) 
 
 
 def standings(rows: Sequence[dict]) -> dict[str, Standing]:
-    """The standing of every ranked candidate from the comparison's rows (best first,
-    candidates tied within Monte Carlo error next to each other, each row with ``id``,
-    ``label``, ``elpd_diff``, ``elpd_diff_se`` and ``tied_with``).
+    """The standing of every ranked candidate, the one rule every sentence and table reads.
 
-    One rule: each candidate's own standing follows from its difference to the best
-    (below 4 elpd: close, Sivula et al.; below two SE of the paired difference:
-    uncertain, common practice, no source for the factor 2). Candidates tied within
-    Monte Carlo error share the most favourable standing among them and one rank (their
-    order would change with the seed). A candidate is clearly worse only when every
-    candidate ranked below it is too: one ranked above a candidate that cannot be
-    separated from the best is not called clearly worse either."""
+    Each candidate's own standing follows from its difference to the best (below
+    ``rules.SMALL_DIFFERENCE`` elpd: close; below ``rules.SE_FACTOR`` SE of the paired
+    difference: uncertain). Candidates tied within Monte Carlo error share the most
+    favourable standing among them and one rank (their order would change with the
+    seed). A candidate is clearly worse only when every candidate ranked below it is too:
+    one ranked above a candidate that cannot be separated from the best is not called
+    clearly worse either.
+
+    Parameters
+    ----------
+    rows : sequence of dict
+        The comparison's rows, best first, candidates tied within Monte Carlo error next
+        to each other, each with ``id``, ``label``, ``elpd_diff``, ``elpd_diff_se`` and
+        ``tied_with``.
+
+    Returns
+    -------
+    dict of str to Standing
+        Candidate id -> its standing (kind, shared rank, position, ties, lift).
+
+    References
+    ----------
+    Sivula, Magnusson, Matamoros & Vehtari (2025), Bayesian Analysis, arXiv:2008.10296
+    (small differences); the factor 2 is common practice, no source.
+    """
     rows = list(rows)
     if not rows:
         return {}

@@ -46,9 +46,21 @@ KINDS = {"mean_difference": "difference in mean", "median_difference": "differen
 # --- one dataset's effects -------------------------------------------------------------
 
 def reference_and_levels(labels: Sequence, reference: str | None = None) -> tuple[str, list[str]]:
-    """The reference level (``reference`` when given, else the first in sorted order
-    of the text of the labels, as ``data.build_design`` codes a text column) and the
-    other levels, sorted."""
+    """The reference level of a condition and its other levels.
+
+    Parameters
+    ----------
+    labels : sequence
+        Each observation's level.
+    reference : str, optional
+        The reference level; by default the first in sorted order of the labels' text,
+        as ``data.build_design`` codes a text column.
+
+    Returns
+    -------
+    tuple
+        ``(reference, others)``, the other levels sorted.
+    """
     from contenders.inputs.data import levels_with_reference
 
     return levels_with_reference(labels, reference)
@@ -56,13 +68,28 @@ def reference_and_levels(labels: Sequence, reference: str | None = None) -> tupl
 
 def level_differences(y: np.ndarray, labels: Sequence, statistic: str = "mean",
                       reference: str | None = None) -> dict[str, np.ndarray]:
-    """Difference of ``statistic`` (``mean`` or ``median``) of the outcome between each
-    level of ``labels`` and the reference level, along the last axis of ``y``.
+    """Difference of a statistic of the outcome between each level and the reference.
 
-    Returns ``{level: values}``; ``values`` has the shape of ``y`` without its last
-    axis. Medians use NumPy's default linear interpolation (type 7 of Hyndman & Fan
-    1996), as the checks do. A dataset holding a non-finite value anywhere gives NaN
-    (as in ``statistics.compute``), even where a median would stay finite."""
+    Medians use NumPy's default linear interpolation (type 7 of Hyndman & Fan 1996), as
+    the checks do. A dataset holding a non-finite value anywhere gives NaN (as in
+    ``features.compute``), even where a median would stay finite.
+
+    Parameters
+    ----------
+    y : numpy.ndarray
+        Datasets along the last axis, shape (N,) or (S, N).
+    labels : sequence
+        Each observation's level, length N.
+    statistic : str
+        ``mean`` or ``median``.
+    reference : str, optional
+        See ``reference_and_levels``.
+
+    Returns
+    -------
+    dict of str to numpy.ndarray
+        Level -> level minus reference, of the shape of ``y`` without its last axis.
+    """
     y = np.asarray(y, dtype=float)
     text = np.asarray(labels).astype(str)
     ref, others = reference_and_levels(text, reference)
@@ -78,10 +105,23 @@ def level_differences(y: np.ndarray, labels: Sequence, statistic: str = "mean",
 
 
 def slope(y: np.ndarray, x: Sequence[float]) -> np.ndarray:
-    """Least-squares slope of ``y`` on ``x`` (with an intercept) along the last axis:
+    """Least-squares slope of ``y`` on ``x`` (with an intercept) along the last axis.
+
     sum((x - mean x) y) / sum((x - mean x)^2), the ordinary least-squares estimate of a
-    straight line. It is the marginal slope, not adjusted for other predictors. A
-    dataset holding a non-finite value gives NaN."""
+    straight line: the marginal slope, not adjusted for other predictors.
+
+    Parameters
+    ----------
+    y : numpy.ndarray
+        Datasets along the last axis, shape (N,) or (S, N).
+    x : sequence of float
+        The predictor, length N (not constant).
+
+    Returns
+    -------
+    numpy.ndarray
+        The slope of each dataset; NaN for a dataset holding a non-finite value.
+    """
     y = np.asarray(y, dtype=float)
     x = np.asarray(x, dtype=float)
     dx = x - x.mean()
@@ -91,8 +131,20 @@ def slope(y: np.ndarray, x: Sequence[float]) -> np.ndarray:
 
 
 def numeric_columns(table: pd.DataFrame, columns: Sequence[str]) -> list[str]:
-    """The columns among ``columns`` that ``data.build_design`` treats as numeric
-    (numeric dtype, not boolean)."""
+    """The columns that ``data.build_design`` treats as numeric.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        The design's table.
+    columns : sequence of str
+        Candidate column names.
+
+    Returns
+    -------
+    list of str
+        Those present with a numeric, non-boolean dtype, in order.
+    """
     return [c for c in columns if c in table.columns and pd.api.types.is_numeric_dtype(table[c])
             and not pd.api.types.is_bool_dtype(table[c])]
 
@@ -125,8 +177,20 @@ class Effect:
 
 
 def summarise(draws: np.ndarray, level: float = LEVEL) -> tuple[float, float, float, int]:
-    """Mean and central ``level`` interval (quantiles, NumPy's linear interpolation) of
-    the finite draws, and their count; NaN when there are none."""
+    """Mean and central interval of the finite draws.
+
+    Parameters
+    ----------
+    draws : numpy.ndarray
+        Draws of one effect.
+    level : float
+        Probability of the central interval (quantiles, NumPy's linear interpolation).
+
+    Returns
+    -------
+    tuple
+        ``(mean, lower, upper, count)``; NaN and 0 when no draw is finite.
+    """
     d = np.asarray(draws, dtype=float)
     d = d[np.isfinite(d)]
     if d.size == 0:
@@ -153,14 +217,33 @@ def effect_draws(
 ) -> list[Effect]:
     """Every effect of one candidate, from its replicated datasets.
 
-    ``y_rep`` is (draws, N) and ``y`` (N,), in the outcome's own units; ``table`` holds
-    the rows of the design in the same order (``Design.table``). For each condition
-    column, each level other than the reference gives a difference in mean and a
-    difference in median (level minus reference); each numeric column among
-    ``predictors`` gives a least-squares slope in outcome units per unit of that
-    column, from the raw column (not the centred and scaled one the candidates see).
-    ``reference`` maps a condition column to its reference level (by default the
-    first level in sorted order). At most ``max_draws`` evenly spaced draws are used."""
+    For each condition column, each level other than the reference gives a difference in
+    mean and a difference in median (level minus reference); each numeric column among
+    ``predictors`` gives a least-squares slope in outcome units per unit of that column,
+    from the raw column (not the centred and scaled one the candidates see).
+
+    Parameters
+    ----------
+    y_rep : numpy.ndarray
+        Replicated datasets, shape (draws, N), in the outcome's own units.
+    y : numpy.ndarray
+        Observed values, shape (N,).
+    table : pandas.DataFrame or None
+        The rows of the design in the same order (``Design.table``).
+    conditions : sequence of str
+        Condition columns.
+    predictors : sequence of str
+        Predictor columns (numeric ones give slopes).
+    max_draws : int
+        At most this many evenly spaced draws are used.
+    reference : mapping of str to str, optional
+        Condition column -> its reference level.
+
+    Returns
+    -------
+    list of Effect
+        Observed value and replicated draws of each effect.
+    """
     reference = dict(reference or {})
     if table is None or y_rep is None or np.size(y_rep) == 0:
         return []
@@ -189,10 +272,28 @@ def effect_draws(
 # --- across candidates ------------------------------------------------------------------
 
 def allocate(weights: Sequence[float], size: int) -> np.ndarray:
-    """Split ``size`` draws among candidates in proportion to ``weights``: each gets
-    the whole part of weight * size, and the draws left over go one each to the largest
-    remainders (ties to the earlier candidate). The largest-remainder rule of
-    apportionment (Hamilton's method; common practice, no source)."""
+    """Split ``size`` draws among candidates in proportion to ``weights``.
+
+    Each gets the whole part of weight * size, and the draws left over go one each to
+    the largest remainders (ties to the earlier candidate).
+
+    Parameters
+    ----------
+    weights : sequence of float
+        Finite, non-negative, not all zero.
+    size : int
+        Draws to split.
+
+    Returns
+    -------
+    numpy.ndarray
+        Integer count per candidate, summing to ``size``.
+
+    References
+    ----------
+    The largest-remainder rule of apportionment (Hamilton's method; common practice, no
+    source).
+    """
     w = np.asarray(weights, dtype=float)
     if w.ndim != 1 or w.size == 0 or np.any(~np.isfinite(w)) or np.any(w < 0) or w.sum() <= 0:
         raise ValueError("weights must be finite, non-negative and not all zero")
@@ -210,16 +311,31 @@ def combine(
     rng: np.random.Generator,
     size: int | None = None,
 ) -> np.ndarray:
-    """A sample from the mixture of the candidates' replicated effect draws with the
-    given (stacking) weights.
+    """A sample from the mixture of the candidates' replicated effect draws.
 
-    Method: ``allocate`` fixes how many of the ``size`` combined draws come from each
-    candidate (its weight times ``size``, rounded by largest remainder), so a
-    candidate's share is exact to one draw rather than random; the draws themselves
-    are taken from the candidate's finite draws by ``rng`` without replacement (when
-    more are needed than it has, every draw is used whole times and the rest are taken
-    without replacement). Deterministic given the generator's seed. ``size`` defaults
-    to the largest number of draws of any candidate with positive weight."""
+    ``allocate`` fixes how many of the ``size`` combined draws come from each candidate
+    (its weight times ``size``, rounded by largest remainder), so a candidate's share is
+    exact to one draw rather than random; the draws themselves are taken from the
+    candidate's finite draws by ``rng`` without replacement (when more are needed than it
+    has, every draw is used whole times and the rest are taken without replacement).
+
+    Parameters
+    ----------
+    per_candidate_draws : sequence of numpy.ndarray
+        Each candidate's draws of the effect.
+    weights : sequence of float
+        One (stacking) weight per candidate.
+    rng : numpy.random.Generator
+        The generator; the result is deterministic given its seed.
+    size : int, optional
+        Combined draws; by default the largest number of draws of any candidate with
+        positive weight.
+
+    Returns
+    -------
+    numpy.ndarray
+        The combined draws (empty when no candidate has weight and draws).
+    """
     draws = [np.asarray(d, dtype=float)[np.isfinite(np.asarray(d, dtype=float))] for d in per_candidate_draws]
     w = np.asarray(weights, dtype=float)
     if len(draws) != w.size:
@@ -240,7 +356,18 @@ def combine(
 
 
 def direction(lower: float, upper: float) -> str:
-    """``above zero``, ``below zero`` or ``includes zero``, from an interval."""
+    """Where an interval lies with respect to zero.
+
+    Parameters
+    ----------
+    lower, upper : float
+        The interval's ends.
+
+    Returns
+    -------
+    str
+        ``above zero``, ``below zero`` or ``includes zero`` (fixed codes, shown as they are).
+    """
     if lower > 0:
         return "above zero"
     if upper < 0:
@@ -313,15 +440,31 @@ class EffectAcross:
 def effects_across(results: Sequence, comparison_rows: Sequence[Mapping], seed: int = 0,
                    min_weight: float = MIN_WEIGHT) -> list[EffectAcross]:
     """Gather each effect across candidates, combine the ranked candidates' draws by
-    stacking weight, and read whether they agree (``agreement_reading``; the sentence is
-    left empty for ``contenders.output.readings.compare_effects`` to write).
+    stacking weight, and read whether they agree (``agreement_reading``).
 
-    ``results`` are candidate results with ``id``, ``label``, ``status`` and
-    ``effects`` (lists of :class:`Effect`); only those whose status is in ``SAMPLED``
-    (ranked, or sampled but unhealthy) are shown. ``comparison_rows`` are the ranked
-    rows (``id``, ``rank``, ``stacking_weight``), best first. Rows of the output come
-    in that order, then candidates that were not ranked (weight None). The combination
-    uses the generator ``numpy.random.default_rng([seed, k])`` for the k-th effect."""
+    Rows of the output come in the ranking's order, then candidates that were not ranked
+    (weight None). The combination uses the generator ``numpy.random.default_rng([seed,
+    k])`` for the k-th effect. The sentence is left empty for
+    ``contenders.output.readings.compare_effects`` to write.
+
+    Parameters
+    ----------
+    results : sequence of CandidateResult
+        Candidates with ``id``, ``label``, ``status`` and ``effects`` (lists of
+        ``Effect``); only those whose status is in ``SAMPLED`` are shown.
+    comparison_rows : sequence of mapping
+        The ranked rows (``id``, ``rank``, ``stacking_weight``), best first.
+    seed : int
+        Seed of the combinations.
+    min_weight : float
+        Smallest stacking weight that counts (``rules.MIN_WEIGHT``).
+
+    Returns
+    -------
+    list of EffectAcross
+        One per effect: per-candidate rows, the stacking-weighted combination and the
+        agreement reading.
+    """
     ranked = {row["id"]: row for row in comparison_rows}
     results = [r for r in results if r.status in SAMPLED and getattr(r, "effects", None)]
     order = [r for row in comparison_rows for r in results if r.id == row["id"]]
@@ -359,7 +502,18 @@ def effects_across(results: Sequence, comparison_rows: Sequence[Mapping], seed: 
 
 
 def effects_summary(effects: Sequence[EffectAcross]) -> list[dict]:
-    """The ``effects`` block of summary.json: plain numbers, no draws."""
+    """The ``effects`` block of summary.json.
+
+    Parameters
+    ----------
+    effects : sequence of EffectAcross
+        Effects with their sentences written.
+
+    Returns
+    -------
+    list of dict
+        Plain numbers and text per effect, no draws.
+    """
     return [{
         "key": e.key, "kind": e.kind, "column": e.column, "level": e.level, "reference": e.reference,
         "description": e.title, "observed": e.observed,

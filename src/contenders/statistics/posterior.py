@@ -198,7 +198,27 @@ def diagnose(
 def just_short(health: Health, longer: float, rhat_max: float = RHAT_MAX, ess_per_chain_min: float = ESS_PER_CHAIN_MIN,
                ebfmi_min: float = EBFMI_MIN, chains: int = 4) -> bool:
     """Whether an unhealthy fit fell short on R-hat or ESS only, and by little enough that
-    chains ``longer`` times as long can be expected to settle it."""
+    chains ``longer`` times as long can be expected to settle it.
+
+    Parameters
+    ----------
+    health : Health
+        The fit's diagnostics.
+    longer : float
+        Factor of warmup and draws of the retry (1 or less: never retry).
+    rhat_max, ess_per_chain_min, ebfmi_min : float
+        The thresholds of ``diagnose``.
+    chains : int
+        Chains of the fit.
+
+    Returns
+    -------
+    bool
+        True without divergent transitions, with E-BFMI fine, R-hat below
+        max(``rules.RHAT_FAR``, ``rhat_max``) and ESS at least its floor divided by
+        ``longer`` (ESS grows about in proportion to the draws; common practice, no
+        source).
+    """
     if health.healthy or longer <= 1 or health.divergences or any(v < ebfmi_min for v in health.ebfmi):
         return False
     if not np.isfinite(health.rhat_max) or health.rhat_max >= max(RHAT_FAR, rhat_max):
@@ -217,9 +237,38 @@ def fit_with_health(
     longer: float = 1.0,
     **thresholds: float,
 ) -> tuple[Draws, Health]:
-    """Sample; on divergent transitions refit at each higher adapt_delta in turn; when the
-    result falls just short on R-hat or ESS (see :func:`just_short`), fit once more with
-    warmup and draws ``longer`` times as many."""
+    """Sample with sampler health checked, escalating adapt_delta and retrying longer.
+
+    On divergent transitions the fit is made again at each higher adapt_delta of
+    ``escalation`` in turn; when the result falls just short on R-hat or ESS
+    (``just_short``), it is fitted once more with warmup and draws ``longer`` times as
+    many. Both are recorded as findings (``escalated``, ``longer``) before the accepted
+    fit's own.
+
+    Parameters
+    ----------
+    engine : Engine
+        The sampler.
+    program : Program
+        The compiled candidate.
+    data : mapping
+        The program's data.
+    settings : SamplerSettings
+        Chains, warmup, draws, adapt_delta, seed.
+    parameters : sequence of str
+        Parameters to diagnose.
+    escalation : sequence of float
+        Higher adapt_delta values to try after divergent transitions.
+    longer : float
+        Factor of warmup and draws of the one longer retry (1: never).
+    **thresholds : float
+        ``rhat_max``, ``ess_per_chain_min``, ``ebfmi_min`` (see ``diagnose``).
+
+    Returns
+    -------
+    tuple
+        ``(draws, health)`` of the accepted fit; every attempt is in ``health.attempts``.
+    """
     steps = [settings.adapt_delta] + sorted(d for d in escalation if d > settings.adapt_delta)
     attempts: list[Attempt] = []
 

@@ -53,12 +53,37 @@ TENTHS = 10
 def read_bound(name: str, values: np.ndarray, finite: np.ndarray, bound: tuple[float, float],
                parameters: Mapping[str, np.ndarray] | None, needed: float,
                plausible: np.ndarray | None = None) -> dict:
-    """Where the draws of one statistic fall against its bound and whether a narrower
-    prior on one parameter can bring at least ``needed`` of them inside (see the module
-    docstring). ``parameters`` maps scalar parameter names to their prior draws, in the
-    order of the datasets; ``None`` leaves the second question open. ``plausible``
-    marks the datasets inside every bound (default: inside this one); the tenths are
-    judged by it."""
+    """Where the draws of one statistic fall against its bound, and whether a narrower prior
+    on one parameter can bring enough of them inside (see the module docstring; our own
+    rule, no source).
+
+    Parameters
+    ----------
+    name : str
+        The statistic.
+    values : numpy.ndarray
+        Its value in each prior predictive dataset.
+    finite : numpy.ndarray
+        Whether each dataset is finite throughout.
+    bound : tuple of float
+        ``(low, high)``.
+    parameters : mapping of str to numpy.ndarray or None
+        Scalar parameter name -> prior draws, in the order of the datasets; ``None``
+        leaves the second question open.
+    needed : float
+        Share of plausible datasets a tenth of one parameter must reach.
+    plausible : numpy.ndarray, optional
+        Datasets inside every bound (default: inside this one); the tenths are judged
+        by it.
+
+    Returns
+    -------
+    dict
+        ``statistic``, ``low``, ``high``, the shares ``inside``, ``below``, ``above`` and
+        ``nonfinite``, and, with ``parameters``: ``fixable``, ``reading``
+        (``narrow_one``, ``narrow_several`` or ``structure``), ``best_parameter``,
+        ``best_range`` and ``best_share``.
+    """
     low, high = bound
     values = np.asarray(values, dtype=float)
     ok = finite & (values >= low) & (values <= high)
@@ -99,10 +124,34 @@ def summarise_prior(
     implausible_share: float = IMPLAUSIBLE_SHARE,
     parameters: Mapping[str, np.ndarray] | None = None,
 ) -> PriorTrial:
-    """``y_rep`` has shape (draws, N). A draw is plausible when every bounded statistic
-    lies within [low, high]; a draw with a non-finite value is never plausible.
-    ``parameters`` (scalar parameter name -> prior draws, one per dataset) lets a
-    flagged trial say whether a narrower prior can fix each failing bound."""
+    """Summary of a candidate's prior predictive draws against the plausibility bounds.
+
+    A draw is plausible when every bounded statistic lies within [low, high]; a draw with
+    a non-finite value is never plausible. The message is left empty for
+    ``contenders.output.readings.word_prior`` to write.
+
+    Parameters
+    ----------
+    y_rep : numpy.ndarray
+        Prior predictive datasets, shape (draws, N).
+    y : numpy.ndarray
+        Observed values, shape (N,).
+    bounds : mapping of str to tuple of float
+        Statistic -> ``(low, high)``.
+    thresholds : sequence of float
+        Thresholds of the "share below" statistics.
+    implausible_share : float
+        Priors are flagged below this share of plausible datasets (``rules.IMPLAUSIBLE_SHARE``).
+    parameters : mapping of str to numpy.ndarray, optional
+        Scalar parameter name -> prior draws, one per dataset; lets a flagged trial say
+        whether a narrower prior can fix each failing bound (``read_bound``).
+
+    Returns
+    -------
+    PriorTrial
+        Statistic rows, the plausible share, each bound's share, whether flagged, and
+        the reading of each failing bound.
+    """
     y_rep = np.asarray(y_rep, dtype=float)
     reps = st.compute(y_rep, thresholds)
     obs = st.compute(y, thresholds)

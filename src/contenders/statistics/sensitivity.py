@@ -89,11 +89,26 @@ class Sensitivity:
 
 
 def power_scale_log_weights(log_component: np.ndarray, alpha: float) -> tuple[np.ndarray, float]:
-    """Normalised log importance weights of draws from the posterior for the posterior
-    with one component (prior or likelihood, ``log_component`` its log density at each
-    draw) raised to the power ``alpha``: ``log w_s = (alpha - 1) log p(theta_s)``,
-    Pareto-smoothed with :func:`arviz.psislw`. Returns the weights and Pareto k
-    (Kallioinen et al. 2023, Section 2.3)."""
+    """Importance weights for power-scaling one component of the posterior.
+
+    Parameters
+    ----------
+    log_component : numpy.ndarray
+        The component's (prior or likelihood) log density at each posterior draw.
+    alpha : float
+        The power.
+
+    Returns
+    -------
+    tuple
+        ``(log_weights, pareto_k)``: normalised ``log w_s = (alpha - 1) log p(theta_s)``,
+        Pareto-smoothed with ArviZ's ``psislw``, and the Pareto k of the weights.
+
+    References
+    ----------
+    Kallioinen, Paananen, Bürkner & Vehtari (2023), Statistics and Computing 34, 57,
+    section 2.3; Vehtari, Simpson, Gelman, Yao & Gabry (2024), JMLR 25(72) (PSIS).
+    """
     import arviz as az
 
     log_component = np.asarray(log_component, dtype=float).reshape(-1)
@@ -104,8 +119,23 @@ def power_scale_log_weights(log_component: np.ndarray, alpha: float) -> tuple[np
 
 
 def power_scaled_mean(values: np.ndarray, log_component: np.ndarray, alpha: float) -> tuple[float, float]:
-    """The posterior mean of ``values`` after power-scaling one component by ``alpha``,
-    estimated with the smoothed importance weights; returns ``(mean, pareto_k)``."""
+    """The posterior mean of ``values`` after power-scaling one component by ``alpha``.
+
+    Parameters
+    ----------
+    values : numpy.ndarray
+        A quantity at each posterior draw.
+    log_component : numpy.ndarray
+        The component's log density at each draw.
+    alpha : float
+        The power.
+
+    Returns
+    -------
+    tuple
+        ``(mean, pareto_k)``, estimated with the smoothed importance weights
+        (``power_scale_log_weights``).
+    """
     lw, k = power_scale_log_weights(log_component, alpha)
     w = np.exp(lw - lw.max())
     return float(np.sum(w * np.asarray(values, dtype=float).reshape(-1)) / np.sum(w)), k
@@ -122,13 +152,37 @@ def _reading(prior: float, likelihood: float, threshold: float) -> str:
 
 def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
                   log_lik: str = "log_lik", threshold: float = THRESHOLD) -> Sensitivity | None:
-    """Prior and likelihood power-scaling sensitivity of every parameter in
-    ``parameters`` (those present in the posterior; vectors are flattened, 1-based).
+    """Prior and likelihood power-scaling sensitivity of every parameter.
 
-    ``idata`` needs the program's joint log prior density ``lprior`` as a posterior
-    variable and the pointwise ``log_lik``; returns ``None`` when the program has no
-    ``lprior``. A failure of the computation is returned in ``problem``, never raised,
-    so it cannot stop the candidate's other trials."""
+    A failure of the computation is returned in ``problem``, never raised, so it cannot
+    stop the candidate's other trials.
+
+    Parameters
+    ----------
+    idata : arviz.InferenceData
+        The fit; needs the program's joint log prior density ``lprior`` as a posterior
+        variable and the pointwise ``log_lik``.
+    parameters : sequence of str
+        Parameters to read (those present in the posterior; vectors are flattened,
+        1-based; matrix-valued ones are left out).
+    lprior, log_lik : str
+        Names of the log prior and the pointwise log-likelihood.
+    threshold : float
+        Sensitivity worth a look (``rules.SENSITIVITY_THRESHOLD``).
+
+    Returns
+    -------
+    Sensitivity or None
+        Per parameter the diagnostic on all draws, its range over single chains and the
+        reading code; the Pareto k of the weights per component. ``None`` when the
+        program has no ``lprior``.
+
+    References
+    ----------
+    Kallioinen, Paananen, Bürkner & Vehtari (2023), "Detecting and diagnosing prior and
+    likelihood sensitivity with power-scaling", Statistics and Computing 34, 57
+    (arXiv:2107.14054); computed with ArviZ's ``psens``.
+    """
     import arviz as az
     import xarray as xr
 
