@@ -11,9 +11,8 @@ import pandas as pd
 import pytest
 from scipy import optimize, stats as sps
 
-from contenders.statistics.compare import (
-    compare_candidates, estimate, log_mean_exp, make_folds, weights,
-)
+from contenders.output.readings import compare_candidates
+from contenders.statistics.compare import estimate, log_mean_exp, make_folds, weights
 from contenders.inputs.config import RunConfig
 from contenders.pipeline.runner import load_design, run
 from contenders.records import CandidateResult

@@ -7,8 +7,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from contenders.statistics.effects import (
-    agreement, allocate, combine, compare_effects, effect_draws, level_differences, slope, summarise)
+from contenders.output.readings import agreement, compare_effects
+from contenders.statistics.effects import allocate, combine, effect_draws, level_differences, slope, summarise
 
 
 # --- one dataset's effects against pandas and NumPy -------------------------------------

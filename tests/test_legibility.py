@@ -11,7 +11,7 @@ import pytest
 
 from contenders.output.report import _effects_table
 from contenders.output import figures
-from contenders.statistics.features import describe
+from contenders.output.readings import describe
 
 LONG = "Lognormal with guesses and lapses"
 
@@ -210,13 +210,14 @@ def test_pareto_k_bands_are_labelled_from_the_run_threshold():
 
 
 def test_sensitivity_reading_codes():
-    from contenders.statistics.sensitivity import READINGS, _reading
+    from contenders.output.readings import SENSITIVITY_READINGS as READINGS
+    from contenders.statistics.sensitivity import READING_CODES, _reading
     assert _reading(0.2, 0.3, 0.05) == "pulled_both_ways"
     assert _reading(0.2, 0.01, 0.05) == "set_by_prior"
     assert _reading(0.01, 0.3, 0.05) == "led_by_data"
     assert _reading(0.01, 0.01, 0.05) == "steady"
     assert _reading(float("nan"), 0.3, 0.05) == ""
-    assert all(READINGS[k] for k in READINGS)
+    assert all(READINGS[k] for k in READINGS) and set(READINGS) == set(READING_CODES)
 
 
 def test_worst_k_figure_draws_an_infinite_k_at_the_edge(drawn):

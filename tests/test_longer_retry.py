@@ -14,6 +14,7 @@ import pytest
 from contenders.inputs.config import QUICK_PROFILE, RunConfig, load
 from contenders.engines.base import Draws, Program, SamplerSettings
 from contenders.errors import UserError
+from contenders.output.readings import word_health
 from contenders.statistics.posterior import fit_with_health
 
 
@@ -66,6 +67,7 @@ def test_a_fit_just_short_on_rhat_is_fitted_again_longer_and_passes():
     # the longer fit's chains agree (the shift was chance in the short one)
     engine = FakeEngine(lambda s: SHORT if s.draws == 1000 else 0.0)
     draws, health = fit_with_health(engine, PROGRAM, {}, SETTINGS, ["mu"], (0.95, 0.99), 2.0)
+    word_health(health)
     assert [(s.warmup, s.draws, s.adapt_delta) for s in engine.calls] == [(1000, 1000, 0.8), (2000, 2000, 0.8)]
     assert health.healthy and health.draws == 2000 and health.warmup == 2000
     assert draws.settings.draws == 2000
@@ -79,7 +81,7 @@ def test_a_fit_just_short_on_rhat_is_fitted_again_longer_and_passes():
 def test_a_longer_fit_that_still_fails_is_said_so_and_not_retried_again():
     # just short at 1,000 draws, further off at 2,000 (chains that really disagree)
     engine = FakeEngine(lambda s: SHORT if s.draws == 1000 else 0.6)
-    _draws, health = fit_with_health(engine, PROGRAM, {}, SETTINGS, ["mu"], (0.95, 0.99), 2.0)
+    health = word_health(fit_with_health(engine, PROGRAM, {}, SETTINGS, ["mu"], (0.95, 0.99), 2.0)[1])
     assert len(engine.calls) == 2
     assert not health.healthy and health.draws == 2000
     assert health.warnings[0].endswith("the longer fit does not pass either")

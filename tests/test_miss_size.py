@@ -17,7 +17,8 @@ import pytest
 from scipy import stats as sps
 
 from contenders.cli import main
-from contenders.statistics.compare import OutOfSample, compare_candidates
+from contenders.output.readings import CHECK_READINGS, compare_candidates
+from contenders.statistics.compare import OutOfSample
 from contenders.inputs.config import RunConfig, apply_flags, from_mapping, parse_flag
 from contenders.errors import UserError
 from contenders.output.format import miss as miss_text
@@ -59,7 +60,7 @@ def test_miss_is_observed_minus_the_nearest_interval_end():
 ])
 def test_reading_codes(p, size, relevant, code):
     assert st.reading(p, size, relevant, 0.01) == code
-    assert code in st.READINGS
+    assert code in st.READING_CODES
 
 
 def test_miss_text_in_each_unit():
@@ -322,6 +323,6 @@ def test_run_reports_miss_and_reading_against_closed_form(tmp_path):
     assert {"miss", "miss_share_sd", "relevant", "reading"} <= set(grouped[0])
     html = (out / "report.html").read_text()
     assert "Miss beyond the interval (share of SD)" in html
-    assert st.READINGS["small"] + " (0.5)" in html
+    assert CHECK_READINGS["small"] + " (0.5)" in html
     assert "Relevant sizes set ([checks] relevant): mean = 0.5" in html
     assert "miss +" in html                                   # under the p-value in the matrix

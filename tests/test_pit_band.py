@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from contenders.statistics.checks import (QUANTILE_LEVELS, band_limits, band_text, leaves_band, quantile_checks,
-                                      quantile_misses, uniformity_test)
+from contenders.output.readings import band_text, quantile_misses
+from contenders.statistics.checks import QUANTILE_LEVELS, band_limits, leaves_band, quantile_checks, uniformity_test
 
 
 @pytest.mark.parametrize("n, alpha", [(50, 0.05), (200, 0.01)])
@@ -108,7 +108,7 @@ def test_quantile_checks_name_the_tail_a_candidate_misses():
 def test_a_loo_pit_outside_the_band_is_named_in_the_misses():
     from types import SimpleNamespace
 
-    from contenders.statistics.compare import _misfit
+    from contenders.output.readings import _misfit
     from contenders.output.tables import misfits
     from contenders.statistics.checks import PredictiveChecks
 

@@ -164,7 +164,7 @@ def test_trials_and_fit_keys_of_a_fixed_configuration_are_the_recorded_ones(monk
     from contenders.inputs.candidates import inputs_for
     from contenders.inputs.config import quick_profile
     from contenders.pipeline import store
-    from contenders.pipeline.runner import _settings, load_design, select_candidates
+    from contenders.pipeline.runner import load_design, sampler_settings, select_candidates
 
     monkeypatch.setattr(contenders, "__version__", "0.0-pinned")
     monkeypatch.setattr(store, "TRIALS_FORMAT", 11)
@@ -176,7 +176,7 @@ def test_trials_and_fit_keys_of_a_fixed_configuration_are_the_recorded_ones(monk
     assert store.trials_key(lognormal, design, quick_profile(cfg), "engine-pinned") == \
         "f3f9c563a1fe45da5fb5246e1afeb19b43a11921852ffe99348f0cd49a7aa2ed"
     data = inputs_for(lognormal, design, None, cfg.hyperparameters.get("lognormal"))
-    assert store.fit_key(lognormal.code, data, _settings(cfg), "engine-pinned") == \
+    assert store.fit_key(lognormal.code, data, sampler_settings(cfg), "engine-pinned") == \
         "342270f7908517112bf786008bdb4112a57a64d1db0db4fd901ac5e1ecec1763"
     # and the same configuration given as flags gives the same key
     flags = _from_cli(["run", "--config", str(CASES / "icons.toml"), "--out", "elsewhere", "--store", "x", "--quiet"])

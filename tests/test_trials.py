@@ -204,13 +204,14 @@ def test_failing_bound_that_a_narrower_prior_fixes_names_the_parameter_and_range
     200 values falls below 100 ms for large sigma only. The lowest tenth of sigma's draws
     keeps every minimum inside (500 - 3.5 * sigma > 100 for sigma below about 110), so
     the reading names sigma and its lowest tenth (checked against a direct count)."""
+    from contenders.output.readings import word_prior
     from contenders.statistics.prior import summarise_prior
 
     rng = np.random.default_rng(4)
     sigma = np.abs(rng.normal(0, 300, 1000))
     y_rep = rng.normal(500, sigma[:, None], (1000, 200))
-    p = summarise_prior(y_rep, rng.normal(500, 50, 200), {"min": (100.0, np.inf)}, (), 0.5,
-                        parameters={"sigma": sigma, "noise": rng.normal(size=1000)})
+    p = word_prior(summarise_prior(y_rep, rng.normal(500, 50, 200), {"min": (100.0, np.inf)}, (), 0.5,
+                                   parameters={"sigma": sigma, "noise": rng.normal(size=1000)}))
     assert p.flagged
     (r,) = p.failing
     assert r["statistic"] == "min" and r["reading"] == "narrow_one" and r["best_parameter"] == "sigma"
@@ -230,6 +231,7 @@ def test_failing_bound_from_the_family_structure_says_priors_will_not_fix_it():
     2000)^1440 (exact computation), and the lognormal part is narrow and high at once,
     so no tenth of any one parameter's draws gives even a quarter of plausible datasets
     under the demo's bounds."""
+    from contenders.output.readings import word_prior
     from contenders.statistics.prior import summarise_prior
 
     rng = np.random.default_rng(5)
@@ -244,12 +246,12 @@ def test_failing_bound_from_the_family_structure_says_priors_will_not_fix_it():
     y_rep[guess] = rng.uniform(0, 2000, guess.sum())
     # the demo's bounds (demo_data/demo.toml)
     bounds = {"mean": (200.0, 3000.0), "min": (100.0, np.inf), "max": (0.0, 20000.0)}
-    p = summarise_prior(y_rep, np.full(N, 600.0), bounds, (), 0.5,
-                        parameters={"stray": stray, "sigma": sigma, "mu": mu})
+    p = word_prior(summarise_prior(y_rep, np.full(N, 600.0), bounds, (), 0.5,
+                                   parameters={"stray": stray, "sigma": sigma, "mu": mu}))
     r = p.failing[0]
     assert r["reading"] == "structure" and r["below"] > 0.8 and r["best_share"] < 0.25, r
     assert "narrower priors will not fix this" in p.message
     assert "tighten this candidate's priors" not in p.message
     # without the parameters' draws the reading says which side fails and nothing more
-    bare = summarise_prior(y_rep, np.full(N, 600.0), {"min": (100.0, np.inf)}, (), 0.5)
+    bare = word_prior(summarise_prior(y_rep, np.full(N, 600.0), {"min": (100.0, np.inf)}, (), 0.5))
     assert bare.failing[0]["fixable"] is None and f"{100 * r['below']:.0f} % below 100" in bare.message

@@ -11,7 +11,8 @@ import numpy as np
 import pytest
 
 from contenders.inputs.candidates import support_problem
-from contenders.statistics.compare import OutOfSample, compare_candidates, standings
+from contenders.output.readings import compare_candidates, standing_why, word_health
+from contenders.statistics.compare import OutOfSample, standings
 from contenders.engines.base import Draws, SamplerSettings
 from contenders.output.report import _certainty
 from contenders.output import format as fmt
@@ -146,8 +147,8 @@ def test_standing_rule_keeps_clearly_worse_a_tail():
                     row("e", 31, 20), row("f", 90, 10)])
     assert [st[c].kind for c in "abcdef"] == ["best", "tied", "close", "uncertain", "uncertain", "worse"]
     assert st["a"].rank == st["b"].rank == "1–2" and st["f"].rank == "6"
-    assert st["d"].why.startswith("ranked above E, which cannot be separated from the best")
-    assert st["e"].why == "" and st["f"].why == ""
+    assert standing_why(st["d"]).startswith("ranked above E, which cannot be separated from the best")
+    assert standing_why(st["e"]) == "" and standing_why(st["f"]) == ""
 
 
 # --- the lead -----------------------------------------------------------------------------------
@@ -248,7 +249,7 @@ def test_sampler_health_message_shows_the_digits_of_the_failure():
     threshold = round(rhat, 3) - 0.0001 if round(rhat, 3) > rhat else rhat - (rhat - round(rhat, 3)) / 2
     assert round(rhat, 3) <= threshold + 1e-4 and rhat > threshold
     draws = Draws(idata, "test", 0.0, 0.0, SamplerSettings(chains=4, draws=500))
-    h = diagnose(draws, ["mu"], rhat_max=threshold, ess_per_chain_min=1.0, ebfmi_min=0.0)
+    h = word_health(diagnose(draws, ["mu"], rhat_max=threshold, ess_per_chain_min=1.0, ebfmi_min=0.0))
     message = next(p for p in h.problems if p.startswith("R-hat"))
     shown = float(re.match(r"R-hat ([0-9.]+) for mu is not below", message).group(1))
     assert shown >= threshold and shown == pytest.approx(rhat, abs=1e-4), (message, rhat, threshold)
@@ -287,7 +288,7 @@ def test_verdict_advice_on_flagged_priors_follows_what_the_prior_trial_found():
     # The demo's case (README, Prior predictive trial): the lognormal's failing minimum can
     # be fixed by a narrower prior on one parameter, while the guesses of the lognormal
     # with guesses and lapses put the minimum below its bound whatever the priors.
-    from contenders.statistics.compare import _prior_advice
+    from contenders.output.readings import _prior_advice
 
     def flagged(label, *readings):
         return SimpleNamespace(label=label, prior=SimpleNamespace(failing=[{"reading": r} for r in readings]))

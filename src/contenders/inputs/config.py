@@ -17,6 +17,7 @@ from typing import Any, Mapping
 
 from contenders.errors import UserError
 from contenders.inputs.settings import BY_NAME, SECTIONS, SETTINGS, Setting, defaults_from_table
+from contenders import rules
 
 #: Test statistics computed on every dataset (observed, prior and posterior replicates).
 DEFAULT_STATISTICS = ("mean", "sd", "min", "max", "q05", "q50", "q95", "skewness")
@@ -340,7 +341,7 @@ def apply_flags(cfg: RunConfig, flags: Mapping[str, Any], base: Path | None = No
 #: ESS 246 to 365 of 1,000 draws) and ranked only the other two, which said more about
 #: the short chains than about the candidates. Flags given beside ``--quick`` still win.
 QUICK_PROFILE: dict[str, Any] = {"chains": 4, "warmup": 250, "draws": 250, "prior_draws": 200,
-                                 "escalation": (), "longer_retry": 1.0, "rhat_max": 1.05,
+                                 "escalation": (), "longer_retry": 1.0, "rhat_max": rules.RHAT_FAR,
                                  "ess_per_chain_min": 25.0}
 #: Where a quick look writes when no output folder is given (a full run's is reports/run).
 QUICK_OUT = Path("reports/quick")

@@ -16,6 +16,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from contenders import rules
+
 #: The TOML sections, in the order messages list them. A section's keys are listed in
 #: the order of their fields in ``RunConfig``.
 SECTIONS = ("data", "candidates", "sampler", "checks", "comparison", "health", "run", "recovery",
@@ -137,28 +139,28 @@ SETTINGS: tuple[Setting, ...] = (
     Setting("bounds", "bounds", "checks", "bounds", "--bounds", "STAT=LOW:HIGH,...", {},
             enters_trials_key=True,
             help="plausibility bounds for the prior trial, e.g. mean=150:5000,min=100:inf"),
-    Setting("rhat_max", "posfloat", "health", "rhat_max", "--rhat-max", "X", 1.01,
+    Setting("rhat_max", "posfloat", "health", "rhat_max", "--rhat-max", "X", rules.RHAT_MAX,
             enters_trials_key=True,
             help="R-hat must be below this"),
-    Setting("ess_per_chain_min", "posfloat", "health", "ess_per_chain_min", "--ess-per-chain-min", "X", 100.0,
+    Setting("ess_per_chain_min", "posfloat", "health", "ess_per_chain_min", "--ess-per-chain-min", "X", rules.ESS_PER_CHAIN_MIN,
             enters_trials_key=True,
             help="bulk and tail ESS must exceed this many per chain"),
-    Setting("ebfmi_min", "posfloat", "health", "ebfmi_min", "--ebfmi-min", "X", 0.3,
+    Setting("ebfmi_min", "posfloat", "health", "ebfmi_min", "--ebfmi-min", "X", rules.EBFMI_MIN,
             enters_trials_key=True,
             help="E-BFMI below this flags a chain"),
-    Setting("implausible_share", "prob", "checks", "implausible_share", "--implausible-share", "P", 0.5,
+    Setting("implausible_share", "prob", "checks", "implausible_share", "--implausible-share", "P", rules.IMPLAUSIBLE_SHARE,
             enters_trials_key=True,
             help="flag candidates whose share of plausible prior draws is below this"),
     Setting("check_draws", "posint", "checks", "check_draws", "--check-draws", "N", 1000,
             enters_trials_key=True,
             help="replicated datasets used for the predictive checks"),
-    Setting("ppp_extreme", "prob", "checks", "ppp_extreme", "--ppp-extreme", "P", 0.01,
+    Setting("ppp_extreme", "prob", "checks", "ppp_extreme", "--ppp-extreme", "P", rules.PPP_EXTREME,
             enters_trials_key=True,
             help="posterior predictive p-values below this or above 1 minus this count as misfit"),
     Setting("relevant", "sizes", "checks", "relevant", "--relevant", "STAT=SIZE,...", {},
             help="smallest miss that matters per statistic, in its units (outcome units; a share for below_T), "
                  "e.g. mean=10,min=50: the verdict then names only misses larger than this"),
-    Setting("pit_alpha", "prob", "checks", "pit_alpha", "--pit-alpha", "P", 0.01,
+    Setting("pit_alpha", "prob", "checks", "pit_alpha", "--pit-alpha", "P", rules.PIT_ALPHA,
             enters_trials_key=True,
             help="LOO-PIT values count as miscalibrated when their ECDF leaves the simultaneous 1 - this band"),
     Setting("cross_validation", "cv", "comparison", "cross_validation", "--cross-validation", "METHOD", "loo",

@@ -42,8 +42,8 @@ from matplotlib.ticker import (  # noqa: E402
 from markupsafe import Markup, escape  # noqa: E402
 import numpy as np  # noqa: E402
 
-from contenders.statistics.compare import SMALL_DIFFERENCE  # noqa: E402
-from contenders.statistics.features import describe  # noqa: E402
+from contenders.rules import PARETO_K_GOOD, SE_FACTOR, SMALL_DIFFERENCE  # noqa: E402
+from contenders.output.readings import describe  # noqa: E402
 from contenders.output.figure_records import Lineup, Rendered, next_prefix  # noqa: E402  (records readable without matplotlib)
 from contenders.output.out_of_sample import STANDING_WORDS, standing_of, worst  # noqa: E402  (no matplotlib there)
 
@@ -388,9 +388,9 @@ def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
     d = np.array([r["elpd_diff"] for r in rows], dtype=float)
     se = np.nan_to_num(np.array([r["elpd_diff_se"] for r in rows], dtype=float))
     ypos = np.arange(n)[::-1]
-    hi = float(np.nanmax(d + 2 * se))
+    hi = float(np.nanmax(d + SE_FACTOR * se))
     right = max(hi * 1.06, 2.5 * SMALL_DIFFERENCE)
-    left = min(-0.04 * right, float(np.nanmin(d - 2 * se)) * 1.05)
+    left = min(-0.04 * right, float(np.nanmin(d - SE_FACTOR * se)) * 1.05)
     ax.axvspan(left, SMALL_DIFFERENCE, color=BAND, zorder=0, linewidth=0)
     ax.text(SMALL_DIFFERENCE, n - 0.35, f" under {SMALL_DIFFERENCE:g}: too small to matter", ha="left",
             va="bottom", fontsize=7, color="#555555", clip_on=False)
@@ -401,7 +401,7 @@ def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
         marker, face = STANDING_MARK.get(kind, STANDING_MARK["uncertain"])
         words = STANDING_WORDS.get(kind, kind)
         if r["rank"] != 1:
-            ax.hlines(y, di - 2 * s, di + 2 * s, color=POSTERIOR, linewidth=1.1, zorder=2)
+            ax.hlines(y, di - SE_FACTOR * s, di + SE_FACTOR * s, color=POSTERIOR, linewidth=1.1, zorder=2)
             ax.hlines(y, di - s, di + s, color=POSTERIOR, linewidth=2.6, zorder=2)
             di = float(di)
         else:
@@ -587,7 +587,7 @@ def pareto_k_worst(cands: Sequence[tuple[str, object, Sequence[int]]]) -> Render
             if int(i) in refitted:
                 ax.plot([v], [yy], marker="o", markersize=6.5, markerfacecolor="none", markeredgecolor=INK,
                         markeredgewidth=0.9, linestyle="none", zorder=4)
-        ax.axvline(0.5, color=MUTED, linestyle=(0, (1, 1.5)), linewidth=0.9)
+        ax.axvline(PARETO_K_GOOD, color=MUTED, linestyle=(0, (1, 1.5)), linewidth=0.9)
         ax.axvline(o.k_threshold, color=LIMIT, linestyle=(0, (4, 2)), linewidth=1.0)
         ax.set_yticks(y, [f"row {int(rows[i])}" + (" (k = ∞)" if np.isinf(k[i]) else "") for i in order])
         ax.tick_params(axis="y", length=0, labelsize=7)
@@ -597,7 +597,7 @@ def pareto_k_worst(cands: Sequence[tuple[str, object, Sequence[int]]]) -> Render
         ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:g}"))
         ax.spines["left"].set_visible(False)
         ax.set_title(_wrap(label, 22, 2), fontsize=7.5)
-    fig.supxlabel("Pareto k of the worst observations (dotted: 0.5; dashed vermillion: the threshold)",
+    fig.supxlabel(f"Pareto k of the worst observations (dotted: {PARETO_K_GOOD:g}; dashed vermillion: the threshold)",
                   fontsize=7.5, y=0.02)
     return render(fig, "the observations with the largest Pareto k per candidate, by row of the data file")
 
@@ -815,7 +815,7 @@ def quantile_grid(cands: Sequence[tuple[str, object]], outcome: str = "outcome",
     candidate's misses are more than four times another's, then each has its own."""
     import textwrap
 
-    from contenders.statistics.checks import quantile_misses
+    from contenders.output.readings import quantile_misses
 
     cands = [(label, c) for label, c in cands if c is not None and getattr(c, "quantiles", None)]
     if not cands:

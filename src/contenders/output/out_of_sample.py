@@ -10,7 +10,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from contenders.statistics.compare import SMALL_DIFFERENCE
+from contenders.rules import PARETO_K_GOOD, SE_FACTOR, SMALL_DIFFERENCE
 from contenders.output import format as fmt
 from contenders.output.tables import Cell, Table, n
 
@@ -44,7 +44,7 @@ def standing_of(row: dict) -> str:
     d, se = float(row["elpd_diff"]), float(row["elpd_diff_se"] or 0.0)
     if d < SMALL_DIFFERENCE:
         return "close"
-    return "worse" if d > 2 * se else "uncertain"
+    return "worse" if d > SE_FACTOR * se else "uncertain"
 
 
 def threshold_text(threshold: float) -> str:
@@ -61,9 +61,10 @@ def k_bands(threshold: float) -> list[tuple[str, float, float]]:
     threshold at or below 0.5 leaves two bands. The labels carry the exact threshold."""
     t = float(threshold)
     shown = threshold_text(t)
-    if t <= 0.5:
+    good = PARETO_K_GOOD
+    if t <= good:
         return [(f"k ≤ {shown}", -np.inf, t), (f"k > {shown}", t, np.inf)]
-    return [("k ≤ 0.5", -np.inf, 0.5), (f"0.5 < k ≤ {shown}", 0.5, t), (f"k > {shown}", t, np.inf)]
+    return [(f"k ≤ {good:g}", -np.inf, good), (f"{good:g} < k ≤ {shown}", good, t), (f"k > {shown}", t, np.inf)]
 
 
 def k_band_counts(pareto_k: np.ndarray, threshold: float) -> list[int]:

@@ -22,9 +22,10 @@ from typing import Any, Sequence
 import numpy as np
 from jinja2 import Environment, FileSystemLoader, StrictUndefined
 
-from contenders.statistics.compare import SMALL_DIFFERENCE
-from contenders.statistics.effects import MIN_WEIGHT, direction
-from contenders.statistics.features import describe
+from contenders.rules import MIN_WEIGHT, SE_FACTOR, SMALL_DIFFERENCE
+from contenders.statistics.effects import direction
+from contenders.output.readings import describe
+from contenders.output import readings
 from contenders.output import recovery_section
 from contenders.output.figure_store import drawn
 from contenders.output import format as fmt
@@ -259,10 +260,10 @@ def _certainty(result) -> Table:
         row = rows[cid]
         st = standings.get(cid)
         kind = st.kind if st else ("best" if row["rank"] == 1 else "uncertain")
-        beyond = row["rank"] > 1 and row["elpd_diff"] > 2 * row["elpd_diff_se"]   # the raw fact, for the CSV
+        beyond = row["rank"] > 1 and row["elpd_diff"] > SE_FACTOR * row["elpd_diff_se"]   # the raw fact, for the CSV
         text = STANDING_TEXT[kind].format(small=fmt.num(SMALL_DIFFERENCE))
-        if st is not None and st.why:
-            text += f" ({st.why})"
+        if st is not None and readings.standing_why(st):
+            text += f" ({readings.standing_why(st)})"
         t.add([
             Cell(row["label"], "name", cid),
             n(_with_se(row["elpd"], row["se"])),
@@ -485,7 +486,8 @@ def _check_table(checks, extreme: float, relevant=None) -> Table:
 
 def _pit_table(cands) -> Table:
     """The LOO-PIT band test per candidate: inside or not, where the ECDF leaves the band."""
-    from contenders.statistics.checks import band_text, leaves_band
+    from contenders.output.readings import band_text
+    from contenders.statistics.checks import leaves_band
 
     t = Table("loo_pit.csv", ["Candidate", "ECDF inside the band", "Where it leaves the band",
                               "Reading and what to do next"],
@@ -522,7 +524,7 @@ def _pit_table(cands) -> Table:
 def _quantile_table(cands) -> Table:
     """Where each candidate's replicated quantiles miss the observed ones; the CSV has
     every level of every candidate."""
-    from contenders.statistics.checks import quantile_misses
+    from contenders.output.readings import quantile_misses
 
     t = Table("quantiles.csv", ["Candidate", "Observed quantiles outside the replicated 95 % interval"],
               csv_headers=["id", "label", "level", "observed", "replicated_median", "lower_95", "upper_95",

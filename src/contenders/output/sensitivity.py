@@ -6,7 +6,9 @@ from __future__ import annotations
 from typing import Any, Sequence
 
 from contenders.statistics.coefficients import base_name, group_terms, sizes_of
-from contenders.statistics.sensitivity import ACT_ON, K_RELIABLE, READINGS, THRESHOLD
+from contenders.rules import SENSITIVITY_K_RELIABLE as K_RELIABLE, SENSITIVITY_THRESHOLD as THRESHOLD
+from contenders.output.readings import SENSITIVITY_READINGS as READINGS
+from contenders.statistics.sensitivity import ACT_ON
 from contenders.output import format as fmt
 from contenders.output.tables import Cell, Table, n
 

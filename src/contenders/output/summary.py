@@ -18,8 +18,9 @@ from contenders.records import CandidateResult, RunResult
 from contenders.statistics.coefficients import summary as coefficients_summary
 from contenders.statistics.compare import Comparison
 from contenders.statistics.effects import effects_summary
+from contenders.output.readings import sensitivity_summary
 from contenders.statistics.features import INTERVAL
-from contenders.statistics.sensitivity import summary as sensitivity_summary
+from contenders.rules import PPP_EXTREME
 
 
 def json_safe(value: Any) -> Any:
@@ -38,7 +39,7 @@ def json_safe(value: Any) -> Any:
     return value
 
 
-def ppc_entries(rows: Sequence[dict], ppp_extreme: float = 0.01,
+def ppc_entries(rows: Sequence[dict], ppp_extreme: float = PPP_EXTREME,
                 relevant: Mapping[str, float] | None = None) -> dict[str, dict[str, Any]]:
     """``summary.json``'s entry per statistic: observed value, p-value, the replicated
     median and 90 % interval, the miss in the statistic's units and as a share of the
@@ -56,7 +57,7 @@ def ppc_entries(rows: Sequence[dict], ppp_extreme: float = 0.01,
 
 def candidate_summary(r: CandidateResult, comparison: Comparison, cfg: RunConfig | None = None) -> dict[str, Any]:
     h, p, k, o = r.health, r.prior, r.checks, r.oos
-    extreme, relevant = (cfg.ppp_extreme, cfg.relevant) if cfg is not None else (0.01, {})
+    extreme, relevant = (cfg.ppp_extreme, cfg.relevant) if cfg is not None else (PPP_EXTREME, {})
     row = next((row for row in comparison.rows if row["id"] == r.id), {})
     return {
         "id": r.id, "label": r.label, "status": r.status, "reason": r.reason,

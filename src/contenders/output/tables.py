@@ -8,8 +8,10 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from contenders.statistics.features import READINGS, describe, named_misses, reading, unit_of
+from contenders.output.readings import CHECK_READINGS as READINGS, describe
+from contenders.statistics.features import named_misses, reading, unit_of
 from contenders.output import format as fmt
+from contenders.rules import SE_FACTOR
 
 STATUS_TEXT = {
     "ok": "✓ ranked",
@@ -94,7 +96,7 @@ def misfits(checks, strong: float, relevant=None) -> list[str]:
     return out
 
 
-#: The reading of a statistic as a table shows it: a mark and words (statistics.READINGS).
+#: The reading of a statistic as a table shows it: a mark and words (readings.CHECK_READINGS).
 READING_CELL = {
     "fits": ("", ""),
     "detectable": ("◆ ", "flag"),
@@ -139,18 +141,18 @@ def pit_reading(pit: np.ndarray) -> str:
     tail_se = np.sqrt(0.1 * 0.9 / size)
     mean_se = np.sqrt(1 / 12 / size)
     notes = []
-    if tails > 0.1 + 2 * tail_se:
+    if tails > 0.1 + SE_FACTOR * tail_se:
         notes.append(f"{100 * tails:.0f} % of observations fall in the outer tenth of their predictive "
                      "distributions (10 % expected): predictions are too narrow; consider a family with "
                      "more spread or heavier tails")
-    elif tails < 0.1 - 2 * tail_se:
+    elif tails < 0.1 - SE_FACTOR * tail_se:
         notes.append(f"only {100 * tails:.0f} % of observations fall in the outer tenth of their "
                      "predictive distributions (10 % expected): predictions are too wide")
     mean = float(pit.mean())
-    if mean < 0.5 - 2 * mean_se:
+    if mean < 0.5 - SE_FACTOR * mean_se:
         notes.append(f"LOO-PIT values average {mean:.2f} (0.5 expected): observations tend to fall "
                      "below their predictions, which run high")
-    elif mean > 0.5 + 2 * mean_se:
+    elif mean > 0.5 + SE_FACTOR * mean_se:
         notes.append(f"LOO-PIT values average {mean:.2f} (0.5 expected): observations tend to fall "
                      "above their predictions, which run low")
     return "; ".join(notes)

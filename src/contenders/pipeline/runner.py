@@ -14,11 +14,13 @@ import platform
 import time
 from dataclasses import dataclass, field, replace
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
 from contenders import __version__
-from contenders.statistics.compare import Plan, compare_candidates, plan_estimate
+from contenders.output.readings import compare_candidates, compare_effects, word_health, word_prior
+from contenders.statistics.compare import Plan, plan_estimate
 from contenders.inputs.candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for, link_of
 from contenders.inputs.config import RunConfig
 from contenders.output.summary import write_summary
@@ -34,7 +36,7 @@ from contenders.errors import UserError
 from contenders.statistics.checks import predictive_checks, thin_draws
 from contenders.statistics.censored_checks import censor_like_the_data
 from contenders.statistics.coefficients import coefficient_summary
-from contenders.statistics.effects import compare_effects, effect_draws
+from contenders.statistics.effects import effect_draws
 from contenders.statistics.posterior import fit_with_health
 from contenders.statistics.prior import summarise_prior
 from contenders.statistics.sensitivity import power_scaling
@@ -203,11 +205,11 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         )
         res.seconds["prior"] = pdraws.sample_seconds
         res.seconds["prior_wait"] = pdraws.wait_seconds
-        res.prior = summarise_prior(
+        res.prior = word_prior(summarise_prior(
             _stack(pdraws.idata.posterior_predictive, "y_rep"), design.y, cfg.bounds,
             cfg.thresholds, cfg.implausible_share,
             parameters=prior_parameters(pdraws.idata.posterior, c.parameter_names, design.J, design.K),
-        )
+        ))
         del pdraws
         # 2. posterior fit with sampler health
         res.stage = "posterior"
@@ -217,7 +219,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
             c.parameter_names, cfg.escalation, cfg.longer_retry, rhat_max=cfg.rhat_max,
             ess_per_chain_min=cfg.ess_per_chain_min, ebfmi_min=cfg.ebfmi_min,
         )
-        res.health = health
+        res.health = health = word_health(health)
         res.seconds["posterior"] = sum(a.seconds for a in health.attempts)
         res.seconds["posterior_wait"] = sum(a.wait_seconds for a in health.attempts)
         stored = getattr(engine, "paths", {}).get(c.id)
@@ -399,6 +401,7 @@ def fit_task(c: Candidate, design: Design, cfg: RunConfig, engine_name: str, sto
             c.parameter_names, cfg.escalation, cfg.longer_retry, rhat_max=cfg.rhat_max,
             ess_per_chain_min=cfg.ess_per_chain_min, ebfmi_min=cfg.ebfmi_min,
         )
+        health = word_health(health)
         kept = keep(draws, health)
         del draws
         return health, kept

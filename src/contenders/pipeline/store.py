@@ -74,7 +74,9 @@ TRIAL_SETTINGS = tuple(s.name for s in SETTINGS if s.enters_trials_key)
 #: Format 10: with censored observations, replicates censored like the data and the
 #: LOO-PIT randomised over each censored value's range (``trials.censored_checks``).
 #: Format 11: a censored value counts as "at y" within two float32 steps (y_rep is float32).
-TRIALS_FORMAT = 11
+#: Format 12: sampler health keeps its findings as codes (``Health.findings``); its words and
+#: the prior trial's message are written from the numbers (``output.readings``).
+TRIALS_FORMAT = 12
 
 
 def trials_key(candidate, design, cfg, engine_version: str) -> str:

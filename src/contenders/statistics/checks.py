@@ -10,6 +10,7 @@ import numpy as np
 
 from contenders.statistics import features as st
 from contenders.statistics.censored_checks import censor_like_the_data, randomised_pit
+from contenders.rules import PIT_ALPHA, PPP_EXTREME
 
 
 @dataclass
@@ -24,15 +25,45 @@ class PredictiveChecks:
 
 
 def thin_draws(n_total: int, n_keep: int) -> np.ndarray:
-    """Evenly spaced indices of ``n_keep`` out of ``n_total`` draws (all if fewer)."""
+    """Evenly spaced indices of ``n_keep`` out of ``n_total`` draws.
+
+    Parameters
+    ----------
+    n_total : int
+        Draws available.
+    n_keep : int
+        Draws wanted.
+
+    Returns
+    -------
+    numpy.ndarray
+        Sorted distinct indices (all of them when ``n_keep >= n_total``).
+    """
     if n_keep >= n_total:
         return np.arange(n_total)
     return np.unique(np.linspace(0, n_total - 1, n_keep).round().astype(int))
 
 
 def loo_log_weights(log_lik: np.ndarray, reff: float = 1.0) -> np.ndarray:
-    """PSIS log weights of leaving each observation out, shape (N, draws), from
-    ``log_lik`` shaped (draws, N) (ArviZ's ``psislw``)."""
+    """PSIS log weights of leaving each observation out.
+
+    Parameters
+    ----------
+    log_lik : numpy.ndarray
+        Pointwise log-likelihood draws, shape (draws, N).
+    reff : float
+        Relative efficiency of the draws (ESS / draws).
+
+    Returns
+    -------
+    numpy.ndarray
+        Smoothed log weights, shape (N, draws) (ArviZ's ``psislw`` of ``-log_lik``).
+
+    References
+    ----------
+    Vehtari, Simpson, Gelman, Yao & Gabry (2024), "Pareto smoothed importance
+    sampling", JMLR 25(72).
+    """
     import arviz as az
 
     lw, _ = az.psislw(-np.asarray(log_lik, dtype=float).T, reff=reff)
@@ -43,11 +74,30 @@ def loo_pit(y: np.ndarray, y_rep: np.ndarray, log_lik: np.ndarray | None = None,
             log_weights: np.ndarray | None = None) -> np.ndarray:
     """LOO-PIT values with PSIS weights: Pr(y_rep_i <= y_i | y_{-i}) for each i.
 
-    ``y_rep`` and ``log_lik`` have shape (draws, N); ``log_weights`` from
-    :func:`loo_log_weights` may be given instead of ``log_lik`` to smooth once for
-    several evaluations. Computed with ArviZ's ``psislw`` and ``loo_pit`` (Vehtari,
-    Gelman & Gabry 2017, Statistics and Computing 27, section 2.1, and Gabry et al.
-    2019, JRSS A 182, section 5)."""
+    Parameters
+    ----------
+    y : numpy.ndarray
+        Observed values, shape (N,).
+    y_rep : numpy.ndarray
+        Replicated values, shape (draws, N).
+    log_lik : numpy.ndarray, optional
+        Pointwise log-likelihood draws, shape (draws, N); not needed with ``log_weights``.
+    reff : float
+        Relative efficiency of the draws.
+    log_weights : numpy.ndarray, optional
+        Weights from ``loo_log_weights``, to smooth once for several evaluations.
+
+    Returns
+    -------
+    numpy.ndarray
+        One LOO-PIT value per observation (ArviZ's ``loo_pit``).
+
+    References
+    ----------
+    Vehtari, Gelman & Gabry (2017), Statistics and Computing 27, section 2.1; Gabry,
+    Simpson, Vehtari, Betancourt & Gelman (2019), "Visualization in Bayesian workflow",
+    JRSS A 182, section 5.
+    """
     import arviz as az
 
     lw = loo_log_weights(log_lik, reff) if log_weights is None else log_weights
@@ -72,9 +122,26 @@ def _band(n: int, points: int, prob: float) -> tuple[np.ndarray, np.ndarray, np.
 
 
 def band_limits(n: int, prob: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The evaluation points ``z`` (``min(n, BAND_POINTS)`` equal parts of (0, 1), the
-    end points left out) and the simultaneous ``prob`` band of the ECDF of ``n``
-    independent uniform(0, 1) values at them: (z, lower, upper)."""
+    """The simultaneous band of the ECDF of ``n`` independent uniform(0, 1) values.
+
+    Parameters
+    ----------
+    n : int
+        Number of values.
+    prob : float
+        Probability that a uniform ECDF stays inside the band at every point at once.
+
+    Returns
+    -------
+    tuple of numpy.ndarray
+        ``(z, lower, upper)``: the evaluation points (``min(n, BAND_POINTS)`` equal parts
+        of (0, 1), the end points left out) and the band's limits there (ArviZ's
+        ``ecdf_confidence_band``, optimised method; cached per size).
+
+    References
+    ----------
+    Säilynoja, Bürkner & Vehtari (2022), Statistics and Computing 32:32, section 2.
+    """
     return _band(int(n), int(min(n, BAND_POINTS)), float(prob))
 
 
@@ -91,21 +158,38 @@ def _stretches(z: np.ndarray, mask: np.ndarray) -> list[list[float]]:
     return out
 
 
-def uniformity_test(pit: np.ndarray, alpha: float = 0.01) -> dict:
-    """Graphical uniformity test of the LOO-PIT values: does their empirical distribution
-    function stay inside the simultaneous ``1 - alpha`` band of uniform(0, 1) at every
-    evaluation point? Under uniformity it does with probability ``1 - alpha`` at once
-    over all points (Säilynoja, Bürkner & Vehtari 2022, "Graphical test for discrete
-    uniformity and its applications in goodness-of-fit evaluation and multiple sample
-    comparison", Statistics and Computing 32:32, section 2; the band is ArviZ's
-    ``ecdf_confidence_band``). LOO-PIT values are not quite independent, so read a
-    departure together with the figure.
+def uniformity_test(pit: np.ndarray, alpha: float = PIT_ALPHA) -> dict:
+    """Graphical uniformity test of the LOO-PIT values.
 
-    Returns ``inside`` (True when the ECDF never leaves the band), ``band`` (its
-    probability), ``points`` (evaluation points), ``outside_points`` (how many lie
-    outside), ``above`` and ``below`` (stretches of LOO-PIT values, [from, to], where the
-    ECDF is above the upper or below the lower limit), ``largest_gap`` (the largest
-    distance outside the band, 0 when inside), ``n`` and ``method``."""
+    Does their empirical distribution function stay inside the simultaneous ``1 -
+    alpha`` band of uniform(0, 1) at every evaluation point? Under uniformity it does
+    with probability ``1 - alpha`` at once over all points. LOO-PIT values are not quite
+    independent, so read a departure together with the figure.
+
+    Parameters
+    ----------
+    pit : numpy.ndarray
+        LOO-PIT values; non-finite ones are left out.
+    alpha : float
+        1 minus the band's probability (``rules.PIT_ALPHA``).
+
+    Returns
+    -------
+    dict
+        ``inside`` (True when the ECDF never leaves the band; None below two values),
+        ``band`` (its probability), ``points`` (evaluation points), ``outside_points``
+        (how many lie outside), ``above`` and ``below`` (stretches of LOO-PIT values,
+        [from, to], where the ECDF is above the upper or below the lower limit),
+        ``largest_gap`` (the largest distance outside the band, 0 when inside), ``n``
+        and ``method``.
+
+    References
+    ----------
+    Säilynoja, Bürkner & Vehtari (2022), "Graphical test for discrete uniformity and its
+    applications in goodness-of-fit evaluation and multiple sample comparison",
+    Statistics and Computing 32:32, section 2; the band is ArviZ's
+    ``ecdf_confidence_band``.
+    """
     pit = np.asarray(pit, dtype=float)
     pit = np.sort(pit[np.isfinite(pit)])
     prob = 1.0 - float(alpha)
@@ -125,26 +209,19 @@ def uniformity_test(pit: np.ndarray, alpha: float = 0.01) -> dict:
 
 
 def leaves_band(test: dict | None) -> bool:
-    """True when the LOO-PIT uniformity test says the ECDF leaves its band."""
+    """Whether the LOO-PIT uniformity test says the ECDF leaves its band.
+
+    Parameters
+    ----------
+    test : dict or None
+        A result of ``uniformity_test``.
+
+    Returns
+    -------
+    bool
+        True only when the test ran and the ECDF left the band.
+    """
     return bool(test) and test.get("inside") is False
-
-
-def band_text(test: dict | None) -> str:
-    """Where the LOO-PIT ECDF leaves its band, in words: "above the 99 % band at LOO-PIT
-    0.59–0.98; below it at 0.02–0.40"; "" when it stays inside or was not tested."""
-    if not leaves_band(test):
-        return ""
-
-    def spans(xs):
-        return ", ".join(f"{a:.2f}" if a == b else f"{a:.2f}–{b:.2f}" for a, b in xs)
-
-    band = f"{100 * test['band']:g} % band"
-    parts = []
-    if test["above"]:
-        parts.append(f"above the {band} at LOO-PIT {spans(test['above'])}")
-    if test["below"]:
-        parts.append(("below it" if parts else f"below the {band}") + f" at LOO-PIT {spans(test['below'])}")
-    return "; ".join(parts)
 
 
 #: Quantile levels of the quantile check: 5 %, 10 %, ..., 95 %.
@@ -153,14 +230,30 @@ QUANTILE_LEVELS = tuple(round(0.05 * k, 2) for k in range(1, 20))
 
 def quantile_checks(y: np.ndarray, y_rep: np.ndarray, levels: Sequence[float] = QUANTILE_LEVELS,
                     interval: float = 0.95) -> list[dict]:
-    """Observed quantiles of ``y`` against the same quantile of each replicated dataset
-    (rows of ``y_rep``, shape (draws, N)); NumPy's default (linear) quantile throughout.
+    """Observed quantiles against the same quantile of each replicated dataset.
 
-    One row per level: ``level``, ``observed``, the replicated quantiles' ``median``,
-    their central ``interval`` (``lower``, ``upper``) and 50 % interval (``lower50``,
-    ``upper50``), ``share_above`` (share of replicated datasets whose quantile is at or
-    above the observed one) and ``miss``: "replicates low" or "replicates high" when the
-    observed quantile lies outside the interval, else ""."""
+    Parameters
+    ----------
+    y : numpy.ndarray
+        Observed values, shape (N,); non-finite ones are left out.
+    y_rep : numpy.ndarray
+        Replicated datasets, shape (draws, N).
+    levels : sequence of float
+        Quantile levels (``QUANTILE_LEVELS``: 5 %, 10 %, ..., 95 %).
+    interval : float
+        Probability of the central interval of the replicated quantiles.
+
+    Returns
+    -------
+    list of dict
+        One row per level: ``level``, ``observed``, the replicated quantiles' ``median``,
+        their central ``interval`` (``lower``, ``upper``) and 50 % interval
+        (``lower50``, ``upper50``), ``share_above`` (share of replicated datasets whose
+        quantile is at or above the observed one) and ``miss``: ``"replicates low"`` or
+        ``"replicates high"`` (fixed codes, also shown as they are) when the observed
+        quantile lies outside the interval, else ``""``. NumPy's default (linear)
+        quantile throughout.
+    """
     y = np.asarray(y, dtype=float)
     y = y[np.isfinite(y)]
     y_rep = np.atleast_2d(np.asarray(y_rep, dtype=float))
@@ -184,21 +277,6 @@ def quantile_checks(y: np.ndarray, y_rep: np.ndarray, levels: Sequence[float] = 
     return rows
 
 
-def quantile_misses(rows: Sequence[dict]) -> list[str]:
-    """Where in the distribution the replicated quantiles miss the observed ones, as
-    short phrases: "5–15 % (replicates high)"."""
-    out, run = [], []
-    for row in list(rows) + [{"miss": None, "level": None}]:
-        if run and row["miss"] != run[-1]["miss"]:
-            a, b = run[0]["level"], run[-1]["level"]
-            span = f"{100 * a:.0f} %" if a == b else f"{100 * a:.0f}–{100 * b:.0f} %"
-            out.append(f"{span} ({run[0]['miss']})")
-            run = []
-        if row["miss"]:
-            run.append(row)
-    return out
-
-
 def predictive_checks(
     y: np.ndarray,
     y_rep: np.ndarray,
@@ -206,18 +284,53 @@ def predictive_checks(
     thresholds: Sequence[float] = (),
     conditions: Mapping[str, np.ndarray] | None = None,
     reff: float = 1.0,
-    ppp_extreme: float = 0.01,
-    pit_alpha: float = 0.01,
+    ppp_extreme: float = PPP_EXTREME,
+    pit_alpha: float = PIT_ALPHA,
     cens: np.ndarray | None = None,
     seed: int = 0,
 ) -> PredictiveChecks:
-    """All posterior predictive checks of one candidate; arrays shaped (draws, N).
-    ``extreme`` lists the statistics whose ppp-value lies below ``ppp_extreme`` or above
-    1 - ``ppp_extreme`` (the run's ``[checks] ppp_extreme``); ``pit_alpha``: the LOO-PIT
-    band holds a uniform ECDF with probability 1 - pit_alpha. With ``cens`` (0 observed,
-    1 right-, -1 left-censored) the statistics use replicates censored like the data
-    and the LOO-PIT is randomised over each censored value's range
-    (``censored_checks``), from a generator seeded with ``seed``."""
+    """All posterior predictive checks of one candidate.
+
+    With ``cens`` the statistics use replicates censored like the data and the LOO-PIT is
+    randomised over each censored value's range (``censored_checks``), from a generator
+    seeded with ``seed``.
+
+    Parameters
+    ----------
+    y : numpy.ndarray
+        Observed values, shape (N,).
+    y_rep : numpy.ndarray
+        Replicated datasets, shape (draws, N).
+    log_lik : numpy.ndarray
+        Pointwise log-likelihood draws, shape (draws, N).
+    thresholds : sequence of float
+        Thresholds of the "share below" statistics.
+    conditions : mapping of str to numpy.ndarray, optional
+        Condition column -> each observation's level (statistics per level).
+    reff : float
+        Relative efficiency of the draws, for the PSIS weights.
+    ppp_extreme : float
+        ppp-values beyond this (or 1 minus it) are detectable (``rules.PPP_EXTREME``).
+    pit_alpha : float
+        The LOO-PIT band holds a uniform ECDF with probability 1 - ``pit_alpha``
+        (``rules.PIT_ALPHA``).
+    cens : numpy.ndarray, optional
+        0 observed, 1 right-censored, -1 left-censored, per observation.
+    seed : int
+        Seed of the censoring draws and the randomised PIT.
+
+    Returns
+    -------
+    PredictiveChecks
+        Statistic rows (``features.summarise``), grouped rows, LOO-PIT values and their
+        ``uniformity_test``, the detectable statistics (``extreme``), the replicated
+        statistics and the ``quantile_checks``.
+
+    References
+    ----------
+    Gelman, Meng & Stern (1996), Statistica Sinica 6 (ppp-values); Säilynoja, Bürkner &
+    Vehtari (2022), Statistics and Computing 32:32 (the LOO-PIT band).
+    """
     pit_y_rep = y_rep
     rng = np.random.default_rng(seed)
     censored = cens is not None and bool((np.asarray(cens) != 0).any())

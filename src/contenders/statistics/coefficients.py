@@ -35,14 +35,39 @@ EXTREMES = 2
 
 
 def base_name(parameter: str) -> str:
-    """``group_z[3]`` -> ``group_z``."""
+    """A flattened parameter's name without its index.
+
+    Parameters
+    ----------
+    parameter : str
+        For example ``group_z[3]``.
+
+    Returns
+    -------
+    str
+        ``group_z``.
+    """
     return parameter.split("[", 1)[0]
 
 
 def group_terms(sizes: Mapping[str, int], J: int, K: int = -1) -> set[str]:
-    """Names of the parameters that hold one value per group: one-dimensional with J
-    elements (J > 0). ``coef`` counts only when J differs from K, the number of
-    predictors (with J = K its length says nothing)."""
+    """Names of the parameters that hold one value per group.
+
+    Parameters
+    ----------
+    sizes : mapping of str to int
+        Parameter -> element count.
+    J : int
+        Number of groups (none when 0 or less).
+    K : int
+        Number of predictors: ``coef`` counts only when J differs from K (with J = K its
+        length says nothing).
+
+    Returns
+    -------
+    set of str
+        One-dimensional parameters with J elements (``log_lik`` never).
+    """
     if J <= 0:
         return set()
     return {name for name, size in sizes.items()
@@ -50,7 +75,18 @@ def group_terms(sizes: Mapping[str, int], J: int, K: int = -1) -> set[str]:
 
 
 def sizes_of(parameters: Sequence[str]) -> dict[str, int]:
-    """Element counts per parameter from flattened names (``coef[1]``, ``coef[2]``...)."""
+    """Element counts per parameter from flattened names.
+
+    Parameters
+    ----------
+    parameters : sequence of str
+        Flattened names (``coef[1]``, ``coef[2]``, ...).
+
+    Returns
+    -------
+    dict of str to int
+        Base name -> element count.
+    """
     out: dict[str, int] = {}
     for p in parameters:
         out[base_name(p)] = out.get(base_name(p), 0) + 1
@@ -112,12 +148,30 @@ def _zero_label(coding) -> str:
 
 
 def coefficient_summary(posterior, design, link=None, reason: str = "") -> Coefficients | None:
-    """The coefficients of a built-in-shaped program (parameters ``intercept`` and
-    ``coef`` with one value per column of X) on the internal and the outcome's scale,
-    and its group terms (``group_z`` scaled by ``group_sd[1]``). ``link`` is a
-    :class:`contenders.inputs.candidates.Link` or ``None`` (internal values only, ``reason``
-    says why). Returns ``None`` when the program has neither coefficients nor group
-    terms to show."""
+    """The coefficients of a built-in-shaped program on the internal and the outcome's scale.
+
+    Each value is computed draw by draw, then summarised (posterior mean and central
+    ``LEVEL`` interval), so the intervals of derived values are exact up to Monte Carlo
+    error (see the module docstring).
+
+    Parameters
+    ----------
+    posterior : xarray.Dataset
+        Posterior draws with ``intercept`` and ``coef`` (one value per column of X) and,
+        with groups, ``group_z`` and ``group_sd``.
+    design : Design
+        The design (coding of the predictors, groups, outcome name).
+    link : Link, optional
+        ``contenders.inputs.candidates.Link``; ``None`` gives internal values only.
+    reason : str
+        Why the link is not known, when it is not.
+
+    Returns
+    -------
+    Coefficients or None
+        Coefficient rows, group terms and group slopes; ``None`` when the program has
+        neither coefficients nor group terms to show.
+    """
     coding = list(design.coding)
     out = Coefficients(link=link.kind if link else "", sets=link.sets if link else "",
                        moves=link.moves if link else "", reason=reason, outcome=design.outcome)
@@ -193,8 +247,21 @@ def coefficient_summary(posterior, design, link=None, reason: str = "") -> Coeff
 
 
 def extremes(c: Coefficients, n: int = EXTREMES) -> tuple[list[dict], list[dict]]:
-    """The ``n`` groups with the lowest and the ``n`` with the highest posterior mean
-    offset (the internal term when the offset is not known), lowest first."""
+    """The groups with the lowest and the highest posterior mean offset.
+
+    Parameters
+    ----------
+    c : Coefficients
+        A summary with ``groups``.
+    n : int
+        Groups at each end (at most half of them).
+
+    Returns
+    -------
+    tuple of list
+        ``(lowest, highest)``, each lowest-first and highest-first; the internal term is
+        used when the offset is not known.
+    """
     key = (lambda g: g["offset"][0]) if c.groups and np.isfinite(c.groups[0]["offset"][0]) \
         else (lambda g: g["internal"][0])
     ordered = sorted(c.groups, key=key)
@@ -203,7 +270,18 @@ def extremes(c: Coefficients, n: int = EXTREMES) -> tuple[list[dict], list[dict]
 
 
 def summary(c: Coefficients | None) -> dict[str, Any] | None:
-    """JSON-ready record for ``summary.json``."""
+    """The JSON-ready record of the coefficients for ``summary.json``.
+
+    Parameters
+    ----------
+    c : Coefficients or None
+        The summary.
+
+    Returns
+    -------
+    dict or None
+        Link, coefficients, groups and slopes as plain numbers and text.
+    """
     if c is None:
         return None
     return {

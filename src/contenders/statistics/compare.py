@@ -1,4 +1,7 @@
-"""Out-of-sample comparison: PSIS-LOO with exact refits, K-fold, weights and a verdict.
+"""Out-of-sample comparison: PSIS-LOO with exact refits, K-fold, weights, ranking and standings.
+
+Numbers, flags and standings only: the verdict's sentences are written from them by
+``contenders.output.readings``; the thresholds are in ``contenders.rules``.
 
 Sources:
 
@@ -21,15 +24,14 @@ from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass, field
-from typing import Callable, Mapping, Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 
 # ArviZ and SciPy are imported inside the functions that compute with them: a rerun
 # whose results all come from the fit store (see ``weights``) never needs them.
 
-#: elpd differences below this are "small" (Sivula et al.).
-SMALL_DIFFERENCE = 4.0
+from contenders.rules import SE_FACTOR, SMALL_DIFFERENCE, TIE_MCSE_FACTOR
 
 
 @dataclass
@@ -60,7 +62,20 @@ class OutOfSample:
 
 
 def log_mean_exp(log_lik: np.ndarray, axis: int = 0) -> np.ndarray:
-    """log of the mean of exp(x) along ``axis``, computed stably."""
+    """log of the mean of exp(x) along an axis, computed stably.
+
+    Parameters
+    ----------
+    log_lik : numpy.ndarray
+        Log values (for example log-likelihood draws, draws on axis 0).
+    axis : int
+        The axis to average over.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``logsumexp(log_lik, axis) - log(n)`` (SciPy's ``logsumexp``).
+    """
     from scipy.special import logsumexp
 
     n = log_lik.shape[axis]
@@ -97,9 +112,28 @@ def _psis_by_chain(log_lik: np.ndarray) -> np.ndarray:
 
 
 def make_folds(n: int, k: int, strata: np.ndarray | None = None, seed: int = 0) -> np.ndarray:
-    """Fold number (0..k-1) of each observation. With ``strata`` every fold receives
-    an (almost) equal share of each stratum: members of a stratum are shuffled and
-    dealt to the folds in turn, starting where the previous stratum stopped."""
+    """Fold number (0..k-1) of each observation.
+
+    With ``strata`` every fold receives an (almost) equal share of each stratum: members
+    of a stratum are shuffled and dealt to the folds in turn, starting where the previous
+    stratum stopped.
+
+    Parameters
+    ----------
+    n : int
+        Number of observations.
+    k : int
+        Number of folds.
+    strata : numpy.ndarray, optional
+        Each observation's stratum (for example its group).
+    seed : int
+        Seed of the shuffle.
+
+    Returns
+    -------
+    numpy.ndarray
+        Integer fold of each observation, shape (n,).
+    """
     rng = np.random.default_rng(seed)
     folds = np.empty(n, dtype=np.int64)
     if strata is None:
@@ -122,9 +156,19 @@ def _totals(pointwise: np.ndarray, lppd: float) -> dict:
 
 
 def elpd_data(e: OutOfSample):
-    """The ArviZ ``ELPDData`` of one estimate, built from its plain fields (for
-    ``arviz.compare``, which reads elpd, SE, p, the pointwise values, the warning flag
-    and the scale)."""
+    """The ArviZ ``ELPDData`` of one estimate, built from its plain fields.
+
+    Parameters
+    ----------
+    e : OutOfSample
+        The estimate.
+
+    Returns
+    -------
+    arviz.ELPDData
+        elpd, SE, p, draws, pointwise values, Pareto k, scale ``log`` and the k threshold,
+        as ``arviz.compare`` reads them.
+    """
     import xarray as xr
     from arviz.stats.stats_utils import ELPDData
 
@@ -163,6 +207,21 @@ class Plan:
     refitted: list[int] = field(default_factory=list)
 
     def finish(self, held_out: Sequence[np.ndarray] = ()) -> OutOfSample:
+        """The estimate, with each refit's held-out values in place of the PSIS ones.
+
+        Parameters
+        ----------
+        held_out : sequence of numpy.ndarray
+            Per refit of ``fits``, in order, its ``log_lik`` draws of the held-out
+            observations, shape (S, held out).
+
+        Returns
+        -------
+        OutOfSample
+            elpd (sum of the pointwise values), its SE and p (Vehtari, Gelman & Gabry
+            2017, as ArviZ's ``loo`` computes them), and the Monte Carlo SE from the
+            batches of draws (batch means; common practice, no source).
+        """
         if len(held_out) != len(self.fits):
             raise ValueError(f"{len(self.fits)} refits planned, {len(held_out)} results given")
         pointwise, per_chain = self.pointwise.copy(), self.per_chain.copy()
@@ -223,7 +282,36 @@ def plan_estimate(
     why_plain: str = "quick look",
 ) -> Plan:
     """PSIS-LOO of one candidate and the refits the estimate needs (see ``estimate``).
-    With ``strategy`` "psis" there are none; ``why_plain`` says why in the method."""
+
+    Parameters
+    ----------
+    idata : arviz.InferenceData
+        The fit, with ``log_lik`` (chain, draw, obs) in ``log_likelihood``.
+    strategy : str
+        ``loo``, ``kfold``, ``leave_group_out`` or ``psis`` (PSIS-LOO as it is, no refit).
+    refit_cap : int
+        Most exact refits before the estimate falls back to K-fold.
+    folds : int
+        Folds of K-fold.
+    groups : numpy.ndarray, optional
+        Each observation's group (leave-one-group-out; strata of the folds).
+    seed : int
+        Seed of the folds.
+    why_plain : str
+        Why ``psis`` makes no refit, for the method's description.
+
+    Returns
+    -------
+    Plan
+        The refits to run (fitted and held-out observations) and what ``Plan.finish``
+        needs to complete the estimate.
+
+    References
+    ----------
+    Vehtari, Gelman & Gabry (2017), Statistics and Computing 27, 1413-1432 (PSIS-LOO,
+    exact refits and K-fold); Vehtari, Simpson, Gelman, Yao & Gabry (2024), JMLR 25(72)
+    (the Pareto k threshold, ArviZ's ``good_k``).
+    """
     import warnings
 
     import arviz as az
@@ -289,15 +377,31 @@ def estimate(
     groups: np.ndarray | None = None,
     seed: int = 0,
 ) -> OutOfSample:
-    """elpd of one candidate.
+    """elpd of one candidate, its refits run here one after the other.
 
-    ``strategy`` ``loo``: PSIS-LOO; observations whose Pareto k exceeds the threshold
-    are refitted exactly with that observation held out, up to ``refit_cap``; above
-    the cap the whole estimate falls back to K-fold. ``kfold``: K-fold for every
-    candidate. ``leave_group_out``: each level of ``groups`` held out in turn
-    (predicting new groups, a different quantity from LOO). ``refit(fitted)`` returns
-    log_lik draws (S, N) of a fit to the observations ``fitted``; here the refits run
-    one after the other (the runner sends them to its executor instead).
+    Parameters
+    ----------
+    idata : arviz.InferenceData
+        The fit, with ``log_lik``.
+    refit : callable
+        ``refit(fitted)`` returns log_lik draws (S, N) of a fit to the 0-based
+        observations ``fitted``.
+    strategy : str
+        ``loo``: PSIS-LOO, observations whose Pareto k exceeds the threshold refitted
+        exactly with that observation held out, up to ``refit_cap``, above it K-fold;
+        ``kfold``: K-fold for every candidate; ``leave_group_out``: each level of
+        ``groups`` held out in turn (predicting new groups, a different quantity).
+    refit_cap, folds, groups, seed
+        See ``plan_estimate``.
+
+    Returns
+    -------
+    OutOfSample
+        elpd, SE, p, pointwise values, Pareto k, method, refits and Monte Carlo SE.
+
+    References
+    ----------
+    Vehtari, Gelman & Gabry (2017), Statistics and Computing 27, 1413-1432.
     """
     plan = plan_estimate(idata, strategy, refit_cap, folds, groups, seed)
     return plan.finish([refit(fitted)[:, idx] for fitted, idx in plan.fits])
@@ -307,7 +411,9 @@ def estimate(
 class Comparison:
     """The ranking and the verdict. ``lead`` is two or three sentences (what to use, how
     sure that is, what the preferred candidates miss); ``details`` every other sentence,
-    most important first; ``verdict`` both, lead first."""
+    most important first; ``verdict`` both, lead first. ``rank_candidates`` leaves
+    ``lead`` and ``details`` empty; ``contenders.output.readings.compare_candidates``
+    fills them (``readings.verdict``)."""
 
     ranking: list[str]
     rows: list[dict]              # per ranked candidate, best first
@@ -326,9 +432,21 @@ WEIGHTS_FORMAT = 1
 
 
 def weights_key(estimates: dict[str, OutOfSample], seed: int = 0) -> str:
-    """SHA-256 of everything ``arviz.compare`` reads of the given estimates (ids in
-    order, elpd, SE, p, draws, pointwise values), the seed of the Bayesian bootstrap and
-    the installed ArviZ version: equal keys give equal weights."""
+    """SHA-256 of everything ``arviz.compare`` reads of the given estimates.
+
+    Parameters
+    ----------
+    estimates : dict of str to OutOfSample
+        The estimates compared, in order.
+    seed : int
+        Seed of the Bayesian bootstrap.
+
+    Returns
+    -------
+    str
+        Hex digest of ids, elpd, SE, p, draws, pointwise values, the seed and the
+        installed ArviZ version: equal keys give equal weights.
+    """
     from importlib.metadata import version
 
     h = hashlib.sha256(f"weights {WEIGHTS_FORMAT}|arviz {version('arviz')}|seed {seed}".encode())
@@ -341,12 +459,32 @@ def weights_key(estimates: dict[str, OutOfSample], seed: int = 0) -> str:
 
 
 def weights(estimates: dict[str, OutOfSample], seed: int = 0, store=None) -> tuple[dict, dict, dict]:
-    """Stacking weights, pseudo-BMA+ weights (Bayesian bootstrap) and the ArviZ table
-    (elpd_diff, dse) for the given candidates.
+    """Stacking weights, pseudo-BMA+ weights and the differences to the best.
 
-    With ``store`` (a :class:`contenders.pipeline.store.FitStore`) the answer is read from it
-    when these exact estimates were compared before (``weights_key``), and stored
-    otherwise, so a rerun from the fit store does not import ArviZ."""
+    With ``store`` the answer is read from it when these exact estimates were compared
+    before (``weights_key``), and stored otherwise, so a rerun from the fit store does
+    not import ArviZ.
+
+    Parameters
+    ----------
+    estimates : dict of str to OutOfSample
+        Candidate id -> estimate.
+    seed : int
+        Seed of the Bayesian bootstrap of the pseudo-BMA+ weights.
+    store : FitStore, optional
+        ``contenders.pipeline.store.FitStore`` keeping computed weights.
+
+    Returns
+    -------
+    tuple of dict
+        ``(stacking, pseudo_bma, diffs)``: id -> weight, id -> weight and id ->
+        ``(elpd_diff, dse)`` (ArviZ's ``compare``).
+
+    References
+    ----------
+    Yao, Vehtari, Simpson & Gelman (2018), "Using stacking to average Bayesian
+    predictive distributions", Bayesian Analysis 13(3).
+    """
     if len(estimates) == 1:
         (cid,) = estimates
         return {cid: 1.0}, {cid: 1.0}, {cid: (0.0, 0.0)}
@@ -369,16 +507,29 @@ def weights(estimates: dict[str, OutOfSample], seed: int = 0, store=None) -> tup
 
 
 def order_with_ties(ranked: list) -> list:
-    """Sort by elpd, best first; candidates whose elpd differ by less than twice the
-    combined Monte Carlo SE of the two estimates are tied (their order would change
-    with the seed) and are listed in id order within the tie."""
+    """Sort by elpd, best first, with ties within Monte Carlo error.
+
+    Candidates whose elpd differ by at most ``rules.TIE_MCSE_FACTOR`` combined Monte
+    Carlo SE of the two estimates are tied (their order would change with the seed) and
+    are listed in id order within the tie.
+
+    Parameters
+    ----------
+    ranked : list
+        Candidate results with ``id`` and ``oos`` (elpd, mcse); their ``tied_with`` is set.
+
+    Returns
+    -------
+    list
+        The same results, ordered.
+    """
     ordered = sorted(ranked, key=lambda r: -r.oos.elpd)
     tiers: list[list] = []
     for r in ordered:
         if tiers:
             prev = tiers[-1][-1]
             gap = prev.oos.elpd - r.oos.elpd
-            noise = 2 * np.sqrt(np.nan_to_num(prev.oos.mcse) ** 2 + np.nan_to_num(r.oos.mcse) ** 2)
+            noise = TIE_MCSE_FACTOR * np.sqrt(np.nan_to_num(prev.oos.mcse) ** 2 + np.nan_to_num(r.oos.mcse) ** 2)
             if gap <= noise:
                 tiers[-1].append(r)
                 continue
@@ -403,14 +554,18 @@ class Standing:
     difference, or not separable from a candidate that is); ``worse`` (clearly worse:
     more than 4 elpd and two SE behind, and so is every candidate ranked below it).
     ``rank``: its place, shared by candidates tied within Monte Carlo error ("4–5").
-    ``why``: a phrase when the kind comes from another candidate, not from its own
-    difference (for example "tied within Monte Carlo error with Weibull")."""
+    ``lifted``: why the kind comes from another candidate, not from its own difference:
+    ``"tied"`` (tied within Monte Carlo error with the candidates ``lifted_by``, labels)
+    or ``"above"`` (ranked above ``lifted_by[0]``, which cannot be separated from the
+    best, so not called clearly worse); ``""`` when its own difference sets it. The
+    words are ``contenders.output.readings.standing_why``."""
 
     kind: str
     rank: str
     position: int
     tied_with: list[str] = field(default_factory=list)
-    why: str = ""
+    lifted: str = ""
+    lifted_by: list[str] = field(default_factory=list)
 
     @property
     def preferred(self) -> bool:
@@ -424,23 +579,39 @@ def _own_kind(position: int, tied_with_best: bool, diff: float, diff_se: float) 
         return "tied"
     if diff < SMALL_DIFFERENCE:
         return "close"
-    if diff < 2 * diff_se:
+    if diff < SE_FACTOR * diff_se:
         return "uncertain"
     return "worse"
 
 
 def standings(rows: Sequence[dict]) -> dict[str, Standing]:
-    """The standing of every ranked candidate from the comparison's rows (best first,
-    candidates tied within Monte Carlo error next to each other, each row with ``id``,
-    ``label``, ``elpd_diff``, ``elpd_diff_se`` and ``tied_with``).
+    """The standing of every ranked candidate, the one rule every sentence and table reads.
 
-    One rule: each candidate's own standing follows from its difference to the best
-    (below 4 elpd: close, Sivula et al.; below two SE of the paired difference:
-    uncertain, common practice, no source for the factor 2). Candidates tied within
-    Monte Carlo error share the most favourable standing among them and one rank (their
-    order would change with the seed). A candidate is clearly worse only when every
-    candidate ranked below it is too: one ranked above a candidate that cannot be
-    separated from the best is not called clearly worse either."""
+    Each candidate's own standing follows from its difference to the best (below
+    ``rules.SMALL_DIFFERENCE`` elpd: close; below ``rules.SE_FACTOR`` SE of the paired
+    difference: uncertain). Candidates tied within Monte Carlo error share the most
+    favourable standing among them and one rank (their order would change with the
+    seed). A candidate is clearly worse only when every candidate ranked below it is too:
+    one ranked above a candidate that cannot be separated from the best is not called
+    clearly worse either.
+
+    Parameters
+    ----------
+    rows : sequence of dict
+        The comparison's rows, best first, candidates tied within Monte Carlo error next
+        to each other, each with ``id``, ``label``, ``elpd_diff``, ``elpd_diff_se`` and
+        ``tied_with``.
+
+    Returns
+    -------
+    dict of str to Standing
+        Candidate id -> its standing (kind, shared rank, position, ties, lift).
+
+    References
+    ----------
+    Sivula, Magnusson, Matamoros & Vehtari (2025), Bayesian Analysis, arXiv:2008.10296
+    (small differences); the factor 2 is common practice, no source.
+    """
     rows = list(rows)
     if not rows:
         return {}
@@ -470,225 +641,78 @@ def standings(rows: Sequence[dict]) -> dict[str, Standing]:
             kind, lifted_by = "uncertain", below[0]
         for pos, r in enumerate(tier, first):
             k = "best" if pos == 1 else ("tied" if kind == "best" else kind)
-            why = ""
+            lifted, by = "", []
             if STANDINGS.index(own[r["id"]]) > STANDINGS.index(k) and k != "tied":
                 mates = [m["id"] for m in tier if m is not r and own[m["id"]] == kind]
                 if mates:
-                    why = "tied within Monte Carlo error with " + ", ".join(labels[m] for m in mates)
+                    lifted, by = "tied", [labels[m] for m in mates]
                 else:
-                    why = (f"ranked above {labels[lifted_by]}, which cannot be separated from the best, "
-                           "so not called clearly worse")
-            out[r["id"]] = Standing(k, rank, pos, [m["id"] for m in tier if m is not r], why)
+                    lifted, by = "above", [labels[lifted_by]]
+            out[r["id"]] = Standing(k, rank, pos, [m["id"] for m in tier if m is not r], lifted, by)
         if kind != "worse":
             below.insert(0, tier[0]["id"])
     return out
 
 
-def _place(st: Standing, n: int) -> str:
-    """"ranks first", "ranks 3 of 5", "ranks 4–5 of 5 (tied within Monte Carlo error)"."""
-    if st.rank == "1":
-        return "ranks first"
-    return f"ranks {st.rank} of {n}" + (" (tied within Monte Carlo error)" if "–" in st.rank else "")
+def better_share(pointwise: np.ndarray, best_pointwise: np.ndarray) -> float:
+    """Share of observations whose out-of-sample density one candidate predicts better
+    than the best one does.
 
+    Parameters
+    ----------
+    pointwise : numpy.ndarray
+        Pointwise elpd of the candidate, shape (N,).
+    best_pointwise : numpy.ndarray
+        Pointwise elpd of the best candidate, same shape.
 
-def _p_is(text: str) -> str:
-    """"p = 0.004", or "p < 0.001" when the value is written as a bound."""
-    return "p " + text if text[:1] in "<>" else "p = " + text
-
-
-def _misfit(r, ppp_extreme: float, relevant: Mapping[str, float] | None = None) -> list[str]:
-    """Short descriptions of the predictive checks a candidate fails, each with the size
-    of its miss (observed minus the nearest end of the replicated 90 % interval). With
-    relevant sizes set, a statistic that has one is named only when its miss is larger
-    (``statistics.named_misses``); one without a relevant size is named when detectable."""
-    from contenders.output.format import miss_words, pvalue_against
-    from contenders.statistics.features import describe, named_misses, unit_of
-
-    if r.checks is None:
-        return []
-    out = []
-    relevant = relevant or {}
-    for row in named_misses(r.checks.rows, ppp_extreme, relevant):
-        p = row["p_value"]
-        by = miss_words(row.get("miss", float("nan")), row.get("miss_share_sd"), unit_of(row["statistic"]))
-        if by:
-            what = f"observed {row['observed']:.4g}, {by}"
-        else:   # p = Pr(T(y_rep) >= T(y)): near 0, replicates fall short of the observed value
-            what = f"replicates {'lower' if p < 0.5 else 'higher'} than the observed {row['observed']:.4g}"
-        unset = "; no relevant size set" if relevant and row["statistic"] not in relevant else ""
-        out.append(f"{describe(row['statistic'])} ({what}; "
-                   f"{_p_is(pvalue_against(p, ppp_extreme, 1 - ppp_extreme))}{unset})")
-    from contenders.statistics.checks import band_text
-
-    where = band_text(r.checks.loo_pit_test)   # the band's level is the run's pit_alpha
-    if where:
-        out.append(f"calibration (LOO-PIT ECDF {where})")
-    return out
-
-
-def _small_misses(r, ppp_extreme: float, relevant: Mapping[str, float]) -> int:
-    """How many of a candidate's statistics are detectably off by less than their
-    relevant size (``statistics.reading`` "small")."""
-    from contenders.statistics.features import read_rows
-
-    if r.checks is None or not relevant:
-        return 0
-    return sum(code == "small" for code in read_rows(r.checks.rows, ppp_extreme, relevant))
-
-
-def _relevance_sentence(ranked, misses: dict, ppp_extreme: float, relevant: Mapping[str, float]) -> str:
-    """What the named misses were judged against: no relevant sizes (every detectable miss
-    is named, however small), or the sizes set and how many smaller misses were left out."""
-    from contenders.output.format import miss
-    from contenders.statistics.features import describe, unit_of
-
-    if not relevant:
-        if not any(misses.values()):
-            return ""
-        return ("No relevant sizes are set ([checks] relevant), so every detectable miss is named, however "
-                "small it is in the outcome's units (with many observations a difference too small to matter "
-                "is still detected); set one per statistic to name only the misses that matter.")
-    sizes = ", ".join(f"{describe(k)} = {miss(v, None, unit_of(k)).lstrip('+')}" for k, v in relevant.items())
-    small = {r.label: _small_misses(r, ppp_extreme, relevant) for r in ranked}
-    left = sum(small.values())
-    text = (f"Misses of a statistic with a relevant size ({sizes}) are named only when larger than that "
-            "size")
-    if left:
-        who = _labels([f"{k} {v}" for k, v in small.items() if v])
-        text += (f"; {left} detectable but smaller miss{'es are' if left > 1 else ' is'} left out ({who}; "
-                 "see Predictive checks)")
-    return text + "."
-
-
-def _behind(row: dict) -> str:
-    return f"{row['elpd_diff']:.1f} behind, SE {row['elpd_diff_se']:.1f}"
-
-
-def _labels(names: Sequence[str]) -> str:
-    """"A", "A and B", "A, B and C"."""
-    names = list(names)
-    return names[0] if len(names) == 1 else ", ".join(names[:-1]) + " and " + names[-1]
-
-
-def _better_share(r, best) -> float:
-    """Share of observations whose out-of-sample density candidate ``r`` predicts better
-    than ``best`` does (pointwise elpd higher)."""
-    a, b = np.asarray(r.oos.pointwise, dtype=float), np.asarray(best.oos.pointwise, dtype=float)
+    Returns
+    -------
+    float
+        Share of the observations (both values finite) where ``pointwise`` is higher;
+        NaN when none is finite.
+    """
+    a, b = np.asarray(pointwise, dtype=float), np.asarray(best_pointwise, dtype=float)
     ok = np.isfinite(a) & np.isfinite(b)
     return float(np.mean(a[ok] > b[ok])) if ok.any() else float("nan")
 
 
-def _stacking_sentence(ranked, stack_w, st: dict[str, Standing], rows: dict[str, dict]) -> str:
-    """Where stacking puts its weight, and in one phrase why a weight surprises: a
-    candidate far behind in elpd with a real weight covers observations the best one
-    predicts poorly (the mixture uses it for those)."""
-    best = ranked[0]
-    by_id = {r.id: r for r in ranked}
-    top = sorted(((w, rid) for rid, w in stack_w.items() if w >= 0.05), key=lambda t: (-t[0], t[1]))
-    parts = []
-    for w, rid in top:
-        text = f"{by_id[rid].label} ({w:.2f}"
-        if rid != best.id and st[rid].kind in ("uncertain", "worse"):
-            share = _better_share(by_id[rid], best)
-            text += (f", though {rows[rid]['elpd_diff']:.1f} elpd behind: it predicts "
-                     f"{100 * share:.0f} % of the observations better than {best.label}, and the mixture "
-                     "uses it for those")
-        parts.append(text + ")")
-    sentence = ("Stacking, which looks for the mixture of candidates that predicts best, puts its weight on "
-                + "; ".join(parts))
-    if best.id not in {rid for _, rid in top}:
-        sentence += (f"; {best.label} gets less than 0.05: a mixture of the others predicts better than one "
-                     "that adds it (candidates that complement each other can outweigh the single best one)")
-    return sentence + "."
-
-
-def _how_sure(ranked, st: dict[str, Standing], rows: dict[str, dict]) -> str:
-    """The lead's second sentence: how far behind the others are, group by standing."""
-    def are(group) -> str:
-        return "is" if len(group) == 1 else "are"
-
-    def span(group) -> str:
-        if len(group) == 1:
-            row = rows[group[0].id]
-            return f"{row['elpd_diff']:.1f} elpd behind (SE {row['elpd_diff_se']:.1f})"
-        lo, hi = (f"{f(rows[r.id]['elpd_diff'] for r in group):.1f}" for f in (min, max))
-        return f"{lo} elpd behind" if lo == hi else f"{lo} to {hi} elpd behind"
-
-    parts = []
-    others = ranked[1:]
-    for kind in ("tied", "close", "uncertain"):
-        group = [r for r in others if st[r.id].kind == kind]
-        if not group:
-            continue
-        names = _labels([r.label for r in group])
-        if kind == "tied":
-            parts.append(f"{names} {are(group)} tied with it within Monte Carlo error (the order would change "
-                         "with the seed)")
-        elif kind == "close":
-            parts.append(f"{names} {are(group)} {span(group)}, too little to separate (below "
-                         f"{SMALL_DIFFERENCE:g})")
-        else:
-            lifted = any(st[r.id].why for r in group)
-            parts.append(f"{names} {are(group)} {span(group)}, within two SE of the difference"
-                         + (" or tied with one that is" if lifted else "") + ": the order is uncertain")
-    worse = [r for r in others if st[r.id].kind == "worse"]
-    if worse and not parts:
-        parts.append(f"{_labels([r.label for r in worse[:1]])}, the next, is {span(worse[:1])}, more than "
-                     f"{SMALL_DIFFERENCE:g} elpd and two standard errors of the difference")
-        worse = worse[1:]
-    if worse:
-        parts.append(f"{len(worse)} other{'s are' if len(worse) > 1 else ' is'} clearly worse "
-                     f"({min(rows[r.id]['elpd_diff'] for r in worse):.1f} elpd behind or more)")
-    return "How sure: " + "; ".join(parts) + "."
-
-
-def _prior_advice(flagged) -> str:
-    """What to do about flagged priors, by what the prior trial found for each failing
-    bound (statistics/prior.py): narrower priors can help, or the family itself puts the
-    statistic outside the bound and no prior will fix it."""
-    def readings(r) -> set:
-        return {f.get("reading") for f in (getattr(r.prior, "failing", None) or [])}
-
-    narrow = [r.label for r in flagged if readings(r) & {"narrow_one", "narrow_several"}]
-    structure = [r.label for r in flagged if readings(r) and readings(r) <= {"structure"}]
-    unread = [r.label for r in flagged if r.label not in narrow and r.label not in structure]
-    parts = []
-    if narrow:
-        parts.append(f"Narrower priors can help {_labels(narrow)}: the prior predictive section names the "
-                     "parameter and the range to narrow towards ([hyperparameters.ID])")
-    if structure:
-        parts.append(f"no narrower prior will fix {_labels(structure)}: the family itself puts the failing "
-                     "statistic outside its bound; revisit the bound or the family")
-    if unread:
-        parts.append(f"for {_labels(unread)}, the prior predictive section shows which statistic is "
-                     "implausible; narrow its priors under [hyperparameters.ID] or revisit the bounds")
-    return "".join(f" {p[:1].upper()}{p[1:]}." for p in parts)
-
-
-def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.01,
-                       store=None,
-                       relevant: Mapping[str, float] | None = None) -> Comparison:
-    """Rank healthy candidates by elpd and write the verdict.
+def rank_candidates(results: Sequence, seed: int = 0, store=None) -> Comparison:
+    """Rank the healthy candidates by elpd: rows, standings and the preferred candidates.
 
     Rules (see ``standings``, the one rule every sentence and table reads): a
-    difference below 4 elpd is small (Sivula et al.); a difference within two SE of the
-    paired difference is uncertain (common practice, no source, for the factor 2);
-    candidates tied within Monte Carlo error share one standing and one rank; a
-    candidate with a posterior predictive p-value below ``ppp_extreme`` or above 1 -
-    ``ppp_extreme`` for any statistic, or LOO-PIT values whose ECDF leaves the
-    simultaneous band of the run's ``pit_alpha`` (``checks.uniformity_test``), is
-    named as misfitting even when it ranks well (the p-value threshold is common
-    practice, no source); unhealthy, failed and skipped candidates are not ranked.
-    ``store``: see ``weights``. ``relevant`` (statistic -> smallest miss that
-    matters, ``[checks] relevant``): a statistic that has one is named only when its miss
-    exceeds it, and a sentence says what the misses were judged against.
+    difference below ``rules.SMALL_DIFFERENCE`` elpd is small (Sivula et al.); a
+    difference within ``rules.SE_FACTOR`` SE of the paired difference is uncertain
+    (common practice, no source); candidates tied within Monte Carlo error share one
+    standing and one rank (``order_with_ties``); unhealthy, failed and skipped
+    candidates are not ranked. The verdict's words are written by
+    ``contenders.output.readings.verdict``; here ``lead`` and ``details`` stay empty.
 
-    The verdict comes as a lead of two or three sentences (what to use, how sure,
-    what misses) and the details.
+    Parameters
+    ----------
+    results : sequence of CandidateResult
+        Every candidate of the run; those with status ``"ok"`` and an out-of-sample
+        estimate (``oos``) are ranked. Their ``tied_with`` is set.
+    seed : int
+        Seed of the Bayesian bootstrap of the pseudo-BMA+ weights.
+    store : FitStore, optional
+        Where computed weights are kept (see ``weights``).
+
+    Returns
+    -------
+    Comparison
+        ``ranking`` (ids, best first), ``rows`` (one dict per ranked candidate: elpd,
+        SE, p, difference to the best and its SE, weights, Pareto k, method, Monte
+        Carlo SE, standing and shared rank), ``preferred`` (ids of the candidates not
+        clearly worse) and ``standings``.
+
+    References
+    ----------
+    Vehtari, Gelman & Gabry (2017), Statistics and Computing 27, 1413-1432 (elpd and
+    its SE); Yao, Vehtari, Simpson & Gelman (2018), Bayesian Analysis 13(3) (stacking
+    and pseudo-BMA+ weights); Sivula, Magnusson, Matamoros & Vehtari (2025), Bayesian
+    Analysis, arXiv:2008.10296 (small differences).
     """
     ranked = [r for r in results if r.status == "ok" and r.oos is not None]
-    lead: list[str] = []
-    details: list[str] = []
     rows: list[dict] = []
     preferred: list[str] = []
     st: dict[str, Standing] = {}
@@ -696,7 +720,6 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
         est = {r.id: r.oos for r in ranked}
         stack_w, bma_w, diffs = weights(est, seed, store)
         ranked = order_with_ties(ranked)
-        best = ranked[0]
         for pos, r in enumerate(ranked, 1):
             d, dse = diffs[r.id]
             rows.append({
@@ -707,113 +730,8 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = 0.
                 "mcse": r.oos.mcse, "tied_with": list(r.tied_with),
             })
         st = standings(rows)
-        by_row = {row["id"]: row for row in rows}
         for row in rows:
             row["standing"] = st[row["id"]].kind
             row["shared_rank"] = st[row["id"]].rank
         preferred = [r.id for r in ranked if st[r.id].preferred]
-        names = {r.id: r.label for r in ranked}
-        relevant = dict(relevant or {})
-        misses = {r.id: _misfit(r, ppp_extreme, relevant) for r in ranked}
-
-        # --- the lead: what to use, how sure, what misses
-        others = [names[cid] for cid in preferred if cid != best.id]
-        worse = [r for r in ranked if st[r.id].kind == "worse"]
-        if len(ranked) == 1:
-            lead.append(f"{best.label} is the only candidate that could be ranked, so there is nothing to "
-                        "compare it with; judge it on the predictive checks alone.")
-        elif not others:
-            lead.append(f"Use {best.label}: it predicts new data best of the {len(ranked)} ranked candidates "
-                        "and clearly ahead of every other.")
-        else:
-            lead.append(f"Consider {best.label} first, together with {_labels(others)}: the data cannot "
-                        "separate them by predictive accuracy.")
-        if len(ranked) > 1:
-            lead.append(_how_sure(ranked, st, by_row))
-        missing = [cid for cid in preferred if misses[cid]]
-        if missing:
-            features = []
-            for cid in missing:
-                for m in misses[cid]:
-                    f = m.split(" (")[0]
-                    if f not in features:
-                        features.append(f)
-            who = ("it" if missing == [best.id] and len(preferred) == 1 else _labels([names[c] for c in missing]))
-            lead.append(f"But {who} {'misses' if who == 'it' or len(missing) == 1 else 'miss'} features of "
-                        f"the data ({', '.join(features)}); do not trust {'its' if len(missing) == 1 else 'their'} "
-                        "predictions of these.")
-        elif relevant and any(_small_misses(r, ppp_extreme, relevant) for r in ranked if r.id in preferred):
-            lead.append(("It misses no" if len(preferred) == 1 else "None of them misses a") + " feature by more "
-                        "than the relevant sizes set ([checks] relevant), though smaller misses are "
-                        "detectable; checks can reveal misfit, not prove fit.")
-        else:
-            lead.append(("It fails no" if len(preferred) == 1 else "None of them fails a") + " predictive check; "
-                        "checks can reveal misfit, not prove fit.")
-
-        # --- the details
-        tied = [r for r in ranked if st[r.id].kind == "tied"]
-        if tied:
-            details.append(
-                f"{_labels([best.label] + [r.label for r in tied])} predict best, tied within Monte Carlo error "
-                f"(elpd {best.oos.elpd:.1f}, SE {best.oos.se:.1f}; their order would change with the seed, so "
-                "they are listed by id).")
-        elif len(ranked) == 1:
-            details.append(f"{best.label}: elpd {best.oos.elpd:.1f} (SE {best.oos.se:.1f}).")
-        else:
-            details.append(
-                f"{best.label} predicts best: elpd {best.oos.elpd:.1f} (SE {best.oos.se:.1f}), "
-                f"pseudo-BMA+ weight {bma_w[best.id]:.2f}.")
-        if len(ranked) > 1:
-            details.append(_stacking_sentence(ranked, stack_w, st, by_row))
-
-        def entry(r) -> str:
-            why = st[r.id].why
-            return f"{r.label} ({_behind(by_row[r.id])}{'; ' + why if why else ''})"
-
-        close = [entry(r) for r in ranked if st[r.id].kind == "close"]
-        uncertain = [entry(r) for r in ranked if st[r.id].kind == "uncertain"]
-        if close:
-            details.append(
-                "Within 4 elpd of it, too close to tell apart by predictive accuracy: " + "; ".join(close)
-                + ". Choose among these on the predictive checks, interpretability and theory.")
-        if uncertain:
-            details.append("Behind it, but by less than two standard errors of the difference (or not separable "
-                           "from one that is), so the order is uncertain: " + "; ".join(uncertain) + ".")
-        if worse:
-            details.append("Clearly worse at prediction (more than 4 elpd and two standard errors behind): "
-                           + "; ".join(entry(r) for r in worse) + ".")
-        lower = []
-        for r in ranked:
-            if not misses[r.id]:
-                continue
-            if st[r.id].preferred:
-                details.append(f"{r.label} {_place(st[r.id], len(ranked))} but its replicated data miss: "
-                               + "; ".join(misses[r.id])
-                               + ". Do not trust its predictions of these features; a family that can "
-                                 "produce them may do better.")
-            else:
-                lower.append(f"{r.label} ({', '.join(m.split(' (')[0] for m in misses[r.id])})")
-        if lower:
-            details.append("Clearly worse candidates whose replicated data also miss features of the data: "
-                           + "; ".join(lower) + " (details under Predictive checks).")
-        judged = _relevance_sentence(ranked, misses, ppp_extreme, relevant)
-        if judged:
-            details.append(judged)
-    else:
-        lead.append("No candidate could be ranked: every candidate was skipped, failed or is unhealthy "
-                    "(see below). Fix the problems named there and run again.")
-    flagged = [r for r in results if r.prior is not None and r.prior.flagged]
-    if flagged:
-        details.append(
-            "Priors that put most of their mass on implausible datasets (share of prior draws inside every "
-            "plausibility bound): " + "; ".join(f"{r.label} {100 * r.prior.plausible_share:.0f} %" for r in flagged)
-            + "." + _prior_advice(flagged))
-    for r in results:
-        reason = (r.reason or "").splitlines()[0] if r.reason else ""
-        if r.status == "unhealthy":
-            details.append(f"{r.label} is not ranked because the sampler did not converge: {reason.rstrip('.')}.")
-        elif r.status == "failed":
-            details.append(f"{r.label} could not be run: {reason.rstrip('.')}.")
-        elif r.status == "skipped":
-            details.append(f"{r.label} was skipped: {reason.rstrip('.')}.")
-    return Comparison([row["id"] for row in rows], rows, lead, preferred, details, st)
+    return Comparison([row["id"] for row in rows], rows, [], preferred, [], st)

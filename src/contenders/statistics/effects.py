@@ -27,16 +27,13 @@ import numpy as np
 import pandas as pd
 
 from contenders.statistics.checks import thin_draws
+from contenders.rules import MIN_WEIGHT
 
 #: Replicated effect draws kept per candidate and effect.
 MAX_DRAWS = 1000
 
 #: Probability of the central intervals.
 LEVEL = 0.95
-
-#: Candidates with a stacking weight below this do not count when asking whether
-#: candidates agree (the verdict's rule in compare.py; common practice, no source).
-MIN_WEIGHT = 0.05
 
 #: Statuses of candidates whose effects are shown: ranked, or sampled but unhealthy
 #: (shown for information, never weighted). Failed and skipped ones are left out.
@@ -49,9 +46,21 @@ KINDS = {"mean_difference": "difference in mean", "median_difference": "differen
 # --- one dataset's effects -------------------------------------------------------------
 
 def reference_and_levels(labels: Sequence, reference: str | None = None) -> tuple[str, list[str]]:
-    """The reference level (``reference`` when given, else the first in sorted order
-    of the text of the labels, as ``data.build_design`` codes a text column) and the
-    other levels, sorted."""
+    """The reference level of a condition and its other levels.
+
+    Parameters
+    ----------
+    labels : sequence
+        Each observation's level.
+    reference : str, optional
+        The reference level; by default the first in sorted order of the labels' text,
+        as ``data.build_design`` codes a text column.
+
+    Returns
+    -------
+    tuple
+        ``(reference, others)``, the other levels sorted.
+    """
     from contenders.inputs.data import levels_with_reference
 
     return levels_with_reference(labels, reference)
@@ -59,13 +68,28 @@ def reference_and_levels(labels: Sequence, reference: str | None = None) -> tupl
 
 def level_differences(y: np.ndarray, labels: Sequence, statistic: str = "mean",
                       reference: str | None = None) -> dict[str, np.ndarray]:
-    """Difference of ``statistic`` (``mean`` or ``median``) of the outcome between each
-    level of ``labels`` and the reference level, along the last axis of ``y``.
+    """Difference of a statistic of the outcome between each level and the reference.
 
-    Returns ``{level: values}``; ``values`` has the shape of ``y`` without its last
-    axis. Medians use NumPy's default linear interpolation (type 7 of Hyndman & Fan
-    1996), as the checks do. A dataset holding a non-finite value anywhere gives NaN
-    (as in ``statistics.compute``), even where a median would stay finite."""
+    Medians use NumPy's default linear interpolation (type 7 of Hyndman & Fan 1996), as
+    the checks do. A dataset holding a non-finite value anywhere gives NaN (as in
+    ``features.compute``), even where a median would stay finite.
+
+    Parameters
+    ----------
+    y : numpy.ndarray
+        Datasets along the last axis, shape (N,) or (S, N).
+    labels : sequence
+        Each observation's level, length N.
+    statistic : str
+        ``mean`` or ``median``.
+    reference : str, optional
+        See ``reference_and_levels``.
+
+    Returns
+    -------
+    dict of str to numpy.ndarray
+        Level -> level minus reference, of the shape of ``y`` without its last axis.
+    """
     y = np.asarray(y, dtype=float)
     text = np.asarray(labels).astype(str)
     ref, others = reference_and_levels(text, reference)
@@ -81,10 +105,23 @@ def level_differences(y: np.ndarray, labels: Sequence, statistic: str = "mean",
 
 
 def slope(y: np.ndarray, x: Sequence[float]) -> np.ndarray:
-    """Least-squares slope of ``y`` on ``x`` (with an intercept) along the last axis:
+    """Least-squares slope of ``y`` on ``x`` (with an intercept) along the last axis.
+
     sum((x - mean x) y) / sum((x - mean x)^2), the ordinary least-squares estimate of a
-    straight line. It is the marginal slope, not adjusted for other predictors. A
-    dataset holding a non-finite value gives NaN."""
+    straight line: the marginal slope, not adjusted for other predictors.
+
+    Parameters
+    ----------
+    y : numpy.ndarray
+        Datasets along the last axis, shape (N,) or (S, N).
+    x : sequence of float
+        The predictor, length N (not constant).
+
+    Returns
+    -------
+    numpy.ndarray
+        The slope of each dataset; NaN for a dataset holding a non-finite value.
+    """
     y = np.asarray(y, dtype=float)
     x = np.asarray(x, dtype=float)
     dx = x - x.mean()
@@ -94,8 +131,20 @@ def slope(y: np.ndarray, x: Sequence[float]) -> np.ndarray:
 
 
 def numeric_columns(table: pd.DataFrame, columns: Sequence[str]) -> list[str]:
-    """The columns among ``columns`` that ``data.build_design`` treats as numeric
-    (numeric dtype, not boolean)."""
+    """The columns that ``data.build_design`` treats as numeric.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        The design's table.
+    columns : sequence of str
+        Candidate column names.
+
+    Returns
+    -------
+    list of str
+        Those present with a numeric, non-boolean dtype, in order.
+    """
     return [c for c in columns if c in table.columns and pd.api.types.is_numeric_dtype(table[c])
             and not pd.api.types.is_bool_dtype(table[c])]
 
@@ -128,8 +177,20 @@ class Effect:
 
 
 def summarise(draws: np.ndarray, level: float = LEVEL) -> tuple[float, float, float, int]:
-    """Mean and central ``level`` interval (quantiles, NumPy's linear interpolation) of
-    the finite draws, and their count; NaN when there are none."""
+    """Mean and central interval of the finite draws.
+
+    Parameters
+    ----------
+    draws : numpy.ndarray
+        Draws of one effect.
+    level : float
+        Probability of the central interval (quantiles, NumPy's linear interpolation).
+
+    Returns
+    -------
+    tuple
+        ``(mean, lower, upper, count)``; NaN and 0 when no draw is finite.
+    """
     d = np.asarray(draws, dtype=float)
     d = d[np.isfinite(d)]
     if d.size == 0:
@@ -156,14 +217,33 @@ def effect_draws(
 ) -> list[Effect]:
     """Every effect of one candidate, from its replicated datasets.
 
-    ``y_rep`` is (draws, N) and ``y`` (N,), in the outcome's own units; ``table`` holds
-    the rows of the design in the same order (``Design.table``). For each condition
-    column, each level other than the reference gives a difference in mean and a
-    difference in median (level minus reference); each numeric column among
-    ``predictors`` gives a least-squares slope in outcome units per unit of that
-    column, from the raw column (not the centred and scaled one the candidates see).
-    ``reference`` maps a condition column to its reference level (by default the
-    first level in sorted order). At most ``max_draws`` evenly spaced draws are used."""
+    For each condition column, each level other than the reference gives a difference in
+    mean and a difference in median (level minus reference); each numeric column among
+    ``predictors`` gives a least-squares slope in outcome units per unit of that column,
+    from the raw column (not the centred and scaled one the candidates see).
+
+    Parameters
+    ----------
+    y_rep : numpy.ndarray
+        Replicated datasets, shape (draws, N), in the outcome's own units.
+    y : numpy.ndarray
+        Observed values, shape (N,).
+    table : pandas.DataFrame or None
+        The rows of the design in the same order (``Design.table``).
+    conditions : sequence of str
+        Condition columns.
+    predictors : sequence of str
+        Predictor columns (numeric ones give slopes).
+    max_draws : int
+        At most this many evenly spaced draws are used.
+    reference : mapping of str to str, optional
+        Condition column -> its reference level.
+
+    Returns
+    -------
+    list of Effect
+        Observed value and replicated draws of each effect.
+    """
     reference = dict(reference or {})
     if table is None or y_rep is None or np.size(y_rep) == 0:
         return []
@@ -192,10 +272,28 @@ def effect_draws(
 # --- across candidates ------------------------------------------------------------------
 
 def allocate(weights: Sequence[float], size: int) -> np.ndarray:
-    """Split ``size`` draws among candidates in proportion to ``weights``: each gets
-    the whole part of weight * size, and the draws left over go one each to the largest
-    remainders (ties to the earlier candidate). The largest-remainder rule of
-    apportionment (Hamilton's method; common practice, no source)."""
+    """Split ``size`` draws among candidates in proportion to ``weights``.
+
+    Each gets the whole part of weight * size, and the draws left over go one each to
+    the largest remainders (ties to the earlier candidate).
+
+    Parameters
+    ----------
+    weights : sequence of float
+        Finite, non-negative, not all zero.
+    size : int
+        Draws to split.
+
+    Returns
+    -------
+    numpy.ndarray
+        Integer count per candidate, summing to ``size``.
+
+    References
+    ----------
+    The largest-remainder rule of apportionment (Hamilton's method; common practice, no
+    source).
+    """
     w = np.asarray(weights, dtype=float)
     if w.ndim != 1 or w.size == 0 or np.any(~np.isfinite(w)) or np.any(w < 0) or w.sum() <= 0:
         raise ValueError("weights must be finite, non-negative and not all zero")
@@ -213,16 +311,31 @@ def combine(
     rng: np.random.Generator,
     size: int | None = None,
 ) -> np.ndarray:
-    """A sample from the mixture of the candidates' replicated effect draws with the
-    given (stacking) weights.
+    """A sample from the mixture of the candidates' replicated effect draws.
 
-    Method: ``allocate`` fixes how many of the ``size`` combined draws come from each
-    candidate (its weight times ``size``, rounded by largest remainder), so a
-    candidate's share is exact to one draw rather than random; the draws themselves
-    are taken from the candidate's finite draws by ``rng`` without replacement (when
-    more are needed than it has, every draw is used whole times and the rest are taken
-    without replacement). Deterministic given the generator's seed. ``size`` defaults
-    to the largest number of draws of any candidate with positive weight."""
+    ``allocate`` fixes how many of the ``size`` combined draws come from each candidate
+    (its weight times ``size``, rounded by largest remainder), so a candidate's share is
+    exact to one draw rather than random; the draws themselves are taken from the
+    candidate's finite draws by ``rng`` without replacement (when more are needed than it
+    has, every draw is used whole times and the rest are taken without replacement).
+
+    Parameters
+    ----------
+    per_candidate_draws : sequence of numpy.ndarray
+        Each candidate's draws of the effect.
+    weights : sequence of float
+        One (stacking) weight per candidate.
+    rng : numpy.random.Generator
+        The generator; the result is deterministic given its seed.
+    size : int, optional
+        Combined draws; by default the largest number of draws of any candidate with
+        positive weight.
+
+    Returns
+    -------
+    numpy.ndarray
+        The combined draws (empty when no candidate has weight and draws).
+    """
     draws = [np.asarray(d, dtype=float)[np.isfinite(np.asarray(d, dtype=float))] for d in per_candidate_draws]
     w = np.asarray(weights, dtype=float)
     if len(draws) != w.size:
@@ -243,7 +356,18 @@ def combine(
 
 
 def direction(lower: float, upper: float) -> str:
-    """``above zero``, ``below zero`` or ``includes zero``, from an interval."""
+    """Where an interval lies with respect to zero.
+
+    Parameters
+    ----------
+    lower, upper : float
+        The interval's ends.
+
+    Returns
+    -------
+    str
+        ``above zero``, ``below zero`` or ``includes zero`` (fixed codes, shown as they are).
+    """
     if lower > 0:
         return "above zero"
     if upper < 0:
@@ -251,84 +375,48 @@ def direction(lower: float, upper: float) -> str:
     return "includes zero"
 
 
-def _g(x: float) -> str:
-    """Three significant digits, all digits before the point kept."""
-    if x is None or not np.isfinite(x):
-        return "undefined"
-    if x == 0:
-        return "0"
-    decimals = max(0, 2 - int(math.floor(math.log10(abs(x)))))
-    return f"{x:.{decimals}f}"
-
-
-def _iv(lo: float, hi: float) -> str:
-    return f"{_g(lo)} to {_g(hi)}"
-
-
-@dataclass
-class Agreement:
-    reading: str        # agree | depends | single | none
-    sentence: str
-
-
-def agreement(title: str, rows: Sequence[Mapping], observed: float, combined: Mapping | None = None,
-              min_weight: float = MIN_WEIGHT) -> Agreement:
+def agreement_reading(rows: Sequence[Mapping], observed: float, min_weight: float = MIN_WEIGHT) -> dict:
     """Whether the healthy candidates with non-negligible weight reach the same
-    conclusion about one effect, as a cautious sentence.
+    conclusion about one effect.
 
-    ``rows`` hold, per candidate, ``label``, ``weight`` (stacking weight; None when
-    not ranked), ``lower`` and ``upper`` (95 % interval). Candidates agree when every
-    pair of intervals overlaps (the largest lower end is at most the smallest upper
-    end) and every interval falls on the same side of zero (all above, all below, or
-    all including it); otherwise the conclusion depends on the choice. Rows with weight
-    below ``min_weight`` or without an interval are left out."""
+    Candidates agree when every pair of intervals overlaps (the largest lower end is at
+    most the smallest upper end) and every interval falls on the same side of zero (all
+    above, all below, or all including it); otherwise the conclusion depends on the
+    choice. Rows with weight below ``min_weight`` or without an interval are left out.
+
+    Parameters
+    ----------
+    rows : sequence of mapping
+        Per candidate: ``label``, ``weight`` (stacking weight; None when not ranked),
+        ``lower`` and ``upper`` (the 95 % interval of its replicated effect).
+    observed : float
+        The effect in the observed data.
+    min_weight : float
+        Smallest stacking weight that counts (``rules.MIN_WEIGHT``).
+
+    Returns
+    -------
+    dict
+        ``reading`` (``agree``, ``depends``, ``single`` or ``none``), ``use`` (the rows
+        that count), ``misses`` (labels of those whose interval excludes ``observed``),
+        ``sides`` (the ``direction`` of each row that counts, in order) and
+        ``overlap`` (every pair of intervals overlaps). The sentence is
+        ``contenders.output.readings.agreement``.
+    """
     use = [r for r in rows if r.get("weight") is not None and r["weight"] >= min_weight
            and np.isfinite(r["lower"]) and np.isfinite(r["upper"])]
     misses = [r["label"] for r in use if not r["lower"] <= observed <= r["upper"]]
-    miss = (f" The observed value ({_g(observed)}) lies outside the 95 % interval of "
-            + ", ".join(misses) + ": replicated data from "
-            + ("that candidate do" if len(misses) == 1 else "those candidates do")
-            + " not reproduce this effect, so treat its estimate with suspicion.") if misses else ""
+    sides = [direction(r["lower"], r["upper"]) for r in use]
+    overlap = bool(use) and max(r["lower"] for r in use) <= min(r["upper"] for r in use)
     if not use:
-        return Agreement("none", f"{title}: no ranked candidate has a stacking weight of at least "
-                                 f"{min_weight:g}, so there is nothing to compare.")
-    if len(use) == 1:
-        r = use[0]
-        return Agreement("single", (
-            f"{title}: only {r['label']} carries a stacking weight of at least {min_weight:g} "
-            f"({r['weight']:.2f}); its 95 % interval is {_iv(r['lower'], r['upper'])} "
-            f"({direction(r['lower'], r['upper'])}). With a single candidate in play there is no "
-            "agreement to check; look at the other candidates' intervals before relying on it." + miss))
-    names = ", ".join(f"{r['label']} ({r['weight']:.2f})" for r in use)
-    sides = {direction(r["lower"], r["upper"]) for r in use}
-    overlap = max(r["lower"] for r in use) <= min(r["upper"] for r in use)
-    comb = (f" (stacking-weighted combination {_g(combined['mean'])}, 95 % interval "
-            f"{_iv(combined['lower'], combined['upper'])})") if combined else ""
-    if overlap and len(sides) == 1:
-        side = sides.pop()
-        if side == "includes zero":
-            what = ("agree only in that none of them separates this effect from zero: every 95 % interval "
-                    "includes zero")
-            after = ("The data leave the direction open under each of these candidates; that is not "
-                     "evidence that the effect is absent.")
-        else:
-            what = f"agree: every 95 % interval lies {side}"
-            after = ("The conclusion does not hinge on the choice among these candidates; that is not "
-                     "proof of the effect, since all of them may share the same blind spots.")
-        return Agreement("agree", (
-            f"{title}: the {len(use)} candidates with stacking weight of at least {min_weight:g} "
-            f"({names}) {what}, and the intervals overlap{comb}. {after}" + miss))
-    parts = "; ".join(f"{r['label']} {_iv(r['lower'], r['upper'])} ({direction(r['lower'], r['upper'])})"
-                      for r in use)
-    why = []
-    if len(sides) > 1:
-        why.append("the intervals fall on different sides of zero")
-    if not overlap:
-        why.append("not all intervals overlap")
-    return Agreement("depends", (
-        f"{title}: the conclusion depends on the choice of candidate, because "
-        + " and ".join(why) + f" (95 % intervals: {parts}){comb}. Report the effect under each of "
-        "these candidates, or settle the choice of candidate on other grounds first." + miss))
+        reading = "none"
+    elif len(use) == 1:
+        reading = "single"
+    elif overlap and len(set(sides)) == 1:
+        reading = "agree"
+    else:
+        reading = "depends"
+    return {"reading": reading, "use": use, "misses": misses, "sides": sides, "overlap": overlap}
 
 
 @dataclass
@@ -345,21 +433,38 @@ class EffectAcross:
     rows: list[dict]                 # per candidate, ranked first by elpd; see compare_effects
     combined: dict | None            # mean, lower, upper, n_draws of the weighted mixture
     reading: str                     # agree | depends | single | none
-    sentence: str
+    sentence: str                    # in words: contenders.output.readings.compare_effects fills it
     combined_draws: np.ndarray = field(repr=False, default_factory=lambda: np.zeros(0))
 
 
-def compare_effects(results: Sequence, comparison_rows: Sequence[Mapping], seed: int = 0,
-                    min_weight: float = MIN_WEIGHT) -> list[EffectAcross]:
+def effects_across(results: Sequence, comparison_rows: Sequence[Mapping], seed: int = 0,
+                   min_weight: float = MIN_WEIGHT) -> list[EffectAcross]:
     """Gather each effect across candidates, combine the ranked candidates' draws by
-    stacking weight, and read whether they agree.
+    stacking weight, and read whether they agree (``agreement_reading``).
 
-    ``results`` are candidate results with ``id``, ``label``, ``status`` and
-    ``effects`` (lists of :class:`Effect`); only those whose status is in ``SAMPLED``
-    (ranked, or sampled but unhealthy) are shown. ``comparison_rows`` are the ranked
-    rows (``id``, ``rank``, ``stacking_weight``), best first. Rows of the output come
-    in that order, then candidates that were not ranked (weight None). The combination
-    uses the generator ``numpy.random.default_rng([seed, k])`` for the k-th effect."""
+    Rows of the output come in the ranking's order, then candidates that were not ranked
+    (weight None). The combination uses the generator ``numpy.random.default_rng([seed,
+    k])`` for the k-th effect. The sentence is left empty for
+    ``contenders.output.readings.compare_effects`` to write.
+
+    Parameters
+    ----------
+    results : sequence of CandidateResult
+        Candidates with ``id``, ``label``, ``status`` and ``effects`` (lists of
+        ``Effect``); only those whose status is in ``SAMPLED`` are shown.
+    comparison_rows : sequence of mapping
+        The ranked rows (``id``, ``rank``, ``stacking_weight``), best first.
+    seed : int
+        Seed of the combinations.
+    min_weight : float
+        Smallest stacking weight that counts (``rules.MIN_WEIGHT``).
+
+    Returns
+    -------
+    list of EffectAcross
+        One per effect: per-candidate rows, the stacking-weighted combination and the
+        agreement reading.
+    """
     ranked = {row["id"]: row for row in comparison_rows}
     results = [r for r in results if r.status in SAMPLED and getattr(r, "effects", None)]
     order = [r for row in comparison_rows for r in results if r.id == row["id"]]
@@ -390,14 +495,25 @@ def compare_effects(results: Sequence, comparison_rows: Sequence[Mapping], seed:
             mix = combine(weighted, weights, np.random.default_rng([int(seed), k]))
             mean, lo, hi, n = summarise(mix)
             combined = {"mean": mean, "lower": lo, "upper": hi, "n_draws": n}
-        verdict = agreement(first.title, rows, first.observed, combined, min_weight)
+        verdict = agreement_reading(rows, first.observed, min_weight)
         out.append(EffectAcross(key, first.kind, first.column, first.level, first.reference, first.title,
-                                first.observed, rows, combined, verdict.reading, verdict.sentence, mix))
+                                first.observed, rows, combined, verdict["reading"], "", mix))
     return out
 
 
 def effects_summary(effects: Sequence[EffectAcross]) -> list[dict]:
-    """The ``effects`` block of summary.json: plain numbers, no draws."""
+    """The ``effects`` block of summary.json.
+
+    Parameters
+    ----------
+    effects : sequence of EffectAcross
+        Effects with their sentences written.
+
+    Returns
+    -------
+    list of dict
+        Plain numbers and text per effect, no draws.
+    """
     return [{
         "key": e.key, "kind": e.kind, "column": e.column, "level": e.level, "reference": e.reference,
         "description": e.title, "observed": e.observed,

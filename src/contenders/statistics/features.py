@@ -19,19 +19,7 @@ from typing import Iterable, Mapping, Sequence
 import numpy as np
 
 from contenders.inputs.config import DEFAULT_STATISTICS
-
-#: Plain-language names of the statistics, for reports.
-DESCRIPTIONS = {
-    "mean": "mean",
-    "sd": "standard deviation",
-    "min": "minimum",
-    "max": "maximum",
-    "q05": "5 % quantile",
-    "q50": "median",
-    "q95": "95 % quantile",
-    "skewness": "skewness",
-}
-
+from contenders.rules import PPP_EXTREME
 
 #: Statistics measured in the outcome's own units (their miss is also given as a share
 #: of the observed SD). ``skewness`` has no unit; ``below_T`` is a share of observations.
@@ -40,46 +28,88 @@ OUTCOME_UNITS = ("mean", "sd", "min", "max", "q05", "q50", "q95")
 #: The central interval of the replicated values that a miss is measured from.
 INTERVAL = 0.90
 
-#: Reading codes of one statistic (``reading``), and what each means in words.
-READINGS = {
-    "fits": "not detectably off",
-    "detectable": "detectably off; no relevant size set",
-    "small": "detectably off, but by less than the relevant size",
-    "relevant": "off by more than the relevant size",
-    "possibly_relevant": "outside the interval by more than the relevant size, but not detectably off",
-    "unknown": "no p-value",
-}
+#: Reading codes of one statistic (``reading``); their words are
+#: ``contenders.output.readings.CHECK_READINGS``.
+READING_CODES = ("fits", "detectable", "small", "relevant", "possibly_relevant", "unknown")
 
 
 def unit_of(name: str) -> str:
-    """``"outcome"``, ``"share"`` (the ``below_T`` statistics) or ``"none"`` (skewness)."""
+    """The unit of a statistic's values.
+
+    Parameters
+    ----------
+    name : str
+        A statistic name (``statistic_names``).
+
+    Returns
+    -------
+    str
+        ``"outcome"`` (``OUTCOME_UNITS``), ``"share"`` (the ``below_T`` statistics) or
+        ``"none"`` (skewness).
+    """
     if name in OUTCOME_UNITS:
         return "outcome"
     return "share" if name.startswith("below_") else "none"
 
 
 def threshold_name(t: float) -> str:
+    """The name of the statistic "share of values below ``t``".
+
+    Parameters
+    ----------
+    t : float
+        The threshold.
+
+    Returns
+    -------
+    str
+        ``"below_<t>"`` with ``t`` written by ``format(t, "g")``: ``below_300``.
+    """
     return f"below_{t:g}"
 
 
 def statistic_names(thresholds: Iterable[float] = ()) -> tuple[str, ...]:
+    """Every statistic computed on a dataset, in the order of the tables.
+
+    Parameters
+    ----------
+    thresholds : iterable of float
+        Thresholds of the "share below" statistics (``[checks] thresholds``).
+
+    Returns
+    -------
+    tuple of str
+        ``DEFAULT_STATISTICS`` followed by one ``threshold_name`` per threshold.
+    """
     return DEFAULT_STATISTICS + tuple(threshold_name(t) for t in thresholds)
-
-
-def describe(name: str) -> str:
-    if name.startswith("below_"):
-        return f"share below {name[6:]}"
-    return DESCRIPTIONS.get(name, name)
 
 
 def compute(y: np.ndarray, thresholds: Sequence[float] = ()) -> dict[str, np.ndarray]:
     """Every statistic of each dataset along the last axis of ``y``.
 
-    ``sd`` uses ddof = 1; quantiles use linear interpolation (NumPy's default, type 7
-    of Hyndman & Fan 1996); ``skewness`` is the Fisher-Pearson coefficient
-    g1 = m3 / m2^(3/2) with central moments about the dataset's mean; ``below_t`` is
-    the share of values strictly below t. A dataset holding a non-finite value gets
-    NaN for every statistic except min, max and the shares.
+    ``sd`` uses ddof = 1; quantiles use linear interpolation; ``skewness`` is the
+    Fisher-Pearson coefficient g1 = m3 / m2^(3/2) with central moments about the
+    dataset's mean; ``below_t`` is the share of values strictly below t. A dataset
+    holding a non-finite value gets NaN for every statistic except min, max and the
+    shares.
+
+    Parameters
+    ----------
+    y : numpy.ndarray
+        One dataset, shape (N,), or many, shape (S, N).
+    thresholds : sequence of float
+        Thresholds of the "share below" statistics.
+
+    Returns
+    -------
+    dict of str to numpy.ndarray
+        Statistic name -> values, of the shape of ``y`` without its last axis.
+
+    References
+    ----------
+    Hyndman & Fan (1996), "Sample quantiles in statistical packages", The American
+    Statistician 50(4) (type 7, NumPy's default); the skewness g1 as in SciPy's
+    ``scipy.stats.skew`` with ``bias=True``.
     """
     y = np.asarray(y, dtype=float)
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
@@ -107,9 +137,26 @@ def compute(y: np.ndarray, thresholds: Sequence[float] = ()) -> dict[str, np.nda
 
 
 def ppp_value(replicated: np.ndarray, observed: float) -> float:
-    """Posterior predictive p-value Pr(T(y_rep) >= T(y) | y), ties counted half
-    (Gelman, Meng & Stern 1996, Statistica Sinica 6, 733-807, eq. 2.3 with the
-    mid-p convention for discrete statistics). NaN replicates are left out."""
+    """Posterior predictive p-value Pr(T(y_rep) >= T(y) | y), ties counted half.
+
+    Parameters
+    ----------
+    replicated : numpy.ndarray
+        The statistic of each replicated dataset; NaN values are left out.
+    observed : float
+        The statistic of the observed data.
+
+    Returns
+    -------
+    float
+        The p-value; NaN when no replicate is left or ``observed`` is not finite.
+
+    References
+    ----------
+    Gelman, Meng & Stern (1996), "Posterior predictive assessment of model fitness via
+    realized discrepancies", Statistica Sinica 6, 733-807, eq. 2.3 (with the mid-p
+    convention for discrete statistics).
+    """
     r = np.asarray(replicated, dtype=float)
     r = r[~np.isnan(r)]
     if r.size == 0 or not np.isfinite(observed):
@@ -145,8 +192,22 @@ def miss(observed: float, low: float, high: float) -> float:
 
 
 def miss_share(size: float, name: str, observed_sd: float | None) -> float:
-    """The miss of statistic ``name`` as a share of the observed SD, for statistics in the
-    outcome's units (``OUTCOME_UNITS``); NaN for the others or without a positive SD."""
+    """The miss of a statistic as a share of the observed SD.
+
+    Parameters
+    ----------
+    size : float
+        The miss (``miss``), in the statistic's units.
+    name : str
+        The statistic; only those in the outcome's units (``OUTCOME_UNITS``) get a share.
+    observed_sd : float or None
+        The observed data's SD.
+
+    Returns
+    -------
+    float
+        ``size / observed_sd``; NaN for other statistics or without a positive, finite SD.
+    """
     if unit_of(name) != "outcome" or observed_sd is None:
         return float("nan")
     sd = float(observed_sd)
@@ -156,12 +217,25 @@ def miss_share(size: float, name: str, observed_sd: float | None) -> float:
 
 
 def detectable(p: float, ppp_extreme: float) -> bool:
-    """True when the ppp-value lies below ``ppp_extreme`` or above 1 - ``ppp_extreme``."""
+    """Whether a ppp-value is extreme: the statistic is "detectably off".
+
+    Parameters
+    ----------
+    p : float
+        Posterior predictive p-value (``ppp_value``).
+    ppp_extreme : float
+        The extreme (``rules.PPP_EXTREME`` by default in the run).
+
+    Returns
+    -------
+    bool
+        True when ``p`` is finite and below ``ppp_extreme`` or above 1 - ``ppp_extreme``.
+    """
     return bool(p is not None and np.isfinite(p) and (p < ppp_extreme or p > 1 - ppp_extreme))
 
 
-def reading(p: float, size: float, relevant: float | None, ppp_extreme: float = 0.01) -> str:
-    """One reading code of ``READINGS`` for a statistic: its ppp-value ``p``, its miss
+def reading(p: float, size: float, relevant: float | None, ppp_extreme: float = PPP_EXTREME) -> str:
+    """One reading code of ``READING_CODES`` for a statistic: its ppp-value ``p``, its miss
     ``size`` (``miss``) and the relevant size set for it (``None``: none set).
 
     The one definition every table and sentence reads (our own rule, no source):
@@ -185,7 +259,7 @@ def reading(p: float, size: float, relevant: float | None, ppp_extreme: float = 
     Returns
     -------
     str
-        A key of ``READINGS``.
+        One of ``READING_CODES``.
     """
     if p is None or not np.isfinite(p):
         return "unknown"
@@ -199,8 +273,23 @@ def reading(p: float, size: float, relevant: float | None, ppp_extreme: float = 
 
 def read_rows(rows: Sequence[Mapping], ppp_extreme: float,
               relevant: Mapping[str, float] | None = None) -> list[str]:
-    """The ``reading`` of each row of ``summarise`` (rows without a miss count as of
-    unknown size)."""
+    """The ``reading`` of each row of ``summarise``.
+
+    Parameters
+    ----------
+    rows : sequence of mapping
+        Rows with ``statistic``, ``p_value`` and ``miss`` (rows without a miss count as
+        of unknown size).
+    ppp_extreme : float
+        See ``detectable``.
+    relevant : mapping of str to float, optional
+        Statistic -> smallest miss that matters (``[checks] relevant``).
+
+    Returns
+    -------
+    list of str
+        One of ``READING_CODES`` per row, in order.
+    """
     relevant = relevant or {}
     return [reading(r.get("p_value", np.nan), r.get("miss", np.nan), relevant.get(r["statistic"]), ppp_extreme)
             for r in rows]
@@ -208,25 +297,70 @@ def read_rows(rows: Sequence[Mapping], ppp_extreme: float,
 
 def named_misses(rows: Sequence[Mapping], ppp_extreme: float,
                  relevant: Mapping[str, float] | None = None) -> list[Mapping]:
-    """The rows the verdict names: with no relevant sizes set, every detectable one; with
-    some set, those off by more than their relevant size, and detectable ones of
-    statistics without a relevant size (their size is not judged, so they stay named)."""
+    """The rows the verdict names as misses.
+
+    With no relevant sizes set, every detectable one; with some set, those off by more
+    than their relevant size, and detectable ones of statistics without a relevant size
+    (their size is not judged, so they stay named).
+
+    Parameters
+    ----------
+    rows : sequence of mapping
+        Rows of ``summarise``.
+    ppp_extreme : float
+        See ``detectable``.
+    relevant : mapping of str to float, optional
+        Statistic -> smallest miss that matters.
+
+    Returns
+    -------
+    list of mapping
+        The rows whose reading is ``relevant`` or ``detectable``, in order.
+    """
     return [r for r, code in zip(rows, read_rows(rows, ppp_extreme, relevant))
             if code in ("relevant", "detectable")]
 
 
 def grouped(y: np.ndarray, labels: np.ndarray, thresholds: Sequence[float] = ()) -> dict[str, dict[str, np.ndarray]]:
-    """Statistics per level of a condition: ``{level: {statistic: values}}``; the
-    last axis of ``y`` runs over observations and ``labels`` gives each one's level."""
+    """Statistics per level of a condition.
+
+    Parameters
+    ----------
+    y : numpy.ndarray
+        Datasets along the last axis (observations), shape (N,) or (S, N).
+    labels : numpy.ndarray
+        Each observation's level, shape (N,); compared as text.
+    thresholds : sequence of float
+        See ``compute``.
+
+    Returns
+    -------
+    dict
+        ``{level: {statistic: values}}``, levels in sorted order.
+    """
     labels = np.asarray(labels).astype(str)
     return {level: compute(y[..., labels == level], thresholds) for level in sorted(set(labels))}
 
 
 def summarise(replicated: Mapping[str, np.ndarray], observed: Mapping[str, float]) -> list[dict]:
-    """One row per statistic: observed value, replicated mean and 5/50/95 % quantiles,
-    the ppp-value, the miss (observed minus the nearest end of the 5-95 % interval,
-    ``miss``) and, for statistics in the outcome's units, the miss as a share of the
-    observed SD (``miss_share_sd``; the observed ``sd`` of the same dataset)."""
+    """One row per statistic: observed value, replicated summaries, ppp-value and miss.
+
+    Parameters
+    ----------
+    replicated : mapping of str to numpy.ndarray
+        Statistic -> its values over replicated datasets (``compute`` of ``y_rep``).
+    observed : mapping of str to float
+        Statistic -> its observed value (``compute`` of ``y``); its ``sd`` gives the
+        miss as a share of the SD.
+
+    Returns
+    -------
+    list of dict
+        Per statistic: ``statistic``, ``observed``, replicated ``mean`` and 5/50/95 %
+        quantiles (``q05``, ``q50``, ``q95``), ``p_value`` (``ppp_value``),
+        ``n_missing`` (NaN replicates), ``miss`` (observed minus the nearest end of the
+        5-95 % interval, ``miss``) and ``miss_share_sd`` (``miss_share``).
+    """
     rows = []
     observed_sd = observed.get("sd")
     for name, draws in replicated.items():

@@ -33,6 +33,7 @@ import math
 import numpy as np
 
 from contenders.engines.base import Draws, Engine, Program, SamplerSettings
+from contenders.rules import EBFMI_MIN, ESS_PER_CHAIN_MIN, RHAT_FAR, RHAT_MAX
 
 
 @dataclass
@@ -60,11 +61,14 @@ class Health:
     adapt_delta: float
     attempts: list[Attempt]
     healthy: bool
-    problems: list[str]
-    warnings: list[str]
+    problems: list[str]            # in words: contenders.output.readings.word_health fills them
+    warnings: list[str]            # from ``findings``
     table: list[dict] = field(default_factory=list)   # per parameter element
     warmup: int = 0                # per chain, of the accepted fit
     draws: int = 0                 # per chain, of the accepted fit
+    #: what the diagnostics found, as codes with their values (see ``diagnose``), in the
+    #: order the words list them; ``severity`` "problem" makes the fit unhealthy
+    findings: list[dict] = field(default_factory=list)
 
     @property
     def posterior_means(self) -> dict[str, float]:
@@ -88,15 +92,48 @@ def _flatten(ds, var_names: Sequence[str]) -> dict[str, float]:
 def diagnose(
     draws: Draws,
     parameters: Sequence[str],
-    rhat_max: float = 1.01,
-    ess_per_chain_min: float = 100.0,
-    ebfmi_min: float = 0.3,
+    rhat_max: float = RHAT_MAX,
+    ess_per_chain_min: float = ESS_PER_CHAIN_MIN,
+    ebfmi_min: float = EBFMI_MIN,
     attempts: Sequence[Attempt] = (),
 ) -> Health:
-    """Compute every diagnostic of one run and decide whether it is healthy."""
-    import arviz as az
+    """Compute every diagnostic of one run and decide whether it is healthy.
 
-    from contenders.output.format import against, limit   # a value beside its threshold shows the side it is on
+    Parameters
+    ----------
+    draws : Draws
+        The fit: its InferenceData (posterior and sample statistics ``diverging``,
+        ``tree_depth``, ``energy``) and the sampler settings it ran with.
+    parameters : sequence of str
+        Parameters to diagnose (those present in the posterior; vectors are flattened,
+        1-based). Elements equal in every draw (fixed by the program) are left out.
+    rhat_max : float
+        Rank-normalised split R-hat must be below this (``rules.RHAT_MAX``).
+    ess_per_chain_min : float
+        Bulk and tail ESS must be at least this times the chains (``rules.ESS_PER_CHAIN_MIN``).
+    ebfmi_min : float
+        E-BFMI of every chain must be at least this (``rules.EBFMI_MIN``).
+    attempts : sequence of Attempt
+        The record of the fits made so far (kept in the result).
+
+    Returns
+    -------
+    Health
+        The diagnostics, the per-parameter table and ``findings``: one dict per finding
+        with ``code`` (``rhat_nan``, ``rhat``, ``ess``, ``divergences``, ``ebfmi`` are
+        problems; ``treedepth`` is a warning), ``severity`` and the values the words
+        need. ``healthy`` is True without problems. ``problems`` and ``warnings`` are
+        left empty: ``contenders.output.readings.word_health`` writes them.
+
+    References
+    ----------
+    Vehtari, Gelman, Simpson, Carpenter & Bürkner (2021), "Rank-normalization, folding,
+    and localization: an improved R-hat for assessing convergence of MCMC", Bayesian
+    Analysis 16(2) (R-hat, bulk and tail ESS; computed with ArviZ). Betancourt (2016),
+    "Diagnosing suboptimal cotangent disintegrations in Hamiltonian Monte Carlo",
+    arXiv:1604.00695 (E-BFMI; ArviZ's ``bfmi``).
+    """
+    import arviz as az
 
     idata = draws.idata
     settings = draws.settings
@@ -127,58 +164,61 @@ def diagnose(
     ebfmi = [float(v) for v in np.atleast_1d(az.bfmi(idata))]
     min_ess = ess_per_chain_min * settings.chains
 
-    problems, warnings = [], []
+    findings: list[dict] = []
+
+    def found(code: str, severity: str = "problem", **values) -> None:
+        findings.append({"code": code, "severity": severity, **values})
+
     r_max = max(finite_rhat.values()) if finite_rhat else float("nan")
     if any(not np.isfinite(v) for v in rhat.values()):
-        problems.append("R-hat could not be computed for some parameters (constant draws: the chains are stuck)")
+        found("rhat_nan")
     if np.isfinite(r_max) and r_max >= rhat_max:
-        problems.append(
-            f"R-hat {against(r_max, rhat_max, 3)} for {worst_r} is not below {limit(rhat_max)}: chains "
-            "disagree; run longer "
-            "(more warmup and draws) or reparameterise"
-        )
+        found("rhat", value=r_max, limit=rhat_max, parameter=worst_r)
     e_bulk = min(bulk.values()) if bulk else float("nan")
     e_tail = min(tail.values()) if tail else float("nan")
     if min(e_bulk, e_tail) < min_ess:
-        problems.append(
-            f"effective sample size {against(min(e_bulk, e_tail), min_ess, 0)} for {worst_e} is below "
-            f"{limit(min_ess)} ({limit(ess_per_chain_min)} per chain): increase draws"
-        )
+        found("ess", value=min(e_bulk, e_tail), limit=min_ess, per_chain=ess_per_chain_min, parameter=worst_e)
     if divergences:
-        problems.append(
-            f"{divergences} divergent transitions at adapt_delta {settings.adapt_delta}: the posterior "
-            "has regions the sampler cannot explore; reparameterise or use stronger priors"
-        )
+        found("divergences", count=divergences, adapt_delta=settings.adapt_delta)
     low = [i + 1 for i, v in enumerate(ebfmi) if v < ebfmi_min]
     if low:
-        problems.append(
-            f"E-BFMI below {limit(ebfmi_min)} in chain(s) "
-            + ", ".join(f"{i} ({against(ebfmi[i - 1], ebfmi_min, 2)})" for i in low)
-            + ": the sampler moves "
-            "poorly between energy levels; reparameterise (for example non-centred group effects)"
-        )
+        found("ebfmi", chains=low, values=[ebfmi[i - 1] for i in low], limit=ebfmi_min)
     if hits:
-        warnings.append(
-            f"{hits} iterations hit the maximum tree depth {settings.max_treedepth}: sampling is "
-            "inefficient; raise max_treedepth or reparameterise"
-        )
+        found("treedepth", "warning", count=hits, max_treedepth=settings.max_treedepth)
     return Health(
         rhat_max=r_max, rhat_worst=worst_r, ess_bulk_min=e_bulk, ess_tail_min=e_tail,
         ess_worst=worst_e, divergences=divergences, treedepth_hits=hits, ebfmi=ebfmi,
-        adapt_delta=settings.adapt_delta, attempts=list(attempts), healthy=not problems,
-        problems=problems, warnings=warnings, table=table, warmup=settings.warmup, draws=settings.draws,
+        adapt_delta=settings.adapt_delta, attempts=list(attempts),
+        healthy=not any(f["severity"] == "problem" for f in findings),
+        problems=[], warnings=[], table=table, warmup=settings.warmup, draws=settings.draws,
+        findings=findings,
     )
 
 
-#: A fit whose R-hat is at or above this is far off, not just short: no longer retry
-#: (the older rule of thumb for R-hat; common practice, no source).
-RHAT_FAR = 1.05
-
-
-def just_short(health: Health, longer: float, rhat_max: float = 1.01, ess_per_chain_min: float = 100.0,
-               ebfmi_min: float = 0.3, chains: int = 4) -> bool:
+def just_short(health: Health, longer: float, rhat_max: float = RHAT_MAX, ess_per_chain_min: float = ESS_PER_CHAIN_MIN,
+               ebfmi_min: float = EBFMI_MIN, chains: int = 4) -> bool:
     """Whether an unhealthy fit fell short on R-hat or ESS only, and by little enough that
-    chains ``longer`` times as long can be expected to settle it."""
+    chains ``longer`` times as long can be expected to settle it.
+
+    Parameters
+    ----------
+    health : Health
+        The fit's diagnostics.
+    longer : float
+        Factor of warmup and draws of the retry (1 or less: never retry).
+    rhat_max, ess_per_chain_min, ebfmi_min : float
+        The thresholds of ``diagnose``.
+    chains : int
+        Chains of the fit.
+
+    Returns
+    -------
+    bool
+        True without divergent transitions, with E-BFMI fine, R-hat below
+        max(``rules.RHAT_FAR``, ``rhat_max``) and ESS at least its floor divided by
+        ``longer`` (ESS grows about in proportion to the draws; common practice, no
+        source).
+    """
     if health.healthy or longer <= 1 or health.divergences or any(v < ebfmi_min for v in health.ebfmi):
         return False
     if not np.isfinite(health.rhat_max) or health.rhat_max >= max(RHAT_FAR, rhat_max):
@@ -197,9 +237,38 @@ def fit_with_health(
     longer: float = 1.0,
     **thresholds: float,
 ) -> tuple[Draws, Health]:
-    """Sample; on divergent transitions refit at each higher adapt_delta in turn; when the
-    result falls just short on R-hat or ESS (see :func:`just_short`), fit once more with
-    warmup and draws ``longer`` times as many."""
+    """Sample with sampler health checked, escalating adapt_delta and retrying longer.
+
+    On divergent transitions the fit is made again at each higher adapt_delta of
+    ``escalation`` in turn; when the result falls just short on R-hat or ESS
+    (``just_short``), it is fitted once more with warmup and draws ``longer`` times as
+    many. Both are recorded as findings (``escalated``, ``longer``) before the accepted
+    fit's own.
+
+    Parameters
+    ----------
+    engine : Engine
+        The sampler.
+    program : Program
+        The compiled candidate.
+    data : mapping
+        The program's data.
+    settings : SamplerSettings
+        Chains, warmup, draws, adapt_delta, seed.
+    parameters : sequence of str
+        Parameters to diagnose.
+    escalation : sequence of float
+        Higher adapt_delta values to try after divergent transitions.
+    longer : float
+        Factor of warmup and draws of the one longer retry (1: never).
+    **thresholds : float
+        ``rhat_max``, ``ess_per_chain_min``, ``ebfmi_min`` (see ``diagnose``).
+
+    Returns
+    -------
+    tuple
+        ``(draws, health)`` of the accepted fit; every attempt is in ``health.attempts``.
+    """
     steps = [settings.adapt_delta] + sorted(d for d in escalation if d > settings.adapt_delta)
     attempts: list[Attempt] = []
 
@@ -217,20 +286,18 @@ def fit_with_health(
         del draws
     health = diagnose(draws, parameters, attempts=attempts, **thresholds)
     escalated = len(attempts) > 1
-    short = health.problems
+    short = [f for f in health.findings if f["severity"] == "problem"]
     if just_short(health, longer, chains=settings.chains, **thresholds):
         run = replace(settings, adapt_delta=health.adapt_delta, warmup=math.ceil(settings.warmup * longer),
                       draws=math.ceil(settings.draws * longer))
         del draws
         draws = one(run)
         health = diagnose(draws, parameters, attempts=attempts, **thresholds)
-        health.warnings.insert(0, (
-            f"fitted again with {run.warmup} warmup iterations and {run.draws} draws per chain (instead of "
-            f"{settings.warmup} and {settings.draws}), since the first fit fell just short ("
-            + "; ".join(p.split(":")[0] for p in short)
-            + ("); the longer fit passes" if health.healthy else "); the longer fit does not pass either")))
+        health.findings.insert(0, {"code": "longer", "severity": "warning", "warmup": run.warmup,
+                                   "draws": run.draws, "first_warmup": settings.warmup,
+                                   "first_draws": settings.draws, "short": short, "passes": health.healthy})
     if escalated:
-        record = "; ".join(f"adapt_delta {a.adapt_delta}: {a.divergences} divergences"
-                           for a in attempts if a.draws == settings.draws)
-        health.warnings.insert(0, f"refitted after divergent transitions ({record})")
+        health.findings.insert(0, {"code": "escalated", "severity": "warning",
+                                   "attempts": [(a.adapt_delta, a.divergences) for a in attempts
+                                                if a.draws == settings.draws]})
     return draws, health

@@ -26,6 +26,7 @@ from typing import Mapping, Sequence
 import numpy as np
 
 from contenders.statistics import features as st
+from contenders.rules import IMPLAUSIBLE_SHARE
 
 
 @dataclass
@@ -39,7 +40,7 @@ class PriorTrial:
     inside_each: dict[str, float]        # per bounded statistic: share of draws inside its bound
     n_nonfinite: int                     # replicated datasets with an infinite or NaN value
     flagged: bool
-    message: str
+    message: str                         # in words: contenders.output.readings.word_prior fills it
     failing: list[dict] = field(default_factory=list)   # reading of each failing bound (see module)
     stat_draws: dict[str, np.ndarray] = field(repr=False, default_factory=dict)
 
@@ -52,12 +53,37 @@ TENTHS = 10
 def read_bound(name: str, values: np.ndarray, finite: np.ndarray, bound: tuple[float, float],
                parameters: Mapping[str, np.ndarray] | None, needed: float,
                plausible: np.ndarray | None = None) -> dict:
-    """Where the draws of one statistic fall against its bound and whether a narrower
-    prior on one parameter can bring at least ``needed`` of them inside (see the module
-    docstring). ``parameters`` maps scalar parameter names to their prior draws, in the
-    order of the datasets; ``None`` leaves the second question open. ``plausible``
-    marks the datasets inside every bound (default: inside this one); the tenths are
-    judged by it."""
+    """Where the draws of one statistic fall against its bound, and whether a narrower prior
+    on one parameter can bring enough of them inside (see the module docstring; our own
+    rule, no source).
+
+    Parameters
+    ----------
+    name : str
+        The statistic.
+    values : numpy.ndarray
+        Its value in each prior predictive dataset.
+    finite : numpy.ndarray
+        Whether each dataset is finite throughout.
+    bound : tuple of float
+        ``(low, high)``.
+    parameters : mapping of str to numpy.ndarray or None
+        Scalar parameter name -> prior draws, in the order of the datasets; ``None``
+        leaves the second question open.
+    needed : float
+        Share of plausible datasets a tenth of one parameter must reach.
+    plausible : numpy.ndarray, optional
+        Datasets inside every bound (default: inside this one); the tenths are judged
+        by it.
+
+    Returns
+    -------
+    dict
+        ``statistic``, ``low``, ``high``, the shares ``inside``, ``below``, ``above`` and
+        ``nonfinite``, and, with ``parameters``: ``fixable``, ``reading``
+        (``narrow_one``, ``narrow_several`` or ``structure``), ``best_parameter``,
+        ``best_range`` and ``best_share``.
+    """
     low, high = bound
     values = np.asarray(values, dtype=float)
     ok = finite & (values >= low) & (values <= high)
@@ -90,59 +116,42 @@ def read_bound(name: str, values: np.ndarray, finite: np.ndarray, bound: tuple[f
     return out
 
 
-def bound_sentence(r: dict) -> str:
-    """One reading of a failing bound, in words (used in the message)."""
-    what = st.describe(r["statistic"])
-    side = []
-    if r["below"] > 0:
-        side.append(f"{100 * r['below']:.0f} % below {r['low']:g}")
-    if r["above"] > 0:
-        side.append(f"{100 * r['above']:.0f} % above {r['high']:g}")
-    if r["nonfinite"] > 0:
-        side.append(f"{100 * r['nonfinite']:.0f} % not finite")
-    if np.isinf(r["high"]):
-        where = f"at least {r['low']:g}"
-    elif np.isinf(r["low"]):
-        where = f"at most {r['high']:g}"
-    else:
-        where = f"inside {r['low']:g} to {r['high']:g}"
-    text = f"{what}: {100 * r['inside']:.0f} % of prior draws {where}"
-    if side:
-        text += " (" + ", ".join(side) + ")"
-    lo, hi = r["best_range"] or (np.nan, np.nan)
-    if r["fixable"] is True:
-        text += (f"; narrower priors can fix this: of the prior draws with {r['best_parameter']} between "
-                 f"{lo:.3g} and {hi:.3g} (a tenth of them), {100 * r['best_share']:.0f} % are plausible (inside every "
-                 "bound), so narrow "
-                 f"the prior on {r['best_parameter']} toward that range (this candidate's [hyperparameters] in "
-                 "the configuration)")
-    elif r["reading"] == "narrow_several":
-        text += (f"; no one prior fixes this alone: the best tenth of one parameter's prior draws "
-                 f"({r['best_parameter']} between {lo:.3g} and {hi:.3g}) gives {100 * r['best_share']:.0f} % "
-                 "plausible datasets; narrow several of this candidate's priors together ([hyperparameters] in "
-                 "the configuration) and run again")
-    elif r["reading"] == "structure":
-        text += (f"; narrower priors will not fix this: in no tenth of any parameter's prior draws are more "
-                 f"than {100 * r['best_share']:.0f} % plausible (best: {r['best_parameter']} between {lo:.3g} and "
-                 f"{hi:.3g}), so the family's structure, not the width of its priors, puts the {what} there; "
-                 "check that this bound applies to this family, and judge it on the posterior checks")
-    else:
-        text += "; tighten this candidate's priors (its [hyperparameters] in the configuration) or check the bound"
-    return text
-
-
 def summarise_prior(
     y_rep: np.ndarray,
     y: np.ndarray,
     bounds: Mapping[str, tuple[float, float]],
     thresholds: Sequence[float] = (),
-    implausible_share: float = 0.5,
+    implausible_share: float = IMPLAUSIBLE_SHARE,
     parameters: Mapping[str, np.ndarray] | None = None,
 ) -> PriorTrial:
-    """``y_rep`` has shape (draws, N). A draw is plausible when every bounded statistic
-    lies within [low, high]; a draw with a non-finite value is never plausible.
-    ``parameters`` (scalar parameter name -> prior draws, one per dataset) lets a
-    flagged trial say whether a narrower prior can fix each failing bound."""
+    """Summary of a candidate's prior predictive draws against the plausibility bounds.
+
+    A draw is plausible when every bounded statistic lies within [low, high]; a draw with
+    a non-finite value is never plausible. The message is left empty for
+    ``contenders.output.readings.word_prior`` to write.
+
+    Parameters
+    ----------
+    y_rep : numpy.ndarray
+        Prior predictive datasets, shape (draws, N).
+    y : numpy.ndarray
+        Observed values, shape (N,).
+    bounds : mapping of str to tuple of float
+        Statistic -> ``(low, high)``.
+    thresholds : sequence of float
+        Thresholds of the "share below" statistics.
+    implausible_share : float
+        Priors are flagged below this share of plausible datasets (``rules.IMPLAUSIBLE_SHARE``).
+    parameters : mapping of str to numpy.ndarray, optional
+        Scalar parameter name -> prior draws, one per dataset; lets a flagged trial say
+        whether a narrower prior can fix each failing bound (``read_bound``).
+
+    Returns
+    -------
+    PriorTrial
+        Statistic rows, the plausible share, each bound's share, whether flagged, and
+        the reading of each failing bound.
+    """
     y_rep = np.asarray(y_rep, dtype=float)
     reps = st.compute(y_rep, thresholds)
     obs = st.compute(y, thresholds)
@@ -161,19 +170,13 @@ def summarise_prior(
     share = float(plausible.mean()) if bounds else None
     flagged = share is not None and share < implausible_share
     failing: list[dict] = []
-    if share is None:
-        message = "no plausibility bounds configured; compare the prior statistics with the observed ones"
-    elif flagged:
+    if flagged:
         names = [k for k in bounds if inside_each[k] < implausible_share] or [min(inside_each, key=inside_each.get)]
         names.sort(key=inside_each.get)
         failing = [read_bound(k, reps[k], finite, bounds[k], parameters, implausible_share, plausible)
                    for k in names]
-        message = (f"only {100 * share:.0f} % of prior draws give plausible data; "
-                   + "; ".join(bound_sentence(r) for r in failing))
-    else:
-        message = f"{100 * share:.0f} % of prior draws give data inside every plausibility bound"
     return PriorTrial(
         n_draws=int(y_rep.shape[0]), rows=rows, plausible_share=share, bounds=dict(bounds),
         inside_each=inside_each, n_nonfinite=int((~finite).sum()), flagged=flagged,
-        message=message, failing=failing, stat_draws=reps,
+        message="", failing=failing, stat_draws=reps,
     )

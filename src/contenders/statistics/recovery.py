@@ -48,6 +48,8 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from contenders.rules import SE_FACTOR
+
 #: Replicated datasets per generating candidate when none are configured.
 DEFAULT_REPLICATES = 20
 
@@ -231,7 +233,7 @@ def decide(generator: str, index: int, draw: int, fits: Sequence[ReplicateFit]) 
                          excluded, problems)
     winner, lead, lead_se = elpd_winner({m: np.asarray(f.loo["loo_i"].values) for m, f in ok.items()})
     weights = stacking_weights({m: f.loo for m, f in ok.items()})
-    return Replicate(generator, index, draw, winner, bool(lead > 2 * lead_se), lead, lead_se,
+    return Replicate(generator, index, draw, winner, bool(lead > SE_FACTOR * lead_se), lead, lead_se,
                      weight_winner(weights), weights, elpd, excluded, problems)
 
 

@@ -16,7 +16,8 @@ The diagnostic itself is ArviZ's (:func:`arviz.psens`); this module supplies the
 prior (the program's ``lprior`` generated quantity) and the summed ``log_lik``, adds
 the Pareto k of the importance weights (the paper's reliability check: above 0.7 the
 weights are not trustworthy) and reads each parameter's pair of values as the paper
-does, in this project's words (``_reading``, :data:`READINGS`):
+does, in this project's codes (``_reading``, :data:`READING_CODES`; their sentences are
+``contenders.output.readings.SENSITIVITY_READINGS``):
 
 * ``pulled_both_ways``: prior and likelihood sensitivity both at least 0.05; the prior
   and the data pull the parameter in different directions (the paper's sign of a
@@ -39,28 +40,21 @@ from typing import Sequence
 import numpy as np
 
 from contenders.statistics.posterior import _flatten
+from contenders.rules import SENSITIVITY_DELTA, SENSITIVITY_K_RELIABLE, SENSITIVITY_THRESHOLD
 
-#: The paper's threshold for a sensitivity worth a look.
-THRESHOLD = 0.05
+#: The paper's threshold for a sensitivity worth a look (``rules.SENSITIVITY_THRESHOLD``).
+THRESHOLD = SENSITIVITY_THRESHOLD
 
-#: Finite-difference step of the derivative (the paper's and ArviZ's default).
-DELTA = 0.01
+#: Finite-difference step of the derivative (``rules.SENSITIVITY_DELTA``).
+DELTA = SENSITIVITY_DELTA
 
-#: Pareto k above this: the importance weights, and so the diagnostic, are unreliable.
-K_RELIABLE = 0.7
+#: Pareto k above this: the importance weights, and so the diagnostic, are unreliable
+#: (``rules.SENSITIVITY_K_RELIABLE``).
+K_RELIABLE = SENSITIVITY_K_RELIABLE
 
-#: Every reading code with the sentence the report shows, which says what to do.
-READINGS = {
-    "pulled_both_ways": "Pulled both ways: the prior and the data push it in different directions. "
-                        "Check that the prior's centre and width say what you meant; if they do, the data "
-                        "disagree with it, so show the result under a wider prior as well.",
-    "set_by_prior": "Set by the prior: the data add little about it. Keep the prior only if it was chosen "
-                    "on purpose and say so when reporting; otherwise widen it, or collect data that "
-                    "inform this parameter.",
-    "led_by_data": "Led by the data: the prior hardly matters. Nothing to do.",
-    "steady": "Steady: barely moves when either the prior or the data are scaled. Nothing to do.",
-    "": "Not computed (a non-finite value). Nothing to read.",
-}
+#: Every reading code (``""``: not computed); the sentence of each, which says what to do, is
+#: ``contenders.output.readings.SENSITIVITY_READINGS``.
+READING_CODES = ("pulled_both_ways", "set_by_prior", "led_by_data", "steady", "")
 
 #: The readings that ask the user to act.
 ACT_ON = ("pulled_both_ways", "set_by_prior")
@@ -75,8 +69,8 @@ class Sensitivity:
     ``likelihood_range`` (lowest and highest value over chains computed one chain at a
     time: a rough view of the Monte Carlo spread; with fewer draws the single-chain
     values run somewhat higher), ``near_threshold`` (a single-chain range crosses the
-    threshold, so the reading could change with other draws) and ``reading`` (a key of
-    :data:`READINGS`).
+    threshold, so the reading could change with other draws) and ``reading`` (one of
+    :data:`READING_CODES`).
     ``pareto_k`` gives the largest Pareto k of the importance weights per component."""
 
     rows: list[dict] = field(default_factory=list)
@@ -95,11 +89,26 @@ class Sensitivity:
 
 
 def power_scale_log_weights(log_component: np.ndarray, alpha: float) -> tuple[np.ndarray, float]:
-    """Normalised log importance weights of draws from the posterior for the posterior
-    with one component (prior or likelihood, ``log_component`` its log density at each
-    draw) raised to the power ``alpha``: ``log w_s = (alpha - 1) log p(theta_s)``,
-    Pareto-smoothed with :func:`arviz.psislw`. Returns the weights and Pareto k
-    (Kallioinen et al. 2023, Section 2.3)."""
+    """Importance weights for power-scaling one component of the posterior.
+
+    Parameters
+    ----------
+    log_component : numpy.ndarray
+        The component's (prior or likelihood) log density at each posterior draw.
+    alpha : float
+        The power.
+
+    Returns
+    -------
+    tuple
+        ``(log_weights, pareto_k)``: normalised ``log w_s = (alpha - 1) log p(theta_s)``,
+        Pareto-smoothed with ArviZ's ``psislw``, and the Pareto k of the weights.
+
+    References
+    ----------
+    Kallioinen, Paananen, Bürkner & Vehtari (2023), Statistics and Computing 34, 57,
+    section 2.3; Vehtari, Simpson, Gelman, Yao & Gabry (2024), JMLR 25(72) (PSIS).
+    """
     import arviz as az
 
     log_component = np.asarray(log_component, dtype=float).reshape(-1)
@@ -110,15 +119,30 @@ def power_scale_log_weights(log_component: np.ndarray, alpha: float) -> tuple[np
 
 
 def power_scaled_mean(values: np.ndarray, log_component: np.ndarray, alpha: float) -> tuple[float, float]:
-    """The posterior mean of ``values`` after power-scaling one component by ``alpha``,
-    estimated with the smoothed importance weights; returns ``(mean, pareto_k)``."""
+    """The posterior mean of ``values`` after power-scaling one component by ``alpha``.
+
+    Parameters
+    ----------
+    values : numpy.ndarray
+        A quantity at each posterior draw.
+    log_component : numpy.ndarray
+        The component's log density at each draw.
+    alpha : float
+        The power.
+
+    Returns
+    -------
+    tuple
+        ``(mean, pareto_k)``, estimated with the smoothed importance weights
+        (``power_scale_log_weights``).
+    """
     lw, k = power_scale_log_weights(log_component, alpha)
     w = np.exp(lw - lw.max())
     return float(np.sum(w * np.asarray(values, dtype=float).reshape(-1)) / np.sum(w)), k
 
 
 def _reading(prior: float, likelihood: float, threshold: float) -> str:
-    """The reading code (a key of :data:`READINGS`) of one parameter's pair of values."""
+    """The reading code (one of :data:`READING_CODES`) of one parameter's pair of values."""
     if not (np.isfinite(prior) and np.isfinite(likelihood)):
         return ""
     if prior >= threshold:
@@ -128,13 +152,37 @@ def _reading(prior: float, likelihood: float, threshold: float) -> str:
 
 def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
                   log_lik: str = "log_lik", threshold: float = THRESHOLD) -> Sensitivity | None:
-    """Prior and likelihood power-scaling sensitivity of every parameter in
-    ``parameters`` (those present in the posterior; vectors are flattened, 1-based).
+    """Prior and likelihood power-scaling sensitivity of every parameter.
 
-    ``idata`` needs the program's joint log prior density ``lprior`` as a posterior
-    variable and the pointwise ``log_lik``; returns ``None`` when the program has no
-    ``lprior``. A failure of the computation is returned in ``problem``, never raised,
-    so it cannot stop the candidate's other trials."""
+    A failure of the computation is returned in ``problem``, never raised, so it cannot
+    stop the candidate's other trials.
+
+    Parameters
+    ----------
+    idata : arviz.InferenceData
+        The fit; needs the program's joint log prior density ``lprior`` as a posterior
+        variable and the pointwise ``log_lik``.
+    parameters : sequence of str
+        Parameters to read (those present in the posterior; vectors are flattened,
+        1-based; matrix-valued ones are left out).
+    lprior, log_lik : str
+        Names of the log prior and the pointwise log-likelihood.
+    threshold : float
+        Sensitivity worth a look (``rules.SENSITIVITY_THRESHOLD``).
+
+    Returns
+    -------
+    Sensitivity or None
+        Per parameter the diagnostic on all draws, its range over single chains and the
+        reading code; the Pareto k of the weights per component. ``None`` when the
+        program has no ``lprior``.
+
+    References
+    ----------
+    Kallioinen, Paananen, Bürkner & Vehtari (2023), "Detecting and diagnosing prior and
+    likelihood sensitivity with power-scaling", Statistics and Computing 34, 57
+    (arXiv:2107.14054); computed with ArviZ's ``psens``.
+    """
     import arviz as az
     import xarray as xr
 
@@ -187,19 +235,3 @@ def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
     except Exception as exc:   # reported on the page; the candidate's other trials go on
         return Sensitivity(problem=f"power-scaling could not be computed: {type(exc).__name__}: {exc}",
                            threshold=threshold)
-
-
-def summary(s: Sensitivity | None) -> dict | None:
-    """The JSON-ready record of one candidate's sensitivity (``summary.json``)."""
-    if s is None:
-        return None
-    return {
-        "threshold": s.threshold, "draws": s.n_draws, "pareto_k": s.pareto_k, "reliable": s.reliable,
-        "problem": s.problem or None,
-        "parameters": [{"parameter": r["parameter"], "prior": r["prior"], "likelihood": r["likelihood"],
-                        "prior_chain_range": list(r["prior_range"]),
-                        "likelihood_chain_range": list(r["likelihood_range"]),
-                        "near_threshold": r["near_threshold"],
-                        "reading": r["reading"] or None,
-                        "what_to_do": READINGS[r["reading"]] if r["reading"] else None} for r in s.rows],
-    }
