@@ -1,23 +1,28 @@
-"""The words of the statistics' readings: every sentence the verdict, the sampler-health
-notes and the prior advice say, written from the numbers, flags and codes that
-``contenders.statistics`` computes.
+"""The words of the statistics' readings, in one place: every sentence written from the
+numbers, flags and codes that ``contenders.statistics`` computes (statistic names and
+reading words, the LOO-PIT band's and quantile misses' phrases, standings and the
+verdict's lead and details, sampler-health problems and advice, the prior trial's
+message and advice, power-scaling readings, effects' agreement).
 
-Statistics return numbers and categories (a standing's kind, a reading code, a
-finding's code with its values); this module turns them into text, once, so a
-sentence changes here and nowhere else. The thresholds the sentences name come from
+Statistics return numbers and categories (a standing's kind and lift, a reading code, a
+finding's code with its values); this module turns them into text, once, so a sentence
+changes here and nowhere else. The thresholds the sentences name come from
 ``contenders.rules``.
 
-The boundary: ``compare_candidates`` ranks (``statistics.compare.rank_candidates``) and
-fills ``Comparison.lead`` and ``details`` (``verdict``); the run calls it
-(``pipeline/runner.py``).
+The boundary: records that keep text fields get them from here, filled by the run
+(``pipeline/runner.py``): ``compare_candidates`` (``statistics.compare.rank_candidates``,
+then ``verdict`` into ``Comparison.lead`` and ``details``), ``word_health`` (a
+``Health``'s ``problems`` and ``warnings`` from its ``findings``, after each
+``fit_with_health``), ``word_prior`` (a ``PriorTrial``'s ``message``) and
+``compare_effects`` (each effect's ``sentence``; the report calls it too).
+``sensitivity_summary`` is the summary.json record with each reading's advice.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Mapping, Sequence
-
-import math
 
 import numpy as np
 
