@@ -136,19 +136,10 @@ BATCH_EXIT_STATUS = ("exit status: 0 when at least one dataset ranked a candidat
 
 def _run_and_report(cfg, command_line: str) -> int:
     from contenders.output.report import write_report
-    from contenders.pipeline.runner import run_with_programs
+    from contenders.pipeline.recovery import run_with_recovery
 
     say = (lambda _t: None) if cfg.quiet else (lambda t: print(t, flush=True))
-    result, programs = run_with_programs(cfg, progress=say)
-    if cfg.replicates:   # model recovery (contenders recovery, or [recovery] replicates)
-        from contenders.output.recovery_files import write as write_recovery
-        from contenders.pipeline.recovery import recover
-
-        from contenders.pipeline.store import FitStore
-
-        with FitStore(cfg.store or Path(cfg.out) / "fits").in_use():   # prune waits for it
-            result.recovery = recover(result, programs, cfg.replicates, progress=say)
-        write_recovery(result.recovery, result.out)
+    result = run_with_recovery(cfg, progress=say)
     report = write_report(result, result.out, command_line=command_line)
     if not cfg.quiet:
         print()

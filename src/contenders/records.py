@@ -50,7 +50,6 @@ class CandidateResult:
     checks: PredictiveChecks | None = None
     oos: OutOfSample | None = None
     refit_divergences: int = 0
-    tied_with: list[str] = field(default_factory=list)   # ranked candidates tied within Monte Carlo error
     y_rep_sample: np.ndarray | None = field(default=None, repr=False)
     seconds: dict[str, float] = field(default_factory=dict)
     fit_files: list[str] = field(default_factory=list)   # stored fits (NetCDF) of this candidate

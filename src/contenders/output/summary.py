@@ -91,7 +91,7 @@ def candidate_summary(r: CandidateResult, comparison: Comparison, cfg: RunConfig
         "refitted_observations": [i + 1 for i in o.refitted] if o else [],
         "elpd_method": o.method if o else None,
         "elpd_mcse": o.mcse if o else None,
-        "tied_with": r.tied_with,
+        "tied_with": row.get("tied_with", []),   # from the comparison, not the candidate
         "power_scaling": sensitivity_summary(r.sensitivity),
         "coefficients": coefficients_summary(r.coefficients),
         "rank": row.get("rank"),

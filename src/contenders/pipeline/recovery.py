@@ -175,3 +175,20 @@ def _record(g: str, i: int, m: str, health, kept) -> ReplicateFit:
 
 # --- output -------------------------------------------------------------------------------
 
+
+def run_with_recovery(cfg, progress: Callable[[str], None] | None = None):
+    """A comparison run and, when ``cfg.replicates`` is set, its model recovery
+    (``recover``), whose files (recovery.json, recovery.csv) are written beside the run's.
+    The returned :class:`contenders.records.RunResult` holds both; nothing is attached
+    to it afterwards."""
+    from contenders.output.recovery_files import write as write_recovery
+    from contenders.pipeline.runner import run_with_programs
+    from contenders.pipeline.store import FitStore
+
+    result, programs = run_with_programs(cfg, progress=progress)
+    if not cfg.replicates:
+        return result
+    with FitStore(cfg.store or Path(cfg.out) / "fits").in_use():   # a prune waits for it
+        rec = recover(result, programs, cfg.replicates, progress=progress)
+    write_recovery(rec, result.out)
+    return replace(result, recovery=rec)

@@ -516,12 +516,14 @@ def order_with_ties(ranked: list) -> list:
     Parameters
     ----------
     ranked : list
-        Candidate results with ``id`` and ``oos`` (elpd, mcse); their ``tied_with`` is set.
+        Candidate results with ``id`` and ``oos`` (elpd, mcse); they are not changed.
 
     Returns
     -------
-    list
+    ordered : list
         The same results, ordered.
+    tied_with : dict of str to list of str
+        Per id, the ids of the others in its tie (empty when it is alone).
     """
     ordered = sorted(ranked, key=lambda r: -r.oos.elpd)
     tiers: list[list] = []
@@ -534,10 +536,8 @@ def order_with_ties(ranked: list) -> list:
                 tiers[-1].append(r)
                 continue
         tiers.append([r])
-    for tier in tiers:
-        for r in tier:
-            r.tied_with = [o.id for o in tier if o is not r]
-    return [r for tier in tiers for r in sorted(tier, key=lambda r: r.id)]
+    tied_with = {r.id: [o.id for o in tier if o is not r] for tier in tiers for r in tier}
+    return [r for tier in tiers for r in sorted(tier, key=lambda r: r.id)], tied_with
 
 
 #: The standings of a ranked candidate, most favourable first.
@@ -691,7 +691,7 @@ def rank_candidates(results: Sequence, seed: int = 0, store=None) -> Comparison:
     ----------
     results : sequence of CandidateResult
         Every candidate of the run; those with status ``"ok"`` and an out-of-sample
-        estimate (``oos``) are ranked. Their ``tied_with`` is set.
+        estimate (``oos``) are ranked; they are not changed.
     seed : int
         Seed of the Bayesian bootstrap of the pseudo-BMA+ weights.
     store : FitStore, optional
@@ -719,7 +719,7 @@ def rank_candidates(results: Sequence, seed: int = 0, store=None) -> Comparison:
     if ranked:
         est = {r.id: r.oos for r in ranked}
         stack_w, bma_w, diffs = weights(est, seed, store)
-        ranked = order_with_ties(ranked)
+        ranked, tied_with = order_with_ties(ranked)
         for pos, r in enumerate(ranked, 1):
             d, dse = diffs[r.id]
             rows.append({
@@ -727,7 +727,7 @@ def rank_candidates(results: Sequence, seed: int = 0, store=None) -> Comparison:
                 "p": r.oos.p, "elpd_diff": d, "elpd_diff_se": dse, "stacking_weight": stack_w[r.id],
                 "pseudo_bma_weight": bma_w[r.id], "pareto_k_max": r.oos.k_max,
                 "n_high_k": r.oos.n_high_k, "n_refits": r.oos.n_refits, "method": r.oos.method,
-                "mcse": r.oos.mcse, "tied_with": list(r.tied_with),
+                "mcse": r.oos.mcse, "tied_with": tied_with[r.id],
             })
         st = standings(rows)
         for row in rows:
