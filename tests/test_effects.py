@@ -328,7 +328,10 @@ def test_summary_csv_and_report_carry_the_effects(known_effect, tmp_path):
     # a failed candidate's effects are never shown
     gone = [dataclasses.replace(c, effects=[]) if c.id == "normal" else dataclasses.replace(c, status="failed")
             for c in result.candidates]
-    write_report(dataclasses.replace(result, candidates=gone), tmp_path)
+    # the run compares the effects once (RunResult.effects); a changed run compares them again
+    again = compare_effects(gone, result.comparison.rows, result.config.seed)
+    assert again == []
+    write_report(dataclasses.replace(result, candidates=gone, effects=again), tmp_path)
     html = (tmp_path / "report.html").read_text()
     assert html.count("<section id=") == len(SECTIONS) and "No effects:" in html
     assert not (tmp_path / "effects.csv").exists()

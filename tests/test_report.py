@@ -286,9 +286,11 @@ def test_report_writes_over_an_earlier_one_and_renders_without_optional_parts(re
     failed = [dataclasses.replace(c, status="failed", reason="made to fail for this test", prior=None,
                                   health=None, checks=None, oos=None, y_rep_sample=None)
               for c in result.candidates]
-    from contenders.output.readings import compare_candidates
+    from contenders.output.readings import compare_candidates, compare_effects
 
-    empty = dataclasses.replace(result, candidates=failed, comparison=compare_candidates(failed))
+    comparison = compare_candidates(failed)
+    empty = dataclasses.replace(result, candidates=failed, comparison=comparison,
+                                effects=compare_effects(failed, comparison.rows, result.config.seed))
     (tmp_path / "report.html").write_text("old")
     path = write_report(empty, tmp_path)
     page = _parse(path)

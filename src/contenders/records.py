@@ -13,19 +13,21 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from contenders.inputs.config import RunConfig
 from contenders.inputs.data import Design
-from contenders.statistics.calibration import Calibration
 from contenders.statistics.checks import PredictiveChecks
 from contenders.statistics.coefficients import Coefficients
 from contenders.statistics.compare import Comparison, OutOfSample
 from contenders.statistics.posterior import Health
 from contenders.statistics.prior import PriorTrial
 from contenders.statistics.sensitivity import Sensitivity
+
+if TYPE_CHECKING:   # SciPy loads with it; a warm rerun must not import SciPy
+    from contenders.statistics.calibration import Calibration
 
 
 @dataclass
