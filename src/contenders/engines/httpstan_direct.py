@@ -130,6 +130,22 @@ def _init_chain_process() -> None:
 PARENT_CHECK_SECONDS = 2.0
 
 
+def shut_down(executor, terminate: bool = True, join: float | None = None) -> None:
+    """Shut a process pool down without waiting for its queue; with ``terminate``, end
+    its processes at once (idle or not), waiting up to ``join`` seconds for each."""
+    processes = list((getattr(executor, "_processes", None) or {}).values())
+    with contextlib.suppress(Exception):
+        executor.shutdown(wait=False, cancel_futures=True)
+    if terminate:
+        for proc in processes:
+            with contextlib.suppress(Exception):
+                proc.terminate()
+        if join is not None:
+            for proc in processes:
+                with contextlib.suppress(Exception):
+                    proc.join(timeout=join)
+
+
 class ChainPool:
     """Forked processes that run one chain each, ``workers`` at a time; owned by an
     engine. Its processes ignore Ctrl-C, die at once on SIGTERM and end when the process
@@ -151,17 +167,7 @@ class ChainPool:
     def close(self, terminate: bool = False, join: float | None = None) -> None:
         """Shut the pool down; with ``terminate``, end its processes at once (idle or not),
         waiting up to ``join`` seconds for each."""
-        processes = list((getattr(self.executor, "_processes", None) or {}).values())
-        with contextlib.suppress(Exception):
-            self.executor.shutdown(wait=False, cancel_futures=True)
-        if terminate:
-            for proc in processes:
-                with contextlib.suppress(Exception):
-                    proc.terminate()
-            if join is not None:
-                for proc in processes:
-                    with contextlib.suppress(Exception):
-                        proc.join(timeout=join)
+        shut_down(self.executor, terminate, join)
         _LIVE.discard(self)
 
 

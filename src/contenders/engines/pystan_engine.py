@@ -228,16 +228,7 @@ def stop_workers(join: float | None = None) -> None:
     stub = sys.modules.get("httpstan.services_stub")
     executor = getattr(stub, "executor", None)
     if executor is not None:
-        processes = list(getattr(executor, "_processes", {}).values())
-        with contextlib.suppress(Exception):
-            executor.shutdown(wait=False, cancel_futures=True)
-        for proc in processes:
-            with contextlib.suppress(Exception):
-                proc.terminate()
-        if join is not None:
-            for proc in processes:
-                with contextlib.suppress(Exception):
-                    proc.join(timeout=join)
+        direct.shut_down(executor, terminate=True, join=join)
 
 
 #: Whether this process has said that it samples through PyStan's public interface.
