@@ -217,11 +217,9 @@ class _Counting(_Handle):
 
 
 def test_without_an_executor_chains_at_once_follow_the_cores(monkeypatch, tmp_path):
-    from contenders.pipeline import executor
-
     monkeypatch.setattr(arviz, "from_cmdstanpy", lambda **_k: "idata")
     monkeypatch.setattr(ce, "CHAIN_WORKERS", [0])
-    monkeypatch.setattr(executor, "cores", lambda: 2)
+    monkeypatch.setattr(ce, "cores", lambda: 2)     # the engine's own name for machine.cores
     handle = _Counting(False)
     ce.CmdStanPyEngine(fake_cmdstan(tmp_path)).sample(Program("toy", "", handle, 0.0, True), {"y": [1.0]},
                                                       SamplerSettings(chains=4))

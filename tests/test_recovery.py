@@ -5,6 +5,7 @@ candidates: clearly different families are recovered, similar ones at small N ar
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 
@@ -137,7 +138,7 @@ def _study(tmp_path, y, only, replicates):
                     prior_draws=100, check_draws=100, engine="pystan", jobs=2, seed=20261201,
                     rhat_max=1.05, ess_per_chain_min=50, replicates=replicates)
     result, programs = run_with_programs(cfg)
-    result.recovery = recover(result, programs, replicates)
+    result = dataclasses.replace(result, recovery=recover(result, programs, replicates))
     return result, programs
 
 

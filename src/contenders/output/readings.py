@@ -14,7 +14,7 @@ The boundary: records that keep text fields get them from here, filled by the ru
 then ``verdict`` into ``Comparison.lead`` and ``details``), ``word_health`` (a
 ``Health``'s ``problems`` and ``warnings`` from its ``findings``, after each
 ``fit_with_health``), ``word_prior`` (a ``PriorTrial``'s ``message``) and
-``compare_effects`` (each effect's ``sentence``; the report calls it too).
+``compare_effects`` (each effect's ``sentence``).
 ``sensitivity_summary`` is the summary.json record with each reading's advice.
 """
 
@@ -132,7 +132,7 @@ def _misfit(r, ppp_extreme: float, relevant: Mapping[str, float] | None = None) 
     """Short descriptions of the predictive checks a candidate fails, each with the size
     of its miss (observed minus the nearest end of the replicated 90 % interval). With
     relevant sizes set, a statistic that has one is named only when its miss is larger
-    (``statistics.named_misses``); one without a relevant size is named when detectable."""
+    (``features.named_misses``); one without a relevant size is named when detectable."""
     if r.checks is None:
         return []
     out = []
@@ -155,7 +155,7 @@ def _misfit(r, ppp_extreme: float, relevant: Mapping[str, float] | None = None) 
 
 def _small_misses(r, ppp_extreme: float, relevant: Mapping[str, float]) -> int:
     """How many of a candidate's statistics are detectably off by less than their
-    relevant size (``statistics.reading`` "small")."""
+    relevant size (``features.reading`` "small")."""
     if r.checks is None or not relevant:
         return 0
     return sum(code == "small" for code in read_rows(r.checks.rows, ppp_extreme, relevant))

@@ -85,7 +85,7 @@ def p_cell(p: float, strong: float, mild: tuple[float, float] = MILD) -> Cell:
 def misfits(checks, strong: float, relevant=None) -> list[str]:
     """Plain names of the checks a candidate fails (p beyond ``strong``, LOO-PIT ECDF
     outside its band, tested at the run's ``pit_alpha``); with relevant sizes, as the
-    verdict names them (``statistics.named_misses``)."""
+    verdict names them (``features.named_misses``)."""
     if checks is None:
         return []
     out = [describe(r["statistic"]) for r in named_misses(checks.rows, strong, relevant)]

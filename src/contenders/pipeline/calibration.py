@@ -95,7 +95,8 @@ def calibrate(cfg: RunConfig, simulations: int = 100, progress: Callable[[str], 
     on the design of ``cfg``'s data. Every fit goes to the fit store (an interrupted
     study resumes from it)."""
     from contenders.engines import compile_all, get_engine
-    from contenders.pipeline.executor import cores, share
+    from contenders.machine import cores
+    from contenders.pipeline.executor import share
     from contenders.pipeline.progress import Progress
     from contenders.pipeline.runner import load_design, output_folder, sampler_settings, select_candidates, with_outcome
     from contenders.pipeline.store import FitStore, StoredEngine

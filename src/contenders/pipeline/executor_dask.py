@@ -33,7 +33,8 @@ from pathlib import Path
 from typing import Any, Callable
 
 from contenders.errors import UserError
-from contenders.pipeline.executor import _REPORT, Executor, cores
+from contenders.machine import cores
+from contenders.pipeline.executor import _REPORT, Executor
 from contenders.pipeline.store import INDEX_NAME, FitStore
 
 #: Seconds to wait for the scheduler before giving up.

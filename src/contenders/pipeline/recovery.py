@@ -49,7 +49,8 @@ def recover(result, programs, replicates: int = DEFAULT_REPLICATES,
 
     from contenders.inputs.candidates import check_against_data, inputs_for
     from contenders.engines import compile_all, get_engine
-    from contenders.pipeline.executor import cores, share
+    from contenders.machine import cores
+    from contenders.pipeline.executor import share
     from contenders.pipeline.progress import Progress
     from contenders.pipeline.runner import fit_task, sampler_settings, with_outcome
     from contenders.pipeline.store import FitStore, fit_key

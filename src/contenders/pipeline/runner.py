@@ -476,7 +476,8 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
         else:
             todo.append(c)
     jobs = cfg.jobs or None
-    from contenders.pipeline.executor import cores, share
+    from contenders.machine import cores
+    from contenders.pipeline.executor import share
 
     workers, chain_workers = share(jobs or cores(), len(todo))
     from contenders.engines.base import lock_notices

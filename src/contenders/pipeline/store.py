@@ -72,7 +72,7 @@ TRIAL_SETTINGS = tuple(s.name for s in SETTINGS if s.enters_trials_key)
 #: Format 8: the LOO-PIT band test (``checks.uniformity_test``) and the quantile checks.
 #: Format 9: power-scaling readings ``pulled_both_ways``, ``set_by_prior``, ``led_by_data``, ``steady``.
 #: Format 10: with censored observations, replicates censored like the data and the
-#: LOO-PIT randomised over each censored value's range (``trials.censored_checks``).
+#: LOO-PIT randomised over each censored value's range (``statistics.censored_checks``).
 #: Format 11: a censored value counts as "at y" within two float32 steps (y_rep is float32).
 #: Format 12: sampler health keeps its findings as codes (``Health.findings``); its words and
 #: the prior trial's message are written from the numbers (``output.readings``).
