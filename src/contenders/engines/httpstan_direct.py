@@ -159,6 +159,12 @@ class ChainPool:
         self.workers = max(1, int(workers))
         self.executor = concurrent.futures.ProcessPoolExecutor(
             max_workers=self.workers, mp_context=mp.get_context("fork"), initializer=_init_chain_process)
+        # A pool dropped with its engine (each task makes its own engine) must end its
+        # processes then: a process pool left to the garbage collector can hang its
+        # worker's exit, which waits for every child (seen here: test_recovery and the
+        # Ctrl-C test of test_reliability hung in the full suite). The finalizer holds
+        # the executor, so it is shut down by us, never collected half-way.
+        self._finalizer = weakref.finalize(self, shut_down, self.executor, True, 5.0)
         _LIVE.add(self)
 
     def submit(self, fn, *args) -> concurrent.futures.Future:
@@ -168,6 +174,7 @@ class ChainPool:
         """Shut the pool down; with ``terminate``, end its processes at once (idle or not),
         waiting up to ``join`` seconds for each."""
         shut_down(self.executor, terminate, join)
+        self._finalizer.detach()
         _LIVE.discard(self)
 
 
