@@ -93,3 +93,13 @@ SENSITIVITY_DELTA = 0.01
 #: Pareto k of the power-scaling importance weights above this: the weights, and so the
 #: diagnostic, are unreliable (same paper, after Vehtari et al. 2024's 0.7).
 SENSITIVITY_K_RELIABLE = PARETO_K_MAX
+
+# --- simulation studies -------------------------------------------------------------------
+
+#: Overall level of the calibration verdict of ``contenders calibrate``, split over the
+#: parameters and the two tests (Bonferroni); our choice, matching the LOO-PIT band's.
+CALIBRATION_ALPHA = 0.01
+
+#: Model recovery: a rival winning at least this share of another candidate's replicates
+#: confuses them (our own threshold, no source).
+CONFUSED = 0.2

@@ -13,6 +13,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
+from contenders.rules import CALIBRATION_ALPHA
 from contenders.records import CalibrationStudy
 from contenders.statistics.calibration import Calibration, calibration_dict, ecdf_band, ecdf_of_ranks
 from contenders.output import figures
@@ -158,7 +159,7 @@ def write_calibration(study: CalibrationStudy, out_dir: str | Path,
         "title": f"Simulation-based calibration on the design of {Path(str(cfg.data)).name}",
         "outcome": study.design.outcome, "n_obs": fmt.integer(study.design.N),
         "simulations": fmt.integer(study.simulations), "kept": fmt.integer(study.kept_draws),
-        "ranks_top": fmt.integer(study.kept_draws), "alpha": fmt.num(study.candidates[0].alpha if study.candidates else 0.01),
+        "ranks_top": fmt.integer(study.kept_draws), "alpha": fmt.num(study.candidates[0].alpha if study.candidates else CALIBRATION_ALPHA),
         "sampler": f"{cfg.chains} chains × {cfg.warmup} warmup + {cfg.draws} draws, seed {cfg.seed}",
         "engine": study.engine_version, "run_time": fmt.seconds(study.seconds),
         "overview": _overview(study), "candidates": views,

@@ -10,7 +10,8 @@ import os
 from pathlib import Path
 from typing import Any, Mapping
 
-from contenders.statistics.recovery import CONFUSED, NO_DECISION, Matrix, Recovery
+from contenders.rules import CONFUSED
+from contenders.statistics.recovery import NO_DECISION, Matrix, Recovery
 
 
 def reading(matrix: Matrix, labels: Mapping[str, str], observed_winner: str | None = None,

@@ -18,7 +18,8 @@ import numpy as np
 
 from contenders.errors import UserError
 from contenders.output.recovery_files import reading
-from contenders.statistics.recovery import (CONFUSED, DEFAULT_REPLICATES, Recovery, ReplicateFit, decide,
+from contenders.rules import CONFUSED
+from contenders.statistics.recovery import (DEFAULT_REPLICATES, Recovery, ReplicateFit, decide,
                                             evenly_spaced, keep_loo, recovery_matrix)
 
 

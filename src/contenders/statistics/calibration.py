@@ -34,8 +34,10 @@ from typing import Sequence
 import numpy as np
 import scipy.stats as sps
 
+from contenders.rules import CALIBRATION_ALPHA
+
 #: Overall level of the calibration verdict (split over parameters and the two tests).
-ALPHA = 0.01
+ALPHA = CALIBRATION_ALPHA
 
 #: Posterior draws kept per fit (ranks run from 0 to this); Talts et al. use 100.
 KEPT_DRAWS = 99

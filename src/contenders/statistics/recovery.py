@@ -48,13 +48,11 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
-from contenders.rules import SE_FACTOR
+from contenders.rules import CONFUSED, SE_FACTOR
 
 #: Replicated datasets per generating candidate when none are configured.
 DEFAULT_REPLICATES = 20
 
-#: A rival winning at least this share of another candidate's replicates confuses them.
-CONFUSED = 0.2
 
 #: Coverage of the Monte Carlo intervals of the proportions.
 LEVEL = 0.95
