@@ -78,7 +78,7 @@ def test_worker_stages_come_back_and_fits_land_in_the_client_store(programs, clu
     finally:
         ex.close()
     reference = next(c for c in _summary(local.out, "a_fast")["candidates"] if c["id"] == "lognormal")
-    assert res.oos.elpd == reference["elpd_loo"]
+    assert res.oos.elpd_loo == reference["elpd_loo"]
     assert res.fit_files and all(Path(f).parent == store and Path(f).exists() for f in res.fit_files)
     assert Path(res.posterior_file) in {Path(f) for f in res.fit_files}
     stages = [s for cid, s in events if cid == "lognormal"]

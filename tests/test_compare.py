@@ -78,7 +78,7 @@ def test_pointwise_elpd_matches_closed_form_conjugate_normal(tmp_path):
     exact = sps.norm.logpdf(y, mean, np.sqrt(1.0 + 1 / precision))
     assert c.oos.method == "PSIS-LOO"
     np.testing.assert_allclose(c.oos.pointwise, exact, atol=0.02)
-    assert c.oos.elpd == pytest.approx(exact.sum(), abs=0.1)
+    assert c.oos.elpd_loo == pytest.approx(exact.sum(), abs=0.1)
 
 
 # --- exact: brute-force leave-one-out with an outlier ----------------------------------
@@ -114,8 +114,8 @@ def test_refits_of_high_k_observations_agree_with_brute_force_loo(tmp_path, engi
         w = np.exp(ll - ll.max())
         var[i] = w.var() / (w.size * w.mean() ** 2)
     tol = 2 * 4 * np.sqrt(var.sum())
-    assert abs(c.oos.elpd - brute.sum()) < tol + 0.05, (c.oos.elpd, brute.sum(), tol)
-    assert abs(c.oos.elpd_psis - brute.sum()) > abs(c.oos.elpd - brute.sum())  # the refit helped
+    assert abs(c.oos.elpd_loo - brute.sum()) < tol + 0.05, (c.oos.elpd_loo, brute.sum(), tol)
+    assert abs(c.oos.elpd_psis - brute.sum()) > abs(c.oos.elpd_loo - brute.sum())  # the refit helped
 
 
 def test_psis_loo_in_blocks_of_observations_equals_arviz_on_the_whole(monkeypatch):
@@ -270,6 +270,6 @@ def test_quick_look_estimate_is_plain_psis_loo_without_refits():
     quick = compare.plan_estimate(idata, "psis", refit_cap=10)
     assert quick.fits == []
     est = quick.finish([])
-    assert est.elpd == pytest.approx(float(ref["elpd_loo"]), abs=1e-9)
+    assert est.elpd_loo == pytest.approx(float(ref["elpd_loo"]), abs=1e-9)
     assert "without refits (quick look)" in est.method and "not refitted" in est.method
     assert est.n_refits == 0

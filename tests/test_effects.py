@@ -8,6 +8,7 @@ import pandas as pd
 import pytest
 
 from contenders.output.readings import agreement, compare_effects
+from contenders.statistics.compare import ComparisonRow
 from contenders.statistics.effects import allocate, combine, effect_draws, level_differences, slope, summarise
 
 
@@ -174,7 +175,9 @@ def test_compare_effects_orders_by_elpd_and_combines_ranked_only(rng):
     slow = effect_draws(rng.gamma(4.0, 150.0, (400, 60)), y, t, predictors=("load",))
     odd = effect_draws(rng.gamma(4.0, 900.0, (400, 60)), y, t, predictors=("load",))
     results = [_Result("odd", "unhealthy", odd), _Result("slow", "ok", slow), _Result("fast", "ok", fast)]
-    rows = [{"id": "fast", "rank": 1, "stacking_weight": 0.8}, {"id": "slow", "rank": 2, "stacking_weight": 0.2}]
+    nan = float("nan")
+    rows = [ComparisonRow(rank, cid, cid.upper(), nan, nan, nan, nan, nan, w, nan, nan, 0, 0, "PSIS-LOO", nan)
+            for rank, cid, w in ((1, "fast", 0.8), (2, "slow", 0.2))]
     (e,) = compare_effects(results, rows, seed=3)
     assert [r["id"] for r in e.rows] == ["fast", "slow", "odd"]
     assert e.rows[2]["weight"] is None

@@ -109,7 +109,7 @@ def test_one_core_and_two_cores_give_the_same_answer(small, tmp_path):
     assert [c.id for c in one.candidates] == [c.id for c in two.candidates] == ["lognormal", "normal"]
     for a, b in zip(one.candidates, two.candidates):
         assert a.status == b.status
-        assert a.oos.elpd == b.oos.elpd and a.oos.se == b.oos.se
+        assert a.oos.elpd_loo == b.oos.elpd_loo and a.oos.elpd_loo_se == b.oos.elpd_loo_se
         np.testing.assert_array_equal(a.oos.pointwise, b.oos.pointwise)
         assert a.health.rhat_max == b.health.rhat_max
     assert one.comparison.ranking == two.comparison.ranking

@@ -167,7 +167,7 @@ def test_noninformative_prior_mean_and_sd_against_closed_form():
 def _one_candidate(rows, label="Normal") -> CandidateResult:
     r = CandidateResult("normal", label, "", "real", "ok", "")
     pw = np.full(100, -1.0)
-    r.oos = OutOfSample(float(pw.sum()), 1.0, 2.0, pw, np.zeros(100), 0.7, "PSIS-LOO", mcse=0.1, n_samples=4000)
+    r.oos = OutOfSample(float(pw.sum()), 1.0, 2.0, pw, np.zeros(100), 0.7, "PSIS-LOO", elpd_mcse=0.1, n_samples=4000)
     r.checks = PredictiveChecks(rows, {}, np.full(100, 0.5), {"p_value": 0.5}, [])
     return r
 

@@ -155,7 +155,7 @@ def test_report_has_every_section_candidate_and_embedded_figure(report):
 
     # The best candidate's elpd and SE as shown equal the comparison's numbers.
     best = result.comparison.rows[0]
-    assert f"{fmt.fixed(best['elpd'], 1)} ({fmt.fixed(best['se'], 1)})" in ranking
+    assert f"{fmt.fixed(best.elpd_loo, 1)} ({fmt.fixed(best.elpd_loo_se, 1)})" in ranking
     for sentence in result.comparison.verdict:
         assert " ".join(sentence.split()) in page.text("verdict")
 
@@ -227,10 +227,10 @@ def test_csv_tables_hold_the_numbers_of_the_run(report):
     assert sorted(r["id"] for r in ranking) == sorted(c.id for c in result.candidates)
     by_id = {r["id"]: r for r in ranking}
     for row in result.comparison.rows:
-        got = by_id[row["id"]]
-        assert int(got["rank"]) == row["rank"]
-        assert float(got["elpd"]) == pytest.approx(row["elpd"], rel=1e-12)
-        assert float(got["stacking_weight"]) == pytest.approx(row["stacking_weight"], rel=1e-12)
+        got = by_id[row.id]
+        assert int(got["rank"]) == row.rank
+        assert float(got["elpd"]) == pytest.approx(row.elpd_loo, rel=1e-12)
+        assert float(got["stacking_weight"]) == pytest.approx(row.stacking_weight, rel=1e-12)
     assert by_id["broken"]["status"] == "failed" and by_id["broken"]["rank"] == ""
     assert "log_lik" in by_id["broken"]["reason"]
 

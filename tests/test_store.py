@@ -38,7 +38,7 @@ def test_rerun_samples_nothing_and_gives_the_same_answer(setup):
     second = run(cfg)
     assert second.fits_sampled == 0 and second.fits_reused == 4
     for a, b in zip(first.candidates, second.candidates):
-        assert a.oos.elpd == b.oos.elpd
+        assert a.oos.elpd_loo == b.oos.elpd_loo
         assert a.fit_files == b.fit_files
     idata = az.from_netcdf(first.candidates[0].fit_files[-1])  # users can open stored fits
     assert "log_lik" in idata.log_likelihood

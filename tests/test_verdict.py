@@ -12,7 +12,7 @@ import pytest
 
 from contenders.inputs.candidates import support_problem
 from contenders.output.readings import compare_candidates, standing_why, word_health
-from contenders.statistics.compare import OutOfSample, standings
+from contenders.statistics.compare import ComparisonRow, OutOfSample, standings
 from contenders.engines.base import Draws, SamplerSettings
 from contenders.output.report import _certainty
 from contenders.output import format as fmt
@@ -66,7 +66,7 @@ def _pointwise(rng, n: int, total: float, base: np.ndarray | None, diff_total: f
 def _oos(pointwise: np.ndarray, mcse: float) -> OutOfSample:
     n = pointwise.size
     return OutOfSample(float(pointwise.sum()), float(np.sqrt(n * np.var(pointwise))), 5.0, pointwise,
-                       np.zeros(n), 0.7, "PSIS-LOO", mcse=mcse, n_samples=4000)
+                       np.zeros(n), 0.7, "PSIS-LOO", elpd_mcse=mcse, n_samples=4000)
 
 
 def _checks(p_values: dict[str, float], n: int) -> PredictiveChecks:
@@ -95,11 +95,11 @@ def _sleepstudy_results(misses: dict[str, dict] | None = None) -> list:
 def test_sleepstudy_rows_reproduce_the_run():
     """The built pointwise values give the run's elpd differences and SEs through ArviZ."""
     comp = compare_candidates(_sleepstudy_results(), seed=1)
-    rows = {row["id"]: row for row in comp.rows}
+    rows = {row.id: row for row in comp.rows}
     for cid, elpd in SLEEP_ELPD.items():
-        assert rows[cid]["elpd"] == pytest.approx(elpd, abs=1e-6)
-        assert rows[cid]["elpd_diff"] == pytest.approx(SLEEP_ELPD["lognormal_contaminated"] - elpd, abs=1e-6)
-        assert rows[cid]["elpd_diff_se"] == pytest.approx(SLEEP_DSE[cid], abs=1e-6)
+        assert rows[cid].elpd_loo == pytest.approx(elpd, abs=1e-6)
+        assert rows[cid].elpd_diff == pytest.approx(SLEEP_ELPD["lognormal_contaminated"] - elpd, abs=1e-6)
+        assert rows[cid].elpd_diff_se == pytest.approx(SLEEP_DSE[cid], abs=1e-6)
 
 
 def test_sleepstudy_tied_candidates_share_one_standing_and_one_rank():
@@ -128,7 +128,7 @@ def test_sleepstudy_tied_candidates_share_one_standing_and_one_rank():
     assert shown["skew_normal"].startswith("no: the order is uncertain")
     assert shown["weibull"].startswith("no: the order is uncertain")
     assert "tied within Monte Carlo error with" in shown[min(own, key=own.get)]
-    assert [row["shared_rank"] for row in comp.rows] == ["1", "2–3", "2–3", "4–5", "4–5"]
+    assert [row.shared_rank for row in comp.rows] == ["1", "2–3", "2–3", "4–5", "4–5"]
     assert "Lognormal with guesses and lapses ranks first but its replicated data miss: minimum" in text
     # Weibull's stacking weight (0.21 in the run), explained; the pointwise values built here
     # reproduce the run's elpd and SEs, not its weights, so the weight is not checked
@@ -141,7 +141,9 @@ def test_standing_rule_keeps_clearly_worse_a_tail():
     """A candidate is clearly worse only when every one ranked below is too; a tie with the
     best is its own standing; one rank per tie."""
     def row(cid, d, dse, tied=()):
-        return {"id": cid, "label": cid.upper(), "elpd_diff": d, "elpd_diff_se": dse, "tied_with": list(tied)}
+        nan = float("nan")
+        return ComparisonRow(0, cid, cid.upper(), nan, nan, nan, d, dse, nan, nan, nan, 0, 0, "PSIS-LOO", nan,
+                             list(tied))
 
     st = standings([row("a", 0, 0, ["b"]), row("b", 0.1, 0.5, ["a"]), row("c", 3, 1), row("d", 30, 5),
                     row("e", 31, 20), row("f", 90, 10)])
@@ -207,9 +209,9 @@ def test_a_surprising_stacking_weight_is_explained_in_one_phrase():
         r.checks = _checks({"mean": 0.5}, n)
         results.append(r)
     comp = compare_candidates(results, seed=1)
-    w = {row["id"]: row["stacking_weight"] for row in comp.rows}
+    w = {row.id: row.stacking_weight for row in comp.rows}
     assert w["beta"] >= 0.05
-    d = comp.rows[1]["elpd_diff"]
+    d = comp.rows[1].elpd_diff
     assert d > 100
     sentence = next(s for s in comp.details if s.startswith("Stacking"))
     assert (f"Beta ({w['beta']:.2f}, though {d:.1f} elpd behind: it predicts 10 % of the observations better "

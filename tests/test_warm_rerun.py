@@ -8,6 +8,7 @@ import os
 import re
 import subprocess
 import sys
+from dataclasses import replace
 from pathlib import Path
 
 import arviz as az
@@ -16,9 +17,9 @@ import pandas as pd
 import pytest
 from scipy import stats as sps
 
-from contenders.statistics.compare import OutOfSample, elpd_data, estimate, weights, weights_key
+from contenders.statistics.compare import ComparisonRow, OutOfSample, elpd_data, estimate, weights_key
 from contenders.output import figure_records, figure_store
-from contenders.pipeline.store import FitStore
+from contenders.pipeline.store import FitStore, remembered_weights
 
 SRC = Path(__file__).resolve().parents[1] / "src"
 HEAVY = ("arviz", "xarray", "scipy", "matplotlib", "stan", "cmdstanpy")
@@ -144,7 +145,7 @@ def test_weights_from_plain_estimates_equal_arviz_compare_on_its_own_loo(rng, tm
     stacked = az.compare(loos, ic="loo", method="stacking")
     bma = az.compare(loos, ic="loo", method="BB-pseudo-BMA", seed=3)
     for store in (None, FitStore(tmp_path)):
-        stack_w, bma_w, diffs = weights(ours, seed=3, store=store)
+        stack_w, bma_w, diffs = remembered_weights(store)(ours, seed=3)
         for cid in ours:
             assert stack_w[cid] == float(stacked.loc[cid, "weight"])
             assert bma_w[cid] == float(bma.loc[cid, "weight"])
@@ -155,7 +156,7 @@ def test_weights_from_plain_estimates_equal_arviz_compare_on_its_own_loo(rng, tm
     np.testing.assert_array_equal(rebuilt["loo_i"].values, loos["b"]["loo_i"].values)
     # the second call with the store reads the stored answer: ArviZ is not asked again
     monkeypatch.setattr(az, "compare", lambda *a, **k: pytest.fail("weights recomputed"))
-    assert weights(ours, seed=3, store=FitStore(tmp_path))[0] == {c: float(stacked.loc[c, "weight"]) for c in ours}
+    assert remembered_weights(FitStore(tmp_path))(ours, seed=3)[0] == {c: float(stacked.loc[c, "weight"]) for c in ours}
 
 
 def test_weights_key_changes_with_any_input(rng):
@@ -176,8 +177,9 @@ def test_weights_key_changes_with_any_input(rng):
 def test_stored_figure_is_the_figure_drawn_afresh(tmp_path):
     from contenders.output import figures
 
-    rows = [{"rank": 1, "id": "a", "label": "A", "elpd_diff": 0.0, "elpd_diff_se": 0.0},
-            {"rank": 2, "id": "b", "label": "B", "elpd_diff": 3.5, "elpd_diff_se": 1.2}]
+    nan = float("nan")
+    rows = [ComparisonRow(rank, cid, cid.upper(), nan, nan, nan, d, dse, nan, nan, nan, 0, 0, "PSIS-LOO", nan)
+            for rank, cid, d, dse in ((1, "a", 0.0, 0.0), (2, "b", 3.5, 1.2))]
     store = FitStore(tmp_path)
     start = figure_records.NEXT_ID[0]
     fresh = figures.elpd_differences(rows)
@@ -190,7 +192,7 @@ def test_stored_figure_is_the_figure_drawn_afresh(tmp_path):
     assert figure_records.NEXT_ID[0] == after                        # ids advance as if drawn
     assert str(fresh.html) == str(first.html) == str(again.html)
     assert len(list((tmp_path / "figures").glob("*.pickle"))) == 1
-    changed = [dict(rows[0]), dict(rows[1], elpd_diff_se=1.3)]
+    changed = [replace(rows[0]), replace(rows[1], elpd_diff_se=1.3)]
     assert figure_store.figure_key("elpd_differences", (changed,), {}, start) != \
         figure_store.figure_key("elpd_differences", (rows,), {}, start)
     assert figure_store.figure_key("elpd_differences", (rows,), {}, start + 1) != \

@@ -385,8 +385,8 @@ def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
     fig = _new(5.6, height)
     fig.subplots_adjust(left=0.33, right=0.76, top=1 - 0.36 / height, bottom=0.5 / height)
     ax = fig.add_subplot()
-    d = np.array([r["elpd_diff"] for r in rows], dtype=float)
-    se = np.nan_to_num(np.array([r["elpd_diff_se"] for r in rows], dtype=float))
+    d = np.array([r.elpd_diff for r in rows], dtype=float)
+    se = np.nan_to_num(np.array([r.elpd_diff_se for r in rows], dtype=float))
     ypos = np.arange(n)[::-1]
     hi = float(np.nanmax(d + SE_FACTOR * se))
     right = max(hi * 1.06, 2.5 * SMALL_DIFFERENCE)
@@ -400,7 +400,7 @@ def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
         kind = standing_of(r)
         marker, face = STANDING_MARK.get(kind, STANDING_MARK["uncertain"])
         words = STANDING_WORDS.get(kind, kind)
-        if r["rank"] != 1:
+        if r.rank != 1:
             ax.hlines(y, di - SE_FACTOR * s, di + SE_FACTOR * s, color=POSTERIOR, linewidth=1.1, zorder=2)
             ax.hlines(y, di - s, di + s, color=POSTERIOR, linewidth=2.6, zorder=2)
             di = float(di)
@@ -411,7 +411,7 @@ def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
         ax.annotate(words, xy=(1, y), xycoords=("axes fraction", "data"), xytext=(6, 0),
                     textcoords="offset points", ha="left", va="center", fontsize=7.2,
                     color=LIMIT if kind == "worse" else INK, fontweight="bold" if kind == "best" else "normal")
-    ax.set_yticks(ypos, [_wrap(f"{r.get('shared_rank') or r['rank']}. {r['label']}", 30, 2) for r in rows])
+    ax.set_yticks(ypos, [_wrap(f"{r.shared_rank or r.rank}. {r.label}", 30, 2) for r in rows])
     ax.tick_params(axis="y", length=0, labelsize=7.5)
     for side in ("left", "right", "top"):
         ax.spines[side].set_visible(False)

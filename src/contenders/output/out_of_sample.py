@@ -35,13 +35,13 @@ STANDING_ANSWER = {
 WORST_LISTED = 5
 
 
-def standing_of(row: dict) -> str:
+def standing_of(row) -> str:
     """The row's standing, or (rows without one) the same rule read from its numbers."""
-    if row.get("standing"):
-        return str(row["standing"])
-    if row["rank"] == 1:
+    if row.standing:
+        return str(row.standing)
+    if row.rank == 1:
         return "best"
-    d, se = float(row["elpd_diff"]), float(row["elpd_diff_se"] or 0.0)
+    d, se = float(row.elpd_diff), float(row.elpd_diff_se or 0.0)
     if d < SMALL_DIFFERENCE:
         return "close"
     return "worse" if d > SE_FACTOR * se else "uncertain"
@@ -93,32 +93,32 @@ def _with_se(value: float, se: float) -> str:
     return f"{fmt.fixed(value, 1)} ({fmt.fixed(se, 1)})"
 
 
-def _rank(row: dict | None) -> str:
-    return fmt.MISSING if not row else str(row.get("shared_rank") or row["rank"])
+def _rank(row) -> str:
+    return fmt.MISSING if not row else str(row.shared_rank or row.rank)
 
 
 def _names(labels: Sequence[str]) -> str:
     return ", ".join(labels)
 
 
-def answer(rows: Sequence[dict], unranked: Sequence[str]) -> list[tuple[str, str]]:
+def answer(rows: Sequence, unranked: Sequence[str]) -> list[tuple[str, str]]:
     """The reader's question answered before any number: which candidate predicts new
     observations best, and where each other one stands, grouped by standing; as
     ``(lead words, what follows)`` pairs."""
     if not rows:
         return [("No candidate was ranked", "; the reasons are in the ranking above.")]
     best = rows[0]
-    out = [("Best at predicting new observations", f"{best['label']} (stacking weight "
-            f"{fmt.fixed(best['stacking_weight'], 2)}).")]
+    out = [("Best at predicting new observations", f"{best.label} (stacking weight "
+            f"{fmt.fixed(best.stacking_weight, 2)}).")]
     for kind in ("tied", "close", "uncertain", "worse"):
         mine = [r for r in rows[1:] if standing_of(r) == kind]
         if not mine:
             continue
-        lo, hi = min(r["elpd_diff"] for r in mine), max(r["elpd_diff"] for r in mine)
+        lo, hi = min(r.elpd_diff for r in mine), max(r.elpd_diff for r in mine)
         gap = (f"{fmt.fixed(lo, 1)} elpd behind" if len(mine) == 1 else
                f"{fmt.fixed(lo, 1)} to {fmt.fixed(hi, 1)} elpd behind")
         out.append((STANDING_ANSWER[kind].format(small=fmt.num(SMALL_DIFFERENCE)),
-                    f"{_names([r['label'] for r in mine])} ({gap})."))
+                    f"{_names([r.label for r in mine])} ({gap})."))
     if unranked:
         out.append(("Not ranked (sampler unhealthy; estimates shown greyed)", _names(unranked) + "."))
     return out
@@ -128,7 +128,7 @@ def comparison_tables(result, cands) -> tuple[Table, Table]:
     """The comparison shown beside its chart (rank, candidate, how far behind the best,
     standing, weights) and the estimates behind it; the first carries the CSV
     ``out_of_sample.csv`` with every column, in the same order."""
-    rows = {row["id"]: row for row in result.comparison.rows}
+    rows = {row.id: row for row in result.comparison.rows}
     rd = data_rows(result.design)
     side = Table("out_of_sample.csv",
                  ["Rank", "Candidate", "Behind the best (SE)", "Standing", "Stacking weight", "Pseudo-BMA+ weight"],
@@ -141,29 +141,29 @@ def comparison_tables(result, cands) -> tuple[Table, Table]:
                            "k above the threshold", "Method"],
                       numeric=[False, True, True, True, True, True, False])
     for r in sorted((c for c in cands if c.oos is not None),
-                    key=lambda c: (c.id not in rows, rows[c.id]["rank"] if c.id in rows else 0)):
+                    key=lambda c: (c.id not in rows, rows[c.id].rank if c.id in rows else 0)):
         o, row = r.oos, rows.get(r.id)
         kind = standing_of(row) if row else ""
         if row:
             # one line per row (no id below the name), so the rows sit close to the chart's
             side.add([n(_rank(row)), Cell(r.label, "candidate", r.id),
-                      n("best" if kind == "best" else _with_se(row["elpd_diff"], row["elpd_diff_se"])),
+                      n("best" if kind == "best" else _with_se(row.elpd_diff, row.elpd_diff_se)),
                       Cell(STANDING_WORDS.get(kind, kind), f"standing {kind}"),
-                      n(fmt.fixed(row["stacking_weight"], 2)), n(fmt.fixed(row["pseudo_bma_weight"], 2))])
-        high = o.n_high_k
+                      n(fmt.fixed(row.stacking_weight, 2)), n(fmt.fixed(row.pseudo_bma_weight, 2))])
+        high = o.n_high_pareto_k
         estimates.add([
             Cell(r.label + ("" if row else " (not ranked: sampler unhealthy)"), "name", r.id),
-            n(_with_se(o.elpd, o.se)), n(fmt.fixed(o.p, 1)), n(fmt.fixed(o.mcse, 2)),
-            n(fmt.against(o.k_max, o.k_threshold, 2),
-              "watch" if np.isfinite(o.k_max) and o.k_max > o.k_threshold else ""),
+            n(_with_se(o.elpd_loo, o.elpd_loo_se)), n(fmt.fixed(o.p_loo, 1)), n(fmt.fixed(o.elpd_mcse, 2)),
+            n(fmt.against(o.pareto_k_max, o.k_threshold, 2),
+              "watch" if np.isfinite(o.pareto_k_max) and o.pareto_k_max > o.k_threshold else ""),
             n(("◇ " if high else "") + str(high), "watch" if high else ""),
             Cell(o.method, "wrap"),
         ], cls="" if row else "muted")
         side.csv_rows.append([
-            row["rank"] if row else None, r.id, r.label, r.status,
-            row["elpd_diff"] if row else None, row["elpd_diff_se"] if row else None, kind or None,
-            row["stacking_weight"] if row else None, row["pseudo_bma_weight"] if row else None,
-            o.elpd, o.se, o.p, o.mcse, o.elpd_psis, o.k_max, o.k_threshold, high, o.n_refits,
+            row.rank if row else None, r.id, r.label, r.status,
+            row.elpd_diff if row else None, row.elpd_diff_se if row else None, kind or None,
+            row.stacking_weight if row else None, row.pseudo_bma_weight if row else None,
+            o.elpd_loo, o.elpd_loo_se, o.p_loo, o.elpd_mcse, o.elpd_psis, o.pareto_k_max, o.k_threshold, high, o.n_refits,
             " ".join(str(int(rd[i])) for i in o.refitted), o.method])
     return side, estimates
 

@@ -28,7 +28,8 @@ import numpy as np
 
 from contenders.output import format as fmt
 from contenders.statistics.checks import leaves_band
-from contenders.statistics.compare import Comparison, Standing, better_share, rank_candidates
+from contenders.statistics.compare import (Comparison, ComparisonRow, Standing, Weigh, better_share,
+                                          rank_candidates)
 from contenders.statistics.effects import agreement_reading, direction, effects_across
 from contenders.statistics.features import named_misses, read_rows, unit_of
 from contenders.rules import MIN_WEIGHT, PPP_EXTREME, SMALL_DIFFERENCE
@@ -182,8 +183,8 @@ def _relevance_sentence(ranked, misses: dict, ppp_extreme: float, relevant: Mapp
     return text + "."
 
 
-def _behind(row: dict) -> str:
-    return f"{row['elpd_diff']:.1f} behind, SE {row['elpd_diff_se']:.1f}"
+def _behind(row: ComparisonRow) -> str:
+    return f"{row.elpd_diff:.1f} behind, SE {row.elpd_diff_se:.1f}"
 
 
 def _labels(names: Sequence[str]) -> str:
@@ -192,7 +193,7 @@ def _labels(names: Sequence[str]) -> str:
     return names[0] if len(names) == 1 else ", ".join(names[:-1]) + " and " + names[-1]
 
 
-def _stacking_sentence(ranked, stack_w, st: dict[str, Standing], rows: dict[str, dict]) -> str:
+def _stacking_sentence(ranked, stack_w, st: dict[str, Standing], rows: dict[str, ComparisonRow]) -> str:
     """Where stacking puts its weight, and in one phrase why a weight surprises: a
     candidate far behind in elpd with a real weight covers observations the best one
     predicts poorly (the mixture uses it for those)."""
@@ -204,7 +205,7 @@ def _stacking_sentence(ranked, stack_w, st: dict[str, Standing], rows: dict[str,
         text = f"{by_id[rid].label} ({w:.2f}"
         if rid != best.id and st[rid].kind in ("uncertain", "worse"):
             share = better_share(by_id[rid].oos.pointwise, best.oos.pointwise)
-            text += (f", though {rows[rid]['elpd_diff']:.1f} elpd behind: it predicts "
+            text += (f", though {rows[rid].elpd_diff:.1f} elpd behind: it predicts "
                      f"{100 * share:.0f} % of the observations better than {best.label}, and the mixture "
                      "uses it for those")
         parts.append(text + ")")
@@ -216,7 +217,7 @@ def _stacking_sentence(ranked, stack_w, st: dict[str, Standing], rows: dict[str,
     return sentence + "."
 
 
-def _how_sure(ranked, st: dict[str, Standing], rows: dict[str, dict]) -> str:
+def _how_sure(ranked, st: dict[str, Standing], rows: dict[str, ComparisonRow]) -> str:
     """The lead's second sentence: how far behind the others are, group by standing."""
     def are(group) -> str:
         return "is" if len(group) == 1 else "are"
@@ -224,8 +225,8 @@ def _how_sure(ranked, st: dict[str, Standing], rows: dict[str, dict]) -> str:
     def span(group) -> str:
         if len(group) == 1:
             row = rows[group[0].id]
-            return f"{row['elpd_diff']:.1f} elpd behind (SE {row['elpd_diff_se']:.1f})"
-        lo, hi = (f"{f(rows[r.id]['elpd_diff'] for r in group):.1f}" for f in (min, max))
+            return f"{row.elpd_diff:.1f} elpd behind (SE {row.elpd_diff_se:.1f})"
+        lo, hi = (f"{f(rows[r.id].elpd_diff for r in group):.1f}" for f in (min, max))
         return f"{lo} elpd behind" if lo == hi else f"{lo} to {hi} elpd behind"
 
     parts = []
@@ -252,7 +253,7 @@ def _how_sure(ranked, st: dict[str, Standing], rows: dict[str, dict]) -> str:
         worse = worse[1:]
     if worse:
         parts.append(f"{len(worse)} other{'s are' if len(worse) > 1 else ' is'} clearly worse "
-                     f"({min(rows[r.id]['elpd_diff'] for r in worse):.1f} elpd behind or more)")
+                     f"({min(rows[r.id].elpd_diff for r in worse):.1f} elpd behind or more)")
     return "How sure: " + "; ".join(parts) + "."
 
 
@@ -299,10 +300,10 @@ def verdict(results: Sequence, comparison: Comparison, ppp_extreme: float = PPP_
     lead: list[str] = []
     details: list[str] = []
     if ranked:
-        stack_w = {row["id"]: row["stacking_weight"] for row in rows}
-        bma_w = {row["id"]: row["pseudo_bma_weight"] for row in rows}
+        stack_w = {row.id: row.stacking_weight for row in rows}
+        bma_w = {row.id: row.pseudo_bma_weight for row in rows}
         best = ranked[0]
-        by_row = {row["id"]: row for row in rows}
+        by_row = {row.id: row for row in rows}
         names = {r.id: r.label for r in ranked}
         relevant = dict(relevant or {})
         misses = {r.id: _misfit(r, ppp_extreme, relevant) for r in ranked}
@@ -346,13 +347,13 @@ def verdict(results: Sequence, comparison: Comparison, ppp_extreme: float = PPP_
         if tied:
             details.append(
                 f"{_labels([best.label] + [r.label for r in tied])} predict best, tied within Monte Carlo error "
-                f"(elpd {best.oos.elpd:.1f}, SE {best.oos.se:.1f}; their order would change with the seed, so "
+                f"(elpd {best.oos.elpd_loo:.1f}, SE {best.oos.elpd_loo_se:.1f}; their order would change with the seed, so "
                 "they are listed by id).")
         elif len(ranked) == 1:
-            details.append(f"{best.label}: elpd {best.oos.elpd:.1f} (SE {best.oos.se:.1f}).")
+            details.append(f"{best.label}: elpd {best.oos.elpd_loo:.1f} (SE {best.oos.elpd_loo_se:.1f}).")
         else:
             details.append(
-                f"{best.label} predicts best: elpd {best.oos.elpd:.1f} (SE {best.oos.se:.1f}), "
+                f"{best.label} predicts best: elpd {best.oos.elpd_loo:.1f} (SE {best.oos.elpd_loo_se:.1f}), "
                 f"pseudo-BMA+ weight {bma_w[best.id]:.2f}.")
         if len(ranked) > 1:
             details.append(_stacking_sentence(ranked, stack_w, st, by_row))
@@ -411,11 +412,11 @@ def verdict(results: Sequence, comparison: Comparison, ppp_extreme: float = PPP_
 
 
 def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = PPP_EXTREME,
-                       store=None, relevant: Mapping[str, float] | None = None) -> Comparison:
-    """Rank healthy candidates by elpd (``statistics.compare.rank_candidates``) and write
-    the verdict (``verdict``) into the comparison's ``lead`` and ``details``: the one
-    place where the comparison's numbers become its sentences."""
-    comparison = rank_candidates(results, seed, store)
+                       weigh: Weigh | None = None, relevant: Mapping[str, float] | None = None) -> Comparison:
+    """Rank healthy candidates by elpd (``statistics.compare.rank_candidates``, weights
+    from ``weigh``) and write the verdict (``verdict``) into the comparison's ``lead``
+    and ``details``: the one place where the comparison's numbers become its sentences."""
+    comparison = rank_candidates(results, seed, weigh)
     comparison.lead, comparison.details = verdict(results, comparison, ppp_extreme, relevant)
     return comparison
 
@@ -645,7 +646,7 @@ def agreement(title: str, rows: Sequence[Mapping], observed: float, combined: Ma
         "these candidates, or settle the choice of candidate on other grounds first." + miss))
 
 
-def compare_effects(results: Sequence, comparison_rows: Sequence[Mapping], seed: int = 0,
+def compare_effects(results: Sequence, comparison_rows: Sequence, seed: int = 0,
                     min_weight: float = MIN_WEIGHT) -> list:
     """Each effect across candidates (``statistics.effects.effects_across``) with its
     agreement sentence (``agreement``) written into ``sentence``."""

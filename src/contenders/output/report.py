@@ -23,6 +23,7 @@ import numpy as np
 from jinja2 import Environment, FileSystemLoader, StrictUndefined
 
 from contenders.rules import MIN_WEIGHT, SE_FACTOR, SMALL_DIFFERENCE
+from contenders.statistics.compare import ComparisonRow
 from contenders.statistics.effects import direction
 from contenders.output.readings import describe
 from contenders.output import readings
@@ -155,15 +156,15 @@ def _name(r) -> str:
     return f"{r.label} ({r.id})" if r.label != r.id else r.id
 
 
-def _rows_by_id(result) -> dict[str, dict]:
-    return {row["id"]: row for row in result.comparison.rows}
+def _rows_by_id(result) -> dict[str, ComparisonRow]:
+    return {row.id: row for row in result.comparison.rows}
 
 
 def _ordered(result) -> list:
     """Ranked candidates first (by rank), then unhealthy, failed, skipped (by id)."""
     rows = _rows_by_id(result)
     order = {"unhealthy": 1, "failed": 2, "skipped": 3, "ok": 4}
-    ranked = sorted((r for r in result.candidates if r.id in rows), key=lambda r: rows[r.id]["rank"])
+    ranked = sorted((r for r in result.candidates if r.id in rows), key=lambda r: rows[r.id].rank)
     rest = sorted((r for r in result.candidates if r.id not in rows), key=lambda r: (order[r.status], r.id))
     return ranked + rest
 
@@ -172,16 +173,16 @@ def _with_se(value: float, se: float) -> str:
     return f"{fmt.fixed(value, 1)} ({fmt.fixed(se, 1)})"
 
 
-def _behind(row: dict) -> str:
-    return "best" if row["rank"] == 1 else _with_se(row["elpd_diff"], row["elpd_diff_se"])
+def _behind(row) -> str:
+    return "best" if row.rank == 1 else _with_se(row.elpd_diff, row.elpd_diff_se)
 
 
-def _rank(row: dict | None) -> str:
+def _rank(row) -> str:
     """The rank shown: shared by candidates tied within Monte Carlo error ("4–5"), from
     the comparison's one standing rule (``compare.standings``)."""
     if not row:
         return fmt.MISSING
-    return str(row.get("shared_rank") or row["rank"])
+    return str(row.shared_rank or row.rank)
 
 
 #: How the standing of a ranked candidate reads in the tables (compare.standings).
@@ -209,8 +210,8 @@ def _ranking(result, cands) -> Table:
         row = rows.get(r.id)
         notes = []
         if row:
-            if row["tied_with"]:
-                notes.append("tied within Monte Carlo error with " + ", ".join(row["tied_with"])
+            if row.tied_with:
+                notes.append("tied within Monte Carlo error with " + ", ".join(row.tied_with)
                              + "; the order among them would change with the seed, so they share rank "
                              + _rank(row))
             missed = misfits(r.checks, extreme, result.config.relevant)
@@ -230,19 +231,19 @@ def _ranking(result, cands) -> Table:
             n(_rank(row)),
             Cell(r.label, "name", r.id),
             Cell(STATUS_TEXT[r.status], "status " + cls),
-            n(_with_se(row["elpd"], row["se"]) if row else fmt.MISSING),
+            n(_with_se(row.elpd_loo, row.elpd_loo_se) if row else fmt.MISSING),
             n(_behind(row) if row else fmt.MISSING),
-            n(fmt.fixed(row["stacking_weight"], 2) if row else fmt.MISSING),
-            n(fmt.fixed(row["pseudo_bma_weight"], 2) if row else fmt.MISSING),
+            n(fmt.fixed(row.stacking_weight, 2) if row else fmt.MISSING),
+            n(fmt.fixed(row.pseudo_bma_weight, 2) if row else fmt.MISSING),
             Cell(fmt.sentences(notes), "wrap"),
         ], [
-            row["rank"] if row else None, r.id, r.label, r.status, row["elpd"] if row else None,
-            row["se"] if row else None, row["elpd_diff"] if row else None,
-            row["elpd_diff_se"] if row else None, row["stacking_weight"] if row else None,
-            row["pseudo_bma_weight"] if row else None, row["p"] if row else None,
-            row["mcse"] if row else None, row["method"] if row else None,
-            " ".join(row["tied_with"]) if row else None, "; ".join(misses), r.reason,
-            row.get("shared_rank") if row else None, row.get("standing") if row else None,
+            row.rank if row else None, r.id, r.label, r.status, row.elpd_loo if row else None,
+            row.elpd_loo_se if row else None, row.elpd_diff if row else None,
+            row.elpd_diff_se if row else None, row.stacking_weight if row else None,
+            row.pseudo_bma_weight if row else None, row.p_loo if row else None,
+            row.elpd_mcse if row else None, row.elpd_method if row else None,
+            " ".join(row.tied_with) if row else None, "; ".join(misses), r.reason,
+            row.shared_rank if row else None, row.standing if row else None,
         ], cls)
     return t
 
@@ -259,20 +260,20 @@ def _certainty(result) -> Table:
     for cid in result.comparison.preferred:
         row = rows[cid]
         st = standings.get(cid)
-        kind = st.kind if st else ("best" if row["rank"] == 1 else "uncertain")
-        beyond = row["rank"] > 1 and row["elpd_diff"] > SE_FACTOR * row["elpd_diff_se"]   # the raw fact, for the CSV
+        kind = st.kind if st else ("best" if row.rank == 1 else "uncertain")
+        beyond = row.rank > 1 and row.elpd_diff > SE_FACTOR * row.elpd_diff_se   # the raw fact, for the CSV
         text = STANDING_TEXT[kind].format(small=fmt.num(SMALL_DIFFERENCE))
         if st is not None and readings.standing_why(st):
             text += f" ({readings.standing_why(st)})"
         t.add([
-            Cell(row["label"], "name", cid),
-            n(_with_se(row["elpd"], row["se"])),
+            Cell(row.label, "name", cid),
+            n(_with_se(row.elpd_loo, row.elpd_loo_se)),
             n(_behind(row)),
             Cell(fmt.MISSING if kind == "best" else text),
-            n(fmt.fixed(row["stacking_weight"], 2)),
-            n(fmt.fixed(row["pseudo_bma_weight"], 2)),
-        ], [cid, row["label"], row["elpd"], row["se"], row["elpd_diff"], row["elpd_diff_se"],
-            bool(beyond), row["stacking_weight"], row["pseudo_bma_weight"]])
+            n(fmt.fixed(row.stacking_weight, 2)),
+            n(fmt.fixed(row.pseudo_bma_weight, 2)),
+        ], [cid, row.label, row.elpd_loo, row.elpd_loo_se, row.elpd_diff, row.elpd_diff_se,
+            bool(beyond), row.stacking_weight, row.pseudo_bma_weight])
     return t
 
 

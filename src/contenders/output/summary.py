@@ -58,7 +58,7 @@ def ppc_entries(rows: Sequence[dict], ppp_extreme: float = PPP_EXTREME,
 def candidate_summary(r: CandidateResult, comparison: Comparison, cfg: RunConfig | None = None) -> dict[str, Any]:
     h, p, k, o = r.health, r.prior, r.checks, r.oos
     extreme, relevant = (cfg.ppp_extreme, cfg.relevant) if cfg is not None else (PPP_EXTREME, {})
-    row = next((row for row in comparison.rows if row["id"] == r.id), {})
+    row = next((row for row in comparison.rows if row.id == r.id), None)
     return {
         "id": r.id, "label": r.label, "status": r.status, "reason": r.reason,
         "rhat_max": h.rhat_max if h else None,
@@ -78,25 +78,25 @@ def candidate_summary(r: CandidateResult, comparison: Comparison, cfg: RunConfig
                         for cond, levels in k.grouped.items()} if k else {},
         "loo_pit_test": k.loo_pit_test if k else None,
         "quantiles": k.quantiles if k else [],
-        "elpd_loo": o.elpd if o else None,
-        "elpd_loo_se": o.se if o else None,
-        "p_loo": o.p if o else None,
-        "elpd_diff": row.get("elpd_diff"),
-        "elpd_diff_se": row.get("elpd_diff_se"),
-        "stacking_weight": row.get("stacking_weight"),
-        "pseudo_bma_weight": row.get("pseudo_bma_weight"),
-        "pareto_k_max": o.k_max if o else None,
-        "n_high_pareto_k": o.n_high_k if o else None,
+        "elpd_loo": o.elpd_loo if o else None,
+        "elpd_loo_se": o.elpd_loo_se if o else None,
+        "p_loo": o.p_loo if o else None,
+        "elpd_diff": row.elpd_diff if row else None,
+        "elpd_diff_se": row.elpd_diff_se if row else None,
+        "stacking_weight": row.stacking_weight if row else None,
+        "pseudo_bma_weight": row.pseudo_bma_weight if row else None,
+        "pareto_k_max": o.pareto_k_max if o else None,
+        "n_high_pareto_k": o.n_high_pareto_k if o else None,
         "n_refits": o.n_refits if o else None,
         "refitted_observations": [i + 1 for i in o.refitted] if o else [],
         "elpd_method": o.method if o else None,
-        "elpd_mcse": o.mcse if o else None,
-        "tied_with": row.get("tied_with", []),   # from the comparison, not the candidate
+        "elpd_mcse": o.elpd_mcse if o else None,
+        "tied_with": list(row.tied_with) if row else [],   # from the comparison, not the candidate
         "power_scaling": sensitivity_summary(r.sensitivity),
         "coefficients": coefficients_summary(r.coefficients),
-        "rank": row.get("rank"),
-        "shared_rank": row.get("shared_rank"),     # "4–5" when tied within Monte Carlo error
-        "standing": row.get("standing"),           # best, tied, close, uncertain, worse (compare.standings)
+        "rank": row.rank if row else None,
+        "shared_rank": row.shared_rank if row else None,     # "4–5" when tied within Monte Carlo error
+        "standing": row.standing if row else None,           # best, tied, close, uncertain, worse (compare.standings)
         "hyperparameters": r.hyperparameters,
         "code_sha256": r.code_hash,
         "seconds": r.seconds,

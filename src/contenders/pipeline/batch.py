@@ -105,13 +105,13 @@ def _row_from_run(row: DatasetRow, result) -> DatasetRow:
     cfg = result.config
     row.n = int(result.design.N)
     row.verdict = comp.verdict[0] if comp.verdict else ""
-    row.weights = {r["id"]: float(r["stacking_weight"]) for r in comp.rows}
+    row.weights = {r.id: float(r.stacking_weight) for r in comp.rows}
     if comp.rows:
-        row.best = comp.rows[0]["id"]
+        row.best = comp.rows[0].id
     if len(comp.rows) >= 2:
         # ArviZ's elpd_diff of the second-ranked candidate is its distance to the best
-        row.lead = float(comp.rows[1]["elpd_diff"])
-        row.lead_se = float(comp.rows[1]["elpd_diff_se"])
+        row.lead = float(comp.rows[1].elpd_diff)
+        row.lead_se = float(comp.rows[1].elpd_diff_se)
     if not comp.rows:
         row.outcome = "no candidate ranked"
     elif len(comp.rows) == 1:

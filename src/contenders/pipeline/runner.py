@@ -31,7 +31,7 @@ from contenders.engines.base import SamplerSettings
 from contenders.engines.lazy import LazyEngine
 from contenders.pipeline.executor import report
 from contenders.pipeline.progress import Progress
-from contenders.pipeline.store import FitStore, StoredEngine, data_origin, trials_key
+from contenders.pipeline.store import FitStore, StoredEngine, data_origin, remembered_weights, trials_key
 from contenders.errors import UserError
 from contenders.statistics.checks import predictive_checks, thin_draws
 from contenders.statistics.censored_checks import censor_like_the_data
@@ -505,7 +505,8 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
     for r in ordered:
         if r.status in ("failed", "skipped", "unhealthy"):
             say(f"  {r.id}: {r.status}: {r.reason.splitlines()[0][:300] if r.reason else ''}")
-    comparison = compare_candidates(ordered, cfg.seed, cfg.ppp_extreme, store=store, relevant=cfg.relevant)
+    comparison = compare_candidates(ordered, cfg.seed, cfg.ppp_extreme, weigh=remembered_weights(store),
+                                    relevant=cfg.relevant)
     if cfg.quick:
         comparison.lead.insert(0, QUICK_LOOK.format(chains=cfg.chains, draws=cfg.draws, rhat=cfg.rhat_max,
                                                          ess=cfg.ess_per_chain_min))

@@ -76,7 +76,10 @@ TRIAL_SETTINGS = tuple(s.name for s in SETTINGS if s.enters_trials_key)
 #: Format 11: a censored value counts as "at y" within two float32 steps (y_rep is float32).
 #: Format 12: sampler health keeps its findings as codes (``Health.findings``); its words and
 #: the prior trial's message are written from the numbers (``output.readings``).
-TRIALS_FORMAT = 12
+#: Format 13: the out-of-sample estimate's fields are named as ``summary.json`` names them
+#: (``OutOfSample.elpd_loo``, ``elpd_loo_se``, ``p_loo``, ``elpd_mcse``), so trials stored
+#: with the old names are not read.
+TRIALS_FORMAT = 13
 
 
 def trials_key(candidate, design, cfg, engine_version: str) -> str:
@@ -332,6 +335,30 @@ class FitStore:
             return None
         self.record(path, {"kind": kind})
         return path
+
+
+def remembered_weights(store: FitStore | None):
+    """``statistics.compare.weights`` answered from ``store`` when these exact estimates
+    were compared before (``compare.weights_key``: ids, elpd, SE, p, draws, pointwise
+    values, seed and ArviZ version), and stored otherwise; a plain ``weights`` without
+    a store. The answer is the same either way: a rerun only skips ArviZ."""
+    from contenders.statistics import compare
+
+    if store is None:
+        return compare.weights
+
+    def weigh(estimates: dict, seed: int = 0) -> tuple:
+        if len(estimates) == 1:
+            return compare.weights(estimates, seed)
+        key = compare.weights_key(estimates, seed)
+        found = store.load_value("weights", key)
+        if found is not None:
+            return found
+        answer = compare.weights(estimates, seed)
+        store.save_value("weights", key, answer)
+        return answer
+
+    return weigh
 
 
 def _load_pickle(path: Path, key: str):

@@ -36,11 +36,16 @@ from contenders.rules import SE_FACTOR, SMALL_DIFFERENCE, TIE_MCSE_FACTOR
 
 @dataclass
 class OutOfSample:
-    """Estimated expected log predictive density of one candidate."""
+    """Estimated expected log predictive density of one candidate.
 
-    elpd: float
-    se: float
-    p: float                      # effective number of parameters: lppd - elpd
+    The fields carry the names of the keys of ``summary.json`` that report them
+    (``elpd_loo``, ``elpd_loo_se``, ``p_loo``, ``elpd_method``, ``elpd_mcse``,
+    ``pareto_k_max``, ``n_high_pareto_k``, ``n_refits``), here and in ``ComparisonRow``.
+    """
+
+    elpd_loo: float
+    elpd_loo_se: float
+    p_loo: float                  # effective number of parameters: lppd - elpd
     pointwise: np.ndarray         # elpd of each observation
     pareto_k: np.ndarray          # PSIS shape estimate per observation (NaN for K-fold only)
     k_threshold: float
@@ -48,16 +53,16 @@ class OutOfSample:
     refitted: list[int] = field(default_factory=list)  # 0-based observations refitted exactly
     n_refits: int = 0
     elpd_psis: float = float("nan")                     # plain PSIS-LOO before any refit
-    mcse: float = float("nan")                          # Monte Carlo SE of elpd (chains as batches)
+    elpd_mcse: float = float("nan")                     # Monte Carlo SE of elpd (chains as batches)
     n_samples: int = 0                                  # posterior draws behind the PSIS estimate
 
     @property
-    def k_max(self) -> float:
+    def pareto_k_max(self) -> float:
         k = self.pareto_k[np.isfinite(self.pareto_k)]
         return float(k.max()) if k.size else float("nan")
 
     @property
-    def n_high_k(self) -> int:
+    def n_high_pareto_k(self) -> int:
         return int((self.pareto_k > self.k_threshold).sum())
 
 
@@ -152,7 +157,7 @@ def _totals(pointwise: np.ndarray, lppd: float) -> dict:
     """SE of the elpd (sqrt(N) times the SD of the pointwise values, as ArviZ's ``loo``
     computes it after Vehtari, Gelman & Gabry 2017) and p = lppd - elpd."""
     n = pointwise.size
-    return {"se": float(np.sqrt(n * np.var(pointwise))), "p": float(lppd - pointwise.sum())}
+    return {"elpd_loo_se": float(np.sqrt(n * np.var(pointwise))), "p_loo": float(lppd - pointwise.sum())}
 
 
 def elpd_data(e: OutOfSample):
@@ -175,7 +180,7 @@ def elpd_data(e: OutOfSample):
     n = e.pointwise.size
     obs = np.arange(n)
     return ELPDData(
-        data=[float(e.elpd), float(e.se), float(e.p), int(e.n_samples), n, False,
+        data=[float(e.elpd_loo), float(e.elpd_loo_se), float(e.p_loo), int(e.n_samples), n, False,
               xr.DataArray(np.asarray(e.pointwise, dtype=float), dims=["obs"], coords={"obs": obs},
                            name="loo_i"),
               xr.DataArray(np.asarray(e.pareto_k, dtype=float), dims=["obs"], coords={"obs": obs}),
@@ -230,9 +235,9 @@ class Plan:
             pointwise[idx] = log_mean_exp(draws)
             per_chain[:, idx] = log_mean_exp(draws.reshape(self.n_chains, -1, idx.size), axis=1)
         t = _totals(pointwise, self.lppd)
-        return OutOfSample(float(pointwise.sum()), t["se"], t["p"], pointwise, method=self.method,
+        return OutOfSample(float(pointwise.sum()), t["elpd_loo_se"], t["p_loo"], pointwise, method=self.method,
                            refitted=list(self.refitted), n_refits=len(self.fits),
-                           mcse=_chain_mcse(per_chain.sum(axis=1)), **self.base)
+                           elpd_mcse=_chain_mcse(per_chain.sum(axis=1)), **self.base)
 
 
 #: Most log_lik values (draws x observations) handed to ArviZ's PSIS-LOO at once. PSIS
@@ -408,6 +413,33 @@ def estimate(
 
 
 @dataclass
+class ComparisonRow:
+    """One ranked candidate of the comparison. Its fields carry the names of the keys
+    of ``summary.json`` that report them; the CSV files name three of them for their
+    readers (``contenders.output.report``: ``elpd_se``, ``elpd_behind_best``,
+    ``elpd_behind_best_se``)."""
+
+    rank: int                     # place in the ranking, 1 = best (see shared_rank for ties)
+    id: str
+    label: str
+    elpd_loo: float
+    elpd_loo_se: float
+    p_loo: float
+    elpd_diff: float              # elpd behind the best (ArviZ's ``compare``), >= 0
+    elpd_diff_se: float           # SE of the paired difference
+    stacking_weight: float
+    pseudo_bma_weight: float
+    pareto_k_max: float
+    n_high_pareto_k: int
+    n_refits: int
+    elpd_method: str
+    elpd_mcse: float
+    tied_with: list[str] = field(default_factory=list)  # ids tied within Monte Carlo error
+    standing: str = ""            # Standing.kind
+    shared_rank: str = ""         # Standing.rank ("2–3" for a tie)
+
+
+@dataclass
 class Comparison:
     """The ranking and the verdict. ``lead`` is two or three sentences (what to use, how
     sure that is, what the preferred candidates miss); ``details`` every other sentence,
@@ -416,7 +448,7 @@ class Comparison:
     fills them (``readings.verdict``)."""
 
     ranking: list[str]
-    rows: list[dict]              # per ranked candidate, best first
+    rows: list[ComparisonRow]     # per ranked candidate, best first
     lead: list[str]
     preferred: list[str]
     details: list[str] = field(default_factory=list)
@@ -451,19 +483,18 @@ def weights_key(estimates: dict[str, OutOfSample], seed: int = 0) -> str:
 
     h = hashlib.sha256(f"weights {WEIGHTS_FORMAT}|arviz {version('arviz')}|seed {seed}".encode())
     for cid, e in estimates.items():
-        h.update(f"|{cid}|{e.elpd!r}|{e.se!r}|{e.p!r}|{int(e.n_samples)}|".encode())
+        h.update(f"|{cid}|{e.elpd_loo!r}|{e.elpd_loo_se!r}|{e.p_loo!r}|{int(e.n_samples)}|".encode())
         pointwise = np.ascontiguousarray(np.asarray(e.pointwise, dtype=np.float64))
         h.update(str(pointwise.shape).encode())
         h.update(pointwise.tobytes())
     return h.hexdigest()
 
 
-def weights(estimates: dict[str, OutOfSample], seed: int = 0, store=None) -> tuple[dict, dict, dict]:
+def weights(estimates: dict[str, OutOfSample], seed: int = 0) -> tuple[dict, dict, dict]:
     """Stacking weights, pseudo-BMA+ weights and the differences to the best.
 
-    With ``store`` the answer is read from it when these exact estimates were compared
-    before (``weights_key``), and stored otherwise, so a rerun from the fit store does
-    not import ArviZ.
+    A run keeps the answer in its fit store (``contenders.pipeline.store.remembered_weights``,
+    keyed by ``weights_key``), so a rerun from the fit store does not import ArviZ.
 
     Parameters
     ----------
@@ -471,8 +502,6 @@ def weights(estimates: dict[str, OutOfSample], seed: int = 0, store=None) -> tup
         Candidate id -> estimate.
     seed : int
         Seed of the Bayesian bootstrap of the pseudo-BMA+ weights.
-    store : FitStore, optional
-        ``contenders.pipeline.store.FitStore`` keeping computed weights.
 
     Returns
     -------
@@ -488,22 +517,19 @@ def weights(estimates: dict[str, OutOfSample], seed: int = 0, store=None) -> tup
     if len(estimates) == 1:
         (cid,) = estimates
         return {cid: 1.0}, {cid: 1.0}, {cid: (0.0, 0.0)}
-    key = weights_key(estimates, seed) if store is not None else ""
-    if store is not None:
-        found = store.load_value("weights", key)
-        if found is not None:
-            return found
     import arviz as az
 
     objs = {cid: elpd_data(e) for cid, e in estimates.items()}
     stacked = az.compare(objs, ic="loo", method="stacking")
     bma = az.compare(objs, ic="loo", method="BB-pseudo-BMA", seed=seed)
     diffs = {cid: (float(stacked.loc[cid, "elpd_diff"]), float(stacked.loc[cid, "dse"])) for cid in objs}
-    answer = ({cid: float(stacked.loc[cid, "weight"]) for cid in objs},
-              {cid: float(bma.loc[cid, "weight"]) for cid in objs}, diffs)
-    if store is not None:
-        store.save_value("weights", key, answer)
-    return answer
+    return ({cid: float(stacked.loc[cid, "weight"]) for cid in objs},
+            {cid: float(bma.loc[cid, "weight"]) for cid in objs}, diffs)
+
+
+#: How ``rank_candidates`` obtains the weights: ``weights`` itself, or the same answer
+#: remembered (``contenders.pipeline.store.remembered_weights``).
+Weigh = Callable[[dict, int], tuple]
 
 
 def order_with_ties(ranked: list) -> list:
@@ -525,13 +551,13 @@ def order_with_ties(ranked: list) -> list:
     tied_with : dict of str to list of str
         Per id, the ids of the others in its tie (empty when it is alone).
     """
-    ordered = sorted(ranked, key=lambda r: -r.oos.elpd)
+    ordered = sorted(ranked, key=lambda r: -r.oos.elpd_loo)
     tiers: list[list] = []
     for r in ordered:
         if tiers:
             prev = tiers[-1][-1]
-            gap = prev.oos.elpd - r.oos.elpd
-            noise = TIE_MCSE_FACTOR * np.sqrt(np.nan_to_num(prev.oos.mcse) ** 2 + np.nan_to_num(r.oos.mcse) ** 2)
+            gap = prev.oos.elpd_loo - r.oos.elpd_loo
+            noise = TIE_MCSE_FACTOR * np.sqrt(np.nan_to_num(prev.oos.elpd_mcse) ** 2 + np.nan_to_num(r.oos.elpd_mcse) ** 2)
             if gap <= noise:
                 tiers[-1].append(r)
                 continue
@@ -584,7 +610,7 @@ def _own_kind(position: int, tied_with_best: bool, diff: float, diff_se: float) 
     return "worse"
 
 
-def standings(rows: Sequence[dict]) -> dict[str, Standing]:
+def standings(rows: Sequence[ComparisonRow]) -> dict[str, Standing]:
     """The standing of every ranked candidate, the one rule every sentence and table reads.
 
     Each candidate's own standing follows from its difference to the best (below
@@ -597,10 +623,10 @@ def standings(rows: Sequence[dict]) -> dict[str, Standing]:
 
     Parameters
     ----------
-    rows : sequence of dict
+    rows : sequence of ComparisonRow
         The comparison's rows, best first, candidates tied within Monte Carlo error next
-        to each other, each with ``id``, ``label``, ``elpd_diff``, ``elpd_diff_se`` and
-        ``tied_with``.
+        to each other; ``id``, ``label``, ``elpd_diff``, ``elpd_diff_se`` and
+        ``tied_with`` are read.
 
     Returns
     -------
@@ -615,18 +641,17 @@ def standings(rows: Sequence[dict]) -> dict[str, Standing]:
     rows = list(rows)
     if not rows:
         return {}
-    best = rows[0]["id"]
-    tiers: list[list[dict]] = []
+    best = rows[0].id
+    tiers: list[list[ComparisonRow]] = []
     for row in rows:
-        if tiers and row["id"] in tiers[-1][0]["tied_with"]:
+        if tiers and row.id in tiers[-1][0].tied_with:
             tiers[-1].append(row)
         else:
             tiers.append([row])
-    labels = {row["id"]: row.get("label", row["id"]) for row in rows}
+    labels = {row.id: row.label for row in rows}
     own = {}
     for pos, row in enumerate(rows, 1):
-        own[row["id"]] = _own_kind(pos, best in row["tied_with"], float(row["elpd_diff"]),
-                                   float(row["elpd_diff_se"]))
+        own[row.id] = _own_kind(pos, best in row.tied_with, float(row.elpd_diff), float(row.elpd_diff_se))
     out: dict[str, Standing] = {}
     below: list[str] = []        # ids of not-clearly-worse candidates ranked below, nearest first
     start = len(rows)
@@ -634,7 +659,7 @@ def standings(rows: Sequence[dict]) -> dict[str, Standing]:
         start -= len(tier)
         first, last = start + 1, start + len(tier)
         rank = str(first) if first == last else f"{first}–{last}"
-        kinds = [STANDINGS.index(own[r["id"]]) for r in tier]
+        kinds = [STANDINGS.index(own[r.id]) for r in tier]
         kind = STANDINGS[min(kinds)]
         lifted_by = ""
         if kind == "worse" and below:
@@ -642,15 +667,15 @@ def standings(rows: Sequence[dict]) -> dict[str, Standing]:
         for pos, r in enumerate(tier, first):
             k = "best" if pos == 1 else ("tied" if kind == "best" else kind)
             lifted, by = "", []
-            if STANDINGS.index(own[r["id"]]) > STANDINGS.index(k) and k != "tied":
-                mates = [m["id"] for m in tier if m is not r and own[m["id"]] == kind]
+            if STANDINGS.index(own[r.id]) > STANDINGS.index(k) and k != "tied":
+                mates = [m.id for m in tier if m is not r and own[m.id] == kind]
                 if mates:
                     lifted, by = "tied", [labels[m] for m in mates]
                 else:
                     lifted, by = "above", [labels[lifted_by]]
-            out[r["id"]] = Standing(k, rank, pos, [m["id"] for m in tier if m is not r], lifted, by)
+            out[r.id] = Standing(k, rank, pos, [m.id for m in tier if m is not r], lifted, by)
         if kind != "worse":
-            below.insert(0, tier[0]["id"])
+            below.insert(0, tier[0].id)
     return out
 
 
@@ -676,7 +701,7 @@ def better_share(pointwise: np.ndarray, best_pointwise: np.ndarray) -> float:
     return float(np.mean(a[ok] > b[ok])) if ok.any() else float("nan")
 
 
-def rank_candidates(results: Sequence, seed: int = 0, store=None) -> Comparison:
+def rank_candidates(results: Sequence, seed: int = 0, weigh: Weigh | None = None) -> Comparison:
     """Rank the healthy candidates by elpd: rows, standings and the preferred candidates.
 
     Rules (see ``standings``, the one rule every sentence and table reads): a
@@ -694,15 +719,15 @@ def rank_candidates(results: Sequence, seed: int = 0, store=None) -> Comparison:
         estimate (``oos``) are ranked; they are not changed.
     seed : int
         Seed of the Bayesian bootstrap of the pseudo-BMA+ weights.
-    store : FitStore, optional
-        Where computed weights are kept (see ``weights``).
+    weigh : callable, optional
+        ``(estimates, seed) -> (stacking, pseudo_bma, diffs)``; ``weights`` when not given.
 
     Returns
     -------
     Comparison
-        ``ranking`` (ids, best first), ``rows`` (one dict per ranked candidate: elpd,
-        SE, p, difference to the best and its SE, weights, Pareto k, method, Monte
-        Carlo SE, standing and shared rank), ``preferred`` (ids of the candidates not
+        ``ranking`` (ids, best first), ``rows`` (a ``ComparisonRow`` per ranked
+        candidate: elpd, SE, p, difference to the best and its SE, weights, Pareto k,
+        method, Monte Carlo SE, standing and shared rank), ``preferred`` (ids of the candidates not
         clearly worse) and ``standings``.
 
     References
@@ -713,25 +738,22 @@ def rank_candidates(results: Sequence, seed: int = 0, store=None) -> Comparison:
     Analysis, arXiv:2008.10296 (small differences).
     """
     ranked = [r for r in results if r.status == "ok" and r.oos is not None]
-    rows: list[dict] = []
+    rows: list[ComparisonRow] = []
     preferred: list[str] = []
     st: dict[str, Standing] = {}
     if ranked:
         est = {r.id: r.oos for r in ranked}
-        stack_w, bma_w, diffs = weights(est, seed, store)
+        stack_w, bma_w, diffs = (weigh or weights)(est, seed)
         ranked, tied_with = order_with_ties(ranked)
         for pos, r in enumerate(ranked, 1):
             d, dse = diffs[r.id]
-            rows.append({
-                "rank": pos, "id": r.id, "label": r.label, "elpd": r.oos.elpd, "se": r.oos.se,
-                "p": r.oos.p, "elpd_diff": d, "elpd_diff_se": dse, "stacking_weight": stack_w[r.id],
-                "pseudo_bma_weight": bma_w[r.id], "pareto_k_max": r.oos.k_max,
-                "n_high_k": r.oos.n_high_k, "n_refits": r.oos.n_refits, "method": r.oos.method,
-                "mcse": r.oos.mcse, "tied_with": tied_with[r.id],
-            })
+            rows.append(ComparisonRow(
+                pos, r.id, r.label, r.oos.elpd_loo, r.oos.elpd_loo_se, r.oos.p_loo, d, dse,
+                stack_w[r.id], bma_w[r.id], r.oos.pareto_k_max, r.oos.n_high_pareto_k, r.oos.n_refits,
+                r.oos.method, r.oos.elpd_mcse, tied_with[r.id]))
         st = standings(rows)
         for row in rows:
-            row["standing"] = st[row["id"]].kind
-            row["shared_rank"] = st[row["id"]].rank
+            row.standing = st[row.id].kind
+            row.shared_rank = st[row.id].rank
         preferred = [r.id for r in ranked if st[r.id].preferred]
-    return Comparison([row["id"] for row in rows], rows, [], preferred, [], st)
+    return Comparison([row.id for row in rows], rows, [], preferred, [], st)

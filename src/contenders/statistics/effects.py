@@ -437,7 +437,7 @@ class EffectAcross:
     combined_draws: np.ndarray = field(repr=False, default_factory=lambda: np.zeros(0))
 
 
-def effects_across(results: Sequence, comparison_rows: Sequence[Mapping], seed: int = 0,
+def effects_across(results: Sequence, comparison_rows: Sequence, seed: int = 0,
                    min_weight: float = MIN_WEIGHT) -> list[EffectAcross]:
     """Gather each effect across candidates, combine the ranked candidates' draws by
     stacking weight, and read whether they agree (``agreement_reading``).
@@ -452,7 +452,7 @@ def effects_across(results: Sequence, comparison_rows: Sequence[Mapping], seed: 
     results : sequence of CandidateResult
         Candidates with ``id``, ``label``, ``status`` and ``effects`` (lists of
         ``Effect``); only those whose status is in ``SAMPLED`` are shown.
-    comparison_rows : sequence of mapping
+    comparison_rows : sequence of ComparisonRow
         The ranked rows (``id``, ``rank``, ``stacking_weight``), best first.
     seed : int
         Seed of the combinations.
@@ -465,9 +465,9 @@ def effects_across(results: Sequence, comparison_rows: Sequence[Mapping], seed: 
         One per effect: per-candidate rows, the stacking-weighted combination and the
         agreement reading.
     """
-    ranked = {row["id"]: row for row in comparison_rows}
+    ranked = {row.id: row for row in comparison_rows}
     results = [r for r in results if r.status in SAMPLED and getattr(r, "effects", None)]
-    order = [r for row in comparison_rows for r in results if r.id == row["id"]]
+    order = [r for row in comparison_rows for r in results if r.id == row.id]
     order += [r for r in results if r.id not in ranked]
     keys: dict[str, Effect] = {}
     for r in order:
@@ -481,8 +481,8 @@ def effects_across(results: Sequence, comparison_rows: Sequence[Mapping], seed: 
             if e is None:
                 continue
             row = ranked.get(r.id)
-            w = row["stacking_weight"] if row else None
-            rows.append({"id": r.id, "label": r.label, "status": r.status, "rank": row["rank"] if row else None,
+            w = row.stacking_weight if row else None
+            rows.append({"id": r.id, "label": r.label, "status": r.status, "rank": row.rank if row else None,
                          "weight": w, "mean": e.mean, "lower": e.lower, "upper": e.upper,
                          "direction": direction(e.lower, e.upper) if e.n_draws else None,
                          "observed_inside": bool(e.lower <= e.observed <= e.upper) if e.n_draws else None,
