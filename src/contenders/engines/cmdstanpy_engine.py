@@ -34,28 +34,6 @@ def _cache_root() -> Path:
     return Path(base) / "contenders" / "cmdstan"
 
 
-@contextlib.contextmanager
-def _chain_slots(share: ChainShare, chains: int):
-    """Yield how many chains one sampling call runs at once. Without shared slots: the
-    share's limit (the executor's, else one per core; not every chain at once on a small
-    machine). With ``share.slots`` (a semaphore shared by a run's worker processes): take
-    one slot, waiting if need be, then every further free one up to ``chains``, and hold
-    them meanwhile."""
-    slots = share.slots
-    if slots is None:
-        yield max(1, min(chains, share.limit()))
-        return
-    slots.acquire()
-    held = 1
-    while held < chains and slots.acquire(False):
-        held += 1
-    try:
-        yield held
-    finally:
-        for _ in range(held):
-            slots.release()
-
-
 _NOISE = re.compile(r"^(Command and output files:|Consider re-running with show_console|RunSet:|"
                     r" *(cmd|retcodes|per-chain output files|csv_files|console_msgs)\b)")
 
@@ -137,8 +115,10 @@ class CmdStanPyEngine(Engine):
 
     def chains_at_once(self, chains: int):
         """A context that yields how many of ``chains`` one sampling call runs at once,
-        holding that many of the share's slots meanwhile (see ``_chain_slots``)."""
-        return _chain_slots(self.share, chains)
+        holding that many of the share's slots meanwhile (``ChainShare.hold``): the
+        share's limit, or with shared slots one slot (waiting if need be) and every
+        further free one."""
+        return self.share.hold(chains)
 
     def version(self) -> str:
         return self._version
