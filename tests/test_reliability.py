@@ -302,3 +302,30 @@ def test_a_candidate_whose_compile_fails_is_failed_at_that_stage_and_the_others_
     summary = json.loads((tmp_path / "out" / "summary.json").read_text())
     failed = next(c for c in summary["candidates"] if c["id"] == "builds_badly")
     assert failed["status"] == "failed" and failed["reason"] == message
+
+
+def test_check_lists_a_candidate_whose_compile_fails_with_the_compilers_words(tmp_path, programs, monkeypatch,
+                                                                             capsys):
+    from contenders import cli
+    from contenders.engines.base import SamplingError
+    from contenders.engines.pystan_engine import PyStanEngine
+
+    folder = tmp_path / "cands"
+    folder.mkdir()
+    shutil.copy(builtin_folder() / "normal.stan", folder / "normal.stan")
+    shutil.copy(builtin_folder() / "normal.stan", folder / "builds_badly.stan")
+    real = PyStanEngine.compile
+
+    def compile(self, candidate):
+        if candidate.id == "builds_badly":
+            raise SamplingError("builds_badly.stan: compiling failed:\nsomething the C++ compiler said")
+        return real(self, candidate)
+
+    monkeypatch.setattr(PyStanEngine, "compile", compile)
+    args = cli.build_parser().parse_args(["check", "--candidates", str(folder), "--engine", "pystan", "--jobs", "1"])
+    assert cli.cmd_check(args) == 1
+    out = capsys.readouterr().out
+    assert "ok       normal\n" in out
+    assert ("invalid  builds_badly\n         builds_badly.stan: compiling failed:\n"
+            "         something the C++ compiler said\n") in out
+    assert "1 of 2 candidates pass" in out
