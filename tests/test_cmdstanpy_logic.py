@@ -217,22 +217,47 @@ class _Counting(_Handle):
 
 
 def test_without_an_executor_chains_at_once_follow_the_cores(monkeypatch, tmp_path):
+    from contenders import machine
+
     monkeypatch.setattr(arviz, "from_cmdstanpy", lambda **_k: "idata")
-    monkeypatch.setattr(ce, "CHAIN_WORKERS", [0])
-    monkeypatch.setattr(ce, "cores", lambda: 2)     # the engine's own name for machine.cores
+    monkeypatch.setattr(machine, "THIS_PROCESS", machine.ChainShare())   # no executor's share
+    monkeypatch.setattr(machine, "cores", lambda: 2)
     handle = _Counting(False)
-    ce.CmdStanPyEngine(fake_cmdstan(tmp_path)).sample(Program("toy", "", handle, 0.0, True), {"y": [1.0]},
-                                                      SamplerSettings(chains=4))
+    engine = ce.CmdStanPyEngine(fake_cmdstan(tmp_path))
+    assert engine.share is machine.THIS_PROCESS
+    engine.sample(Program("toy", "", handle, 0.0, True), {"y": [1.0]}, SamplerSettings(chains=4))
     assert handle.seen == [2]
+
+
+def test_the_share_set_by_an_executor_limits_the_chains_of_each_call(monkeypatch, tmp_path):
+    from contenders import machine
+    from contenders.pipeline.executor import _set_chain_workers
+
+    monkeypatch.setattr(arviz, "from_cmdstanpy", lambda **_k: "idata")
+    monkeypatch.setattr(machine, "THIS_PROCESS", machine.ChainShare())
+    monkeypatch.setattr("contenders.pipeline.executor.THIS_PROCESS", machine.THIS_PROCESS)
+    monkeypatch.setattr(machine, "cores", lambda: 8)
+    handle = _Counting(False)
+    engine = ce.CmdStanPyEngine(fake_cmdstan(tmp_path))
+    program = Program("toy", "", handle, 0.0, True)
+    assert _set_chain_workers("cmdstanpy", 3) == 0    # the previous limit: none
+    engine.sample(program, {"y": [1.0]}, SamplerSettings(chains=4))
+    engine.sample(program, {"y": [1.0]}, SamplerSettings(chains=2))   # fewer chains than the limit
+    own = ce.CmdStanPyEngine(fake_cmdstan(tmp_path), share=machine.ChainShare(chains_at_once=1))
+    own.sample(program, {"y": [1.0]}, SamplerSettings(chains=4))     # its own share, not the process's
+    assert handle.seen == [3, 2, 1]
+    assert _set_chain_workers("cmdstanpy", 8) == 3
 
 
 def test_a_fit_takes_every_free_chain_slot_and_gives_them_back(monkeypatch, tmp_path):
     import threading
 
+    from contenders.machine import ChainShare
+
     monkeypatch.setattr(arviz, "from_cmdstanpy", lambda **_k: "idata")
     slots = threading.Semaphore(3)
-    monkeypatch.setattr(ce, "CHAIN_SLOTS", [slots])
-    engine, handle = ce.CmdStanPyEngine(fake_cmdstan(tmp_path)), _Counting(False)
+    engine = ce.CmdStanPyEngine(fake_cmdstan(tmp_path), share=ChainShare(chains_at_once=3, slots=slots))
+    handle = _Counting(False)
     program = Program("toy", "", handle, 0.0, True)
     engine.sample(program, {"y": [1.0]}, SamplerSettings(chains=4))   # alone: all 3 slots
     slots.acquire()
@@ -242,6 +267,7 @@ def test_a_fit_takes_every_free_chain_slot_and_gives_them_back(monkeypatch, tmp_
     slots.release()
     assert handle.seen == [3, 1]
     assert all(slots.acquire(blocking=False) for _ in range(3))   # every slot came back
+    assert not slots.acquire(blocking=False)
 
 
 def test_y_rep_is_kept_as_float32_and_log_lik_as_float64(monkeypatch, tmp_path):

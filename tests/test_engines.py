@@ -308,8 +308,10 @@ def test_a_compile_past_pystans_request_limit_is_retried_once_then_one_line(engi
     # in a run the candidate fails with that line and the others go on
     posts.clear()
     copy = dataclasses.replace(builtins["normal"], problems=[])
-    assert compile_all(engine, [copy], jobs=1) == {}
-    assert copy.problems == [message]
+    got = compile_all(engine, [copy], jobs=1)
+    assert got.programs == {} and got.failures == {"normal": message}
+    assert got.problems(copy) == [message]
+    assert copy.problems == []   # the candidate (inputs' object) is left as it was
 
 
 def test_compiling_says_when_each_program_starts_and_ends_and_when_it_waits_for_a_lock(engine, programs,
@@ -351,14 +353,14 @@ def test_compiling_says_when_each_program_starts_and_ends_and_when_it_waits_for_
     key = _lock_key(httpstan.models.calculate_model_name(builtins["normal"].code))
     with _lock_held_elsewhere(key, 3):
         got = compile_all(engine, [builtins["normal"]], jobs=1, progress=lines.append)
-    assert set(got) == {"normal"}
+    assert set(got.programs) == {"normal"} and got.failures == {}
     assert lines[0] == ("normal: waiting for another process that is compiling this program (its compile lock); "
                         "this one goes on when that is done")
     assert lines[1] in ("normal: the other process is done (waited 2 s)",
                         "normal: the other process is done (waited 3 s)")
     assert len(lines) == 2   # cached: no compile lines
     # without a listener the wait is silent (library use)
-    assert compile_all(engine, [builtins["normal"]], jobs=1) and len(lines) == 2
+    assert compile_all(engine, [builtins["normal"]], jobs=1).programs and len(lines) == 2
 
 
 def test_waiting_for_a_free_chain_slot_is_counted_apart_from_sampling(engine, programs, builtins, design):

@@ -44,6 +44,12 @@ def _refuse(*_a, **_k):
     raise AssertionError("httpstan's inside was touched with an httpstan it was not written for")
 
 
+#: What ``httpstan_direct`` offers that reaches inside httpstan or PyStan, all refused in
+#: the fallback tests (``forgetting_fits`` is tried there too, defensively; see its doc).
+INSIDE = ("sample_direct", "remove_call_sockets", "serving_from", "ChainPool", "model_name", "module_ready",
+          "load_module", "compile_request")
+
+
 def test_another_httpstan_samples_through_pystan_with_one_notice_and_the_same_draws(
         engine, programs, builtins, design, capfd, monkeypatch):
     import httpstan.cache
@@ -54,7 +60,7 @@ def test_another_httpstan_samples_through_pystan_with_one_notice_and_the_same_dr
 
     monkeypatch.setattr(hd, "DETECTED", "4.14.2")     # the detected version, not the package
     monkeypatch.setattr(pe, "_FALLBACK_SAID", [False])
-    for name in ("sample_direct", "remove_call_sockets", "serving_from", "ChainPool"):
+    for name in INSIDE:
         monkeypatch.setattr(hd, name, _refuse)
     slow = engine.sample(programs["lognormal"], data, TINY)
     again = engine.sample(programs["lognormal"], data, TINY)
@@ -80,6 +86,83 @@ def test_another_httpstan_samples_through_pystan_with_one_notice_and_the_same_dr
         assert draws.sample_seconds > 0 and draws.wait_seconds == 0.0
     fits = httpstan.cache.model_directory(programs["lognormal"].handle) / "fits"
     assert not fits.exists() or not any(fits.iterdir()), "httpstan's on-disk fit copies are removed"
+
+
+def test_another_httpstan_compiles_through_stan_build_and_samples_the_same_draws(
+        engine, programs, builtins, design, capfd, monkeypatch):
+    import dataclasses
+
+    from contenders.engines import SamplingError
+
+    lognormal = builtins["lognormal"]
+    data = inputs_for(lognormal, design)
+    fast = engine.sample(programs["lognormal"], data, TINY)
+    capfd.readouterr()
+
+    monkeypatch.setattr(hd, "DETECTED", "4.14.2")
+    monkeypatch.setattr(pe, "_FALLBACK_SAID", [False])
+    for name in INSIDE:
+        monkeypatch.setattr(hd, name, _refuse)
+    assert engine.is_cached(lognormal) is False    # not knowable through PyStan's public interface
+    program = engine.compile(lognormal)            # built before: stan.build finds it in the cache
+    assert program.candidate_id == "lognormal" and program.handle == lognormal.code
+    assert program.from_cache is False
+    slow = engine.sample(program, data, TINY)
+    for group in ("posterior", "sample_stats", "log_likelihood", "posterior_predictive"):
+        ours, theirs = getattr(fast.idata, group), getattr(slow.idata, group)
+        assert set(ours.data_vars) == set(theirs.data_vars), group
+        for name in ours.data_vars:
+            np.testing.assert_array_equal(ours[name].values, theirs[name].values, err_msg=f"{group}/{name}")
+    # a program the compiler rejects fails its compile, with the compiler's words
+    broken = dataclasses.replace(builtins["normal"], code=builtins["normal"].code.replace(
+        "real<lower=0> sigma;", "real<lower=0> sigma", 1))
+    assert broken.code != builtins["normal"].code
+    with pytest.raises(SamplingError) as err:
+        engine.compile(broken)
+    message = str(err.value)
+    assert message.startswith("normal.stan: compiling failed:\n"), message
+    assert "Syntax error" in message and "Traceback" not in message
+    err_text = capfd.readouterr().err
+    assert err_text.count("contenders: httpstan 4.14 is not the 4.13") == 1, err_text
+
+
+def test_another_httpstan_holds_the_shared_chain_slots_while_pystan_runs_its_chains(
+        programs, builtins, design, monkeypatch):
+    # PyStan's public sample starts every chain at once; the fit holds its share's slots
+    # meanwhile (one, waiting if need be, then every free one up to its chains), so the
+    # run's other workers wait for them, and gives them all back
+    import threading
+
+    from contenders.engines.pystan_engine import PyStanEngine
+    from contenders.machine import ChainShare
+
+    slots = threading.Semaphore(3)
+    seen = []
+    real = pe._sample_public
+
+    def sample_public(model, settings):
+        free = sum(slots.acquire(blocking=False) for _ in range(3))
+        for _ in range(free):
+            slots.release()
+        seen.append(3 - free)   # slots held by the fit while PyStan samples
+        return real(model, settings)
+
+    monkeypatch.setattr(hd, "DETECTED", "4.14.2")
+    monkeypatch.setattr(pe, "_FALLBACK_SAID", [True])
+    monkeypatch.setattr(pe, "_sample_public", sample_public)
+    for name in INSIDE:
+        monkeypatch.setattr(hd, name, _refuse)
+    engine = PyStanEngine(ChainShare(chains_at_once=3, slots=slots))
+    data = inputs_for(builtins["normal"], design)
+    engine.sample(programs["normal"], data, TINY)                          # 2 chains: 2 of the 3 slots
+    slots.acquire()
+    slots.acquire()   # two held by other workers
+    engine.sample(programs["normal"], data, SamplerSettings(chains=3, warmup=100, draws=60, seed=23))
+    slots.release()
+    slots.release()
+    assert seen == [2, 3]   # the second: the one slot left, plus the two others hold
+    assert all(slots.acquire(blocking=False) for _ in range(3))   # every slot came back
+    assert not slots.acquire(blocking=False)
 
 
 def test_two_engines_in_one_process_keep_their_own_chain_processes(programs, builtins, design):

@@ -266,3 +266,66 @@ def test_ctrl_c_keeps_finished_fits_and_the_rerun_resumes(tmp_path, data, progra
     assert again.returncode == 0, again.stderr
     summary = json.loads((out / "summary.json").read_text())
     assert summary["fits"]["from_store"] >= len(kept)
+
+
+def test_a_candidate_whose_compile_fails_is_failed_at_that_stage_and_the_others_run(tmp_path, data, programs,
+                                                                                   monkeypatch):
+    # a program that the static check (stanc --info) accepts but whose build fails (the
+    # C++ compiler, a full disk): the engine's compile raises, as it does for those
+    from contenders.engines.base import SamplingError
+    from contenders.engines.pystan_engine import PyStanEngine
+    from contenders.pipeline.runner import run_with_programs
+
+    good, _ = data
+    folder = tmp_path / "cands"
+    folder.mkdir()
+    shutil.copy(builtin_folder() / "normal.stan", folder / "normal.stan")
+    shutil.copy(builtin_folder() / "normal.stan", folder / "builds_badly.stan")
+    message = "builds_badly.stan: compiling failed:\nsomething the C++ compiler said"
+    real = PyStanEngine.compile
+
+    def compile(self, candidate):
+        if candidate.id == "builds_badly":
+            raise SamplingError(message)
+        return real(self, candidate)
+
+    monkeypatch.setattr(PyStanEngine, "compile", compile)
+    cfg = RunConfig(data=good, outcome="rt", candidates=folder, out=tmp_path / "out", chains=2,
+                    warmup=150, draws=150, prior_draws=100, engine="pystan", jobs=1)
+    result, ran = run_with_programs(cfg)
+    by = {c.id: c for c in result.candidates}
+    assert by["builds_badly"].status == "failed" and by["builds_badly"].stage == "compile"
+    assert by["builds_badly"].reason == message
+    assert by["normal"].status in ("ok", "unhealthy") and by["normal"].oos is not None
+    assert ran.candidates["builds_badly"].problems == []   # the candidate itself is left as read
+    assert "builds_badly" not in ran.compiled
+    summary = json.loads((tmp_path / "out" / "summary.json").read_text())
+    failed = next(c for c in summary["candidates"] if c["id"] == "builds_badly")
+    assert failed["status"] == "failed" and failed["reason"] == message
+
+
+def test_check_lists_a_candidate_whose_compile_fails_with_the_compilers_words(tmp_path, programs, monkeypatch,
+                                                                             capsys):
+    from contenders import cli
+    from contenders.engines.base import SamplingError
+    from contenders.engines.pystan_engine import PyStanEngine
+
+    folder = tmp_path / "cands"
+    folder.mkdir()
+    shutil.copy(builtin_folder() / "normal.stan", folder / "normal.stan")
+    shutil.copy(builtin_folder() / "normal.stan", folder / "builds_badly.stan")
+    real = PyStanEngine.compile
+
+    def compile(self, candidate):
+        if candidate.id == "builds_badly":
+            raise SamplingError("builds_badly.stan: compiling failed:\nsomething the C++ compiler said")
+        return real(self, candidate)
+
+    monkeypatch.setattr(PyStanEngine, "compile", compile)
+    args = cli.build_parser().parse_args(["check", "--candidates", str(folder), "--engine", "pystan", "--jobs", "1"])
+    assert cli.cmd_check(args) == 1
+    out = capsys.readouterr().out
+    assert "ok       normal\n" in out
+    assert ("invalid  builds_badly\n         builds_badly.stan: compiling failed:\n"
+            "         something the C++ compiler said\n") in out
+    assert "1 of 2 candidates pass" in out

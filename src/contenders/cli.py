@@ -55,17 +55,18 @@ def cmd_check(args: argparse.Namespace) -> int:
     if any(c.valid for c in cands):
         print(f"compiling {sum(c.valid for c in cands)} program(s), {jobs} at a time "
               "(45 to 90 s each the first time; cached afterwards) ...", flush=True)
-    programs = compile_all(engine, cands, jobs=jobs, progress=lambda text: print(text, flush=True))
+    compiled = compile_all(engine, cands, jobs=jobs, progress=lambda text: print(text, flush=True))
     failed = 0
     for c in cands:
-        if c.id in programs:
-            check_outputs(c, engine, programs[c.id], example_design(c.support))
-        if c.valid:
+        if c.id in compiled.programs:
+            check_outputs(c, engine, compiled.programs[c.id], example_design(c.support))
+        problems = compiled.problems(c)
+        if not problems:
             print(f"ok       {c.id}")
         else:
             failed += 1
             print(f"invalid  {c.id}")
-            for p in c.problems:
+            for p in problems:
                 print("         " + p.replace("\n", "\n         "))
     print(f"{len(cands) - failed} of {len(cands)} candidates pass ({engine.version()})")
     return 1 if failed else 0

@@ -32,6 +32,27 @@ class ChainShare:
         """Chains at once: the share set, else one per core."""
         return self.chains_at_once or cores()
 
+    @contextlib.contextmanager
+    def hold(self, chains: int):
+        """For a sampling call that starts all its ``chains`` together: yield how many of
+        them to run at once. Without ``slots``, that is ``chains`` up to ``limit()``.
+        With ``slots``: take one slot, waiting if need be, then every further free one up
+        to ``chains``, and hold them until the call is done (never waiting for a second
+        slot, so two callers cannot wait on each other)."""
+        slots = self.slots
+        if slots is None:
+            yield max(1, min(chains, self.limit()))
+            return
+        slots.acquire()
+        held = 1
+        while held < chains and slots.acquire(False):
+            held += 1
+        try:
+            yield held
+        finally:
+            for _ in range(held):
+                slots.release()
+
 
 #: This process's share, set by the run's executor in each process that samples (the
 #: process itself for one job, each worker otherwise). An engine reads it at each

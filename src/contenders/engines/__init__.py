@@ -14,6 +14,7 @@ settings, returning ArviZ ``InferenceData`` with the groups ``posterior``,
 from __future__ import annotations
 
 import os
+from dataclasses import dataclass, field
 
 from contenders.engines.base import Draws, Engine, Program, SamplerSettings, SamplingError
 from contenders.engines.cmdstan_home import (cmdstan_available, cmdstan_version,  # noqa: F401  (re-exported)
@@ -55,18 +56,35 @@ def get_engine(name: str = "auto") -> Engine:
     return PyStanEngine()
 
 
-__all__ = ["Draws", "Engine", "Program", "SamplerSettings", "SamplingError", "get_engine",
+__all__ = ["Compiled", "Draws", "Engine", "Program", "SamplerSettings", "SamplingError", "get_engine",
            "cmdstan_available", "find_cmdstan", "resolve_engine", "ENGINE_NAMES"]
 
 
-def compile_all(engine: Engine, candidates, jobs: int = 1, progress=None) -> dict:
-    """Compile valid candidates, ``jobs`` at a time, and return ``{id: Program}``.
+@dataclass
+class Compiled:
+    """What ``compile_all`` gives back: the programs compiled, by candidate id, and for
+    each candidate whose compile failed, the compiler's message. The candidates
+    themselves are left as they were (they belong to ``inputs``)."""
+
+    programs: dict[str, Program] = field(default_factory=dict)
+    failures: dict[str, str] = field(default_factory=dict)
+
+    def problems(self, candidate) -> list[str]:
+        """``candidate``'s problems: those found when it was read and checked, then the
+        compiler's message if its compile failed."""
+        failed = self.failures.get(candidate.id)
+        return [*candidate.problems, *([failed] if failed is not None else [])]
+
+
+def compile_all(engine: Engine, candidates, jobs: int = 1, progress=None) -> Compiled:
+    """Compile valid candidates, ``jobs`` at a time; return the programs and the failures
+    (``Compiled``).
 
     The C++ compiler is single-threaded, so with ``jobs`` > 1 the programs not yet in
     the engine's on-disk cache are first compiled by separate Python processes
     (``python -m contenders.engines.compile_one``), which fill that cache; then every
-    program is loaded from the cache here. A candidate whose compilation fails gets the
-    compiler's message appended to its ``problems``.
+    program is loaded from the cache here. A candidate whose compilation fails is left out
+    of the programs, and the compiler's message is in the failures under its id.
 
     ``progress``, when given, is called with one line as each program not yet cached
     starts and ends compiling (with its seconds), and when a program waits for another
@@ -109,7 +127,7 @@ def compile_all(engine: Engine, candidates, jobs: int = 1, progress=None) -> dic
 
         with cf.ThreadPoolExecutor(max_workers=jobs) as pool:
             list(pool.map(child, cold))
-    programs = {}
+    compiled = Compiled()
     with lock_notices(progress):
         for c in todo:
             here = c.id in cold_ids and c.id not in seconds   # compiled in this process, now
@@ -119,7 +137,7 @@ def compile_all(engine: Engine, candidates, jobs: int = 1, progress=None) -> dic
             try:
                 program = engine.compile(c)
             except SamplingError as exc:
-                c.problems.append(str(exc))
+                compiled.failures[c.id] = str(exc)
                 if here:
                     say(f"  {c.id}: compiling failed after {time.perf_counter() - t0:.0f} s")
                 continue
@@ -128,8 +146,8 @@ def compile_all(engine: Engine, candidates, jobs: int = 1, progress=None) -> dic
             if c.id in seconds:
                 program.compile_seconds = seconds[c.id]
                 program.from_cache = False
-            programs[c.id] = program
-    return programs
+            compiled.programs[c.id] = program
+    return compiled
 
 
 #: How ``compile_one`` marks a line that is a notice to show, not its result.

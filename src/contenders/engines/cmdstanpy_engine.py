@@ -24,53 +24,14 @@ import numpy as np
 
 from contenders.inputs.candidates import Candidate
 from contenders.cleanup import while_writing
-from contenders.machine import cores
+from contenders import machine
+from contenders.machine import ChainShare
 from contenders.engines.base import OBS_DIMS, Draws, Engine, Program, SamplerSettings, SamplingError, compile_lock
 
 
 def _cache_root() -> Path:
     base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
     return Path(base) / "contenders" / "cmdstan"
-
-
-#: Chains run at once by this process (0: all of them); set by the run's executor.
-CHAIN_WORKERS = [0]
-
-
-def set_chain_workers(n: int) -> None:
-    CHAIN_WORKERS[0] = max(1, int(n))
-
-
-#: A semaphore of chain slots shared by a run's worker processes (see
-#: ``executor._worker_init``), or None. A fit takes one slot, waiting if need be, then
-#: every further free one up to its chains, and runs that many chains at once.
-CHAIN_SLOTS: list = [None]
-
-
-def _chains_at_once(chains: int) -> int:
-    """Chains one sampling call runs at once without slots: the executor's limit, else
-    the cores this process may use (not every chain at once on a small machine)."""
-    if CHAIN_WORKERS[0]:
-        return max(1, min(chains, CHAIN_WORKERS[0]))
-    return max(1, min(chains, cores()))
-
-
-@contextlib.contextmanager
-def _chain_slots(chains: int):
-    """Yield how many chains to run at once, holding that many shared slots meanwhile."""
-    slots = CHAIN_SLOTS[0]
-    if slots is None:
-        yield _chains_at_once(chains)
-        return
-    slots.acquire()
-    held = 1
-    while held < chains and slots.acquire(False):
-        held += 1
-    try:
-        yield held
-    finally:
-        for _ in range(held):
-            slots.release()
 
 
 _NOISE = re.compile(r"^(Command and output files:|Consider re-running with show_console|RunSet:|"
@@ -133,9 +94,14 @@ def _compile_cause(exc: BaseException, folder: str) -> str:
 
 
 class CmdStanPyEngine(Engine):
+    """``share``: how many chains this engine runs at once (``machine.ChainShare``); by
+    default this process's share, which the run's executor sets. CmdStanPy starts all the
+    chains of a sampling call together, so the engine decides once per call how many run
+    at once (``chains_at_once``)."""
+
     name = "cmdstanpy"
 
-    def __init__(self, cmdstan: str | os.PathLike | None = None) -> None:
+    def __init__(self, cmdstan: str | os.PathLike | None = None, share: ChainShare | None = None) -> None:
         from contenders.engines.cmdstan_home import cmdstanpy_version_line, find_cmdstan
 
         _quiet_logger()
@@ -145,6 +111,14 @@ class CmdStanPyEngine(Engine):
                 raise SamplingError(f"the CmdStanPy engine cannot run: {why}")
         self.cmdstan = Path(cmdstan)
         self._version = cmdstanpy_version_line(self.cmdstan)
+        self.share = share if share is not None else machine.THIS_PROCESS
+
+    def chains_at_once(self, chains: int):
+        """A context that yields how many of ``chains`` one sampling call runs at once,
+        holding that many of the share's slots meanwhile (``ChainShare.hold``): the
+        share's limit, or with shared slots one slot (waiting if need be) and every
+        further free one."""
+        return self.share.hold(chains)
 
     def version(self) -> str:
         return self._version
@@ -202,7 +176,7 @@ class CmdStanPyEngine(Engine):
         out = tempfile.mkdtemp(prefix="contenders_")
         start = time.perf_counter()
         # registered while it exists: a worker stopped part-way removes it (cleanup.remove_all)
-        with while_writing(out), _chain_slots(settings.chains) as at_once:
+        with while_writing(out), self.chains_at_once(settings.chains) as at_once:
             try:
                 try:
                     fit = program.handle.sample(

@@ -1,11 +1,15 @@
 """The PyStan engine's fast sampler: httpstan's compiled program called directly.
 
-Everything here reaches inside httpstan (its services stub, its compiled module's
-wrapper functions, its JSON writer's line format, its default arguments), as written for
-httpstan 4.13. When this module loads it reads the installed httpstan's version;
+Everything here reaches inside httpstan and PyStan (its services stub, its compiled
+module's wrapper functions, its JSON writer's line format, its default arguments, its
+cache folders, PyStan's client class), as written for httpstan 4.13; no other module of
+the package does. When this module loads it reads the installed httpstan's version;
 ``compatible()`` says whether it is the one this code was written for. The engine
 (``pystan_engine``) uses this module only then, and otherwise samples through PyStan's
 public interface, which gives the same draws more slowly (tested).
+
+The engine's compile and cache checks (``model_name``, ``module_ready``,
+``compile_request``) and its clean-up of cached fits (``forgetting_fits``) are here too.
 
 The fast path: each chain runs in a process of a ``ChainPool`` (forked processes that
 the engine owns; they end with their parent), parses the sampler's output as it is
@@ -62,6 +66,76 @@ def fallback_notice() -> str:
             "instead (slower, same draws)")
 
 
+# --- the PyStan engine's compile and cache, through httpstan's and PyStan's inside -----
+# (used by ``pystan_engine`` only when ``compatible()``; otherwise it compiles through
+# ``stan.build`` and leaves httpstan's cache to httpstan)
+
+
+def model_name(code: str) -> str:
+    """httpstan's name for the compiled ``code`` (``models/<hash>``)."""
+    import httpstan.models
+
+    return httpstan.models.calculate_model_name(code)
+
+
+def load_module(name: str):
+    """Import the compiled module of ``name`` (KeyError, ImportError or OSError if there
+    is none that loads)."""
+    import httpstan.models
+
+    return httpstan.models.import_services_extension_module(name)
+
+
+def module_ready(name: str) -> bool:
+    """Whether httpstan's cache holds a whole build of ``name``: its module, which
+    loads, with the compiler logs that httpstan's server reads back (``stanc.log``, and
+    ``stderr.log``, which httpstan writes only once the module is built).
+
+    An entry with some of these but not all (a compile cut off, or two processes that
+    built the same program at once) is removed, so that the next compile builds it
+    again: httpstan itself only rebuilds a missing module, and on such an entry its
+    server fails with a reply that is not JSON. Call it holding ``compile_lock``."""
+    import httpstan.cache
+
+    folder = httpstan.cache.model_directory(name)
+    if not folder.exists():
+        return False
+    if (folder / "stanc.log").exists() and (folder / "stderr.log").exists():
+        try:
+            load_module(name)
+            return True
+        except (KeyError, ImportError, OSError):
+            pass
+    httpstan.cache.delete_model_directory(name)
+    return False
+
+
+def compile_request(code: str) -> tuple[int, str]:
+    """Ask httpstan's server (through PyStan's client) to compile ``code``, without data;
+    return the reply's status (201: compiled) and its message. May raise
+    ``asyncio.TimeoutError`` (the client's limit on one request)."""
+    import asyncio
+
+    import stan.common
+
+    async def build() -> tuple[int, str]:
+        async with stan.common.HttpstanClient() as client:
+            resp = await client.post("/models", json={"program_code": code})
+            return resp.status, ("" if resp.status == 201 else resp.json().get("message", ""))
+
+    return asyncio.run(build())
+
+
+def httpstan_pool():
+    """The process pool httpstan's server runs its chains in, if httpstan made one in this
+    process, else None. Read defensively (a module looked up in ``sys.modules``, an
+    attribute read with a default), so it is used with any httpstan version: with none
+    of these names it finds nothing and stops nothing."""
+    import sys
+
+    return getattr(sys.modules.get("httpstan.services_stub"), "executor", None)
+
+
 _SAMPLE_FUNCTION = "stan::services::sample::hmc_nuts_diag_e_adapt"
 
 #: Socket files made by the httpstan call running in the current asyncio task.
@@ -104,6 +178,60 @@ def remove_call_sockets() -> None:
     call._removes_sockets = True
     stub.tempfile = types.SimpleNamespace(mkstemp=mkstemp)   # the module's only use of it
     stub.call = call                                         # httpstan looks it up per call
+
+
+@contextlib.contextmanager
+def forgetting_fits(known: bool = True):
+    """Run PyStan calls while noting the names of the fits its httpstan client reads,
+    then delete exactly those cached fit files (the client class is swapped for the
+    duration; PyStan looks it up at call time); with ``known`` (the httpstan version this
+    module was written for, ``compatible()``) the calls' socket files go too
+    (``remove_call_sockets``).
+
+    With another version (``known`` False) only the fit clean-up is tried, and
+    defensively: each name is looked up with a default, and where one is missing or does
+    not take the wrapper, PyStan's calls run untouched and their fits stay in httpstan's
+    cache. PyStan's public interface cannot delete a fit; without this, every fit sampled
+    through it would stay on disk."""
+    import importlib
+
+    common = cache = None
+    with contextlib.suppress(Exception):
+        common = importlib.import_module("stan.common")
+        cache = importlib.import_module("httpstan.cache")
+    original = getattr(common, "HttpstanClient", None)
+    delete_fit = getattr(cache, "delete_fit", None)
+    if original is None or delete_fit is None:
+        yield
+        return
+    if known:
+        remove_call_sockets()
+
+    names: list[str] = []
+
+    def recording_client(*args, **kwargs):
+        client = original(*args, **kwargs)
+        plain_get = getattr(client, "get", None)
+        if plain_get is None:
+            return client
+
+        async def get(path, *a, **kw):
+            if isinstance(path, str) and "/fits/" in path and not path.startswith("/operations"):
+                names.append(path.lstrip("/"))
+            return await plain_get(path, *a, **kw)
+
+        with contextlib.suppress(Exception):
+            client.get = get
+        return client
+
+    common.HttpstanClient = recording_client
+    try:
+        yield
+    finally:
+        common.HttpstanClient = original
+        for name in set(names):
+            with contextlib.suppress(Exception):
+                delete_fit(name)
 
 
 def _init_chain_process() -> None:

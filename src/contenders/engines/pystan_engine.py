@@ -4,11 +4,12 @@ PyStan compiles each program once into httpstan's cache (under the user's cache
 folder) and reuses it for every dataset. Sampling calls httpstan's compiled program
 directly, one chain per forked process that the engine owns, and parses its output as
 it is written (``httpstan_direct``, written for httpstan 4.13); the draws are exactly
-PyStan's for the same seed. With another httpstan version the engine samples through
-PyStan's public interface instead (``stan.build`` then ``model.sample``: the same draws,
-more slowly) and says so once per process. The one-draw evaluations (``single_draw``)
-go through PyStan either way, which caches each fit on disk; this engine deletes those
-files once read.
+PyStan's for the same seed. Whatever reaches inside httpstan or PyStan (compiling and
+checking httpstan's cache too) is in ``httpstan_direct``. With another httpstan version
+the engine compiles and samples through PyStan's public interface instead
+(``stan.build`` then ``model.sample``: the same draws, more slowly) and says so once per
+process. The one-draw evaluations (``single_draw``) go through PyStan either way, which
+caches each fit on disk; this engine deletes those files once read.
 
 An engine's state is its own: its chain processes and its share of the cores
 (``machine.ChainShare``; by default this process's, which the run's executor sets).
@@ -61,42 +62,10 @@ def one_interpreter_name() -> str:
 one_interpreter_name()
 
 
-@contextlib.contextmanager
 def _forgetting_fits():
-    """Run PyStan calls while noting the names of the fits its httpstan client reads,
-    then delete exactly those cached fit files (the client class is swapped for the
-    duration; PyStan looks it up at call time). With the httpstan version
-    ``httpstan_direct`` was written for, the calls' socket files go too
-    (``httpstan_direct.remove_call_sockets``)."""
-    import httpstan.cache
-    import stan.common
-
-    if direct.compatible():
-        direct.remove_call_sockets()
-
-    original = stan.common.HttpstanClient
-    names: list[str] = []
-
-    def recording_client(*args, **kwargs):
-        client = original(*args, **kwargs)
-        plain_get = client.get
-
-        async def get(path, *a, **kw):
-            if "/fits/" in path and not path.startswith("/operations"):
-                names.append(path.lstrip("/"))
-            return await plain_get(path, *a, **kw)
-
-        client.get = get
-        return client
-
-    stan.common.HttpstanClient = recording_client
-    try:
-        yield
-    finally:
-        stan.common.HttpstanClient = original
-        for name in set(names):
-            with contextlib.suppress(Exception):
-                httpstan.cache.delete_fit(name)
+    """PyStan calls that leave no cached fit behind (``httpstan_direct.forgetting_fits``;
+    with an httpstan version that module was not written for, tried defensively)."""
+    return direct.forgetting_fits(known=direct.compatible())
 
 
 @contextlib.contextmanager
@@ -192,31 +161,6 @@ def _lock_key(model_name: str) -> str:
     return "pystan-" + model_name.split("/")[1]
 
 
-def _module_ready(model_name: str) -> bool:
-    """Whether httpstan's cache holds a whole build of ``model_name``: its module, which
-    loads, with the compiler logs that httpstan's server reads back (``stanc.log``, and
-    ``stderr.log``, which httpstan writes only once the module is built).
-
-    An entry with some of these but not all (a compile cut off, or two processes that
-    built the same program at once) is removed, so that the next compile builds it
-    again: httpstan itself only rebuilds a missing module, and on such an entry its
-    server fails with a reply that is not JSON. Call it holding ``compile_lock``."""
-    import httpstan.cache
-    import httpstan.models
-
-    folder = httpstan.cache.model_directory(model_name)
-    if not folder.exists():
-        return False
-    if (folder / "stanc.log").exists() and (folder / "stderr.log").exists():
-        try:
-            httpstan.models.import_services_extension_module(model_name)
-            return True
-        except (KeyError, ImportError, OSError):
-            pass
-    httpstan.cache.delete_model_directory(model_name)
-    return False
-
-
 def stop_workers(join: float | None = None) -> None:
     """Terminate the chain processes of every PyStan engine of this process
     (``httpstan_direct.close_all``) and httpstan's own, which serve PyStan's public calls.
@@ -225,8 +169,7 @@ def stop_workers(join: float | None = None) -> None:
     remove the chains' temporary folders (``cleanup.remove_all``). ``join``: seconds to
     wait for each process to end (none: do not wait)."""
     direct.close_all(join)
-    stub = sys.modules.get("httpstan.services_stub")
-    executor = getattr(stub, "executor", None)
+    executor = direct.httpstan_pool()   # read defensively, with any httpstan version
     if executor is not None:
         direct.shut_down(executor, terminate=True, join=join)
 
@@ -311,52 +254,85 @@ class PyStanEngine(Engine):
         return f"pystan {version('pystan')} (httpstan {version('httpstan')})"
 
     def is_cached(self, candidate: Candidate) -> bool:
-        import httpstan.models
-
-        model_name = httpstan.models.calculate_model_name(candidate.code)
+        """Whether the program is compiled in httpstan's cache. With an httpstan version
+        that ``httpstan_direct`` was not written for this cannot be known through
+        PyStan's public interface: False (the compile then finds it in the cache)."""
+        if not direct.compatible():
+            return False
+        model_name = direct.model_name(candidate.code)
         with compile_lock(_lock_key(model_name), what=candidate.id):
-            return _module_ready(model_name)
+            return direct.module_ready(model_name)
 
     def compile(self, candidate: Candidate) -> Program:
-        import httpstan.models
-        import stan.common
-
-        model_name = httpstan.models.calculate_model_name(candidate.code)
-
-        async def build() -> None:
-            async with stan.common.HttpstanClient() as client:
-                resp = await client.post("/models", json={"program_code": candidate.code})
-                if resp.status != 201:
-                    raise SamplingError(
-                        f"{candidate.path.name}: compiling failed:\n{resp.json().get('message', '')[:4000]}"
-                    )
-
+        if not direct.compatible():
+            return self._compile_public(candidate)
+        model_name = direct.model_name(candidate.code)
         start = time.perf_counter()
         with compile_lock(_lock_key(model_name), what=candidate.id):
-            cached = _module_ready(model_name)
+            cached = direct.module_ready(model_name)
             for attempt in range(1, COMPILE_TRIES + 1):
                 try:
                     with _quiet():
-                        asyncio.run(build())
+                        status, message = direct.compile_request(candidate.code)
+                    if status != 201:
+                        raise SamplingError(f"{candidate.path.name}: compiling failed:\n{message[:4000]}")
                     break
                 except asyncio.TimeoutError:
-                    # PyStan's client gives up on a request after REQUEST_LIMIT_SECONDS; on a
-                    # loaded machine a compile can take longer. httpstan finishes the build
-                    # in the background before asyncio.run returns, so a second request
-                    # usually finds the program compiled.
-                    raise_if_interrupted()
-                    if attempt == COMPILE_TRIES:
-                        raise SamplingError(
-                            f"{candidate.path.name}: compiling took longer than the {REQUEST_LIMIT_SECONDS} s "
-                            f"PyStan allows one request, {COMPILE_TRIES} times (the machine is busy); run again "
-                            "when it is less loaded, or with fewer programs compiled at once (--jobs 1)"
-                        ) from None
+                    self._compile_timed_out(candidate, attempt)
             try:
-                httpstan.models.import_services_extension_module(model_name)
+                direct.load_module(model_name)
             except (KeyError, ImportError, OSError) as exc:
                 raise SamplingError(f"{candidate.path.name}: compiled, but the compiled program "
                                     f"cannot be loaded: {exc}") from None
         return Program(candidate.id, candidate.code, model_name, time.perf_counter() - start, cached)
+
+    @staticmethod
+    def _compile_timed_out(candidate: Candidate, attempt: int) -> None:
+        """PyStan's client gives up on a request after REQUEST_LIMIT_SECONDS; on a loaded
+        machine a compile can take longer. httpstan finishes the build in the background
+        before asyncio.run returns, so a second request usually finds the program
+        compiled: return to try again, or raise after the last try."""
+        raise_if_interrupted()
+        if attempt == COMPILE_TRIES:
+            raise SamplingError(
+                f"{candidate.path.name}: compiling took longer than the {REQUEST_LIMIT_SECONDS} s "
+                f"PyStan allows one request, {COMPILE_TRIES} times (the machine is busy); run again "
+                "when it is less loaded, or with fewer programs compiled at once (--jobs 1)"
+            ) from None
+
+    def _compile_public(self, candidate: Candidate) -> Program:
+        """Compile through PyStan's public interface (``stan.build`` without data), for an
+        httpstan version that ``httpstan_direct`` was not written for. The handle is the
+        program's code: ``sample`` and ``single_draw`` build it with their data, which
+        finds the compiled program in httpstan's cache.
+
+        ``stan.build`` raises ValueError for a compiler error (stanc's syntax or semantic
+        errors); any other error here may be the data the build was not given (a program
+        with a data block cannot be built without it), so it is not taken for a failed
+        compile: a program that did not compile fails at its first build with data, with
+        Stan's message. So no program that compiles is ever reported as failed."""
+        import hashlib
+
+        import stan
+
+        _say_fallback_once()
+        key = "pystan-public-" + hashlib.sha256(candidate.code.encode()).hexdigest()[:16]
+        start = time.perf_counter()
+        with compile_lock(key, what=candidate.id):
+            for attempt in range(1, COMPILE_TRIES + 1):
+                with _quiet() as buf:
+                    try:
+                        _interrupted_if_none(stan.build(candidate.code, random_seed=1))
+                        break
+                    except ValueError as exc:
+                        raise SamplingError(f"{candidate.path.name}: compiling failed:\n"
+                                            f"{_short(exc, 4000, candidate.path.name)}\n"
+                                            f"{_stan_message(buf.getvalue())}".rstrip()) from None
+                    except RuntimeError:
+                        break   # compiled, most likely; see above
+                    except asyncio.TimeoutError:
+                        self._compile_timed_out(candidate, attempt)
+        return Program(candidate.id, candidate.code, candidate.code, time.perf_counter() - start, False)
 
     def _build(self, program: Program, data: Mapping[str, Any], seed: int):
         import stan
@@ -383,7 +359,11 @@ class PyStanEngine(Engine):
                     arrays, stats, logged = direct.sample_direct(model, settings, _layout(model),
                                                                  self._chain_pool(), self.share.slots, waiting)
                 else:
-                    arrays, stats = _sample_public(model, settings)
+                    # PyStan starts every chain at once; it cannot be told fewer. The
+                    # fit holds its share's slots meanwhile, as a CmdStanPy fit does, so
+                    # the run's other workers wait for them (ChainShare.hold)
+                    with self.share.hold(settings.chains):
+                        arrays, stats = _sample_public(model, settings)
             except (RuntimeError, ValueError) as exc:
                 raise SamplingError(
                     f"{program.candidate_id}: sampling failed: {_short(exc, file_name=program.candidate_id + '.stan')}\n{_stan_message(buf.getvalue())}"

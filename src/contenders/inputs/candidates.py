@@ -394,6 +394,18 @@ def inputs_for(
     return data
 
 
+def skip_reason_on(c: Candidate, design: Design, overrides: Mapping[str, Any] | None = None) -> str | None:
+    """Why ``c`` would be skipped on ``design`` (``check_against_data`` run on a copy of
+    it, as ``c`` stood before any skip reason), or None; ``c`` itself is left as it is.
+    For a study that fits one candidate to several datasets."""
+    import copy
+
+    probe = copy.copy(c)
+    probe.skip_reason, probe.problems = None, list(c.problems)
+    check_against_data(probe, design, overrides)
+    return probe.skip_reason
+
+
 def check_outputs(c: Candidate, engine, program, design: Design, seed: int = 1) -> None:
     """Evaluate the program once at random initial values with an empty fit subset and
     record a problem unless ``log_lik`` and ``y_rep`` each hold N finite-or-infinite

@@ -136,13 +136,14 @@ def calibrate(cfg: RunConfig, simulations: int = 100, progress: Callable[[str], 
     else:
         line += "; no fit times measured yet (run 'contenders run' with the same --out first for an estimate)"
     say(line + ". Fits already in the fit store are loaded, not sampled.")
-    programs = compile_all(engine, runnable, jobs=jobs)
+    compiled = compile_all(engine, runnable, jobs=jobs)
+    programs = compiled.programs
     plan = []   # (candidate, names, theta, fittable simulation indices, Calibration)
     for c in runnable:
         cal = Calibration(c.id, c.label, "not run", simulations=simulations, kept_draws=kept)
         results[c.id] = cal
         if c.id not in programs:
-            cal.reason = "; ".join(c.problems)
+            cal.reason = "; ".join(compiled.problems(c))
             continue
         program = programs[c.id]
         hyper = cfg.hyperparameters.get(c.id)

@@ -48,16 +48,11 @@ def share(jobs: int, tasks: int) -> tuple[int, int]:
 
 def _set_chain_workers(engine_name: str, n: int) -> int:
     """Limit the chains this process runs at once; return the previous limit (0: none).
-    The PyStan engine reads this process's share (``machine.THIS_PROCESS``) at each
-    sampling call."""
-    if engine_name == "pystan":
-        previous = THIS_PROCESS.chains_at_once
-        THIS_PROCESS.chains_at_once = max(1, int(n))
-        return previous
-    from contenders.engines import cmdstanpy_engine as module
-
-    previous = module.CHAIN_WORKERS[0]
-    module.set_chain_workers(n)
+    Both engines read this process's share (``machine.THIS_PROCESS``) at each sampling
+    call, unless an engine was given a share of its own. ``engine_name`` is not needed
+    (kept for the callers)."""
+    previous = THIS_PROCESS.chains_at_once
+    THIS_PROCESS.chains_at_once = max(1, int(n))
     return previous
 
 
@@ -98,12 +93,8 @@ def _worker_init(engine_name: str, chain_workers: int, events, slots=None) -> No
 
     signal.signal(signal.SIGTERM, on_term)
     _set_chain_workers(engine_name, chain_workers)
-    if slots is not None and engine_name == "pystan":
+    if slots is not None:
         THIS_PROCESS.slots = slots
-    elif slots is not None and engine_name == "cmdstanpy":
-        from contenders.engines import cmdstanpy_engine as module
-
-        module.CHAIN_SLOTS[0] = slots
     # Stan's chain processes are children of this worker; a worker's exit waits for its
     # children, so stop them first. multiprocessing runs finalisers with an exit priority
     # before it joins children, highest first; queues close their feeder threads at

@@ -6,7 +6,6 @@ described in statistics/recovery.py; the words and files are in output/recovery_
 
 from __future__ import annotations
 
-import copy
 import math
 import time
 import zlib
@@ -48,7 +47,7 @@ def recover(result, programs, replicates: int = DEFAULT_REPLICATES,
     and the programs it compiled; the others are compiled (from the engine's cache) here."""
     import arviz as az
 
-    from contenders.inputs.candidates import check_against_data, inputs_for
+    from contenders.inputs.candidates import inputs_for, skip_reason_on
     from contenders.engines import compile_all, get_engine
     from contenders.machine import cores
     from contenders.pipeline.executor import share
@@ -104,11 +103,9 @@ def recover(result, programs, replicates: int = DEFAULT_REPLICATES,
         seed = _fit_seed(cfg.seed, g, i)
         for m in ids:
             c = cands[m]
-            probe = copy.copy(c)
-            probe.skip_reason, probe.problems = None, list(c.problems)
-            check_against_data(probe, rep_design, cfg.hyperparameters.get(m))
-            if probe.skip_reason:
-                fits.append(ReplicateFit(g, i, m, "outside_support", probe.skip_reason.removeprefix("skipped: ")))
+            skip_reason = skip_reason_on(c, rep_design, cfg.hyperparameters.get(m))
+            if skip_reason:
+                fits.append(ReplicateFit(g, i, m, "outside_support", skip_reason.removeprefix("skipped: ")))
                 continue
             key = fit_key(c.code, inputs_for(c, rep_design, None, cfg.hyperparameters.get(m)),
                           replace(sampler_settings(cfg), seed=seed), version)

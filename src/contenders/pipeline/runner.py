@@ -487,11 +487,12 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
     if cold:
         say(f"compiling {cold} program(s) with {engine.name} ({jobs or cores()} at a time; "
             "about 45 s each alone, about 90 s when two build at once; cached for later runs)")
-    programs = compile_all(engine, todo, jobs=jobs or cores(), progress=say)
+    compiled = compile_all(engine, todo, jobs=jobs or cores(), progress=say)
+    programs = compiled.programs
     for c in todo:
         if c.id not in programs:
             results[c.id] = CandidateResult(c.id, c.label, c.about, c.support, "failed",
-                                            "; ".join(c.problems), c.code, c.code_hash, stage="compile")
+                                            "; ".join(compiled.problems(c)), c.code, c.code_hash, stage="compile")
     todo = [c for c in todo if c.id in programs]
     if todo:
         say(f"fitting {len(todo)} candidate(s) on {workers} worker(s), at most "
