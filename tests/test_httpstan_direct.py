@@ -68,7 +68,7 @@ def test_another_httpstan_samples_through_pystan_with_one_notice_and_the_same_dr
     err = capfd.readouterr().err
 
     notice = ("contenders: httpstan 4.14 is not the 4.13 this engine's fast sampler was written for; "
-              "sampling through PyStan's public interface instead (slower, same draws)")
+              "compiling and sampling through PyStan's public interface instead (slower, same draws)")
     assert err.count(notice) == 1, err
     assert err.count("contenders:") == 1, err
     assert values["y_rep"].shape == (design.N,)

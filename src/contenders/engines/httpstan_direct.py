@@ -62,7 +62,7 @@ def fallback_notice() -> str:
     """The one line said (once per process) when the installed httpstan is another."""
     major_minor = ".".join(DETECTED.split(".")[:2])
     return (f"contenders: httpstan {major_minor} is not the {WRITTEN_FOR[0]}.{WRITTEN_FOR[1]} this "
-            "engine's fast sampler was written for; sampling through PyStan's public interface "
+            "engine's fast sampler was written for; compiling and sampling through PyStan's public interface "
             "instead (slower, same draws)")
 
 
