@@ -81,8 +81,8 @@ def test_predictive_checks_take_the_censoring():
     log_lik = np.where(cens == 1, law.logsf(y), law.logpdf(y)) + rng.normal(0, 0.01, (200, y.size))
     plain = predictive_checks(y, y_rep, log_lik)
     fixed = predictive_checks(y, y_rep, log_lik, cens=cens, seed=5)
-    p = {r["statistic"]: r["p_value"] for r in plain.rows}
-    q = {r["statistic"]: r["p_value"] for r in fixed.rows}
+    p = {r.statistic: r.p_value for r in plain.rows}
+    q = {r.statistic: r.p_value for r in fixed.rows}
     assert p["max"] > 0.99 and 0.01 < q["max"] < 0.99, (p["max"], q["max"])
     assert np.isfinite(fixed.loo_pit).all() and (fixed.loo_pit[cens == 1] < 1).all()
     again = predictive_checks(y, y_rep, log_lik, cens=cens, seed=5)

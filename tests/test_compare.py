@@ -11,6 +11,7 @@ import pandas as pd
 import pytest
 from scipy import optimize, stats as sps
 
+from contenders.statistics.features import StatisticRow
 from contenders.output.readings import compare_candidates
 from contenders.statistics.compare import estimate, log_mean_exp, make_folds, weights
 from contenders.inputs.config import RunConfig
@@ -184,7 +185,9 @@ def _result(cid, pointwise, status="ok", p_values=None, reason=""):
     if status == "ok":
         ll = np.tile(pw, (2, 200, 1)) + np.random.default_rng(0).normal(0, 1e-3, (2, 200, pw.size))
         r.oos = estimate(_idata(ll), _no_refit)
-        rows = [{"statistic": s, "observed": 1.0, "p_value": p} for s, p in (p_values or {"mean": 0.5}).items()]
+        nan = float("nan")   # a p-value without its miss (of unknown size)
+        rows = [StatisticRow(s, 1.0, nan, nan, nan, nan, p, 0, nan, nan)
+                for s, p in (p_values or {"mean": 0.5}).items()]
         r.checks = PredictiveChecks(rows, {}, np.full(pw.size, 0.5), {"inside": True, "band": 0.99, "above": [], "below": []}, [])
     return r
 

@@ -9,6 +9,7 @@ import matplotlib.text
 import numpy as np
 import pytest
 
+from contenders.statistics.compare import ComparisonRow
 from contenders.output.report import _effects_table
 from contenders.output import figures
 from contenders.output.readings import describe
@@ -56,9 +57,11 @@ def test_density_grid_names_the_outcome_and_keeps_long_labels_whole(drawn):
 
 
 def test_elpd_figure_shows_the_shared_rank_and_whole_labels(drawn):
-    rows = [dict(rank=1, shared_rank="1", label=LONG, elpd_diff=0.0, elpd_diff_se=0.0),
-            dict(rank=2, shared_rank="2–3", label="Gamma", elpd_diff=1.3, elpd_diff_se=2.9),
-            dict(rank=3, shared_rank="2–3", label="Inverse Gaussian (Wald)", elpd_diff=1.6, elpd_diff_se=2.5)]
+    nan = float("nan")
+    rows = [ComparisonRow(rank, label.lower(), label, nan, nan, nan, d, dse, nan, nan, nan, 0, 0, "PSIS-LOO", nan,
+                          shared_rank=shared)
+            for rank, shared, label, d, dse in ((1, "1", LONG, 0.0, 0.0), (2, "2–3", "Gamma", 1.3, 2.9),
+                                                (3, "2–3", "Inverse Gaussian (Wald)", 1.6, 2.5))]
     assert figures.elpd_differences(rows) is not None
     (fig,) = drawn
     _assert_legible(fig)
@@ -129,14 +132,14 @@ def test_statistic_figure_is_one_panel_per_statistic_with_rows_of_candidates(dra
     _fits_1280(fig)
     panels = [ax for ax in fig.axes if ax.get_visible()]
     assert [ax.get_title(loc="left") for ax in panels] == [
-        describe(r["statistic"])
+        describe(r.statistic)
         for r in good.rows]
     labels = [t.get_text() for t in panels[0].get_yticklabels()]
     assert labels == ["Lognormal with\nguesses and lapses", "Inverse Gaussian\n(Wald)"]   # whole, in two lines
     notes = [t.get_text() for t in panels[1].texts]   # the SD: the narrow candidate misses it
     assert any(t.startswith("◆ p ") for t in notes) and any(t.startswith("p ") for t in notes)
     # the observed value is a thick ink line at the observed statistic
-    sd_obs = next(r["observed"] for r in good.rows if r["statistic"] == "sd")
+    sd_obs = next(r.observed for r in good.rows if r.statistic == "sd")
     thick = [ln for ln in panels[1].lines if ln.get_linewidth() >= 2.0]
     assert thick and thick[0].get_xdata()[0] == pytest.approx(sd_obs)
 
@@ -182,7 +185,7 @@ def test_prior_figure_follows_the_same_grammar(drawn):
     prior = SimpleNamespace(stat_draws={k: v * rng.lognormal(0, 1, v.shape) for k, v in c.stat_draws.items()},
                             bounds={"mean": (150.0, 5000.0)}, inside_each={"mean": 0.83})
     stats = list(c.stat_draws)
-    observed = {r["statistic"]: r["observed"] for r in c.rows}
+    observed = {r.statistic: r.observed for r in c.rows}
     assert figures.prior_grid([(LONG, prior), ("Gamma", prior)], stats, observed) is not None
     (fig,) = drawn
     _assert_legible(fig)

@@ -84,7 +84,7 @@ def test_checks_use_the_configured_extreme_not_a_fixed_one():
     log_lik = sps.norm.logpdf(y[None, :], shift, 1.0) * np.ones((s, 1))
     loose = predictive_checks(y, y_rep, log_lik, ppp_extreme=0.05)
     strict = predictive_checks(y, y_rep, log_lik, ppp_extreme=0.01)
-    p_mean = next(r["p_value"] for r in loose.rows if r["statistic"] == "mean")
+    p_mean = next(r.p_value for r in loose.rows if r.statistic == "mean")
     assert 0.015 < p_mean < 0.045, p_mean
     assert "mean" in loose.extreme and "mean" not in strict.extreme
 
@@ -115,18 +115,18 @@ def test_known_variance_conjugate_prior_against_closed_form():
     scale = math.sqrt(tau_n2 + sigma**2 / n)
     mu = rng.normal(mu_n, math.sqrt(tau_n2), s)
     y_rep = rng.normal(mu[:, None], sigma, (s, n))
-    rows = {r["statistic"]: r for r in st.summarise(st.compute(y_rep), st.compute(y))}
+    rows = {r.statistic: r for r in st.summarise(st.compute(y_rep), st.compute(y))}
     row = rows["mean"]
     p_exact = sps.norm.sf(ybar, mu_n, scale)
-    assert row["p_value"] == pytest.approx(p_exact, abs=4 * math.sqrt(p_exact * (1 - p_exact) / s) + 1e-4)
+    assert row.p_value == pytest.approx(p_exact, abs=4 * math.sqrt(p_exact * (1 - p_exact) / s) + 1e-4)
     assert p_exact < 0.01                                           # the case is detectable
     q05, q95 = mu_n - Z95 * scale, mu_n + Z95 * scale
     tol = 4 * _quantile_se(0.95, sps.norm.pdf(Z95) / scale, s)
-    assert row["q05"] == pytest.approx(q05, abs=tol)
-    assert row["q95"] == pytest.approx(q95, abs=tol)
-    assert row["miss"] == pytest.approx(ybar - q95, abs=tol)
-    assert row["miss"] > 0
-    assert row["miss_share_sd"] == pytest.approx((ybar - q95) / y.std(ddof=1), abs=tol / y.std(ddof=1))
+    assert row.q05 == pytest.approx(q05, abs=tol)
+    assert row.q95 == pytest.approx(q95, abs=tol)
+    assert row.miss == pytest.approx(ybar - q95, abs=tol)
+    assert row.miss > 0
+    assert row.miss_share_sd == pytest.approx((ybar - q95) / y.std(ddof=1), abs=tol / y.std(ddof=1))
 
 
 def test_noninformative_prior_mean_and_sd_against_closed_form():
@@ -144,21 +144,21 @@ def test_noninformative_prior_mean_and_sd_against_closed_form():
     sigma2 = (n - 1) * sd**2 / rng.chisquare(n - 1, s)
     mu = rng.normal(ybar, np.sqrt(sigma2 / n))
     y_rep = rng.normal(mu[:, None], np.sqrt(sigma2)[:, None], (s, n))
-    rows = {r["statistic"]: r for r in st.summarise(st.compute(y_rep), st.compute(y))}
+    rows = {r.statistic: r for r in st.summarise(st.compute(y_rep), st.compute(y))}
     half_se = 4 * math.sqrt(0.25 / s)
-    assert rows["mean"]["p_value"] == pytest.approx(0.5, abs=half_se)
-    assert rows["sd"]["p_value"] == pytest.approx(0.5, abs=half_se)
+    assert rows["mean"].p_value == pytest.approx(0.5, abs=half_se)
+    assert rows["sd"].p_value == pytest.approx(0.5, abs=half_se)
     t = sps.t(n - 1, loc=ybar, scale=sd * math.sqrt(2 / n))
     tol = 4 * _quantile_se(0.95, t.pdf(t.ppf(0.95)), s)
-    assert rows["mean"]["q05"] == pytest.approx(t.ppf(0.05), abs=tol)
-    assert rows["mean"]["q95"] == pytest.approx(t.ppf(0.95), abs=tol)
+    assert rows["mean"].q05 == pytest.approx(t.ppf(0.05), abs=tol)
+    assert rows["mean"].q95 == pytest.approx(t.ppf(0.95), abs=tol)
     f = sps.f(n - 1, n - 1)
     for q in (0.05, 0.95):
         x = sd * math.sqrt(f.ppf(q))
         # density of s_rep at x: f_F(x^2/s^2) * 2x/s^2
         dens = f.pdf(f.ppf(q)) * 2 * x / sd**2
-        assert rows["sd"][f"q{round(100 * q):02d}"] == pytest.approx(x, abs=4 * _quantile_se(q, dens, s))
-    assert rows["mean"]["miss"] == 0.0 and rows["sd"]["miss"] == 0.0
+        assert getattr(rows["sd"], f"q{round(100 * q):02d}") == pytest.approx(x, abs=4 * _quantile_se(q, dens, s))
+    assert rows["mean"].miss == 0.0 and rows["sd"].miss == 0.0
     assert st.read_rows([rows["mean"], rows["sd"]], 0.01) == ["fits", "fits"]
 
 
@@ -185,14 +185,14 @@ def test_large_n_tiny_discrepancy_is_detectable_but_not_relevant():
     ybar, sd = y.mean(), y.std(ddof=1)
     y_rep = rng.normal(ybar - delta * sd, sd, (s, n)).astype(np.float32)
     rows = st.summarise(st.compute(y_rep), st.compute(y))
-    mean = next(r for r in rows if r["statistic"] == "mean")
+    mean = next(r for r in rows if r.statistic == "mean")
     exact = delta * sd - Z95 * sd / math.sqrt(n)
-    assert mean["p_value"] == 0.0
-    assert mean["miss"] == pytest.approx(exact, abs=4 * _quantile_se(0.95, sps.norm.pdf(Z95) * math.sqrt(n) / sd, s))
-    assert mean["miss_share_sd"] == pytest.approx(exact / sd, rel=0.1)
-    assert st.reading(mean["p_value"], mean["miss"], None) == "detectable"
-    assert st.reading(mean["p_value"], mean["miss"], 0.5) == "small"
-    assert st.reading(mean["p_value"], mean["miss"], 0.01) == "relevant"
+    assert mean.p_value == 0.0
+    assert mean.miss == pytest.approx(exact, abs=4 * _quantile_se(0.95, sps.norm.pdf(Z95) * math.sqrt(n) / sd, s))
+    assert mean.miss_share_sd == pytest.approx(exact / sd, rel=0.1)
+    assert st.reading(mean.p_value, mean.miss, None) == "detectable"
+    assert st.reading(mean.p_value, mean.miss, 0.5) == "small"
+    assert st.reading(mean.p_value, mean.miss, 0.01) == "relevant"
 
     # the verdict: without relevant sizes the tiny miss is named, with its size, and a
     # sentence says no sizes are set; with mean = 0.5 it is left out and counted
@@ -279,24 +279,24 @@ def test_run_reports_miss_and_reading_against_closed_form(tmp_path):
     first = run(base)
     c = first.candidates[0]
     assert c.status == "ok", c.reason
-    row = next(r for r in c.checks.rows if r["statistic"] == "mean")
+    row = next(r for r in c.checks.rows if r.statistic == "mean")
     prec = 1 / tau0**2 + n
     mu_n = n * y.mean() / prec
     scale = math.sqrt(1 / prec + 1 / n)
     s = 1000
     p_exact = sps.norm.sf(y.mean(), mu_n, scale)
     assert p_exact < 0.002                                    # the case: clearly detectable
-    assert row["p_value"] == pytest.approx(p_exact, abs=4 * math.sqrt(p_exact / s) + 1e-3)
+    assert row.p_value == pytest.approx(p_exact, abs=4 * math.sqrt(p_exact / s) + 1e-3)
     q95 = mu_n + Z95 * scale
     tol = 4 * _quantile_se(0.95, sps.norm.pdf(Z95) / scale, s)
-    assert row["q95"] == pytest.approx(q95, abs=tol)
-    assert row["miss"] == pytest.approx(y.mean() - q95, abs=tol)
+    assert row.q95 == pytest.approx(q95, abs=tol)
+    assert row.miss == pytest.approx(y.mean() - q95, abs=tol)
     assert 0.15 < y.mean() - q95 < 0.3                        # the case: a miss of about 0.2
 
     out = tmp_path / "o"
     summary = json.loads((out / "summary.json").read_text())
     entry = summary["candidates"][0]["ppc"]["mean"]
-    assert entry["miss"] == pytest.approx(row["miss"]) and entry["reading"] == "detectable"
+    assert entry["miss"] == pytest.approx(row.miss) and entry["reading"] == "detectable"
     assert entry["relevant"] is None and summary["checks"]["relevant"] == {}
     assert "No relevant sizes are set" in summary["verdict"]
     assert "mean (observed" in summary["verdict"]
@@ -315,9 +315,9 @@ def test_run_reports_miss_and_reading_against_closed_form(tmp_path):
     assert "mean (observed" not in summary["verdict"]
     with open(out / "predictive_checks.csv", newline="") as fh:
         rows = {r["statistic"]: r for r in csv.DictReader(fh)}
-    assert float(rows["mean"]["miss"]) == pytest.approx(row["miss"])
+    assert float(rows["mean"]["miss"]) == pytest.approx(row.miss)
     assert rows["mean"]["reading"] == "small" and float(rows["mean"]["relevant"]) == 0.5
-    assert float(rows["mean"]["miss_share_sd"]) == pytest.approx(row["miss"] / y.std(ddof=1))
+    assert float(rows["mean"]["miss_share_sd"]) == pytest.approx(row.miss / y.std(ddof=1))
     with open(out / "grouped_checks.csv", newline="") as fh:
         grouped = list(csv.DictReader(fh))
     assert {"miss", "miss_share_sd", "relevant", "reading"} <= set(grouped[0])

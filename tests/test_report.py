@@ -238,9 +238,9 @@ def test_csv_tables_hold_the_numbers_of_the_run(report):
     ln = next(c for c in result.candidates if c.id == "lognormal")
     assert len(checks) == 2 * len(ln.checks.rows)
     first = next(r for r in checks if r["id"] == "lognormal" and r["statistic"] == "skewness")
-    want = next(r for r in ln.checks.rows if r["statistic"] == "skewness")
-    assert float(first["p_value"]) == want["p_value"]
-    assert float(first["observed"]) == pytest.approx(want["observed"], rel=1e-12)
+    want = next(r for r in ln.checks.rows if r.statistic == "skewness")
+    assert float(first["p_value"]) == want.p_value
+    assert float(first["observed"]) == pytest.approx(want.observed, rel=1e-12)
 
     # the LOO-PIT band test and the quantile checks, number for number
     pit = {r["id"]: r for r in _csv(out / "loo_pit.csv")}

@@ -73,13 +73,13 @@ def test_true_family_passes_every_default_check(known_run):
     ln = next(c for c in result.candidates if c.id == "lognormal")
     assert ln.status == "ok", ln.reason
     for row in ln.checks.rows:
-        assert 0.05 < row["p_value"] < 0.95, row
+        assert 0.05 < row.p_value < 0.95, row
 
 
 def test_normal_on_right_skewed_data_fails_skewness_or_maximum(known_run):
     result, _ = known_run
     nm = next(c for c in result.candidates if c.id == "normal")
-    p = {row["statistic"]: row["p_value"] for row in nm.checks.rows}
+    p = {row.statistic: row.p_value for row in nm.checks.rows}
     assert min(p["skewness"], 1 - p["skewness"]) < 0.01 or min(p["max"], 1 - p["max"]) < 0.01, p
     assert "skewness" in nm.checks.extreme
 
@@ -88,7 +88,7 @@ def test_grouped_observed_statistics_equal_pandas_groupby(known_run):
     result, table = known_run
     ln = next(c for c in result.candidates if c.id == "lognormal")
     for level, rows in ln.checks.grouped["cue"].items():
-        obs = {r["statistic"]: r["observed"] for r in rows}
+        obs = {r.statistic: r.observed for r in rows}
         sub = table.loc[table["cue"] == level, "rt"]
         assert obs["mean"] == pytest.approx(sub.mean())
         assert obs["sd"] == pytest.approx(sub.std())
@@ -144,9 +144,9 @@ def test_prior_median_of_replicated_median_is_exp6(tmp_path, programs):
                     typical_value=float(np.exp(6)), chains=2, warmup=200, draws=100,
                     prior_draws=4000, engine="pystan")
     result = run(cfg)
-    row = next(r for r in result.candidates[0].prior.rows if r["statistic"] == "q50")
+    row = next(r for r in result.candidates[0].prior.rows if r.statistic == "q50")
     tol = 4 * 1.2533 * 1.5 / np.sqrt(1000)
-    assert abs(np.log(row["q50"]) - 6.0) < tol, row["q50"]
+    assert abs(np.log(row.q50) - 6.0) < tol, row.q50
 
 
 # --- sampler health ------------------------------------------------------------------

@@ -10,6 +10,7 @@ import arviz as az
 import numpy as np
 import pytest
 
+from contenders.statistics.features import StatisticRow
 from contenders.inputs.candidates import support_problem
 from contenders.output.readings import compare_candidates, standing_why, word_health
 from contenders.statistics.compare import ComparisonRow, OutOfSample, standings
@@ -70,7 +71,8 @@ def _oos(pointwise: np.ndarray, mcse: float) -> OutOfSample:
 
 
 def _checks(p_values: dict[str, float], n: int) -> PredictiveChecks:
-    rows = [{"statistic": s, "observed": 1.0, "p_value": p} for s, p in p_values.items()]
+    nan = float("nan")   # a p-value without its miss (of unknown size)
+    rows = [StatisticRow(s, 1.0, nan, nan, nan, nan, p, 0, nan, nan) for s, p in p_values.items()]
     return PredictiveChecks(rows, {}, np.full(n, 0.5), {"inside": True, "band": 0.99, "above": [], "below": []}, [])
 
 

@@ -710,7 +710,7 @@ class _PosteriorMarks:
 
     @staticmethod
     def p(c, stat) -> float:
-        return next((r["p_value"] for r in c.rows if r["statistic"] == stat), np.nan)
+        return next((r.p_value for r in c.rows if r.statistic == stat), np.nan)
 
 
 @_styled
@@ -723,8 +723,8 @@ def statistic_grid(cands: Sequence[tuple[str, object]], extreme: float) -> Rende
     cands = [(label, c) for label, c in cands if c is not None]
     if not cands:
         return None
-    stats = [row["statistic"] for row in cands[0][1].rows]
-    observed = {row["statistic"]: row["observed"] for row in cands[0][1].rows}
+    stats = [row.statistic for row in cands[0][1].rows]
+    observed = {row.statistic: row.observed for row in cands[0][1].rows}
     marks = _PosteriorMarks(extreme)
     fig = _statistic_panels(cands, stats, observed, lambda c, stat: c.stat_draws.get(stat, np.zeros(0)),
                             POSTERIOR, lambda c, stat: _p_text(marks.p(c, stat)), flag_of=marks.flagged)

@@ -139,14 +139,14 @@ def _misfit(r, ppp_extreme: float, relevant: Mapping[str, float] | None = None) 
     out = []
     relevant = relevant or {}
     for row in named_misses(r.checks.rows, ppp_extreme, relevant):
-        p = row["p_value"]
-        by = fmt.miss_words(row.get("miss", float("nan")), row.get("miss_share_sd"), unit_of(row["statistic"]))
+        p = row.p_value
+        by = fmt.miss_words(row.miss, row.miss_share_sd, unit_of(row.statistic))
         if by:
-            what = f"observed {row['observed']:.4g}, {by}"
+            what = f"observed {row.observed:.4g}, {by}"
         else:   # p = Pr(T(y_rep) >= T(y)): near 0, replicates fall short of the observed value
-            what = f"replicates {'lower' if p < 0.5 else 'higher'} than the observed {row['observed']:.4g}"
-        unset = "; no relevant size set" if relevant and row["statistic"] not in relevant else ""
-        out.append(f"{describe(row['statistic'])} ({what}; "
+            what = f"replicates {'lower' if p < 0.5 else 'higher'} than the observed {row.observed:.4g}"
+        unset = "; no relevant size set" if relevant and row.statistic not in relevant else ""
+        out.append(f"{describe(row.statistic)} ({what}; "
                    f"{_p_is(fmt.pvalue_against(p, ppp_extreme, 1 - ppp_extreme))}{unset})")
     where = band_text(r.checks.loo_pit_test)   # the band's level is the run's pit_alpha
     if where:

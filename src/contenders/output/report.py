@@ -35,7 +35,7 @@ from contenders.output import out_of_sample
 from contenders.statistics.coefficients import base_name, extremes, group_terms, sizes_of
 from contenders.output.tables import (MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, miss_cell, n, p_cell, pit_reading,
                      reading_cell)
-from contenders.statistics.features import reading as check_reading, unit_of
+from contenders.statistics.features import StatisticRow, reading as check_reading, unit_of
 
 __all__ = ["write_report", "build_context", "CSV_FILES"]
 
@@ -318,12 +318,12 @@ def _prior_long(result, cands) -> Table:
         if r.prior is None:
             continue
         for row in r.prior.rows:
-            b = r.prior.bounds.get(row["statistic"])
-            t.csv_rows.append([r.id, row["statistic"], describe(row["statistic"]), row["observed"],
-                               row["mean"], row["q05"], row["q50"], row["q95"], row["share_below_observed"],
+            b = r.prior.bounds.get(row.statistic)
+            t.csv_rows.append([r.id, row.statistic, describe(row.statistic), row.observed,
+                               row.mean, row.q05, row.q50, row.q95, row.share_below_observed,
                                b[0] if b else None, b[1] if b else None,
-                               r.prior.inside_each.get(row["statistic"]), row.get("n_missing"),
-                               row.get("miss"), row.get("miss_share_sd")])
+                               r.prior.inside_each.get(row.statistic), row.n_missing,
+                               row.miss, row.miss_share_sd])
     return t
 
 
@@ -332,12 +332,12 @@ def _prior_table(p) -> Table:
                    "Prior draws below observed", "Bound", "Draws inside bound"],
               numeric=[False, True, True, True, True, True, True, True])
     for row in p.rows:
-        b = p.bounds.get(row["statistic"])
-        share = row["share_below_observed"]
+        b = p.bounds.get(row.statistic)
+        share = row.share_below_observed
         edge = np.isfinite(share) and (share < 1 - PRIOR_EDGE or share > PRIOR_EDGE)
-        inside = p.inside_each.get(row["statistic"])
-        obs, q05, q50, q95 = fmt.alike([row["observed"], row["q05"], row["q50"], row["q95"]])  # one statistic
-        t.add([describe(row["statistic"]), n(obs), n(q05), n(q50), n(q95),
+        inside = p.inside_each.get(row.statistic)
+        obs, q05, q50, q95 = fmt.alike([row.observed, row.q05, row.q50, row.q95])  # one statistic
+        t.add([describe(row.statistic), n(obs), n(q05), n(q50), n(q95),
                n(("◆ " if edge else "") + fmt.share(share), "flag" if edge else ""),
                n(fmt.bound(*b) if b else fmt.MISSING), n(fmt.share(inside) if inside is not None else fmt.MISSING)])
     return t
@@ -403,16 +403,16 @@ def _health(result, cands) -> tuple[Table, list[tuple[str, str, list[str]]]]:
     return t, advice
 
 
-def _matrix_cell(row: dict, extreme: float, relevant) -> Cell:
+def _matrix_cell(row: StatisticRow, extreme: float, relevant) -> Cell:
     """A p-value of the matrix with the miss below it when the observed value lies outside
     the replicated 90 % interval; a detectable miss within its relevant size is marked ◇."""
-    cell = p_cell(row["p_value"], extreme)
-    code = check_reading(row["p_value"], row.get("miss", np.nan), (relevant or {}).get(row["statistic"]), extreme)
+    cell = p_cell(row.p_value, extreme)
+    code = check_reading(row.p_value, row.miss, (relevant or {}).get(row.statistic), extreme)
     if code == "small":
         cell = n("◇ " + cell.text.lstrip("◆ "), "watch")
-    size = row.get("miss", np.nan)
+    size = row.miss
     if size is not None and np.isfinite(size) and size != 0:
-        cell.sub = "miss " + fmt.miss(size, row.get("miss_share_sd"), unit_of(row["statistic"]))
+        cell.sub = "miss " + fmt.miss(size, row.miss_share_sd, unit_of(row.statistic))
     return cell
 
 
@@ -422,10 +422,10 @@ def _check_matrix(result, cands, pick) -> tuple[list[str], list[list[Cell]]]:
     extreme = result.config.ppp_extreme
     relevant = result.config.relevant
     first = pick(cands[0].checks)
-    observed = fmt.alike([row["observed"] for row in first])   # one column, one count of decimals
+    observed = fmt.alike([row.observed for row in first])   # one column, one count of decimals
     body = []
     for k, row in enumerate(first):
-        cells = [Cell(describe(row["statistic"])), n(observed[k])]
+        cells = [Cell(describe(row.statistic)), n(observed[k])]
         for r in cands:
             rr = pick(r.checks)
             cells.append(_matrix_cell(rr[k], extreme, relevant) if k < len(rr) else n(fmt.MISSING))
@@ -437,10 +437,10 @@ def _check_matrix(result, cands, pick) -> tuple[list[str], list[list[Cell]]]:
 MISS_CSV = ["miss", "miss_share_sd", "relevant", "reading"]
 
 
-def _miss_raw(row: dict, extreme: float, relevant) -> list:
-    size = (relevant or {}).get(row["statistic"])
-    return [row.get("miss"), row.get("miss_share_sd"), size,
-            check_reading(row["p_value"], row.get("miss", np.nan), size, extreme)]
+def _miss_raw(row: StatisticRow, extreme: float, relevant) -> list:
+    size = (relevant or {}).get(row.statistic)
+    return [row.miss, row.miss_share_sd, size,
+            check_reading(row.p_value, row.miss, size, extreme)]
 
 
 def _checks_long(result, cands) -> Table:
@@ -450,9 +450,9 @@ def _checks_long(result, cands) -> Table:
     extreme = result.config.ppp_extreme
     for r in cands:
         for row in r.checks.rows:
-            p = row["p_value"]
-            t.csv_rows.append([r.id, row["statistic"], describe(row["statistic"]), row["observed"], row["mean"],
-                               row["q05"], row["q50"], row["q95"], p,
+            p = row.p_value
+            t.csv_rows.append([r.id, row.statistic, describe(row.statistic), row.observed, row.mean,
+                               row.q05, row.q50, row.q95, p,
                                bool(np.isfinite(p) and (p < extreme or p > 1 - extreme))]
                               + _miss_raw(row, extreme, result.config.relevant))
     return t
@@ -467,9 +467,9 @@ def _grouped_long(result, cands) -> Table:
         for cond, levels in r.checks.grouped.items():
             for level, rows in levels.items():
                 for row in rows:
-                    t.csv_rows.append([r.id, cond, str(level), row["statistic"], describe(row["statistic"]),
-                                       row["observed"], row["mean"], row["q05"], row["q50"], row["q95"],
-                                       row["p_value"]]
+                    t.csv_rows.append([r.id, cond, str(level), row.statistic, describe(row.statistic),
+                                       row.observed, row.mean, row.q05, row.q50, row.q95,
+                                       row.p_value]
                                       + _miss_raw(row, result.config.ppp_extreme, result.config.relevant))
     return t
 
@@ -479,9 +479,9 @@ def _check_table(checks, extreme: float, relevant=None) -> Table:
                    "Miss beyond the interval (share of SD)", "Posterior predictive p", "Reading"],
               numeric=[False, True, True, True, True, True, False])
     for row in checks.rows:   # one statistic per row: its values share one count of decimals
-        obs, q50, q05, q95 = fmt.alike([row["observed"], row["q50"], row["q05"], row["q95"]])
-        t.add([describe(row["statistic"]), n(obs), n(q50), n(f"{q05} to {q95}"), miss_cell(row),
-               p_cell(row["p_value"], extreme), reading_cell(row, extreme, relevant)])
+        obs, q50, q05, q95 = fmt.alike([row.observed, row.q50, row.q05, row.q95])
+        t.add([describe(row.statistic), n(obs), n(q50), n(f"{q05} to {q95}"), miss_cell(row),
+               p_cell(row.p_value, extreme), reading_cell(row, extreme, relevant)])
     return t
 
 
@@ -964,8 +964,8 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     views = _candidate_views(result, cands)
     sensitivity = sensitivity_context(cands, d.J, d.K)
 
-    stats = [row["statistic"] for row in with_prior[0].prior.rows] if with_prior else []
-    observed = {row["statistic"]: row["observed"] for row in with_prior[0].prior.rows} if with_prior else {}
+    stats = [row.statistic for row in with_prior[0].prior.rows] if with_prior else []
+    observed = {row.statistic: row.observed for row in with_prior[0].prior.rows} if with_prior else {}
 
     store = _store(result)
     figs: dict[str, Any] = {

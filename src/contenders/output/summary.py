@@ -39,7 +39,7 @@ def json_safe(value: Any) -> Any:
     return value
 
 
-def ppc_entries(rows: Sequence[dict], ppp_extreme: float = PPP_EXTREME,
+def ppc_entries(rows: Sequence, ppp_extreme: float = PPP_EXTREME,
                 relevant: Mapping[str, float] | None = None) -> dict[str, dict[str, Any]]:
     """``summary.json``'s entry per statistic: observed value, p-value, the replicated
     median and 90 % interval, the miss in the statistic's units and as a share of the
@@ -47,11 +47,11 @@ def ppc_entries(rows: Sequence[dict], ppp_extreme: float = PPP_EXTREME,
     from contenders.statistics.features import read_rows
 
     relevant = relevant or {}
-    return {row["statistic"]: {"observed": row["observed"], "p_value": row["p_value"],
-                               "replicated_q50": row.get("q50"), "replicated_q05": row.get("q05"),
-                               "replicated_q95": row.get("q95"), "miss": row.get("miss"),
-                               "miss_share_sd": row.get("miss_share_sd"),
-                               "relevant": relevant.get(row["statistic"]), "reading": code}
+    return {row.statistic: {"observed": row.observed, "p_value": row.p_value,
+                            "replicated_q50": row.q50, "replicated_q05": row.q05,
+                            "replicated_q95": row.q95, "miss": row.miss,
+                            "miss_share_sd": row.miss_share_sd,
+                            "relevant": relevant.get(row.statistic), "reading": code}
             for row, code in zip(rows, read_rows(rows, ppp_extreme, relevant))}
 
 

@@ -88,7 +88,7 @@ def misfits(checks, strong: float, relevant=None) -> list[str]:
     verdict names them (``features.named_misses``)."""
     if checks is None:
         return []
-    out = [describe(r["statistic"]) for r in named_misses(checks.rows, strong, relevant)]
+    out = [describe(r.statistic) for r in named_misses(checks.rows, strong, relevant)]
     from contenders.statistics.checks import leaves_band
 
     if leaves_band(checks.loo_pit_test):
@@ -107,21 +107,21 @@ READING_CELL = {
 }
 
 
-def reading_cell(row: dict, strong: float, relevant=None) -> Cell:
+def reading_cell(row, strong: float, relevant=None) -> Cell:
     """The reading of one check row (p, miss, relevant size) as a marked cell."""
-    size = (relevant or {}).get(row["statistic"])
-    code = reading(row.get("p_value", np.nan), row.get("miss", np.nan), size, strong)
+    size = (relevant or {}).get(row.statistic)
+    code = reading(row.p_value, row.miss, size, strong)
     mark, cls = READING_CELL[code]
     text = READINGS[code]
     if size is not None and code in ("small", "relevant", "possibly_relevant"):
-        text += f" ({fmt.miss(size, None, unit_of(row['statistic'])).lstrip('+')})"
+        text += f" ({fmt.miss(size, None, unit_of(row.statistic)).lstrip('+')})"
     return Cell(mark + text, ("wrap " + cls).strip())
 
 
-def miss_cell(row: dict) -> Cell:
+def miss_cell(row) -> Cell:
     """The miss beyond the replicated 90 % interval, signed, with its share of the SD."""
-    size = row.get("miss", np.nan)
-    return n(fmt.miss(size, row.get("miss_share_sd"), unit_of(row["statistic"])),
+    size = row.miss
+    return n(fmt.miss(size, row.miss_share_sd, unit_of(row.statistic)),
              "muted" if size == 0 else "")
 
 

@@ -78,7 +78,7 @@ TRIAL_SETTINGS = tuple(s.name for s in SETTINGS if s.enters_trials_key)
 #: the prior trial's message are written from the numbers (``output.readings``).
 #: Format 13: the out-of-sample estimate's fields are named as ``summary.json`` names them
 #: (``OutOfSample.elpd_loo``, ``elpd_loo_se``, ``p_loo``, ``elpd_mcse``), so trials stored
-#: with the old names are not read.
+#: with the old names are not read; a test statistic's row is a record (``features.StatisticRow``).
 TRIALS_FORMAT = 13
 
 

@@ -15,8 +15,8 @@ from contenders.rules import PIT_ALPHA, PPP_EXTREME
 
 @dataclass
 class PredictiveChecks:
-    rows: list[dict]                                  # one per statistic, with p_value
-    grouped: dict[str, dict[str, list[dict]]]         # condition -> level -> rows
+    rows: list[st.StatisticRow]                      # one per statistic
+    grouped: dict[str, dict[str, list[st.StatisticRow]]]  # condition -> level -> rows
     loo_pit: np.ndarray                               # one value per observation
     loo_pit_test: dict                                # uniformity_test: inside, band, where it leaves
     extreme: list[str]                                # statistics with p beyond ppp_extreme (detectable)
@@ -339,7 +339,7 @@ def predictive_checks(
     reps = st.compute(y_rep, thresholds)
     obs = st.compute(y, thresholds)
     rows = st.summarise(reps, obs)
-    grouped_rows: dict[str, dict[str, list[dict]]] = {}
+    grouped_rows: dict[str, dict[str, list[st.StatisticRow]]] = {}
     for cond, labels in (conditions or {}).items():
         g_rep = st.grouped(y_rep, labels, thresholds)
         g_obs = st.grouped(y, labels, thresholds)
@@ -357,6 +357,6 @@ def predictive_checks(
         pit = randomised_pit(at, below, cens, rng)
     else:
         pit = loo_pit(y, pit_y_rep, log_lik, reff)
-    extreme = [r["statistic"] for r in rows if st.detectable(r["p_value"], ppp_extreme)]
+    extreme = [r.statistic for r in rows if st.detectable(r.p_value, ppp_extreme)]
     return PredictiveChecks(rows, grouped_rows, pit, uniformity_test(pit, pit_alpha), extreme, reps,
                             quantile_checks(y, y_rep))

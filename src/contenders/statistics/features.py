@@ -14,6 +14,7 @@ statistic (``[checks] relevant``), ``reading`` tells a miss that is only detecta
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Iterable, Mapping, Sequence
 
 import numpy as np
@@ -271,15 +272,14 @@ def reading(p: float, size: float, relevant: float | None, ppp_extreme: float = 
     return "relevant" if big else "small"
 
 
-def read_rows(rows: Sequence[Mapping], ppp_extreme: float,
+def read_rows(rows: Sequence[StatisticRow], ppp_extreme: float,
               relevant: Mapping[str, float] | None = None) -> list[str]:
     """The ``reading`` of each row of ``summarise``.
 
     Parameters
     ----------
-    rows : sequence of mapping
-        Rows with ``statistic``, ``p_value`` and ``miss`` (rows without a miss count as
-        of unknown size).
+    rows : sequence of StatisticRow
+        Rows of ``summarise``.
     ppp_extreme : float
         See ``detectable``.
     relevant : mapping of str to float, optional
@@ -291,12 +291,12 @@ def read_rows(rows: Sequence[Mapping], ppp_extreme: float,
         One of ``READING_CODES`` per row, in order.
     """
     relevant = relevant or {}
-    return [reading(r.get("p_value", np.nan), r.get("miss", np.nan), relevant.get(r["statistic"]), ppp_extreme)
+    return [reading(r.p_value, r.miss, relevant.get(r.statistic), ppp_extreme)
             for r in rows]
 
 
-def named_misses(rows: Sequence[Mapping], ppp_extreme: float,
-                 relevant: Mapping[str, float] | None = None) -> list[Mapping]:
+def named_misses(rows: Sequence[StatisticRow], ppp_extreme: float,
+                 relevant: Mapping[str, float] | None = None) -> list[StatisticRow]:
     """The rows the verdict names as misses.
 
     With no relevant sizes set, every detectable one; with some set, those off by more
@@ -342,7 +342,26 @@ def grouped(y: np.ndarray, labels: np.ndarray, thresholds: Sequence[float] = ())
     return {level: compute(y[..., labels == level], thresholds) for level in sorted(set(labels))}
 
 
-def summarise(replicated: Mapping[str, np.ndarray], observed: Mapping[str, float]) -> list[dict]:
+@dataclass
+class StatisticRow:
+    """One test statistic, observed and over simulated datasets (replicated from the
+    posterior, or drawn from the prior). ``summary.json`` and the CSV files prefix the
+    simulated summaries by where they come from (``replicated_q05``, ``prior_q05``)."""
+
+    statistic: str
+    observed: float
+    mean: float                   # of the simulated values
+    q05: float                    # 5 %, 50 % and 95 % quantiles of the simulated values
+    q50: float
+    q95: float
+    p_value: float                # ppp-value (``ppp_value``)
+    n_missing: int                # simulated values that are NaN
+    miss: float                   # observed minus the nearest end of the 5-95 % interval (``miss``)
+    miss_share_sd: float          # the miss as a share of the observed SD (``miss_share``)
+    share_below_observed: float = float("nan")   # prior trial only: share of draws below the observed
+
+
+def summarise(replicated: Mapping[str, np.ndarray], observed: Mapping[str, float]) -> list[StatisticRow]:
     """One row per statistic: observed value, replicated summaries, ppp-value and miss.
 
     Parameters
@@ -355,11 +374,8 @@ def summarise(replicated: Mapping[str, np.ndarray], observed: Mapping[str, float
 
     Returns
     -------
-    list of dict
-        Per statistic: ``statistic``, ``observed``, replicated ``mean`` and 5/50/95 %
-        quantiles (``q05``, ``q50``, ``q95``), ``p_value`` (``ppp_value``),
-        ``n_missing`` (NaN replicates), ``miss`` (observed minus the nearest end of the
-        5-95 % interval, ``miss``) and ``miss_share_sd`` (``miss_share``).
+    list of StatisticRow
+        One per statistic, in the order of ``replicated``.
     """
     rows = []
     observed_sd = observed.get("sd")
@@ -368,15 +384,9 @@ def summarise(replicated: Mapping[str, np.ndarray], observed: Mapping[str, float
         ok = d[~np.isnan(d)]
         obs = float(observed[name])
         q = np.quantile(ok, [0.05, 0.5, 0.95]) if ok.size else [np.nan] * 3
-        rows.append({
-            "statistic": name,
-            "observed": obs,
-            "mean": float(ok.mean()) if ok.size else float("nan"),
-            "q05": float(q[0]), "q50": float(q[1]), "q95": float(q[2]),
-            "p_value": ppp_value(d, obs),
-            "n_missing": int(d.size - ok.size),
-        })
-        size = miss(obs, rows[-1]["q05"], rows[-1]["q95"])
-        rows[-1]["miss"] = size
-        rows[-1]["miss_share_sd"] = miss_share(size, name, observed_sd)
+        size = miss(obs, float(q[0]), float(q[2]))
+        rows.append(StatisticRow(
+            statistic=name, observed=obs, mean=float(ok.mean()) if ok.size else float("nan"),
+            q05=float(q[0]), q50=float(q[1]), q95=float(q[2]), p_value=ppp_value(d, obs),
+            n_missing=int(d.size - ok.size), miss=size, miss_share_sd=miss_share(size, name, observed_sd)))
     return rows

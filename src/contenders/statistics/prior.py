@@ -34,7 +34,7 @@ class PriorTrial:
     """Summary of the prior predictive draws of one candidate."""
 
     n_draws: int
-    rows: list[dict]                     # per statistic: observed, quantiles, share below observed
+    rows: list[st.StatisticRow]           # per statistic, with the share of draws below the observed
     plausible_share: float | None        # share of draws inside every bound; None without bounds
     bounds: dict[str, tuple[float, float]]
     inside_each: dict[str, float]        # per bounded statistic: share of draws inside its bound
@@ -157,9 +157,9 @@ def summarise_prior(
     obs = st.compute(y, thresholds)
     rows = st.summarise(reps, obs)
     for row in rows:
-        d = reps[row["statistic"]]
+        d = reps[row.statistic]
         d = d[~np.isnan(d)]
-        row["share_below_observed"] = float(np.mean(d < row["observed"])) if d.size else float("nan")
+        row.share_below_observed = float(np.mean(d < row.observed)) if d.size else float("nan")
     finite = np.all(np.isfinite(y_rep), axis=-1)
     inside_each = {}
     plausible = finite.copy()
