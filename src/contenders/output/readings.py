@@ -14,7 +14,8 @@ The boundary: records that keep text fields get them from here, filled by the ru
 then ``verdict`` into ``Comparison.lead`` and ``details``), ``word_health`` (a
 ``Health``'s ``problems`` and ``warnings`` from its ``findings``, after each
 ``fit_with_health``), ``word_prior`` (a ``PriorTrial``'s ``message``) and
-``compare_effects`` (each effect's ``sentence``).
+``compare_effects`` (each effect's ``sentence``). Other codes are worded where they
+are shown: ``elpd_method`` (an estimate's ``Method``), ...
 ``sensitivity_summary`` is the summary.json record with each reading's advice.
 """
 
@@ -418,6 +419,44 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = PP
     comparison = rank_candidates(results, seed, store)
     comparison.lead, comparison.details = verdict(results, comparison, ppp_extreme, relevant)
     return comparison
+
+
+# --- how an elpd was obtained ------------------------------------------------------------
+
+#: Why an unhealthy candidate gets PSIS-LOO without refits (also the end of its reason).
+REFITS_SKIPPED = "exact refits skipped, since an unhealthy candidate is not ranked"
+
+#: Why a plain PSIS-LOO makes no refit, by ``Method.plain_because``.
+PLAIN_BECAUSE = {"quick": "quick look", "unhealthy": REFITS_SKIPPED}
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}{'s' if n > 1 else ''}"
+
+
+def elpd_method(method) -> str:
+    """How an elpd was obtained, in words, from a ``statistics.compare.Method`` (its kind
+    and counts): "PSIS-LOO with 2 exact refits", "10-fold cross-validation", ... (the
+    text of summary.json's ``elpd_method`` and the tables' method column)."""
+    kind = method.kind
+    if kind == "psis":
+        return "PSIS-LOO"
+    if kind == "psis_refits":
+        return f"PSIS-LOO with {_plural(method.held_out, 'exact refit')}"
+    if kind == "psis_plain":
+        text = f"PSIS-LOO without refits ({PLAIN_BECAUSE[method.plain_because]})"
+        if method.high_k:
+            text += (f"; {_plural(method.high_k, 'observation')} with Pareto k above "
+                     f"{method.k_threshold:.2f} not refitted, so this elpd may be off")
+        return text
+    if kind == "kfold":
+        return f"{method.held_out}-fold cross-validation"
+    if kind == "kfold_for_high_k":
+        return (f"{method.held_out}-fold cross-validation ({method.high_k} observations had Pareto k "
+                f"above {method.k_threshold:.2f}, more than the {method.refit_cap} exact refits allowed)")
+    if kind == "leave_group_out":
+        return f"leave-one-group-out ({method.held_out} groups)"
+    raise ValueError(f"unknown method kind {kind!r}")
 
 
 # --- sampler health ---------------------------------------------------------------------

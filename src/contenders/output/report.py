@@ -240,7 +240,7 @@ def _ranking(result, cands) -> Table:
             row["se"] if row else None, row["elpd_diff"] if row else None,
             row["elpd_diff_se"] if row else None, row["stacking_weight"] if row else None,
             row["pseudo_bma_weight"] if row else None, row["p"] if row else None,
-            row["mcse"] if row else None, row["method"] if row else None,
+            row["mcse"] if row else None, readings.elpd_method(row["method"]) if row else None,
             " ".join(row["tied_with"]) if row else None, "; ".join(misses), r.reason,
             row.get("shared_rank") if row else None, row.get("standing") if row else None,
         ], cls)

@@ -18,7 +18,7 @@ from contenders.records import CandidateResult, RunResult
 from contenders.statistics.coefficients import summary as coefficients_summary
 from contenders.statistics.compare import Comparison
 from contenders.statistics.effects import effects_summary
-from contenders.output.readings import sensitivity_summary
+from contenders.output.readings import elpd_method, sensitivity_summary
 from contenders.statistics.features import INTERVAL
 from contenders.rules import PPP_EXTREME
 
@@ -89,7 +89,7 @@ def candidate_summary(r: CandidateResult, comparison: Comparison, cfg: RunConfig
         "n_high_pareto_k": o.n_high_k if o else None,
         "n_refits": o.n_refits if o else None,
         "refitted_observations": [i + 1 for i in o.refitted] if o else [],
-        "elpd_method": o.method if o else None,
+        "elpd_method": elpd_method(o.method) if o else None,
         "elpd_mcse": o.mcse if o else None,
         "tied_with": row.get("tied_with", []),   # from the comparison, not the candidate
         "power_scaling": sensitivity_summary(r.sensitivity),

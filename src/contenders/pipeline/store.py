@@ -76,7 +76,9 @@ TRIAL_SETTINGS = tuple(s.name for s in SETTINGS if s.enters_trials_key)
 #: Format 11: a censored value counts as "at y" within two float32 steps (y_rep is float32).
 #: Format 12: sampler health keeps its findings as codes (``Health.findings``); its words and
 #: the prior trial's message are written from the numbers (``output.readings``).
-TRIALS_FORMAT = 12
+#: Format 13: an estimate's method is a ``compare.Method`` (kind and counts), worded by
+#: ``output.readings.elpd_method``.
+TRIALS_FORMAT = 13
 
 
 def trials_key(candidate, design, cfg, engine_version: str) -> str:
