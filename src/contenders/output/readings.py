@@ -14,8 +14,9 @@ The boundary: records that keep text fields get them from here, filled by the ru
 then ``verdict`` into ``Comparison.lead`` and ``details``), ``word_health`` (a
 ``Health``'s ``problems`` and ``warnings`` from its ``findings``, after each
 ``fit_with_health``), ``word_prior`` (a ``PriorTrial``'s ``message``) and
-``compare_effects`` (each effect's ``sentence``). Other codes are worded where they
-are shown: ``elpd_method`` (an estimate's ``Method``), ...
+``compare_effects`` (each effect's ``sentence``), and, in ``pipeline/calibration.py``,
+``word_calibration`` (a ``Calibration``'s ``reason``). An estimate's ``Method`` is
+worded where it is shown, by ``elpd_method``.
 ``sensitivity_summary`` is the summary.json record with each reading's advice.
 """
 
@@ -457,6 +458,42 @@ def elpd_method(method) -> str:
     if kind == "leave_group_out":
         return f"leave-one-group-out ({method.held_out} groups)"
     raise ValueError(f"unknown method kind {kind!r}")
+
+
+# --- simulation-based calibration -------------------------------------------------------
+
+def calibration_reason(cal) -> str:
+    """The verdict of one candidate's simulation-based calibration, in words, from its
+    ``status``, ``ranked``, flagged parameters and unhealthy fits as
+    ``statistics.calibration.judge`` left them (what the page, calibration.json and the
+    command print as ``reason``)."""
+    from contenders.statistics.calibration import MIN_RANKED   # loads SciPy: only when worded
+
+    n = cal.ranked
+    if n == 0:
+        return "no simulated dataset could be fitted; see the counts below"
+    if cal.status == "inconclusive":
+        return (f"only {n} simulated datasets gave ranks (at least {MIN_RANKED} are needed for a "
+                "verdict); run more simulations")
+    if cal.status == "failed":
+        flagged = cal.flagged
+        worst = min(flagged, key=lambda q: q.p_value)
+        return (f"the ranks of {', '.join(q.parameter for q in flagged[:5])}"
+                f"{' and more' if len(flagged) > 5 else ''} are not uniform (smallest chi-square p = "
+                f"{worst.p_value:.2g}): fits of the program's own simulated data do not recover the parameters "
+                "they were simulated with. Check that y_rep is drawn from the same distribution as the "
+                "likelihood and log_lik, with the same parameters, and that the priors in the model block "
+                "are the ones the program describes"
+                + ("; some fits also had sampler problems, which can cause this too" if cal.unhealthy else ""))
+    return (f"no departure from uniform ranks found in {n} simulations; this cannot prove the "
+            "program right, and small errors need more simulations to show")
+
+
+def word_calibration(cal):
+    """``cal.reason`` from ``calibration_reason``, after ``statistics.calibration.judge``;
+    returns ``cal``."""
+    cal.reason = calibration_reason(cal)
+    return cal
 
 
 # --- sampler health ---------------------------------------------------------------------
