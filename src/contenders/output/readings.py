@@ -623,6 +623,12 @@ SENSITIVITY_READINGS = {
 }
 
 
+def sensitivity_problem(s) -> str:
+    """Why power-scaling could not be computed, in words, from the exception a
+    ``Sensitivity`` records (``error``); ``""`` when it was computed."""
+    return f"power-scaling could not be computed: {s.error}" if s.error else ""
+
+
 def sensitivity_summary(s) -> dict | None:
     """The JSON-ready record of one candidate's sensitivity (``summary.json``), each
     parameter's reading with what to do about it (``SENSITIVITY_READINGS``)."""
@@ -630,7 +636,7 @@ def sensitivity_summary(s) -> dict | None:
         return None
     return {
         "threshold": s.threshold, "draws": s.n_draws, "pareto_k": s.pareto_k, "reliable": s.reliable,
-        "problem": s.problem or None,
+        "problem": sensitivity_problem(s) or None,
         "parameters": [{"parameter": r["parameter"], "prior": r["prior"], "likelihood": r["likelihood"],
                         "prior_chain_range": list(r["prior_range"]),
                         "likelihood_chain_range": list(r["likelihood_range"]),
