@@ -460,6 +460,14 @@ def elpd_method(method) -> str:
     raise ValueError(f"unknown method kind {kind!r}")
 
 
+# --- model recovery ---------------------------------------------------------------------
+
+def fit_problem(candidate: str, status: str, reason: str = "") -> str:
+    """One fit of a recovery replicate that failed or is unhealthy, in words (recovery.json's
+    ``fit_problems``): "far: unhealthy (R-hat 1.2)"."""
+    return f"{candidate}: {status}{' (' + reason + ')' if reason else ''}"
+
+
 # --- simulation-based calibration -------------------------------------------------------
 
 def calibration_reason(cal) -> str:

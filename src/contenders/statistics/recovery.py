@@ -194,7 +194,7 @@ class Replicate:
     weights: dict[str, float]
     elpd: dict[str, float]
     excluded: list[str]          # candidates whose support does not contain the dataset
-    problems: list[str]          # fits that failed or are unhealthy
+    bad_fits: list[tuple[str, str, str]]   # (candidate, status, reason) of fits that failed or are unhealthy
 
 
 @dataclass
@@ -220,19 +220,46 @@ class Recovery:
 
 
 def decide(generator: str, index: int, draw: int, fits: Sequence[ReplicateFit]) -> Replicate:
-    """The winners of one replicate from its fits."""
+    """The winners of one replicate from its fits.
+
+    Parameters
+    ----------
+    generator : str
+        The candidate whose posterior draw generated the replicate.
+    index : int
+        The replicate's number among the generator's.
+    draw : int
+        The posterior draw (chain-major) whose ``y_rep`` is the replicate.
+    fits : sequence of ReplicateFit
+        Every candidate's fit to the replicate.
+
+    Returns
+    -------
+    Replicate
+        The winner by elpd (``None``, no decision, when a fit failed or is unhealthy),
+        whether its lead exceeds ``rules.SE_FACTOR`` SE of the paired difference, the
+        winner by stacking weight, the candidates outside their support, and
+        ``bad_fits`` as (candidate, status, reason); their words are written by
+        ``contenders.output.readings.fit_problem``.
+
+    References
+    ----------
+    Wilson & Collins (2019), eLife 8:e49547, rule 6 (model recovery); Vehtari, Gelman &
+    Gabry (2017), Statistics and Computing 27 (PSIS-LOO elpd); Yao, Vehtari, Simpson &
+    Gelman (2018), Bayesian Analysis 13(3) (stacking).
+    """
     excluded = [f.candidate for f in fits if f.status == "outside_support"]
     bad = [f for f in fits if f.status in ("failed", "unhealthy")]
     ok = {f.candidate: f for f in fits if f.status == "ok"}
-    problems = [f"{f.candidate}: {f.status}{' (' + f.reason + ')' if f.reason else ''}" for f in bad]
+    bad_fits = [(f.candidate, f.status, f.reason) for f in bad]
     elpd = {m: f.elpd for m, f in ok.items()}
     if bad or not ok:
         return Replicate(generator, index, draw, None, False, math.nan, math.nan, None, {}, elpd,
-                         excluded, problems)
+                         excluded, bad_fits)
     winner, lead, lead_se = elpd_winner({m: np.asarray(f.loo["loo_i"].values) for m, f in ok.items()})
     weights = stacking_weights({m: f.loo for m, f in ok.items()})
     return Replicate(generator, index, draw, winner, bool(lead > SE_FACTOR * lead_se), lead, lead_se,
-                     weight_winner(weights), weights, elpd, excluded, problems)
+                     weight_winner(weights), weights, elpd, excluded, bad_fits)
 
 
 def keep_loo(draws, health):
