@@ -14,7 +14,7 @@ The boundary: records that keep text fields get them from here, filled by the ru
 then ``verdict`` into ``Comparison.lead`` and ``details``), ``word_health`` (a
 ``Health``'s ``problems`` and ``warnings`` from its ``findings``, after each
 ``fit_with_health``), ``word_prior`` (a ``PriorTrial``'s ``message``) and
-``compare_effects`` (each effect's ``sentence``), and, in ``pipeline/calibration.py``,
+``compare_effects`` (each effect's ``title`` and ``sentence``), and, in ``pipeline/calibration.py``,
 ``word_calibration`` (a ``Calibration``'s ``reason``). An estimate's ``Method`` is
 worded where it is shown, by ``elpd_method``.
 ``sensitivity_summary`` is the summary.json record with each reading's advice.
@@ -735,11 +735,26 @@ def agreement(title: str, rows: Sequence[Mapping], observed: float, combined: Ma
         "these candidates, or settle the choice of candidate on other grounds first." + miss))
 
 
+#: The words of each kind of effect (``statistics.effects.KINDS``).
+EFFECT_KINDS = {"mean_difference": "difference in mean", "median_difference": "difference in median",
+                "slope": "least-squares slope"}
+
+
+def effect_title(e) -> str:
+    """An effect's plain description from its kind, column and levels (an ``Effect`` or an
+    ``EffectAcross``): "cue: on minus off, difference in mean", "load: least-squares slope"."""
+    if e.kind == "slope":
+        return f"{e.column}: {EFFECT_KINDS['slope']}"
+    return f"{e.column}: {e.level} minus {e.reference}, {EFFECT_KINDS[e.kind]}"
+
+
 def compare_effects(results: Sequence, comparison_rows: Sequence[Mapping], seed: int = 0,
                     min_weight: float = MIN_WEIGHT) -> list:
     """Each effect across candidates (``statistics.effects.effects_across``) with its
-    agreement sentence (``agreement``) written into ``sentence``."""
+    title (``effect_title``) and its agreement sentence (``agreement``) written into
+    ``title`` and ``sentence``."""
     effects = effects_across(results, comparison_rows, seed, min_weight)
     for e in effects:
+        e.title = effect_title(e)
         e.sentence = agreement(e.title, e.rows, e.observed, e.combined, min_weight).sentence
     return effects
