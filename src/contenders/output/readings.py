@@ -71,6 +71,26 @@ CHECK_READINGS = {
 
 # --- posterior predictive checks -------------------------------------------------------
 
+def band_method(test: dict) -> str:
+    """The LOO-PIT uniformity test's method, in words, from its band's probability
+    (``statistics.checks.uniformity_test``): what summary.json's ``loo_pit_test`` and
+    loo_pit.csv call its ``method``."""
+    return (f"simultaneous {100 * test['band']:g} % band of the LOO-PIT ECDF under uniformity "
+            "(Säilynoja, Bürkner & Vehtari 2022)")
+
+
+def with_band_method(test: dict | None) -> dict | None:
+    """``test`` with its ``method`` in words after ``n`` (summary.json's ``loo_pit_test``)."""
+    if test is None:
+        return None
+    out: dict = {}
+    for key, value in test.items():
+        out[key] = value
+        if key == "n":
+            out["method"] = band_method(test)
+    return out
+
+
 def band_text(test: dict | None) -> str:
     """Where the LOO-PIT ECDF leaves its band, in words: "above the 99 % band at LOO-PIT
     0.59–0.98; below it at 0.02–0.40"; "" when it stays inside or was not tested."""

@@ -516,7 +516,7 @@ def _pit_table(cands) -> Table:
                Cell(fmt.sentence(reading), "wrap")],
               [r.id, r.label, test.get("band"), inside, test.get("points"), test.get("outside_points"),
                spans(test.get("above", [])), spans(test.get("below", [])), test.get("largest_gap"),
-               test.get("method"), reading],
+               readings.band_method(test) if "band" in test else None, reading],
               "flagged" if flagged else "")
     return t
 

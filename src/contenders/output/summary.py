@@ -18,7 +18,7 @@ from contenders.records import CandidateResult, RunResult
 from contenders.statistics.coefficients import summary as coefficients_summary
 from contenders.statistics.compare import Comparison
 from contenders.statistics.effects import effects_summary
-from contenders.output.readings import elpd_method, sensitivity_summary
+from contenders.output.readings import elpd_method, sensitivity_summary, with_band_method
 from contenders.statistics.features import INTERVAL
 from contenders.rules import PPP_EXTREME
 
@@ -76,7 +76,7 @@ def candidate_summary(r: CandidateResult, comparison: Comparison, cfg: RunConfig
         "ppc": ppc_entries(k.rows, extreme, relevant) if k else {},
         "ppc_grouped": {cond: {lev: ppc_entries(rows, extreme, relevant) for lev, rows in levels.items()}
                         for cond, levels in k.grouped.items()} if k else {},
-        "loo_pit_test": k.loo_pit_test if k else None,
+        "loo_pit_test": with_band_method(k.loo_pit_test) if k else None,
         "quantiles": k.quantiles if k else [],
         "elpd_loo": o.elpd if o else None,
         "elpd_loo_se": o.se if o else None,
