@@ -480,6 +480,46 @@ def elpd_method(method) -> str:
     raise ValueError(f"unknown method kind {kind!r}")
 
 
+# --- coefficients in the outcome's units ------------------------------------------------
+
+def _per(row: Mapping) -> str:
+    """What one coefficient or slope SD is per: "per unit of x", "cue = on against off"."""
+    if row.get("level") is None:
+        return f"per unit of {row['column']}"
+    return f"{row['column']} = {row['level']} against {row['reference']}"
+
+
+def _at(at: Sequence) -> str:
+    return ", ".join(f"{column} = {value}" for column, value in at)
+
+
+def word_coefficients(c):
+    """The units of each coefficient and group slope SD and the intercept's name, in
+    words, from a ``statistics.coefficients.Coefficients`` (its link, outcome and each
+    row's kind, column and levels): "y per unit of x", "ratio, cue = on against off",
+    "intercept at x = 0, cue = off"; none without a known link. Returns ``c`` (or None)."""
+    if c is None:
+        return None
+    log = c.link == "log"
+    for row in c.rows:
+        if row["kind"] == "intercept":
+            where = _at(row["at"])
+            row["name"] = f"intercept at {where}"
+            row["units"] = f"{c.outcome} ({c.sets} at {where})" if c.link else ""
+            continue
+        what, numeric = _per(row), row["kind"] == "numeric"
+        if not c.link:
+            row["units"] = ""
+        elif log:
+            row["units"] = f"ratio {what}" if numeric else f"ratio, {what}"
+        else:
+            row["units"] = f"{c.outcome} {what}" if numeric else f"{c.outcome}, {what}"
+    for s in c.slopes:
+        per = _per(s)
+        s["units"] = "" if not c.link else (f"log scale, {per}" if log else f"{c.outcome} {per}")
+    return c
+
+
 # --- model recovery ---------------------------------------------------------------------
 
 def fit_problem(candidate: str, status: str, reason: str = "") -> str:
