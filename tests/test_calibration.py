@@ -22,6 +22,7 @@ import scipy.stats as sps
 
 from contenders.inputs.candidates import builtin_folder
 from contenders.cli import main
+from contenders.output.readings import calibration_reason, word_calibration
 from contenders.statistics.calibration import (Calibration, chi_square_uniformity, ecdf_band, ecdf_of_ranks, judge,
                                            rank_of)
 
@@ -56,6 +57,30 @@ def test_exact_posterior_draws_pass_and_too_narrow_ones_fail():
     assert bad.status == "failed" and bad.parameters[0].p_value < 1e-6 and bad.parameters[0].outside_band
     counts = bad.parameters[0].counts
     assert counts[0] + counts[-1] > 4 * sum(counts) / len(counts)   # the U shape of too narrow posteriors
+    # the statistics leave the words to the readings, which name the counts and p-values above
+    assert good.reason == "" and bad.reason == ""
+    assert calibration_reason(good) == ("no departure from uniform ranks found in 200 simulations; this cannot "
+                                        "prove the program right, and small errors need more simulations to show")
+    words = calibration_reason(bad)
+    assert words.startswith(f"the ranks of mu are not uniform (smallest chi-square p = "
+                            f"{bad.parameters[0].p_value:.2g}): fits of the program's own simulated data")
+    assert "sampler problems" not in words
+    bad.unhealthy = 3
+    assert calibration_reason(bad).endswith("; some fits also had sampler problems, which can cause this too")
+
+
+def test_too_few_or_no_ranked_simulations_give_no_verdict():
+    """Below MIN_RANKED (10) ranked simulations the verdict is inconclusive, whatever the
+    ranks (our own rule, no source); with none it is inconclusive without any test."""
+    rng = np.random.default_rng(4)
+    theta, kept_by = _conjugate_study(rng, 6, 99, 1.0)
+    few = judge(Calibration("few", "few", "", simulations=6, kept_draws=99), theta, kept_by, ["mu"], 1)
+    assert few.status == "inconclusive" and few.ranked == 6 and len(few.parameters) == 1
+    assert calibration_reason(few) == ("only 6 simulated datasets gave ranks (at least 10 are needed for a "
+                                       "verdict); run more simulations")
+    none = word_calibration(judge(Calibration("none", "none", "", simulations=6), theta, {}, ["mu"], 1))
+    assert none.status == "inconclusive" and none.ranked == 0 and none.parameters == []
+    assert none.reason == "no simulated dataset could be fitted; see the counts below"
 
 
 def test_rank_counts_draws_below_and_breaks_ties_at_random():
@@ -137,6 +162,10 @@ def test_calibrate_passes_a_builtin_and_fails_a_program_whose_y_rep_scale_is_wro
     sigma = next(q for q in bad["parameters"] if q["parameter"] == "sigma")
     assert sigma["p_value"] < 1e-10 and sigma["outside_band"]
     assert np.mean(np.array(sigma["ranks"]) <= 5) > 0.8      # true sigma below nearly every draw
+    # the study words each verdict from the readings (calibration.json keeps the words)
+    assert good["reason"].startswith("no departure from uniform ranks found in 40 simulations")
+    assert bad["reason"].startswith(f"the ranks of sigma are not uniform (smallest chi-square p = "
+                                    f"{sigma['p_value']:.2g})")
     page = (out / "calibration.html").read_text()
     assert "fails calibration" in page and "no problem found" in page and "<svg" in page
     rows = pd.read_csv(out / "calibration.csv")

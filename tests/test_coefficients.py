@@ -10,6 +10,7 @@ import xarray as xr
 
 from contenders.inputs.candidates import BUILTIN_LINKS, builtin_folder, link_of
 from contenders.inputs.data import build_design
+from contenders.output.readings import word_coefficients
 from contenders.statistics.coefficients import coefficient_summary, extremes, group_terms
 
 
@@ -42,12 +43,19 @@ def test_identity_link_converts_by_the_coding_by_hand():
     post = _posterior(intercept=np.full(4, 10.0), coef=np.tile([s, 2.0], (4, 1)),
                       group_z=np.tile([1.0, -1.0], (4, 1)), group_sd=np.full(4, 0.5))
     c = coefficient_summary(post, d, BUILTIN_LINKS["normal"])
+    # the statistics give kinds, columns and levels; the readings write the units from them
+    assert [(r["name"], r["kind"], r["column"], r["level"], r["reference"], r["units"]) for r in c.rows] == [
+        ("x", "numeric", "x", None, None, ""), ("cue[on]", "indicator", "cue", "on", "off", ""),
+        ("intercept", "intercept", None, None, None, "")]
+    assert c.rows[2]["at"] == [("x", 0), ("cue", "off")]
+    word_coefficients(c)
     rows = {r["name"]: r for r in c.rows}
     assert rows["x"]["value"][0] == pytest.approx(1.0) and rows["x"]["internal"][0] == pytest.approx(s)
     assert rows["x"]["units"] == "y per unit of x"
     assert rows["cue[on]"]["value"][0] == pytest.approx(2.0)
     assert rows["cue[on]"]["units"] == "y, cue = on against off"
     zero = rows["intercept at x = 0, cue = off"]
+    assert zero["units"] == "y (mean at x = 0, cue = off)"
     assert zero["value"][0] == pytest.approx(4.5)
     # group offsets: group_sd * group_z, in the outcome's units under an identity link
     assert [g["offset"][0] for g in c.groups] == pytest.approx([0.5, -0.5])
@@ -63,9 +71,10 @@ def test_log_link_gives_ratios_per_unit_and_an_outcome_value_at_zero():
     rng = np.random.default_rng(1)
     b = rng.normal(np.log(1.1) * s, 0.01, 400)
     post = _posterior(intercept=np.full(400, np.log(100.0)), coef=np.column_stack([b, np.zeros(400)]))
-    c = coefficient_summary(post, d, BUILTIN_LINKS["lognormal"])
+    c = word_coefficients(coefficient_summary(post, d, BUILTIN_LINKS["lognormal"]))
     rows = {r["name"]: r for r in c.rows}
     assert rows["x"]["units"] == "ratio per unit of x"
+    assert rows["cue[on]"]["units"] == "ratio, cue = on against off"
     np.testing.assert_allclose(rows["x"]["value"][0], np.mean(np.exp(b / s)))
     lo, hi = np.quantile(np.exp(b / s), [0.025, 0.975])
     assert rows["x"]["value"][1:] == pytest.approx((lo, hi))
@@ -83,8 +92,9 @@ def test_unknown_link_shows_internal_values_only_with_the_reason(builtins, tmp_p
     link, reason = link_of(edited)
     assert link is None and "differs from the built-in 'normal'" in reason
     assert link_of(dataclasses.replace(changed, id="my_family"))[0] is None
-    c = coefficient_summary(post, d, link, reason)
+    c = word_coefficients(coefficient_summary(post, d, link, reason))
     assert c.link == "" and all(np.isnan(r["value"][0]) for r in c.rows) and c.rows[0]["internal"][0] == 1.0
+    assert [r["units"] for r in c.rows] == ["", "", ""] and c.rows[2]["name"] == "intercept at x = 0, cue = off"
 
 
 def test_link_table_matches_every_built_in_program(builtins):

@@ -12,7 +12,8 @@ import pytest
 from scipy import optimize, stats as sps
 
 from contenders.statistics.features import StatisticRow
-from contenders.output.readings import compare_candidates
+from contenders.output.readings import compare_candidates, elpd_method
+from contenders.statistics import compare
 from contenders.statistics.compare import estimate, log_mean_exp, make_folds, weights
 from contenders.inputs.config import RunConfig
 from contenders.pipeline.runner import load_design, run
@@ -77,7 +78,8 @@ def test_pointwise_elpd_matches_closed_form_conjugate_normal(tmp_path):
     precision = 1 / 2.0**2 + (n - 1) / 1.0**2
     mean = (y.sum() - y) / precision
     exact = sps.norm.logpdf(y, mean, np.sqrt(1.0 + 1 / precision))
-    assert c.oos.method == "PSIS-LOO"
+    assert c.oos.elpd_method == compare.Method("psis", k_threshold=c.oos.k_threshold)
+    assert elpd_method(c.oos.elpd_method) == "PSIS-LOO"
     np.testing.assert_allclose(c.oos.pointwise, exact, atol=0.02)
     assert c.oos.elpd_loo == pytest.approx(exact.sum(), abs=0.1)
 
@@ -101,7 +103,8 @@ def test_refits_of_high_k_observations_agree_with_brute_force_loo(tmp_path, engi
                     chains=4, warmup=500, draws=1000, prior_draws=100, engine="pystan")
     c = run(cfg).candidates[0]
     assert c.oos.refitted == [7] and c.oos.n_refits == 1
-    assert c.oos.method == "PSIS-LOO with 1 exact refit"
+    assert c.oos.elpd_method == compare.Method("psis_refits", held_out=1, high_k=1, k_threshold=c.oos.k_threshold)
+    assert elpd_method(c.oos.elpd_method) == "PSIS-LOO with 1 exact refit"
 
     design = load_design(cfg)
     cand = builtins["normal"]
@@ -168,10 +171,14 @@ def test_kfold_above_the_refit_cap_and_leave_one_group_out(tmp_path, programs):
                      ess_per_chain_min=20, rhat_max=1.05)   # short chains must count as healthy:
     # an unhealthy candidate gets no refits
     kf = run(base.with_(out=tmp_path / "a", refit_cap=0)).candidates[0].oos
-    assert kf.method.startswith("5-fold cross-validation (1 observations had Pareto k above")
+    assert kf.elpd_method == compare.Method("kfold_for_high_k", held_out=5, high_k=1, k_threshold=kf.k_threshold,
+                                       refit_cap=0)
+    assert elpd_method(kf.elpd_method) == (f"5-fold cross-validation (1 observations had Pareto k above "
+                                      f"{kf.k_threshold:.2f}, more than the 0 exact refits allowed)")
     assert kf.n_refits == 5
     logo = run(base.with_(out=tmp_path / "b", group="g", cross_validation="leave_group_out")).candidates[0].oos
-    assert logo.method == "leave-one-group-out (4 groups)" and logo.n_refits == 4
+    assert logo.elpd_method == compare.Method("leave_group_out", held_out=4) and logo.n_refits == 4
+    assert elpd_method(logo.elpd_method) == "leave-one-group-out (4 groups)"
     assert np.isfinite(logo.pointwise).all()
 
 
@@ -274,5 +281,27 @@ def test_quick_look_estimate_is_plain_psis_loo_without_refits():
     assert quick.fits == []
     est = quick.finish([])
     assert est.elpd_loo == pytest.approx(float(ref["elpd_loo"]), abs=1e-9)
-    assert "without refits (quick look)" in est.method and "not refitted" in est.method
+    # ArviZ's own Pareto k and threshold (the reference) give the count of high k
+    high = int((ref["pareto_k"].values > float(ref["good_k"])).sum())
+    assert high >= 1
+    assert est.elpd_method == compare.Method("psis_plain", high_k=high, k_threshold=float(ref["good_k"]),
+                                        plain_because="quick")
+    assert elpd_method(est.elpd_method) == (
+        f"PSIS-LOO without refits (quick look); {high} observation{'s' if high > 1 else ''} with Pareto k "
+        f"above {float(ref['good_k']):.2f} not refitted, so this elpd may be off")
     assert est.n_refits == 0
+
+
+def test_method_words_of_an_unhealthy_fit_and_of_k_fold():
+    """The words of the kinds no run above reaches: an unhealthy fit's plain PSIS-LOO with
+    and without high Pareto k, and K-fold asked for (our own wording, checked as written)."""
+    plain = compare.Method("psis_plain", k_threshold=0.7, plain_because="unhealthy")
+    assert elpd_method(plain) == ("PSIS-LOO without refits (exact refits skipped, since an unhealthy "
+                                  "candidate is not ranked)")
+    one = compare.Method("psis_plain", high_k=1, k_threshold=0.7, plain_because="unhealthy")
+    assert elpd_method(one).endswith("; 1 observation with Pareto k above 0.70 not refitted, so this elpd may be off")
+    assert elpd_method(compare.Method("kfold", held_out=10)) == "10-fold cross-validation"
+    assert elpd_method(compare.Method("psis_refits", held_out=3, high_k=3, k_threshold=0.7)) == \
+        "PSIS-LOO with 3 exact refits"
+    with pytest.raises(ValueError):
+        compare.plan_estimate(None, "psis", plain_because="tired")

@@ -7,9 +7,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from contenders.output.readings import agreement, compare_effects
-from contenders.statistics.compare import ComparisonRow
+from contenders.output.readings import agreement, compare_effects, effect_title
+from contenders.statistics.compare import ComparisonRow, Method
 from contenders.statistics.effects import allocate, combine, effect_draws, level_differences, slope, summarise
+
+PSIS = Method("psis", k_threshold=0.7)   # plain PSIS-LOO, no refit
 
 
 # --- one dataset's effects against pandas and NumPy -------------------------------------
@@ -69,8 +71,10 @@ def test_effect_draws_lists_every_effect_with_observed_and_interval(rng):
     assert e.n_draws == 1000 and e.draws.size == 1000 and e.n_missing == 0   # thinned to 1000
     # the interval is the 2.5 % and 97.5 % quantiles of the kept draws (exact computation)
     assert (e.lower, e.upper) == tuple(np.quantile(e.draws, [0.025, 0.975]))
-    assert e.title == "load: least-squares slope"
-    assert effects[1].title == "cue: on minus mixed, difference in mean"
+    assert (e.kind, e.column, e.level) == ("slope", "load", None)
+    assert effect_title(e) == "load: least-squares slope"
+    assert (effects[1].kind, effects[1].level, effects[1].reference) == ("mean_difference", "on", "mixed")
+    assert effect_title(effects[1]) == "cue: on minus mixed, difference in mean"
 
 
 def test_non_finite_replicates_are_counted_not_used(rng):
@@ -176,9 +180,10 @@ def test_compare_effects_orders_by_elpd_and_combines_ranked_only(rng):
     odd = effect_draws(rng.gamma(4.0, 900.0, (400, 60)), y, t, predictors=("load",))
     results = [_Result("odd", "unhealthy", odd), _Result("slow", "ok", slow), _Result("fast", "ok", fast)]
     nan = float("nan")
-    rows = [ComparisonRow(rank, cid, cid.upper(), nan, nan, nan, nan, nan, w, nan, nan, 0, 0, "PSIS-LOO", nan)
+    rows = [ComparisonRow(rank, cid, cid.upper(), nan, nan, nan, nan, nan, w, nan, nan, 0, 0, PSIS, nan)
             for rank, cid, w in ((1, "fast", 0.8), (2, "slow", 0.2))]
     (e,) = compare_effects(results, rows, seed=3)
+    assert e.title == "load: least-squares slope"          # written by the readings
     assert [r["id"] for r in e.rows] == ["fast", "slow", "odd"]
     assert e.rows[2]["weight"] is None
     assert e.combined["n_draws"] == 400
@@ -384,5 +389,5 @@ def test_condition_reference_level_set_by_the_user_flips_the_difference():
     reps = np.tile(y, (3, 1))
     (mean_e, median_e) = effect_draws(reps, y, t, conditions=("cue",), reference={"cue": "on"})
     assert mean_e.level == "off" and mean_e.reference == "on"
-    assert mean_e.title == "cue: off minus on, difference in mean"
+    assert effect_title(mean_e) == "cue: off minus on, difference in mean"
     assert mean_e.observed == pytest.approx(float(flipped["off"]))

@@ -105,7 +105,7 @@ def test_one_core_and_two_cores_give_the_same_answer(small, tmp_path):
     one = run(small.with_(jobs=1, out=tmp_path / "one"))
     two = run(small.with_(jobs=2, out=tmp_path / "two"))
     refitted = [c for c in two.candidates if c.oos.n_refits]
-    assert refitted and 5 in refitted[0].oos.refitted, [c.oos.method for c in two.candidates]
+    assert refitted and 5 in refitted[0].oos.refitted, [c.oos.elpd_method for c in two.candidates]
     assert [c.id for c in one.candidates] == [c.id for c in two.candidates] == ["lognormal", "normal"]
     for a, b in zip(one.candidates, two.candidates):
         assert a.status == b.status

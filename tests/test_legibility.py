@@ -9,10 +9,12 @@ import matplotlib.text
 import numpy as np
 import pytest
 
-from contenders.statistics.compare import ComparisonRow
+from contenders.statistics.compare import ComparisonRow, Method
 from contenders.output.report import _effects_table
 from contenders.output import figures
 from contenders.output.readings import describe
+
+PSIS = Method("psis", k_threshold=0.7)   # plain PSIS-LOO, no refit
 
 LONG = "Lognormal with guesses and lapses"
 
@@ -58,7 +60,7 @@ def test_density_grid_names_the_outcome_and_keeps_long_labels_whole(drawn):
 
 def test_elpd_figure_shows_the_shared_rank_and_whole_labels(drawn):
     nan = float("nan")
-    rows = [ComparisonRow(rank, label.lower(), label, nan, nan, nan, d, dse, nan, nan, nan, 0, 0, "PSIS-LOO", nan,
+    rows = [ComparisonRow(rank, label.lower(), label, nan, nan, nan, d, dse, nan, nan, nan, 0, 0, PSIS, nan,
                           shared_rank=shared)
             for rank, shared, label, d, dse in ((1, "1", LONG, 0.0, 0.0), (2, "2–3", "Gamma", 1.3, 2.9),
                                                 (3, "2–3", "Inverse Gaussian (Wald)", 1.6, 2.5))]

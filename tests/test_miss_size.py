@@ -18,7 +18,7 @@ from scipy import stats as sps
 
 from contenders.cli import main
 from contenders.output.readings import CHECK_READINGS, compare_candidates
-from contenders.statistics.compare import OutOfSample
+from contenders.statistics.compare import Method, OutOfSample
 from contenders.inputs.config import RunConfig, apply_flags, from_mapping, parse_flag
 from contenders.errors import UserError
 from contenders.output.format import miss as miss_text
@@ -26,6 +26,8 @@ from contenders.records import CandidateResult
 from contenders.pipeline.store import TRIAL_SETTINGS
 from contenders.statistics import features as st
 from contenders.statistics.checks import PredictiveChecks, predictive_checks
+
+PSIS = Method("psis", k_threshold=0.7)   # plain PSIS-LOO, no refit
 
 HERE = Path(__file__).parent
 Z95 = sps.norm.ppf(0.95)
@@ -167,7 +169,7 @@ def test_noninformative_prior_mean_and_sd_against_closed_form():
 def _one_candidate(rows, label="Normal") -> CandidateResult:
     r = CandidateResult("normal", label, "", "real", "ok", "")
     pw = np.full(100, -1.0)
-    r.oos = OutOfSample(float(pw.sum()), 1.0, 2.0, pw, np.zeros(100), 0.7, "PSIS-LOO", elpd_mcse=0.1, n_samples=4000)
+    r.oos = OutOfSample(float(pw.sum()), 1.0, 2.0, pw, np.zeros(100), 0.7, PSIS, elpd_mcse=0.1, n_samples=4000)
     r.checks = PredictiveChecks(rows, {}, np.full(100, 0.5), {"p_value": 0.5}, [])
     return r
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from contenders.output.readings import band_text, quantile_misses
+from contenders.output.readings import band_method, band_text, quantile_misses, with_band_method
 from contenders.statistics.checks import QUANTILE_LEVELS, band_limits, leaves_band, quantile_checks, uniformity_test
 
 
@@ -62,6 +62,14 @@ def test_band_probability_follows_alpha():
     sample = np.random.default_rng(3).beta(1.25, 1, size=100)
     assert uniformity_test(sample, 0.01)["band"] == 0.99
     assert uniformity_test(sample, 0.10)["band"] == pytest.approx(0.90)
+    # the statistics keep the band's probability; the readings name the method from it
+    test = uniformity_test(sample, 0.01)
+    assert "method" not in test
+    assert band_method(test) == ("simultaneous 99 % band of the LOO-PIT ECDF under uniformity "
+                                 "(Säilynoja, Bürkner & Vehtari 2022)")
+    worded = with_band_method(test)
+    assert list(worded)[:3] == ["band", "n", "method"] and worded["method"] == band_method(test)
+    assert {k: v for k, v in worded.items() if k != "method"} == test and with_band_method(None) is None
 
 
 def test_uniform_sample_inside_the_band_has_no_text():

@@ -19,6 +19,7 @@ from contenders.cli import main
 from contenders.inputs.config import RunConfig
 from contenders.output.recovery_files import reading, write
 from contenders.pipeline.recovery import recover
+from contenders.output.readings import fit_problem
 from contenders.statistics.recovery import (
     NO_DECISION, ReplicateFit, decide, evenly_spaced, paired_difference, recovery_matrix, wilson_interval,
 )
@@ -111,7 +112,9 @@ def test_decide_by_elpd_and_stacking_with_closed_form_densities():
     assert r.weights["near"] > 0.99   # stacking by ArviZ: one candidate dominates everywhere
     # a failed or unhealthy fit means no decision; a candidate outside its support sits out
     bad = decide("g", 1, 8, fits[:1] + [ReplicateFit("g", 1, "far", "unhealthy", "R-hat 1.2")])
-    assert bad.winner is None and bad.weight_winner is None and bad.problems == ["far: unhealthy (R-hat 1.2)"]
+    assert bad.winner is None and bad.weight_winner is None and bad.bad_fits == [("far", "unhealthy", "R-hat 1.2")]
+    assert [fit_problem(*f) for f in bad.bad_fits] == ["far: unhealthy (R-hat 1.2)"]   # recovery.json's words
+    assert fit_problem("far", "failed") == "far: failed"
     alone = decide("g", 2, 9, fits[:1] + [ReplicateFit("g", 2, "far", "outside_support", "2 values <= 0")])
     assert alone.winner == "near" and alone.excluded == ["far"] and alone.weights == {"near": 1.0}
 

@@ -140,3 +140,22 @@ def test_strong_prior_far_from_the_data_is_pulled_both_ways_and_a_weak_prior_is_
 def test_programs_without_lprior_are_not_assessed():
     idata = az.from_dict(posterior={"mu": np.zeros((2, 50))}, log_likelihood={"log_lik": np.zeros((2, 50, 3))})
     assert power_scaling(idata, ["mu"]) is None
+
+
+def test_a_failed_computation_is_recorded_as_its_exception_and_worded_by_the_readings():
+    """A log-likelihood name the fit lacks makes ArviZ/xarray raise KeyError inside the
+    computation: the statistics keep the exception (type and message), rows stay empty,
+    and the readings write the sentence summary.json and the report show."""
+    from contenders.output.readings import sensitivity_problem, sensitivity_summary
+
+    idata = az.from_dict(posterior={"mu": np.zeros((2, 50)), "lprior": np.zeros((2, 50))},
+                         log_likelihood={"log_lik": np.zeros((2, 50, 3))})
+    s = power_scaling(idata, ["mu"], log_lik="no_such")
+    assert s is not None and s.rows == [] and s.error.startswith("KeyError: ") and "no_such" in s.error
+    assert sensitivity_problem(s) == f"power-scaling could not be computed: {s.error}"
+    assert sensitivity_summary(s)["problem"] == sensitivity_problem(s)
+    ok = power_scaling(az.from_dict(posterior={"mu": np.random.default_rng(1).normal(size=(2, 50)),
+                                               "lprior": np.random.default_rng(2).normal(size=(2, 50))},
+                                    log_likelihood={"log_lik": np.random.default_rng(3).normal(size=(2, 50, 3))}),
+                       ["mu"])
+    assert ok.error == "" and sensitivity_problem(ok) == "" and sensitivity_summary(ok)["problem"] is None

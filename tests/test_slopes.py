@@ -131,4 +131,5 @@ def test_sleepstudy_with_a_days_slope_matches_published_values(tmp_path, program
     # the correlation's posterior SD from its 95 % interval (about 4 SD wide)
     lo, hi = slope["correlation"][1:]
     assert abs(slope["correlation"][0] - corr_centred) < 2 * (hi - lo) / 3.92, slope["correlation"]
-    assert slope["units"] == "Reaction per unit of Days"
+    assert (slope["column"], slope["level"], slope["reference"]) == ("Days", None, None)
+    assert slope["units"] == "Reaction per unit of Days"     # written by readings.word_coefficients

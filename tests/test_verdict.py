@@ -13,7 +13,7 @@ import pytest
 from contenders.statistics.features import StatisticRow
 from contenders.inputs.candidates import support_problem
 from contenders.output.readings import compare_candidates, standing_why, word_health
-from contenders.statistics.compare import ComparisonRow, OutOfSample, standings
+from contenders.statistics.compare import ComparisonRow, Method, OutOfSample, standings
 from contenders.engines.base import Draws, SamplerSettings
 from contenders.output.report import _certainty
 from contenders.output import format as fmt
@@ -22,6 +22,8 @@ from contenders.pipeline.runner import QUICK_LOOK
 from contenders.records import CandidateResult
 from contenders.statistics.checks import PredictiveChecks
 from contenders.statistics.posterior import diagnose
+
+PSIS = Method("psis", k_threshold=0.7)   # plain PSIS-LOO, no refit
 
 # --- lme4's sleepstudy: the case where the verdict contradicted itself ----------------------
 #
@@ -67,7 +69,7 @@ def _pointwise(rng, n: int, total: float, base: np.ndarray | None, diff_total: f
 def _oos(pointwise: np.ndarray, mcse: float) -> OutOfSample:
     n = pointwise.size
     return OutOfSample(float(pointwise.sum()), float(np.sqrt(n * np.var(pointwise))), 5.0, pointwise,
-                       np.zeros(n), 0.7, "PSIS-LOO", elpd_mcse=mcse, n_samples=4000)
+                       np.zeros(n), 0.7, PSIS, elpd_mcse=mcse, n_samples=4000)
 
 
 def _checks(p_values: dict[str, float], n: int) -> PredictiveChecks:
@@ -144,7 +146,7 @@ def test_standing_rule_keeps_clearly_worse_a_tail():
     best is its own standing; one rank per tie."""
     def row(cid, d, dse, tied=()):
         nan = float("nan")
-        return ComparisonRow(0, cid, cid.upper(), nan, nan, nan, d, dse, nan, nan, nan, 0, 0, "PSIS-LOO", nan,
+        return ComparisonRow(0, cid, cid.upper(), nan, nan, nan, d, dse, nan, nan, nan, 0, 0, PSIS, nan,
                              list(tied))
 
     st = standings([row("a", 0, 0, ["b"]), row("b", 0.1, 0.5, ["a"]), row("c", 3, 1), row("d", 30, 5),

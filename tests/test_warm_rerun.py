@@ -17,12 +17,13 @@ import pandas as pd
 import pytest
 from scipy import stats as sps
 
-from contenders.statistics.compare import ComparisonRow, OutOfSample, elpd_data, estimate, weights_key
+from contenders.statistics.compare import ComparisonRow, Method, OutOfSample, elpd_data, estimate, weights_key
 from contenders.output import figure_records, figure_store
 from contenders.pipeline.store import FitStore, remembered_weights
 
 SRC = Path(__file__).resolve().parents[1] / "src"
 HEAVY = ("arviz", "xarray", "scipy", "matplotlib", "stan", "cmdstanpy")
+PSIS = Method("psis", k_threshold=0.7)   # plain PSIS-LOO, no refit
 
 #: Runs the command line in a fresh interpreter and reports the top-level packages loaded.
 DRIVER = r"""
@@ -178,7 +179,7 @@ def test_stored_figure_is_the_figure_drawn_afresh(tmp_path):
     from contenders.output import figures
 
     nan = float("nan")
-    rows = [ComparisonRow(rank, cid, cid.upper(), nan, nan, nan, d, dse, nan, nan, nan, 0, 0, "PSIS-LOO", nan)
+    rows = [ComparisonRow(rank, cid, cid.upper(), nan, nan, nan, d, dse, nan, nan, nan, 0, 0, PSIS, nan)
             for rank, cid, d, dse in ((1, "a", 0.0, 0.0), (2, "b", 3.5, 1.2))]
     store = FitStore(tmp_path)
     start = figure_records.NEXT_ID[0]

@@ -12,6 +12,7 @@ import numpy as np
 
 from contenders.rules import PARETO_K_GOOD, SE_FACTOR, SMALL_DIFFERENCE
 from contenders.output import format as fmt
+from contenders.output.readings import elpd_method
 from contenders.output.tables import Cell, Table, n
 
 #: The standing of a ranked candidate (compare.standings) in this section's words.
@@ -157,14 +158,14 @@ def comparison_tables(result, cands) -> tuple[Table, Table]:
             n(fmt.against(o.pareto_k_max, o.k_threshold, 2),
               "watch" if np.isfinite(o.pareto_k_max) and o.pareto_k_max > o.k_threshold else ""),
             n(("◇ " if high else "") + str(high), "watch" if high else ""),
-            Cell(o.method, "wrap"),
+            Cell(elpd_method(o.elpd_method), "wrap"),
         ], cls="" if row else "muted")
         side.csv_rows.append([
             row.rank if row else None, r.id, r.label, r.status,
             row.elpd_diff if row else None, row.elpd_diff_se if row else None, kind or None,
             row.stacking_weight if row else None, row.pseudo_bma_weight if row else None,
             o.elpd_loo, o.elpd_loo_se, o.p_loo, o.elpd_mcse, o.elpd_psis, o.pareto_k_max, o.k_threshold, high, o.n_refits,
-            " ".join(str(int(rd[i])) for i in o.refitted), o.method])
+            " ".join(str(int(rd[i])) for i in o.refitted), elpd_method(o.elpd_method)])
     return side, estimates
 
 

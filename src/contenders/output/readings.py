@@ -14,7 +14,9 @@ The boundary: records that keep text fields get them from here, filled by the ru
 then ``verdict`` into ``Comparison.lead`` and ``details``), ``word_health`` (a
 ``Health``'s ``problems`` and ``warnings`` from its ``findings``, after each
 ``fit_with_health``), ``word_prior`` (a ``PriorTrial``'s ``message``) and
-``compare_effects`` (each effect's ``sentence``).
+``compare_effects`` (each effect's ``title`` and ``sentence``), and, in ``pipeline/calibration.py``,
+``word_calibration`` (a ``Calibration``'s ``reason``). An estimate's ``Method`` is
+worded where it is shown, by ``elpd_method``.
 ``sensitivity_summary`` is the summary.json record with each reading's advice.
 """
 
@@ -69,6 +71,26 @@ CHECK_READINGS = {
 
 
 # --- posterior predictive checks -------------------------------------------------------
+
+def band_method(test: dict) -> str:
+    """The LOO-PIT uniformity test's method, in words, from its band's probability
+    (``statistics.checks.uniformity_test``): what summary.json's ``loo_pit_test`` and
+    loo_pit.csv call its ``method``."""
+    return (f"simultaneous {100 * test['band']:g} % band of the LOO-PIT ECDF under uniformity "
+            "(Säilynoja, Bürkner & Vehtari 2022)")
+
+
+def with_band_method(test: dict | None) -> dict | None:
+    """``test`` with its ``method`` in words after ``n`` (summary.json's ``loo_pit_test``)."""
+    if test is None:
+        return None
+    out: dict = {}
+    for key, value in test.items():
+        out[key] = value
+        if key == "n":
+            out["method"] = band_method(test)
+    return out
+
 
 def band_text(test: dict | None) -> str:
     """Where the LOO-PIT ECDF leaves its band, in words: "above the 99 % band at LOO-PIT
@@ -421,6 +443,128 @@ def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = PP
     return comparison
 
 
+# --- how an elpd was obtained ------------------------------------------------------------
+
+#: Why an unhealthy candidate gets PSIS-LOO without refits (also the end of its reason).
+REFITS_SKIPPED = "exact refits skipped, since an unhealthy candidate is not ranked"
+
+#: Why a plain PSIS-LOO makes no refit, by ``Method.plain_because``.
+PLAIN_BECAUSE = {"quick": "quick look", "unhealthy": REFITS_SKIPPED}
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}{'s' if n > 1 else ''}"
+
+
+def elpd_method(method) -> str:
+    """How an elpd was obtained, in words, from a ``statistics.compare.Method`` (its kind
+    and counts): "PSIS-LOO with 2 exact refits", "10-fold cross-validation", ... (the
+    text of summary.json's ``elpd_method`` and the tables' method column)."""
+    kind = method.kind
+    if kind == "psis":
+        return "PSIS-LOO"
+    if kind == "psis_refits":
+        return f"PSIS-LOO with {_plural(method.held_out, 'exact refit')}"
+    if kind == "psis_plain":
+        text = f"PSIS-LOO without refits ({PLAIN_BECAUSE[method.plain_because]})"
+        if method.high_k:
+            text += (f"; {_plural(method.high_k, 'observation')} with Pareto k above "
+                     f"{method.k_threshold:.2f} not refitted, so this elpd may be off")
+        return text
+    if kind == "kfold":
+        return f"{method.held_out}-fold cross-validation"
+    if kind == "kfold_for_high_k":
+        return (f"{method.held_out}-fold cross-validation ({method.high_k} observations had Pareto k "
+                f"above {method.k_threshold:.2f}, more than the {method.refit_cap} exact refits allowed)")
+    if kind == "leave_group_out":
+        return f"leave-one-group-out ({method.held_out} groups)"
+    raise ValueError(f"unknown method kind {kind!r}")
+
+
+# --- coefficients in the outcome's units ------------------------------------------------
+
+def _per(row: Mapping) -> str:
+    """What one coefficient or slope SD is per: "per unit of x", "cue = on against off"."""
+    if row.get("level") is None:
+        return f"per unit of {row['column']}"
+    return f"{row['column']} = {row['level']} against {row['reference']}"
+
+
+def _at(at: Sequence) -> str:
+    return ", ".join(f"{column} = {value}" for column, value in at)
+
+
+def word_coefficients(c):
+    """The units of each coefficient and group slope SD and the intercept's name, in
+    words, from a ``statistics.coefficients.Coefficients`` (its link, outcome and each
+    row's kind, column and levels): "y per unit of x", "ratio, cue = on against off",
+    "intercept at x = 0, cue = off"; none without a known link. Returns ``c`` (or None)."""
+    if c is None:
+        return None
+    log = c.link == "log"
+    for row in c.rows:
+        if row["kind"] == "intercept":
+            where = _at(row["at"])
+            row["name"] = f"intercept at {where}"
+            row["units"] = f"{c.outcome} ({c.sets} at {where})" if c.link else ""
+            continue
+        what, numeric = _per(row), row["kind"] == "numeric"
+        if not c.link:
+            row["units"] = ""
+        elif log:
+            row["units"] = f"ratio {what}" if numeric else f"ratio, {what}"
+        else:
+            row["units"] = f"{c.outcome} {what}" if numeric else f"{c.outcome}, {what}"
+    for s in c.slopes:
+        per = _per(s)
+        s["units"] = "" if not c.link else (f"log scale, {per}" if log else f"{c.outcome} {per}")
+    return c
+
+
+# --- model recovery ---------------------------------------------------------------------
+
+def fit_problem(candidate: str, status: str, reason: str = "") -> str:
+    """One fit of a recovery replicate that failed or is unhealthy, in words (recovery.json's
+    ``fit_problems``): "far: unhealthy (R-hat 1.2)"."""
+    return f"{candidate}: {status}{' (' + reason + ')' if reason else ''}"
+
+
+# --- simulation-based calibration -------------------------------------------------------
+
+def calibration_reason(cal) -> str:
+    """The verdict of one candidate's simulation-based calibration, in words, from its
+    ``status``, ``ranked``, flagged parameters and unhealthy fits as
+    ``statistics.calibration.judge`` left them (what the page, calibration.json and the
+    command print as ``reason``)."""
+    from contenders.statistics.calibration import MIN_RANKED   # loads SciPy: only when worded
+
+    n = cal.ranked
+    if n == 0:
+        return "no simulated dataset could be fitted; see the counts below"
+    if cal.status == "inconclusive":
+        return (f"only {n} simulated datasets gave ranks (at least {MIN_RANKED} are needed for a "
+                "verdict); run more simulations")
+    if cal.status == "failed":
+        flagged = cal.flagged
+        worst = min(flagged, key=lambda q: q.p_value)
+        return (f"the ranks of {', '.join(q.parameter for q in flagged[:5])}"
+                f"{' and more' if len(flagged) > 5 else ''} are not uniform (smallest chi-square p = "
+                f"{worst.p_value:.2g}): fits of the program's own simulated data do not recover the parameters "
+                "they were simulated with. Check that y_rep is drawn from the same distribution as the "
+                "likelihood and log_lik, with the same parameters, and that the priors in the model block "
+                "are the ones the program describes"
+                + ("; some fits also had sampler problems, which can cause this too" if cal.unhealthy else ""))
+    return (f"no departure from uniform ranks found in {n} simulations; this cannot prove the "
+            "program right, and small errors need more simulations to show")
+
+
+def word_calibration(cal):
+    """``cal.reason`` from ``calibration_reason``, after ``statistics.calibration.judge``;
+    returns ``cal``."""
+    cal.reason = calibration_reason(cal)
+    return cal
+
+
 # --- sampler health ---------------------------------------------------------------------
 
 def health_text(finding: Mapping) -> str:
@@ -548,6 +692,12 @@ SENSITIVITY_READINGS = {
 }
 
 
+def sensitivity_problem(s) -> str:
+    """Why power-scaling could not be computed, in words, from the exception a
+    ``Sensitivity`` records (``error``); ``""`` when it was computed."""
+    return f"power-scaling could not be computed: {s.error}" if s.error else ""
+
+
 def sensitivity_summary(s) -> dict | None:
     """The JSON-ready record of one candidate's sensitivity (``summary.json``), each
     parameter's reading with what to do about it (``SENSITIVITY_READINGS``)."""
@@ -555,7 +705,7 @@ def sensitivity_summary(s) -> dict | None:
         return None
     return {
         "threshold": s.threshold, "draws": s.n_draws, "pareto_k": s.pareto_k, "reliable": s.reliable,
-        "problem": s.problem or None,
+        "problem": sensitivity_problem(s) or None,
         "parameters": [{"parameter": r["parameter"], "prior": r["prior"], "likelihood": r["likelihood"],
                         "prior_chain_range": list(r["prior_range"]),
                         "likelihood_chain_range": list(r["likelihood_range"]),
@@ -646,11 +796,26 @@ def agreement(title: str, rows: Sequence[Mapping], observed: float, combined: Ma
         "these candidates, or settle the choice of candidate on other grounds first." + miss))
 
 
+#: The words of each kind of effect (``statistics.effects.KINDS``).
+EFFECT_KINDS = {"mean_difference": "difference in mean", "median_difference": "difference in median",
+                "slope": "least-squares slope"}
+
+
+def effect_title(e) -> str:
+    """An effect's plain description from its kind, column and levels (an ``Effect`` or an
+    ``EffectAcross``): "cue: on minus off, difference in mean", "load: least-squares slope"."""
+    if e.kind == "slope":
+        return f"{e.column}: {EFFECT_KINDS['slope']}"
+    return f"{e.column}: {e.level} minus {e.reference}, {EFFECT_KINDS[e.kind]}"
+
+
 def compare_effects(results: Sequence, comparison_rows: Sequence, seed: int = 0,
                     min_weight: float = MIN_WEIGHT) -> list:
     """Each effect across candidates (``statistics.effects.effects_across``) with its
-    agreement sentence (``agreement``) written into ``sentence``."""
+    title (``effect_title``) and its agreement sentence (``agreement``) written into
+    ``title`` and ``sentence``."""
     effects = effects_across(results, comparison_rows, seed, min_weight)
     for e in effects:
+        e.title = effect_title(e)
         e.sentence = agreement(e.title, e.rows, e.observed, e.combined, min_weight).sentence
     return effects

@@ -10,6 +10,7 @@ import os
 from pathlib import Path
 from typing import Any, Mapping
 
+from contenders.output.readings import fit_problem
 from contenders.rules import CONFUSED
 from contenders.statistics.recovery import NO_DECISION, Matrix, Recovery
 
@@ -108,7 +109,7 @@ def summary(rec: Recovery) -> dict[str, Any]:
                       "winner_elpd": r.winner, "clear_win": r.clear, "lead": _finite(r.lead),
                       "lead_se": _finite(r.lead_se), "winner_stacking_weight": r.weight_winner,
                       "stacking_weights": r.weights, "elpd": {k: _finite(v) for k, v in r.elpd.items()},
-                      "outside_support": r.excluded, "fit_problems": r.problems} for r in rec.runs],
+                      "outside_support": r.excluded, "fit_problems": [fit_problem(*bad) for bad in r.bad_fits]} for r in rec.runs],
         "fit_details": [{"generating": f.generator, "replicate": f.replicate + 1, "candidate": f.candidate,
                          "status": f.status, "reason": f.reason, "elpd_loo": _finite(f.elpd),
                          "elpd_loo_se": _finite(f.se), "pareto_k_max": _finite(f.k_max),

@@ -241,7 +241,7 @@ def _ranking(result, cands) -> Table:
             row.elpd_loo_se if row else None, row.elpd_diff if row else None,
             row.elpd_diff_se if row else None, row.stacking_weight if row else None,
             row.pseudo_bma_weight if row else None, row.p_loo if row else None,
-            row.elpd_mcse if row else None, row.elpd_method if row else None,
+            row.elpd_mcse if row else None, readings.elpd_method(row.elpd_method) if row else None,
             " ".join(row.tied_with) if row else None, "; ".join(misses), r.reason,
             row.shared_rank if row else None, row.standing if row else None,
         ], cls)
@@ -517,7 +517,7 @@ def _pit_table(cands) -> Table:
                Cell(fmt.sentence(reading), "wrap")],
               [r.id, r.label, test.get("band"), inside, test.get("points"), test.get("outside_points"),
                spans(test.get("above", [])), spans(test.get("below", [])), test.get("largest_gap"),
-               test.get("method"), reading],
+               readings.band_method(test) if "band" in test else None, reading],
               "flagged" if flagged else "")
     return t
 

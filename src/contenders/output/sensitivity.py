@@ -7,7 +7,7 @@ from typing import Any, Sequence
 
 from contenders.statistics.coefficients import base_name, group_terms, sizes_of
 from contenders.rules import SENSITIVITY_K_RELIABLE as K_RELIABLE, SENSITIVITY_THRESHOLD as THRESHOLD
-from contenders.output.readings import SENSITIVITY_READINGS as READINGS
+from contenders.output.readings import SENSITIVITY_READINGS as READINGS, sensitivity_problem
 from contenders.statistics.sensitivity import ACT_ON
 from contenders.output import format as fmt
 from contenders.output.tables import Cell, Table, n
@@ -83,8 +83,8 @@ def sensitivity_context(cands: Sequence[Any], J: int = 0, K: int = -1) -> dict[s
         if s is None:
             without.append(f"{r.label} ({r.id})")
             continue
-        if s.problem:
-            overview.add([Cell(r.label, "name", r.id), n(fmt.MISSING), Cell(s.problem, "wrap muted"), "", "",
+        if s.error:
+            overview.add([Cell(r.label, "name", r.id), n(fmt.MISSING), Cell(sensitivity_problem(s), "wrap muted"), "", "",
                           Cell("Look at the message; the other trials of this candidate are unaffected.", "wrap")])
             continue
         groups = group_terms(sizes_of([row["parameter"] for row in s.rows]), J, K)

@@ -18,7 +18,7 @@ from contenders.records import CandidateResult, RunResult
 from contenders.statistics.coefficients import summary as coefficients_summary
 from contenders.statistics.compare import Comparison
 from contenders.statistics.effects import effects_summary
-from contenders.output.readings import sensitivity_summary
+from contenders.output.readings import elpd_method, sensitivity_summary, with_band_method
 from contenders.statistics.features import INTERVAL
 from contenders.rules import PPP_EXTREME
 
@@ -76,7 +76,7 @@ def candidate_summary(r: CandidateResult, comparison: Comparison, cfg: RunConfig
         "ppc": ppc_entries(k.rows, extreme, relevant) if k else {},
         "ppc_grouped": {cond: {lev: ppc_entries(rows, extreme, relevant) for lev, rows in levels.items()}
                         for cond, levels in k.grouped.items()} if k else {},
-        "loo_pit_test": k.loo_pit_test if k else None,
+        "loo_pit_test": with_band_method(k.loo_pit_test) if k else None,
         "quantiles": k.quantiles if k else [],
         "elpd_loo": o.elpd_loo if o else None,
         "elpd_loo_se": o.elpd_loo_se if o else None,
@@ -89,7 +89,7 @@ def candidate_summary(r: CandidateResult, comparison: Comparison, cfg: RunConfig
         "n_high_pareto_k": o.n_high_pareto_k if o else None,
         "n_refits": o.n_refits if o else None,
         "refitted_observations": [i + 1 for i in o.refitted] if o else [],
-        "elpd_method": o.method if o else None,
+        "elpd_method": elpd_method(o.elpd_method) if o else None,
         "elpd_mcse": o.elpd_mcse if o else None,
         "tied_with": list(row.tied_with) if row else [],   # from the comparison, not the candidate
         "power_scaling": sensitivity_summary(r.sensitivity),

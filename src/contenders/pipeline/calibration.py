@@ -40,6 +40,7 @@ from contenders.errors import UserError
 from contenders.inputs.candidates import Candidate, check_against_data, check_outputs, inputs_for
 from contenders.inputs.config import RunConfig
 from contenders.inputs.data import Design, support_problem
+from contenders.output.readings import word_calibration
 from contenders.records import CalibrationStudy
 from contenders.statistics.calibration import KEPT_DRAWS, Calibration, flat_names, judge, stack_parameters
 
@@ -215,7 +216,7 @@ def calibrate(cfg: RunConfig, simulations: int = 100, progress: Callable[[str], 
     run_tasks((fit(c, names, y_sims[s], s, cal) for c, names, flat, theta, y_sims, fittable, cal in plan
                for s in fittable), engine.name, jobs, shown, cluster=cfg.cluster, count=total)
     for c, names, flat, theta, y_sims, fittable, cal in plan:
-        judge(cal, theta, kept_by[c.id], flat, cfg.seed)
+        word_calibration(judge(cal, theta, kept_by[c.id], flat, cfg.seed))
         if not fittable:
             shown.event(c.id, "done")
     return CalibrationStudy(cfg, design, [results[c.id] for c in cands], simulations, kept,

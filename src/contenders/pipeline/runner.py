@@ -19,7 +19,8 @@ from typing import Any
 import numpy as np
 
 from contenders import __version__
-from contenders.output.readings import compare_candidates, compare_effects, word_health, word_prior
+from contenders.output.readings import (REFITS_SKIPPED, compare_candidates, compare_effects, word_coefficients,
+                                        word_health, word_prior)
 from contenders.statistics.compare import Plan, plan_estimate
 from contenders.inputs.candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for, link_of
 from contenders.inputs.config import RunConfig
@@ -225,7 +226,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         stored = getattr(engine, "paths", {}).get(c.id)
         res.posterior_file = str(stored[-1]) if stored else ""
         res.sensitivity = power_scaling(draws.idata, c.parameter_names)   # None without lprior
-        res.coefficients = coefficient_summary(draws.idata.posterior, design, *link_of(c))
+        res.coefficients = word_coefficients(coefficient_summary(draws.idata.posterior, design, *link_of(c)))
         # 3. posterior predictive checks on a thinned set of draws
         res.stage = "checks"
         report(c.id, "checks")
@@ -254,7 +255,7 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
         plain = cfg.quick or not health.healthy
         plan = plan_estimate(draws.idata, "psis" if plain else cfg.cross_validation, cfg.refit_cap,
                              cfg.folds, groups, cfg.seed,
-                             why_plain="quick look" if cfg.quick else REFITS_SKIPPED)
+                             plain_because="quick" if cfg.quick else "unhealthy")
         del draws
         due = RefitsDue(plan, health.adapt_delta, health.warmup, health.draws)
         if plan.fits and defer_refits:
@@ -272,10 +273,6 @@ def run_candidate(c: Candidate, engine, program, design: Design, cfg: RunConfig,
     except Exception as exc:  # one candidate never stops the others
         res.status, res.reason = "failed", f"{res.stage}: unexpected {type(exc).__name__}: {exc}"
     return res
-
-
-#: Said of an unhealthy candidate, whose exact refits are not run (it is never ranked).
-REFITS_SKIPPED = "exact refits skipped, since an unhealthy candidate is not ranked"
 
 
 @dataclass

@@ -77,8 +77,10 @@ TRIAL_SETTINGS = tuple(s.name for s in SETTINGS if s.enters_trials_key)
 #: Format 12: sampler health keeps its findings as codes (``Health.findings``); its words and
 #: the prior trial's message are written from the numbers (``output.readings``).
 #: Format 13: the out-of-sample estimate's fields are named as ``summary.json`` names them
-#: (``OutOfSample.elpd_loo``, ``elpd_loo_se``, ``p_loo``, ``elpd_mcse``), so trials stored
-#: with the old names are not read; a test statistic's row is a record (``features.StatisticRow``).
+#: (``OutOfSample.elpd_loo``, ``elpd_loo_se``, ``p_loo``, ``elpd_mcse``, ``elpd_method``), so
+#: trials stored with the old names are not read; a test statistic's row is a record
+#: (``features.StatisticRow``); an estimate's method is a ``compare.Method`` (kind and
+#: counts), worded by ``output.readings.elpd_method``.
 TRIALS_FORMAT = 13
 
 

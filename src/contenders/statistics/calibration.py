@@ -24,6 +24,9 @@ with probability at most about ``2 alpha``:
   applications in goodness-of-fit evaluation and multiple sample comparison",
   Statistics and Computing 32, 32), computed by ArviZ's
   ``arviz.stats.ecdf_utils.ecdf_confidence_band`` (the "optimized" method).
+
+Numbers and the verdict's status only: the verdict's sentence (``Calibration.reason``)
+is written from them by ``contenders.output.readings.calibration_reason``.
 """
 
 from __future__ import annotations
@@ -53,8 +56,29 @@ MAX_BINS = 20
 
 def rank_of(true: np.ndarray, draws: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     """Rank of each true value among the draws: the number of draws below it, ties
-    (possible only for stuck chains) broken at random. ``true`` has shape (P,),
-    ``draws`` (L, P); ranks lie in 0..L."""
+    (possible only for stuck chains) broken at random.
+
+    Parameters
+    ----------
+    true : numpy.ndarray
+        The true values, shape (P,).
+    draws : numpy.ndarray
+        Posterior draws, shape (L, P).
+    rng : numpy.random.Generator
+        Breaks ties: a value tied with ``t`` draws gets a rank drawn uniformly from the
+        ``t + 1`` ranks it could take.
+
+    Returns
+    -------
+    numpy.ndarray
+        Integer ranks in 0..L, shape (P,).
+
+    References
+    ----------
+    Talts, Betancourt, Simpson, Vehtari & Gelman (2018), "Validating Bayesian inference
+    algorithms with simulation-based calibration", arXiv:1804.06788 (the rank statistic;
+    Theorem 1: its uniformity on 0..L).
+    """
     true = np.asarray(true, dtype=float)
     draws = np.asarray(draws, dtype=float)
     below = (draws < true).sum(axis=0)
@@ -64,16 +88,59 @@ def rank_of(true: np.ndarray, draws: np.ndarray, rng: np.random.Generator) -> np
 
 def bins_for(n_ranked: int, kept: int) -> int:
     """Bins of the chi-square test: at least five ranks expected in each, at most
-    :data:`MAX_BINS`, at most ``kept + 1`` (one per possible rank)."""
+    :data:`MAX_BINS`, at most ``kept + 1`` (one per possible rank), never fewer than two.
+
+    Parameters
+    ----------
+    n_ranked : int
+        Ranked simulations.
+    kept : int
+        Posterior draws kept per fit (ranks run 0..kept).
+
+    Returns
+    -------
+    int
+        ``max(2, min(MAX_BINS, n_ranked // 5, kept + 1))``.
+
+    References
+    ----------
+    Five expected counts per bin: common practice for Pearson's test, no source.
+    """
     return int(max(2, min(MAX_BINS, n_ranked // 5, kept + 1)))
 
 
 def chi_square_uniformity(ranks: np.ndarray, kept: int, bins: int) -> tuple[float, float, list[int], list[int]]:
-    """Pearson's chi-square test that ``ranks`` (integers 0..kept) are uniform, counting
-    them in ``bins`` bins of nearly equal width; the expected count of a bin is
-    proportional to the number of possible ranks in it, so unequal widths are exact.
-    Returns (statistic, p-value, counts, edges); ``edges`` are rank boundaries, bin
-    ``b`` holding ranks ``edges[b] <= r < edges[b + 1]``."""
+    """Pearson's chi-square test that ranks are uniform on 0..kept.
+
+    The ranks are counted in ``bins`` bins of nearly equal width; the expected count of
+    a bin is proportional to the number of possible ranks in it, so unequal widths are
+    exact.
+
+    Parameters
+    ----------
+    ranks : numpy.ndarray
+        Integer ranks in 0..kept.
+    kept : int
+        Posterior draws kept per fit.
+    bins : int
+        Bins to count the ranks in (see ``bins_for``).
+
+    Returns
+    -------
+    statistic : float
+        Pearson's chi-square statistic (SciPy's ``chisquare``).
+    p_value : float
+        Its p-value, with ``len(edges) - 2`` degrees of freedom.
+    counts : list of int
+        Ranks in each bin.
+    edges : list of int
+        Rank boundaries: bin ``b`` holds ranks ``edges[b] <= r < edges[b + 1]``.
+
+    References
+    ----------
+    Talts et al. (2018), arXiv:1804.06788 (the histogram of ranks, uniform under correct
+    calibration); the test itself is Pearson's, computed by ``scipy.stats.chisquare``.
+    """
     ranks = np.asarray(ranks, dtype=int)
     edges = np.unique(np.round(np.linspace(0, kept + 1, bins + 1)).astype(int))
     counts = np.histogram(ranks, bins=edges)[0]
@@ -83,18 +150,56 @@ def chi_square_uniformity(ranks: np.ndarray, kept: int, bins: int) -> tuple[floa
 
 
 def ecdf_points(n_ranked: int, kept: int) -> np.ndarray:
-    """Where the ECDF of the scaled ranks ``(r + 1) / (kept + 1)`` is evaluated: at
-    most ``n_ranked`` rank boundaries ``k / (kept + 1)``, so the uniform distribution
-    function there is exactly ``k / (kept + 1)`` (Säilynoja et al. 2022 evaluate at
-    K <= N points)."""
+    """Where the ECDF of the scaled ranks ``(r + 1) / (kept + 1)`` is evaluated.
+
+    Parameters
+    ----------
+    n_ranked : int
+        Ranked simulations (N).
+    kept : int
+        Posterior draws kept per fit.
+
+    Returns
+    -------
+    numpy.ndarray
+        At most ``n_ranked`` interior rank boundaries ``k / (kept + 1)``, increasing, so
+        the uniform distribution function there is exactly ``k / (kept + 1)``.
+
+    References
+    ----------
+    Säilynoja, Bürkner & Vehtari (2022), Statistics and Computing 32, 32 (the ECDF
+    evaluated at K <= N points).
+    """
     k = np.unique(np.round(np.linspace(0, kept + 1, min(n_ranked, kept + 1) + 1)).astype(int))[1:-1]
     return k / (kept + 1)
 
 
 def ecdf_band(n_ranked: int, kept: int, prob: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Points ``z``, and lower and upper limits of the simultaneous ``prob`` band of the
-    ECDF of ``n_ranked`` uniform scaled ranks at ``z`` (ArviZ's implementation of
-    Säilynoja et al. 2022)."""
+    """The simultaneous band of the ECDF of uniform scaled ranks.
+
+    Parameters
+    ----------
+    n_ranked : int
+        Ranked simulations.
+    kept : int
+        Posterior draws kept per fit.
+    prob : float
+        Simultaneous coverage of the band.
+
+    Returns
+    -------
+    z : numpy.ndarray
+        The points of ``ecdf_points``.
+    lower, upper : numpy.ndarray
+        The band's limits at ``z``.
+
+    References
+    ----------
+    Säilynoja, Bürkner & Vehtari (2022), "Graphical test for discrete uniformity and its
+    applications in goodness-of-fit evaluation and multiple sample comparison",
+    Statistics and Computing 32, 32; computed by ArviZ's ``ecdf_confidence_band``
+    (the "optimized" method).
+    """
     from arviz.stats.ecdf_utils import ecdf_confidence_band
 
     z = ecdf_points(n_ranked, kept)
@@ -103,7 +208,27 @@ def ecdf_band(n_ranked: int, kept: int, prob: float) -> tuple[np.ndarray, np.nda
 
 
 def ecdf_of_ranks(ranks: np.ndarray, kept: int, z: np.ndarray) -> np.ndarray:
-    """ECDF of the scaled ranks ``(r + 1) / (kept + 1)`` at ``z``."""
+    """ECDF of the scaled ranks ``(r + 1) / (kept + 1)`` at ``z``.
+
+    Parameters
+    ----------
+    ranks : numpy.ndarray
+        Integer ranks in 0..kept.
+    kept : int
+        Posterior draws kept per fit.
+    z : numpy.ndarray
+        Where to evaluate (``ecdf_points``).
+
+    Returns
+    -------
+    numpy.ndarray
+        The share of scaled ranks at or below each ``z``.
+
+    References
+    ----------
+    Säilynoja, Bürkner & Vehtari (2022), Statistics and Computing 32, 32 (the scaled
+    ranks' ECDF).
+    """
     u = np.sort((np.asarray(ranks, dtype=float) + 1) / (kept + 1))
     return np.searchsorted(u, z + 1e-12, side="right") / u.size
 
@@ -132,7 +257,7 @@ class Calibration:
     id: str
     label: str
     status: str                              # passed | failed | inconclusive | not run
-    reason: str = ""
+    reason: str = ""                         # in words (output.readings.calibration_reason)
     simulations: int = 0                     # asked for
     kept_draws: int = KEPT_DRAWS             # L: ranks run 0..L
     ranked: int = 0                          # simulations whose fit gave ranks
@@ -152,7 +277,20 @@ class Calibration:
 
 
 def flat_names(post, names: Sequence[str]) -> list[str]:
-    """Scalar names (``coef[1]``, 1-based) in the order of ``values.reshape(draws, -1)``."""
+    """Scalar names in the order of ``values.reshape(draws, -1)``.
+
+    Parameters
+    ----------
+    post : xarray.Dataset
+        A posterior (or prior) group, dimensions (chain, draw, ...).
+    names : sequence of str
+        The parameters to name.
+
+    Returns
+    -------
+    list of str
+        ``mu``, ``coef[1]``, ``coef[2]``, ... (indices 1-based, as in Stan).
+    """
     out = []
     for name in names:
         shape = post[name].shape[2:]
@@ -164,21 +302,62 @@ def flat_names(post, names: Sequence[str]) -> list[str]:
 
 
 def stack_parameters(post, names: Sequence[str]) -> np.ndarray:
-    """(chain * draw, P): the named parameters, chain-major, flattened as :func:`flat_names`."""
+    """The named parameters as one matrix.
+
+    Parameters
+    ----------
+    post : xarray.Dataset
+        A posterior (or prior) group, dimensions (chain, draw, ...).
+    names : sequence of str
+        The parameters to stack.
+
+    Returns
+    -------
+    numpy.ndarray
+        Shape (chain * draw, P), chain-major, columns in the order of ``flat_names``.
+    """
     m = post.sizes["chain"] * post.sizes["draw"]
     return np.concatenate([np.asarray(post[n].values, dtype=float).reshape(m, -1) for n in names], axis=1)
 
 
 def judge(cal: Calibration, theta: np.ndarray, kept_by_sim: dict[int, np.ndarray], names: Sequence[str],
           seed: int) -> Calibration:
-    """Ranks, tests and the verdict from the true values ``theta`` (S, P) and the kept
-    draws of each ranked simulation ``{s: (L, P)}``."""
+    """Ranks, tests and the verdict of one candidate's simulation-based calibration.
+
+    Parameters
+    ----------
+    cal : Calibration
+        The candidate's record; its ``ranked``, ``level``, ``parameters`` and ``status``
+        are filled here (``reason`` is not: see
+        ``contenders.output.readings.calibration_reason``).
+    theta : numpy.ndarray
+        True parameter values of every simulation, shape (S, P).
+    kept_by_sim : dict of int to numpy.ndarray
+        The kept posterior draws of each ranked simulation, ``{s: (L, P)}``.
+    names : sequence of str
+        The P scalar names (``flat_names``).
+    seed : int
+        Seed of the random tie-breaking of ranks.
+
+    Returns
+    -------
+    Calibration
+        ``cal``, with ``status`` ``inconclusive`` (no simulation ranked, or fewer than
+        :data:`MIN_RANKED`), ``failed`` (some parameter's ranks fail the chi-square
+        test or leave the ECDF band, each at level ``alpha / (2 P)``) or ``passed``.
+
+    References
+    ----------
+    Talts, Betancourt, Simpson, Vehtari & Gelman (2018), arXiv:1804.06788 (ranks of the
+    true values, uniform under correct calibration); Säilynoja, Bürkner & Vehtari
+    (2022), Statistics and Computing 32, 32 (the simultaneous ECDF band); Bonferroni's
+    split of ``alpha`` over parameters and tests (common practice, no source).
+    """
     rng = np.random.default_rng(seed)
     sims = sorted(kept_by_sim)
     cal.ranked = len(sims)
     if not sims:
         cal.status = "inconclusive"
-        cal.reason = "no simulated dataset could be fitted; see the counts below"
         return cal
     ranks = np.array([rank_of(theta[s], kept_by_sim[s], rng) for s in sims])   # (n, P)
     n, p = ranks.shape
@@ -195,28 +374,26 @@ def judge(cal: Calibration, theta: np.ndarray, kept_by_sim: dict[int, np.ndarray
                                              pval, outside, bool(pval < cal.level or outside)))
     if n < MIN_RANKED:
         cal.status = "inconclusive"
-        cal.reason = (f"only {n} simulated datasets gave ranks (at least {MIN_RANKED} are needed for a "
-                      "verdict); run more simulations")
     elif cal.flagged:
-        worst = min(cal.flagged, key=lambda q: q.p_value)
         cal.status = "failed"
-        cal.reason = (
-            f"the ranks of {', '.join(q.parameter for q in cal.flagged[:5])}"
-            f"{' and more' if len(cal.flagged) > 5 else ''} are not uniform (smallest chi-square p = "
-            f"{worst.p_value:.2g}): fits of the program's own simulated data do not recover the parameters "
-            "they were simulated with. Check that y_rep is drawn from the same distribution as the "
-            "likelihood and log_lik, with the same parameters, and that the priors in the model block "
-            "are the ones the program describes"
-            + ("; some fits also had sampler problems, which can cause this too" if cal.unhealthy else ""))
     else:
         cal.status = "passed"
-        cal.reason = (f"no departure from uniform ranks found in {n} simulations; this cannot prove the "
-                      "program right, and small errors need more simulations to show")
     return cal
 
 
 def calibration_dict(cal: Calibration) -> dict:
-    """JSON-ready record of one candidate's calibration."""
+    """JSON-ready record of one candidate's calibration.
+
+    Parameters
+    ----------
+    cal : Calibration
+        The record.
+
+    Returns
+    -------
+    dict
+        Every field of ``cal`` and ``flagged``, the names of the flagged parameters.
+    """
     d = asdict(cal)
     d["flagged"] = [p.parameter for p in cal.flagged]
     return d

@@ -180,8 +180,8 @@ def uniformity_test(pit: np.ndarray, alpha: float = PIT_ALPHA) -> dict:
         ``band`` (its probability), ``points`` (evaluation points), ``outside_points``
         (how many lie outside), ``above`` and ``below`` (stretches of LOO-PIT values,
         [from, to], where the ECDF is above the upper or below the lower limit),
-        ``largest_gap`` (the largest distance outside the band, 0 when inside), ``n``
-        and ``method``.
+        ``largest_gap`` (the largest distance outside the band, 0 when inside) and
+        ``n``; the method's words are ``contenders.output.readings.band_method``.
 
     References
     ----------
@@ -193,9 +193,7 @@ def uniformity_test(pit: np.ndarray, alpha: float = PIT_ALPHA) -> dict:
     pit = np.asarray(pit, dtype=float)
     pit = np.sort(pit[np.isfinite(pit)])
     prob = 1.0 - float(alpha)
-    base = {"band": prob, "n": int(pit.size),
-            "method": f"simultaneous {100 * prob:g} % band of the LOO-PIT ECDF under uniformity "
-                      "(Säilynoja, Bürkner & Vehtari 2022)"}
+    base = {"band": prob, "n": int(pit.size)}
     if pit.size < 2:
         return {**base, "inside": None, "points": 0, "outside_points": 0, "above": [], "below": [],
                 "largest_gap": None}

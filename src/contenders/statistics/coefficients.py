@@ -107,7 +107,10 @@ class Coefficients:
     """One candidate's coefficients on both scales and its group terms, summarised.
 
     ``rows``: one per coefficient, then the intercept at zero (``kind`` is
-    ``numeric``, ``indicator`` or ``intercept``). ``groups``: one row per group
+    ``numeric``, ``indicator`` or ``intercept``; the intercept's ``at`` lists
+    (column, value) where it is read). Each row's and slope's ``units``, and the
+    intercept's ``name``, are written by ``contenders.output.readings.word_coefficients``
+    (the run calls it; here ``units`` is empty and the intercept is named ``intercept``). ``groups``: one row per group
     (``level``, the internal term and its offset of eta) and ``group_note`` the
     summary of them. ``link`` is ``identity``, ``log`` or ``""`` (not known, see
     ``reason``)."""
@@ -136,15 +139,17 @@ def _draws(posterior, name: str) -> np.ndarray | None:
     return v.reshape(v.shape[0] * v.shape[1], -1)
 
 
-def _zero_label(coding) -> str:
+def _at_zero(coding) -> list[tuple[str, Any]]:
+    """Where the intercept is read: (column, value) for every raw predictor at 0 and
+    every text column at its reference level, in the coding's order."""
     parts, seen = [], set()
     for c in coding:
         if c.level is None:
-            parts.append(f"{c.source} = 0")
+            parts.append((c.source, 0))
         elif c.source not in seen:
-            parts.append(f"{c.source} = {c.reference}")
+            parts.append((c.source, c.reference))
             seen.add(c.source)
-    return ", ".join(parts)
+    return parts
 
 
 def coefficient_summary(posterior, design, link=None, reason: str = "") -> Coefficients | None:
@@ -184,28 +189,15 @@ def coefficient_summary(posterior, design, link=None, reason: str = "") -> Coeff
             internal = _summary(coef[:, k])
             per_unit = coef[:, k] / c.scale
             eta0 -= coef[:, k] * c.center / c.scale
-            if c.level is None:
-                what = f"per unit of {c.source}"
-                kind = "numeric"
-            else:
-                what = f"{c.source} = {c.level} against {c.reference}"
-                kind = "indicator"
+            kind = "numeric" if c.level is None else "indicator"
             value = _summary(to_outcome(per_unit)) if link else (math.nan,) * 3
-            if link is None:
-                units = ""
-            elif log:
-                units = f"ratio {what}" if kind == "numeric" else f"ratio, {what}"
-            else:
-                units = f"{design.outcome} {what}" if kind == "numeric" else f"{design.outcome}, {what}"
             out.rows.append({"parameter": f"coef[{k + 1}]", "name": c.name, "kind": kind, "column": c.source,
                              "level": c.level, "reference": c.reference, "center": c.center, "scale": c.scale,
-                             "internal": internal, "value": value, "units": units})
-        where = _zero_label(coding)
-        out.rows.append({"parameter": "intercept", "name": f"intercept at {where}", "kind": "intercept",
+                             "internal": internal, "value": value, "units": ""})
+        out.rows.append({"parameter": "intercept", "name": "intercept", "kind": "intercept",
                          "column": None, "level": None, "reference": None, "center": None, "scale": None,
-                         "internal": _summary(intercept[:, 0]),
-                         "value": _summary(to_outcome(eta0)) if link else (math.nan,) * 3,
-                         "units": (f"{design.outcome} ({link.sets} at {where})" if link else "")})
+                         "at": _at_zero(coding), "internal": _summary(intercept[:, 0]),
+                         "value": _summary(to_outcome(eta0)) if link else (math.nan,) * 3, "units": ""})
     # group terms: the built-ins' group_z with group_sd[1]; any other program's vector of
     # one value per group is summarised by its own draws
     J = design.J
@@ -234,12 +226,10 @@ def coefficient_summary(posterior, design, link=None, reason: str = "") -> Coeff
             # correlation of slope k with the intercepts: Omega = L L', and L's first row is
             # (1, 0, ..., 0), so Omega[k + 1, 1] = L[k + 1, 1] (row-major flattening)
             corr = factor[:, (k + 1) * size] if factor is not None and factor.shape[1] == size * size else None
-            per = "per unit of " + c.source if c.level is None else f"{c.source} = {c.level} against {c.reference}"
             out.slopes.append({"parameter": f"slope_sd[{k + 1}]", "name": c.name, "column": c.source,
+                               "level": c.level, "reference": c.reference,
                                "internal": _summary(slope_sd[:, k]),
-                               "per_unit": _summary(slope_sd[:, k] / c.scale),
-                               "units": ("" if link is None else
-                                         f"{design.outcome} {per}" if not log else f"log scale, {per}"),
+                               "per_unit": _summary(slope_sd[:, k] / c.scale), "units": "",
                                "correlation": _summary(corr) if corr is not None else (math.nan,) * 3})
     if not out.rows and not out.groups:
         return None

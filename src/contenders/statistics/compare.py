@@ -34,6 +34,30 @@ import numpy as np
 from contenders.rules import SE_FACTOR, SMALL_DIFFERENCE, TIE_MCSE_FACTOR
 
 
+#: Every kind of ``Method``: plain PSIS-LOO (no Pareto k above the threshold); PSIS-LOO
+#: with exact refits of the high-k observations; PSIS-LOO without refits (a quick look or
+#: an unhealthy fit); K-fold asked for; K-fold because more observations had high k than
+#: the refits allowed; leave-one-group-out.
+METHOD_KINDS = ("psis", "psis_refits", "psis_plain", "kfold", "kfold_for_high_k", "leave_group_out")
+
+#: Why a ``psis_plain`` estimate makes no refit: a quick look, or an unhealthy fit (never
+#: ranked, so its refits would decide nothing).
+PLAIN_BECAUSE = ("quick", "unhealthy")
+
+
+@dataclass(frozen=True)
+class Method:
+    """How an elpd was obtained, as a kind (one of :data:`METHOD_KINDS`) and its counts;
+    the words are written by ``contenders.output.readings.elpd_method``."""
+
+    kind: str
+    held_out: int = 0                  # folds (K-fold), groups (leave-one-group-out) or exact refits
+    high_k: int = 0                    # observations with Pareto k above ``k_threshold``
+    k_threshold: float = float("nan")
+    refit_cap: int = 0                 # the exact refits allowed (``kfold_for_high_k``)
+    plain_because: str = ""            # one of :data:`PLAIN_BECAUSE` (``psis_plain``)
+
+
 @dataclass
 class OutOfSample:
     """Estimated expected log predictive density of one candidate.
@@ -49,7 +73,7 @@ class OutOfSample:
     pointwise: np.ndarray         # elpd of each observation
     pareto_k: np.ndarray          # PSIS shape estimate per observation (NaN for K-fold only)
     k_threshold: float
-    method: str                   # how the elpd was obtained, in words
+    elpd_method: Method           # how the elpd was obtained
     refitted: list[int] = field(default_factory=list)  # 0-based observations refitted exactly
     n_refits: int = 0
     elpd_psis: float = float("nan")                     # plain PSIS-LOO before any refit
@@ -207,7 +231,7 @@ class Plan:
     per_chain: np.ndarray            # the same per batch of draws (for the MC SE)
     lppd: float
     n_chains: int
-    method: str
+    method: Method
     base: dict
     refitted: list[int] = field(default_factory=list)
 
@@ -235,7 +259,7 @@ class Plan:
             pointwise[idx] = log_mean_exp(draws)
             per_chain[:, idx] = log_mean_exp(draws.reshape(self.n_chains, -1, idx.size), axis=1)
         t = _totals(pointwise, self.lppd)
-        return OutOfSample(float(pointwise.sum()), t["elpd_loo_se"], t["p_loo"], pointwise, method=self.method,
+        return OutOfSample(float(pointwise.sum()), t["elpd_loo_se"], t["p_loo"], pointwise, elpd_method=self.method,
                            refitted=list(self.refitted), n_refits=len(self.fits),
                            elpd_mcse=_chain_mcse(per_chain.sum(axis=1)), **self.base)
 
@@ -284,7 +308,7 @@ def plan_estimate(
     folds: int = 10,
     groups: np.ndarray | None = None,
     seed: int = 0,
-    why_plain: str = "quick look",
+    plain_because: str = "quick",
 ) -> Plan:
     """PSIS-LOO of one candidate and the refits the estimate needs (see ``estimate``).
 
@@ -302,14 +326,15 @@ def plan_estimate(
         Each observation's group (leave-one-group-out; strata of the folds).
     seed : int
         Seed of the folds.
-    why_plain : str
-        Why ``psis`` makes no refit, for the method's description.
+    plain_because : str
+        Why ``psis`` makes no refit: ``quick`` or ``unhealthy`` (:data:`PLAIN_BECAUSE`),
+        kept in the estimate's ``Method``.
 
     Returns
     -------
     Plan
-        The refits to run (fitted and held-out observations) and what ``Plan.finish``
-        needs to complete the estimate.
+        The refits to run (fitted and held-out observations), the ``Method`` (kind and
+        counts) and what ``Plan.finish`` needs to complete the estimate.
 
     References
     ----------
@@ -317,6 +342,8 @@ def plan_estimate(
     exact refits and K-fold); Vehtari, Simpson, Gelman, Yao & Gabry (2024), JMLR 25(72)
     (the Pareto k threshold, ArviZ's ``good_k``).
     """
+    if plain_because not in PLAIN_BECAUSE:
+        raise ValueError(f"plain_because must be one of {PLAIN_BECAUSE}, not {plain_because!r}")
     import warnings
 
     import arviz as az
@@ -342,35 +369,32 @@ def plan_estimate(
                 elpd_psis=float(sum(float(p["elpd_loo"]) for p in parts)),
                 n_samples=int(parts[0]["n_samples"]))
 
-    def held_out(fold_of: np.ndarray, label: str) -> Plan:
+    def held_out(fold_of: np.ndarray, method: Method) -> Plan:
         fits = [(np.flatnonzero(fold_of != f), np.flatnonzero(fold_of == f)) for f in np.unique(fold_of)]
-        return Plan(fits, np.full(n, np.nan), np.full((n_chains, n), np.nan), lppd, n_chains, label, base)
+        return Plan(fits, np.full(n, np.nan), np.full((n_chains, n), np.nan), lppd, n_chains, method, base)
 
     if strategy == "leave_group_out":
         if groups is None:
             raise ValueError("leave-one-group-out needs a group column")
-        return held_out(np.asarray(groups), f"leave-one-group-out ({len(np.unique(groups))} groups)")
+        return held_out(np.asarray(groups), Method("leave_group_out", held_out=len(np.unique(groups))))
     if strategy == "kfold":
-        return held_out(make_folds(n, folds, groups, seed), f"{folds}-fold cross-validation")
+        return held_out(make_folds(n, folds, groups, seed), Method("kfold", held_out=folds))
     high = np.flatnonzero(k > threshold)
     if strategy == "psis":   # a quick look or an unhealthy fit: PSIS-LOO as it is, never a refit
-        method = f"PSIS-LOO without refits ({why_plain})"
-        if high.size:
-            method += (f"; {high.size} observation{'s' if high.size > 1 else ''} with Pareto k above "
-                       f"{threshold:.2f} not refitted, so this elpd may be off")
-        return Plan([], psis, by_chain, lppd, n_chains, method, base)
+        return Plan([], psis, by_chain, lppd, n_chains,
+                    Method("psis_plain", high_k=int(high.size), k_threshold=threshold,
+                           plain_because=plain_because), base)
     if high.size == 0:
-        return Plan([], psis, by_chain, lppd, n_chains, "PSIS-LOO", base)
+        return Plan([], psis, by_chain, lppd, n_chains, Method("psis", k_threshold=threshold), base)
     if high.size > refit_cap:
-        plan = held_out(make_folds(n, folds, groups, seed), f"{folds}-fold cross-validation")
-        plan.method += (f" ({high.size} observations had Pareto k above {threshold:.2f}, more "
-                        f"than the {refit_cap} exact refits allowed)")
-        return plan
+        return held_out(make_folds(n, folds, groups, seed),
+                        Method("kfold_for_high_k", held_out=folds, high_k=int(high.size),
+                               k_threshold=threshold, refit_cap=refit_cap))
     everyone = np.arange(n)
     fits = [(everyone[everyone != i], np.array([i])) for i in high]
     return Plan(fits, psis, by_chain, lppd, n_chains,
-                f"PSIS-LOO with {high.size} exact refit{'s' if high.size > 1 else ''}", base,
-                refitted=[int(i) for i in high])
+                Method("psis_refits", held_out=int(high.size), high_k=int(high.size), k_threshold=threshold),
+                base, refitted=[int(i) for i in high])
 
 
 def estimate(
@@ -432,7 +456,7 @@ class ComparisonRow:
     pareto_k_max: float
     n_high_pareto_k: int
     n_refits: int
-    elpd_method: str
+    elpd_method: Method
     elpd_mcse: float
     tied_with: list[str] = field(default_factory=list)  # ids tied within Monte Carlo error
     standing: str = ""            # Standing.kind
@@ -750,7 +774,7 @@ def rank_candidates(results: Sequence, seed: int = 0, weigh: Weigh | None = None
             rows.append(ComparisonRow(
                 pos, r.id, r.label, r.oos.elpd_loo, r.oos.elpd_loo_se, r.oos.p_loo, d, dse,
                 stack_w[r.id], bma_w[r.id], r.oos.pareto_k_max, r.oos.n_high_pareto_k, r.oos.n_refits,
-                r.oos.method, r.oos.elpd_mcse, tied_with[r.id]))
+                r.oos.elpd_method, r.oos.elpd_mcse, tied_with[r.id]))
         st = standings(rows)
         for row in rows:
             row.standing = st[row.id].kind

@@ -39,8 +39,8 @@ LEVEL = 0.95
 #: (shown for information, never weighted). Failed and skipped ones are left out.
 SAMPLED = ("ok", "unhealthy")
 
-KINDS = {"mean_difference": "difference in mean", "median_difference": "difference in median",
-         "slope": "least-squares slope"}
+#: Every kind of effect; each one's words are ``contenders.output.readings.EFFECT_KINDS``.
+KINDS = ("mean_difference", "median_difference", "slope")
 
 
 # --- one dataset's effects -------------------------------------------------------------
@@ -167,13 +167,6 @@ class Effect:
     n_draws: int              # finite replicated draws kept
     n_missing: int            # replicated datasets whose effect was not finite
     draws: np.ndarray = field(repr=False, default_factory=lambda: np.zeros(0))
-
-    @property
-    def title(self) -> str:
-        """Plain description, for example "cue: on minus off, difference in mean"."""
-        if self.kind == "slope":
-            return f"{self.column}: least-squares slope"
-        return f"{self.column}: {self.level} minus {self.reference}, {KINDS[self.kind]}"
 
 
 def summarise(draws: np.ndarray, level: float = LEVEL) -> tuple[float, float, float, int]:
@@ -428,7 +421,7 @@ class EffectAcross:
     column: str
     level: str | None
     reference: str | None
-    title: str
+    title: str                       # in words: contenders.output.readings.compare_effects fills it
     observed: float
     rows: list[dict]                 # per candidate, ranked first by elpd; see compare_effects
     combined: dict | None            # mean, lower, upper, n_draws of the weighted mixture
@@ -444,7 +437,7 @@ def effects_across(results: Sequence, comparison_rows: Sequence, seed: int = 0,
 
     Rows of the output come in the ranking's order, then candidates that were not ranked
     (weight None). The combination uses the generator ``numpy.random.default_rng([seed,
-    k])`` for the k-th effect. The sentence is left empty for
+    k])`` for the k-th effect. The title and the sentence are left empty for
     ``contenders.output.readings.compare_effects`` to write.
 
     Parameters
@@ -496,7 +489,7 @@ def effects_across(results: Sequence, comparison_rows: Sequence, seed: int = 0,
             mean, lo, hi, n = summarise(mix)
             combined = {"mean": mean, "lower": lo, "upper": hi, "n_draws": n}
         verdict = agreement_reading(rows, first.observed, min_weight)
-        out.append(EffectAcross(key, first.kind, first.column, first.level, first.reference, first.title,
+        out.append(EffectAcross(key, first.kind, first.column, first.level, first.reference, "",
                                 first.observed, rows, combined, verdict["reading"], "", mix))
     return out
 

@@ -67,8 +67,27 @@ def wilson_interval(wins: int, n: int, level: float = LEVEL) -> tuple[float, flo
     """Wilson score interval for a binomial proportion ``wins / n``.
 
     centre = (x + z^2/2) / (n + z^2), half-width = z / (n + z^2) * sqrt(x (n - x) / n + z^2 / 4),
-    z the standard normal quantile at (1 + level) / 2 (Wilson 1927, JASA 22(158), 209-212;
-    Brown, Cai & DasGupta 2001, Statistical Science 16(2), eq. 4). ``n = 0`` gives (0, 1).
+    z the standard normal quantile at (1 + level) / 2.
+
+    Parameters
+    ----------
+    wins : int
+        Successes, 0..n.
+    n : int
+        Trials; ``n = 0`` gives (0, 1).
+    level : float
+        Coverage of the interval.
+
+    Returns
+    -------
+    tuple of float
+        (lower, upper), clipped to [0, 1].
+
+    References
+    ----------
+    Wilson (1927), "Probable inference, the law of succession, and statistical
+    inference", JASA 22(158), 209-212; Brown, Cai & DasGupta (2001), "Interval
+    estimation for a binomial proportion", Statistical Science 16(2), eq. 4.
     """
     from scipy.stats import norm
 
@@ -83,16 +102,45 @@ def wilson_interval(wins: int, n: int, level: float = LEVEL) -> tuple[float, flo
 
 
 def paired_difference(lead: np.ndarray, other: np.ndarray) -> tuple[float, float]:
-    """elpd difference of two candidates and its SE, sqrt(N var(d_i)) of the pointwise
-    differences (Vehtari, Gelman & Gabry 2017, eq. 24)."""
+    """elpd difference of two candidates and its SE.
+
+    Parameters
+    ----------
+    lead, other : numpy.ndarray
+        Pointwise elpd values of the two candidates on the same observations.
+
+    Returns
+    -------
+    tuple of float
+        (sum of ``lead - other``, sqrt(N var(d_i)) of the pointwise differences).
+
+    References
+    ----------
+    Vehtari, Gelman & Gabry (2017), Statistics and Computing 27, 1413-1432, eq. 24.
+    """
     d = np.asarray(lead, float) - np.asarray(other, float)
     return float(d.sum()), float(np.sqrt(d.size * np.var(d)))
 
 
 def elpd_winner(pointwise: Mapping[str, np.ndarray]) -> tuple[str, float, float]:
-    """The candidate with the highest elpd (ties go to the first id in sorted order),
-    and its lead over the runner-up with the SE of that paired difference
-    (infinite lead when it is the only candidate)."""
+    """The candidate with the highest elpd and its lead over the runner-up.
+
+    Parameters
+    ----------
+    pointwise : mapping of str to numpy.ndarray
+        Candidate id -> pointwise elpd values on the same observations.
+
+    Returns
+    -------
+    tuple
+        (winner, lead over the runner-up, SE of that paired difference); ties go to the
+        first id in sorted order; an only candidate wins with an infinite lead, SE 0.
+
+    References
+    ----------
+    Vehtari, Gelman & Gabry (2017), Statistics and Computing 27, 1413-1432 (elpd and
+    the SE of a paired difference, see ``paired_difference``).
+    """
     ids = sorted(pointwise, key=lambda m: (-float(np.sum(pointwise[m])), m))
     if len(ids) == 1:
         return ids[0], math.inf, 0.0
@@ -101,7 +149,23 @@ def elpd_winner(pointwise: Mapping[str, np.ndarray]) -> tuple[str, float, float]
 
 
 def stacking_weights(loos: Mapping[str, Any]) -> dict[str, float]:
-    """Stacking weights (Yao et al. 2018) of ArviZ ELPDData objects, by ArviZ ``compare``."""
+    """Stacking weights of the candidates' PSIS-LOO results.
+
+    Parameters
+    ----------
+    loos : mapping of str to arviz.ELPDData
+        Candidate id -> PSIS-LOO result with pointwise values.
+
+    Returns
+    -------
+    dict of str to float
+        Candidate id -> stacking weight (1 for an only candidate), by ArviZ ``compare``.
+
+    References
+    ----------
+    Yao, Vehtari, Simpson & Gelman (2018), "Using stacking to average Bayesian
+    predictive distributions", Bayesian Analysis 13(3).
+    """
     import warnings
 
     import arviz as az
@@ -115,12 +179,40 @@ def stacking_weights(loos: Mapping[str, Any]) -> dict[str, float]:
 
 
 def weight_winner(weights: Mapping[str, float]) -> str:
-    """The candidate with the largest weight (ties go to the first id in sorted order)."""
+    """The candidate with the largest weight.
+
+    Parameters
+    ----------
+    weights : mapping of str to float
+        Candidate id -> weight.
+
+    Returns
+    -------
+    str
+        The id with the largest weight; ties go to the first id in sorted order (our
+        rule, no source).
+    """
     return min(weights, key=lambda m: (-weights[m], m))
 
 
 def evenly_spaced(total: int, k: int, seed: int) -> np.ndarray:
-    """``k`` indices into ``range(total)`` spaced ``total / k`` apart from a seeded start."""
+    """Evenly spaced indices from a seeded start.
+
+    Parameters
+    ----------
+    total : int
+        Size of the range to pick from.
+    k : int
+        Indices to pick, at most ``total``.
+    seed : int
+        Seed of the start, drawn from ``0..total // k - 1``.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``start + floor(i * total / k)`` for i = 0..k-1 (systematic sampling; common
+        practice, no source).
+    """
     if k > total:
         raise ValueError(f"cannot pick {k} of {total}")
     start = int(np.random.default_rng(seed).integers(0, max(1, total // k)))
@@ -149,8 +241,30 @@ class Matrix:
 
 def recovery_matrix(winners: Mapping[str, Sequence[str | None]], ids: Sequence[str],
                     level: float = LEVEL) -> Matrix:
-    """Counts, proportions and Wilson intervals from each generating candidate's list of
-    replicate winners (``None``: no decision)."""
+    """The recovery (confusion) matrix: generating candidate x winner.
+
+    Parameters
+    ----------
+    winners : mapping of str to sequence of str or None
+        Generating candidate -> the winner of each of its replicates (``None``: no
+        decision).
+    ids : sequence of str
+        The candidates, in the matrix's order.
+    level : float
+        Coverage of the Wilson intervals.
+
+    Returns
+    -------
+    Matrix
+        Per generating candidate and winner (plus :data:`NO_DECISION`): wins, replicates,
+        share and its Wilson interval.
+
+    References
+    ----------
+    Wilson & Collins (2019), "Ten simple rules for the computational modeling of
+    behavioral data", eLife 8:e49547, rule 6 (the confusion matrix); Wilson (1927)
+    (the intervals, see ``wilson_interval``).
+    """
     cells: dict[str, dict[str, Cell]] = {}
     for g in ids:
         won = list(winners.get(g, []))
@@ -194,7 +308,7 @@ class Replicate:
     weights: dict[str, float]
     elpd: dict[str, float]
     excluded: list[str]          # candidates whose support does not contain the dataset
-    problems: list[str]          # fits that failed or are unhealthy
+    bad_fits: list[tuple[str, str, str]]   # (candidate, status, reason) of fits that failed or are unhealthy
 
 
 @dataclass
@@ -220,24 +334,68 @@ class Recovery:
 
 
 def decide(generator: str, index: int, draw: int, fits: Sequence[ReplicateFit]) -> Replicate:
-    """The winners of one replicate from its fits."""
+    """The winners of one replicate from its fits.
+
+    Parameters
+    ----------
+    generator : str
+        The candidate whose posterior draw generated the replicate.
+    index : int
+        The replicate's number among the generator's.
+    draw : int
+        The posterior draw (chain-major) whose ``y_rep`` is the replicate.
+    fits : sequence of ReplicateFit
+        Every candidate's fit to the replicate.
+
+    Returns
+    -------
+    Replicate
+        The winner by elpd (``None``, no decision, when a fit failed or is unhealthy),
+        whether its lead exceeds ``rules.SE_FACTOR`` SE of the paired difference, the
+        winner by stacking weight, the candidates outside their support, and
+        ``bad_fits`` as (candidate, status, reason); their words are written by
+        ``contenders.output.readings.fit_problem``.
+
+    References
+    ----------
+    Wilson & Collins (2019), eLife 8:e49547, rule 6 (model recovery); Vehtari, Gelman &
+    Gabry (2017), Statistics and Computing 27 (PSIS-LOO elpd); Yao, Vehtari, Simpson &
+    Gelman (2018), Bayesian Analysis 13(3) (stacking).
+    """
     excluded = [f.candidate for f in fits if f.status == "outside_support"]
     bad = [f for f in fits if f.status in ("failed", "unhealthy")]
     ok = {f.candidate: f for f in fits if f.status == "ok"}
-    problems = [f"{f.candidate}: {f.status}{' (' + f.reason + ')' if f.reason else ''}" for f in bad]
+    bad_fits = [(f.candidate, f.status, f.reason) for f in bad]
     elpd = {m: f.elpd for m, f in ok.items()}
     if bad or not ok:
         return Replicate(generator, index, draw, None, False, math.nan, math.nan, None, {}, elpd,
-                         excluded, problems)
+                         excluded, bad_fits)
     winner, lead, lead_se = elpd_winner({m: np.asarray(f.loo["loo_i"].values) for m, f in ok.items()})
     weights = stacking_weights({m: f.loo for m, f in ok.items()})
     return Replicate(generator, index, draw, winner, bool(lead > SE_FACTOR * lead_se), lead, lead_se,
-                     weight_winner(weights), weights, elpd, excluded, problems)
+                     weight_winner(weights), weights, elpd, excluded, bad_fits)
 
 
 def keep_loo(draws, health):
-    """What a recovery fit sends back: the ArviZ PSIS-LOO result with pointwise values
-    (module level, so it can be sent to worker processes)."""
+    """What a recovery fit sends back: its PSIS-LOO result with pointwise values (module
+    level, so it can be sent to worker processes).
+
+    Parameters
+    ----------
+    draws : Draws
+        The fit (``idata`` with ``log_lik``).
+    health : Health
+        Its sampler health (not read; the fit task's interface passes it).
+
+    Returns
+    -------
+    arviz.ELPDData
+        ArviZ's ``loo`` with ``pointwise=True``; high Pareto k is counted by the caller.
+
+    References
+    ----------
+    Vehtari, Gelman & Gabry (2017), Statistics and Computing 27, 1413-1432.
+    """
     import warnings
 
     import arviz as az

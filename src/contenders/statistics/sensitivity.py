@@ -77,7 +77,7 @@ class Sensitivity:
     pareto_k: dict[str, float] = field(default_factory=dict)
     threshold: float = THRESHOLD
     n_draws: int = 0
-    problem: str = ""                   # why the diagnostic could not be computed
+    error: str = ""                     # the exception that stopped it: "TypeName: message"
 
     @property
     def reliable(self) -> bool:
@@ -154,8 +154,9 @@ def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
                   log_lik: str = "log_lik", threshold: float = THRESHOLD) -> Sensitivity | None:
     """Prior and likelihood power-scaling sensitivity of every parameter.
 
-    A failure of the computation is returned in ``problem``, never raised, so it cannot
-    stop the candidate's other trials.
+    A failure of the computation is returned in ``error`` (the exception's type and
+    message; worded by ``contenders.output.readings.sensitivity_problem``), never
+    raised, so it cannot stop the candidate's other trials.
 
     Parameters
     ----------
@@ -233,5 +234,5 @@ def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
                     for comp, values in components.items()}
         return Sensitivity(rows, pareto_k, threshold, int(components["prior"].size))
     except Exception as exc:   # reported on the page; the candidate's other trials go on
-        return Sensitivity(problem=f"power-scaling could not be computed: {type(exc).__name__}: {exc}",
+        return Sensitivity(error=f"{type(exc).__name__}: {exc}",
                            threshold=threshold)
