@@ -87,6 +87,31 @@ def band_text(test: dict | None) -> str:
     return "; ".join(parts)
 
 
+def pit_shape_text(shape: Mapping | None) -> str:
+    """A plain reading of the LOO-PIT values' shape (``statistics.checks.pit_shape``):
+    too many or too few values in the outer tenths means predictive distributions too
+    narrow or too wide; a shifted mean means predictions run high or low. Empty when no
+    pattern is called (or below ten values)."""
+    if not shape:
+        return ""
+    tails, mean = shape["tails"], shape["mean"]
+    notes = []
+    if shape["spread"] == "narrow":
+        notes.append(f"{100 * tails:.0f} % of observations fall in the outer tenth of their predictive "
+                     "distributions (10 % expected): predictions are too narrow; consider a family with "
+                     "more spread or heavier tails")
+    elif shape["spread"] == "wide":
+        notes.append(f"only {100 * tails:.0f} % of observations fall in the outer tenth of their "
+                     "predictive distributions (10 % expected): predictions are too wide")
+    if shape["centre"] == "high":
+        notes.append(f"LOO-PIT values average {mean:.2f} (0.5 expected): observations tend to fall "
+                     "below their predictions, which run high")
+    elif shape["centre"] == "low":
+        notes.append(f"LOO-PIT values average {mean:.2f} (0.5 expected): observations tend to fall "
+                     "above their predictions, which run low")
+    return "; ".join(notes)
+
+
 def quantile_misses(rows: Sequence[dict]) -> list[str]:
     """Where in the distribution the replicated quantiles miss the observed ones, as
     short phrases: "5–15 % (replicates high)"."""

@@ -32,7 +32,7 @@ from contenders.output import format as fmt
 from contenders.output.sensitivity import sensitivity_context
 from contenders.output import out_of_sample
 from contenders.statistics.coefficients import base_name, extremes, group_terms, sizes_of
-from contenders.output.tables import (MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, miss_cell, n, p_cell, pit_reading,
+from contenders.output.tables import (MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, miss_cell, n, p_cell,
                      reading_cell)
 from contenders.statistics.features import reading as check_reading, unit_of
 
@@ -486,8 +486,8 @@ def _check_table(checks, extreme: float, relevant=None) -> Table:
 
 def _pit_table(cands) -> Table:
     """The LOO-PIT band test per candidate: inside or not, where the ECDF leaves the band."""
-    from contenders.output.readings import band_text
-    from contenders.statistics.checks import leaves_band
+    from contenders.output.readings import band_text, pit_shape_text
+    from contenders.statistics.checks import leaves_band, pit_shape
 
     t = Table("loo_pit.csv", ["Candidate", "ECDF inside the band", "Where it leaves the band",
                               "Reading and what to do next"],
@@ -497,7 +497,7 @@ def _pit_table(cands) -> Table:
     for r in cands:
         test = r.checks.loo_pit_test
         flagged = leaves_band(test)
-        reading = pit_reading(r.checks.loo_pit)
+        reading = pit_shape_text(pit_shape(r.checks.loo_pit))
         if flagged and not reading:
             reading = "the LOO-PIT values depart from uniform; look at the figure for where"
         if not reading:

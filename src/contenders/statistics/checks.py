@@ -10,7 +10,7 @@ import numpy as np
 
 from contenders.statistics import features as st
 from contenders.statistics.censored_checks import censor_like_the_data, randomised_pit
-from contenders.rules import PIT_ALPHA, PPP_EXTREME
+from contenders.rules import PIT_ALPHA, PPP_EXTREME, SE_FACTOR
 
 
 @dataclass
@@ -222,6 +222,56 @@ def leaves_band(test: dict | None) -> bool:
         True only when the test ran and the ECDF left the band.
     """
     return bool(test) and test.get("inside") is False
+
+
+def pit_shape(pit: np.ndarray, se_factor: float = SE_FACTOR) -> dict | None:
+    """The shape of the LOO-PIT values: their share in the outer tenths and their mean.
+
+    Under calibration the values are uniform(0, 1): a share 0.1 of them falls below 0.05
+    or above 0.95 (binomial standard error ``sqrt(0.1 * 0.9 / n)``) and their mean is 0.5
+    (standard error ``sqrt(1 / 12 / n)``, the uniform law's variance being 1/12). Too
+    many values in the outer tenths means predictive distributions too narrow, too few
+    too wide; a mean below 0.5 means observations fall low in their predictive
+    distributions (predictions run high), above 0.5 the reverse. A pattern is called
+    when the value lies more than ``se_factor`` standard errors from its expectation.
+
+    Parameters
+    ----------
+    pit : numpy.ndarray
+        LOO-PIT values; non-finite ones are left out.
+    se_factor : float
+        How many standard errors call a pattern (``rules.SE_FACTOR``).
+
+    Returns
+    -------
+    dict or None
+        None below ten finite values; otherwise ``n``, ``tails`` (the share below 0.05
+        or above 0.95), ``tail_se``, ``mean``, ``mean_se``, ``spread`` (``"narrow"``,
+        ``"wide"`` or ``""``) and ``centre`` (``"high"`` when predictions run high,
+        ``"low"`` when they run low, or ``""``).
+
+    References
+    ----------
+    Gneiting, Balabdaoui & Raftery (2007), "Probabilistic forecasts, calibration and
+    sharpness", Journal of the Royal Statistical Society B 69(2), 243-268, section 3
+    (the shapes of a probability integral transform histogram); the two-standard-error
+    rule for calling a pattern is common practice, no source.
+    """
+    pit = np.asarray(pit, dtype=float)
+    pit = pit[np.isfinite(pit)]
+    if pit.size < 10:
+        return None
+    size = pit.size
+    tails = float(np.mean((pit < 0.05) | (pit > 0.95)))
+    tail_se = float(np.sqrt(0.1 * 0.9 / size))
+    mean_se = float(np.sqrt(1 / 12 / size))
+    mean = float(pit.mean())
+    spread = ("narrow" if tails > 0.1 + se_factor * tail_se
+              else "wide" if tails < 0.1 - se_factor * tail_se else "")
+    centre = ("high" if mean < 0.5 - se_factor * mean_se
+              else "low" if mean > 0.5 + se_factor * mean_se else "")
+    return {"n": int(size), "tails": tails, "tail_se": tail_se, "mean": mean, "mean_se": mean_se,
+            "spread": spread, "centre": centre}
 
 
 #: Quantile levels of the quantile check: 5 %, 10 %, ..., 95 %.
