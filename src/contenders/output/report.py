@@ -75,7 +75,7 @@ def _umask() -> int:
     return mask
 
 
-def _write_atomic(path: Path, text: str) -> None:
+def write_atomic(path: Path, text: str) -> None:
     """Write text to a temporary file in the same folder, then rename it into place."""
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     try:
@@ -98,7 +98,9 @@ def _csv_text(table: Table) -> str:
     return buf.getvalue()
 
 
-def _environment() -> Environment:
+def environment() -> Environment:
+    """The Jinja2 environment of every page (the report, the calibration page, the batch's
+    index): templates from ``TEMPLATES``, escaped, strict about missing names."""
     return Environment(loader=FileSystemLoader(str(TEMPLATES)), autoescape=True,
                        undefined=StrictUndefined, trim_blocks=True, lstrip_blocks=True)
 
@@ -113,14 +115,14 @@ def write_report(result, out_dir: str | Path, command_line: str | Sequence[str] 
     out.mkdir(parents=True, exist_ok=True)
     ctx = build_context(result, command_line)
     for table in ctx["csv_tables"]:
-        _write_atomic(out / table.csv_name, _csv_text(table))
+        write_atomic(out / table.csv_name, _csv_text(table))
     if not result.config.conditions and (out / "grouped_checks.csv").exists():
         (out / "grouped_checks.csv").unlink()   # left by an earlier run with conditions
     if ctx["effects_table"] is None and (out / "effects.csv").exists():
         (out / "effects.csv").unlink()          # left by an earlier run with effects
-    html = _environment().get_template("report.html.j2").render(**ctx)
+    html = environment().get_template("report.html.j2").render(**ctx)
     path = out / "report.html"
-    _write_atomic(path, html)
+    write_atomic(path, html)
     return path
 
 
