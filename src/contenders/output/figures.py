@@ -347,11 +347,6 @@ def flag_frame(ax) -> None:
         ax.spines[side].set_linewidth(1.6)
 
 
-def _row_label(ax, text: str, offset: float = 6) -> None:
-    ax.annotate(_wrap(text, 17, 3), xy=(0, 0.5), xycoords="axes fraction", xytext=(-offset, 0),
-                textcoords="offset points", ha="right", va="center", fontsize=7.5, color=INK)
-
-
 def grid_shape(n: int, ncols: int = 3) -> tuple[int, int]:
     """``(rows, columns)`` for ``n`` panels in rows of at most ``ncols``."""
     ncols = max(1, min(ncols, n))
