@@ -209,15 +209,15 @@ def _ranking(result, cands) -> Table:
               numeric=[True, False, False, True, True, True, True, False])
     for r in cands:
         row = rows.get(r.id)
+        misses = misfits(r.checks, extreme, result.config.relevant)
         notes = []
         if row:
             if row["tied_with"]:
                 notes.append("tied within Monte Carlo error with " + ", ".join(row["tied_with"])
                              + "; the order among them would change with the seed, so they share rank "
                              + _rank(row))
-            missed = misfits(r.checks, extreme, result.config.relevant)
-            if missed:
-                notes.append("misses " + ", ".join(missed)
+            if misses:
+                notes.append("misses " + ", ".join(misses)
                              + ": treat its predictions of these with suspicion (see Predictive checks)")
             if r.prior is not None and r.prior.flagged:
                 notes.append(r.prior.message)
@@ -226,7 +226,6 @@ def _ranking(result, cands) -> Table:
         else:
             notes.append(r.reason.splitlines()[0] if r.reason else "")
             notes.append(NEXT_STEP.get(r.status, ""))
-        misses = misfits(r.checks, extreme, result.config.relevant)
         cls = {"ok": "ranked", "unhealthy": "unhealthy", "failed": "failed", "skipped": "skipped"}[r.status]
         t.add([
             n(_rank(row)),
@@ -264,8 +263,9 @@ def _certainty(result) -> Table:
         kind = st.kind if st else ("best" if row["rank"] == 1 else "uncertain")
         beyond = row["rank"] > 1 and row["elpd_diff"] > SE_FACTOR * row["elpd_diff_se"]   # the raw fact, for the CSV
         text = STANDING_TEXT[kind].format(small=fmt.num(SMALL_DIFFERENCE))
-        if st is not None and readings.standing_why(st):
-            text += f" ({readings.standing_why(st)})"
+        why = readings.standing_why(st) if st is not None else ""
+        if why:
+            text += f" ({why})"
         t.add([
             Cell(row["label"], "name", cid),
             n(_with_se(row["elpd"], row["se"])),
@@ -1030,6 +1030,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     csv_tables = [t for t in csv_tables if t is not None]
 
     data_name = Path(str(cfg.data)).name if cfg.data else "data"
+    recovery_verdict = recovery_section.verdict(result)   # model recovery's sentences, after the verdict's
     return {
         "title": f"Candidate models for {d.outcome}",
         "data_name": data_name,
@@ -1046,10 +1047,10 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
             f"; {result.fits_reused} of {result.fits_reused + result.fits_sampled} fits loaded from the fit store"
             if getattr(result, "fits_reused", 0) else ""),
         "sections": SECTIONS + recovery_section.nav(result),
-        "verdict": list(result.comparison.verdict) + recovery_section.verdict(result),
+        "verdict": list(result.comparison.verdict) + recovery_verdict,
         "verdict_lead": list(getattr(result.comparison, "lead", result.comparison.verdict[:1])),
         "verdict_details": (list(getattr(result.comparison, "details", result.comparison.verdict[1:]))
-                            + recovery_section.verdict(result)),
+                            + recovery_verdict),
         "recovery": recovery_section.context(result),
         "preferred": preferred,
         "any_ranked": bool(rows),
