@@ -14,7 +14,8 @@ The boundary: records that keep text fields get them from here, filled by the ru
 then ``verdict`` into ``Comparison.lead`` and ``details``), ``word_health`` (a
 ``Health``'s ``problems`` and ``warnings`` from its ``findings``, after each
 ``fit_with_health``), ``word_prior`` (a ``PriorTrial``'s ``message``) and
-``compare_effects`` (each effect's ``sentence``).
+``compare_effects`` (each effect's ``sentence``); a quick look's verdict starts with
+``QUICK_LOOK``.
 ``sensitivity_summary`` is the summary.json record with each reading's advice.
 """
 
@@ -433,6 +434,12 @@ def verdict(results: Sequence, comparison: Comparison, ppp_extreme: float = PPP_
         elif r.status == "skipped":
             details.append(f"{r.label} was skipped: {reason.rstrip('.')}.")
     return lead, details
+
+
+#: The first sentence of a quick look's verdict.
+QUICK_LOOK = ("Quick look, not a full result: {chains} chains x {draws} draws, no adapt_delta escalation, "
+              "R-hat below {rhat:g} and ESS of {ess:g} per chain accepted, PSIS-LOO without refits. Use it to see which candidates are "
+              "worth a full run; run again without --quick before drawing conclusions.")
 
 
 def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = PPP_EXTREME,
