@@ -618,33 +618,6 @@ def pareto_k_worst(cands: Sequence[tuple[str, object, Sequence[int]]]) -> Render
 
 # --- 4. observed against replicated distributions ---------------------------------------------
 
-def silverman_bandwidth(y: np.ndarray) -> float:
-    """Rule-of-thumb kernel bandwidth 0.9 min(SD, IQR / 1.34) n^(-1/5) (Silverman 1986,
-    "Density Estimation for Statistics and Data Analysis", eq. 3.31)."""
-    y = np.asarray(y, dtype=float)
-    y = y[np.isfinite(y)]
-    sd = float(np.std(y, ddof=1)) if y.size > 1 else 0.0
-    q75, q25 = np.percentile(y, [75, 25]) if y.size else (0.0, 0.0)
-    spread = min(sd, (q75 - q25) / 1.34) or sd or 1.0
-    return 0.9 * spread * max(y.size, 1) ** -0.2
-
-
-def binned_density(rows: np.ndarray, lo: float, hi: float, bandwidth: float, m: int = 240) -> tuple[np.ndarray, np.ndarray]:
-    """Gaussian kernel density of each row on an m-point grid, by binning and smoothing
-    (values beyond the grid are left out of the counts but not of the total)."""
-    from scipy.ndimage import gaussian_filter1d
-
-    rows = np.atleast_2d(np.asarray(rows, dtype=float))
-    edges = np.linspace(lo, hi, m + 1)
-    step = edges[1] - edges[0]
-    counts = np.stack([np.histogram(r[np.isfinite(r)], bins=edges)[0] for r in rows]).astype(float)
-    sigma = bandwidth / step
-    if sigma >= 0.3:
-        counts = gaussian_filter1d(counts, sigma, axis=1, mode="constant", truncate=4.0)
-    total = np.maximum(np.isfinite(rows).sum(axis=1, keepdims=True), 1)
-    return (edges[:-1] + edges[1:]) / 2, counts / (total * step)
-
-
 @styled
 def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]], ncols: int = 3,
                            outcome: str = "outcome") -> Rendered | None:
@@ -654,6 +627,8 @@ def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]
     all smoothed with the same kernel bandwidth (Silverman's rule on the observed data).
     Where the observed density leaves the 95 % envelope by more than 1 % of the panel's
     height, a thick orange stroke runs along the bottom of the panel."""
+    from contenders.statistics.checks import binned_density, silverman_bandwidth
+
     cands = [(label, r) for label, r in cands if r is not None and np.size(r)]
     if not cands:
         return None
