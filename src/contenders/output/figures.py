@@ -35,7 +35,6 @@ from typing import Sequence
 
 import matplotlib
 from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: E402
-from matplotlib.collections import LineCollection  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.ticker import (  # noqa: E402
     FixedLocator, FuncFormatter, MaxNLocator, NullLocator)
