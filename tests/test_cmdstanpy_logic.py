@@ -231,7 +231,7 @@ def test_without_an_executor_chains_at_once_follow_the_cores(monkeypatch, tmp_pa
 
 def test_the_share_set_by_an_executor_limits_the_chains_of_each_call(monkeypatch, tmp_path):
     from contenders import machine
-    from contenders.pipeline.executor import _set_chain_workers
+    from contenders.pipeline.executor import set_chain_workers
 
     monkeypatch.setattr(arviz, "from_cmdstanpy", lambda **_k: "idata")
     monkeypatch.setattr(machine, "THIS_PROCESS", machine.ChainShare())
@@ -240,13 +240,13 @@ def test_the_share_set_by_an_executor_limits_the_chains_of_each_call(monkeypatch
     handle = _Counting(False)
     engine = ce.CmdStanPyEngine(fake_cmdstan(tmp_path))
     program = Program("toy", "", handle, 0.0, True)
-    assert _set_chain_workers("cmdstanpy", 3) == 0    # the previous limit: none
+    assert set_chain_workers("cmdstanpy", 3) == 0    # the previous limit: none
     engine.sample(program, {"y": [1.0]}, SamplerSettings(chains=4))
     engine.sample(program, {"y": [1.0]}, SamplerSettings(chains=2))   # fewer chains than the limit
     own = ce.CmdStanPyEngine(fake_cmdstan(tmp_path), share=machine.ChainShare(chains_at_once=1))
     own.sample(program, {"y": [1.0]}, SamplerSettings(chains=4))     # its own share, not the process's
     assert handle.seen == [3, 2, 1]
-    assert _set_chain_workers("cmdstanpy", 8) == 3
+    assert set_chain_workers("cmdstanpy", 8) == 3
 
 
 def test_a_fit_takes_every_free_chain_slot_and_gives_them_back(monkeypatch, tmp_path):

@@ -5,8 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from contenders.output.readings import band_method, band_text, quantile_misses, with_band_method
-from contenders.statistics.checks import QUANTILE_LEVELS, band_limits, leaves_band, quantile_checks, uniformity_test
+from contenders.output.readings import band_method, band_text, pit_shape_text, quantile_misses, with_band_method
+from contenders.statistics.checks import (QUANTILE_LEVELS, band_limits, leaves_band, pit_shape, quantile_checks,
+                                         uniformity_test)
 
 
 @pytest.mark.parametrize("n, alpha", [(50, 0.05), (200, 0.01)])
@@ -142,3 +143,38 @@ def test_pit_alpha_is_read_from_the_configuration_and_checked(tmp_path):
     assert "pit_alpha" in TRIAL_SETTINGS    # a new level recomputes the stored checks
     with pytest.raises(UserError, match="pit_alpha"):
         from_mapping({"checks": {"pit_alpha": 1.5}}, tmp_path)
+
+
+def test_pit_shape_calls_spread_and_shift_beyond_two_standard_errors():
+    # Closed forms, checked against SciPy: under uniformity the share of LOO-PIT values
+    # below 0.05 or above 0.95 is Binomial(n, 0.1) / n, SD sqrt(0.1 * 0.9 / n), and their
+    # mean has SD sqrt(1 / 12 / n) (the uniform law's variance 1/12). Gneiting,
+    # Balabdaoui & Raftery (2007), JRSS B 69(2), section 3: too many values in the outer
+    # tenths means predictions too narrow, too few too wide, a low mean predictions that
+    # run high. The two-SE rule is common practice, no source.
+    from scipy import stats
+
+    n = 400
+    even = (np.arange(n) + 0.5) / n
+    shape = pit_shape(even)
+    assert shape["tails"] == pytest.approx(0.1) and shape["mean"] == pytest.approx(0.5)
+    assert shape["tail_se"] == pytest.approx(stats.binom(n, 0.1).std() / n)
+    assert shape["mean_se"] == pytest.approx(stats.uniform.std() / np.sqrt(n))
+    assert (shape["spread"], shape["centre"]) == ("", "") and pit_shape_text(shape) == ""
+    # n = 400: tail SE 0.015, so 14 % in the outer tenths is beyond 0.1 + 2 SE = 0.13 and
+    # 5 % below 0.07; the middle values are symmetric, so the mean stays 0.5
+    def with_tails(k):
+        return np.r_[np.full(k // 2, 0.02), np.full(k // 2, 0.98), np.linspace(0.1, 0.9, n - k)]
+
+    narrow, wide = pit_shape(with_tails(56)), pit_shape(with_tails(20))
+    assert (narrow["spread"], narrow["centre"]) == ("narrow", "")
+    assert narrow["tails"] == pytest.approx(0.14)
+    assert pit_shape_text(narrow).startswith("14 % of observations fall in the outer tenth")
+    assert (wide["spread"], wide["centre"]) == ("wide", "")
+    assert pit_shape_text(wide).startswith("only 5 % of observations")
+    # u**2 of uniform u has mean 1/3, sqrt(u) mean 2/3: both far beyond 2 SE (0.029)
+    assert pit_shape(even ** 2)["centre"] == "high"
+    assert pit_shape(np.sqrt(even))["centre"] == "low"
+    assert "average 0.67 (0.5 expected)" in pit_shape_text(pit_shape(np.sqrt(even)))
+    # fewer than ten finite values: no reading
+    assert pit_shape(np.r_[even[:9], np.nan, np.inf]) is None and pit_shape_text(None) == ""

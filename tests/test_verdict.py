@@ -18,7 +18,7 @@ from contenders.engines.base import Draws, SamplerSettings
 from contenders.output.report import _certainty
 from contenders.output import format as fmt
 from contenders.output.tables import p_cell
-from contenders.pipeline.runner import QUICK_LOOK
+from contenders.output.readings import QUICK_LOOK
 from contenders.records import CandidateResult
 from contenders.statistics.checks import PredictiveChecks
 from contenders.statistics.posterior import diagnose

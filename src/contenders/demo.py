@@ -19,7 +19,6 @@ predictors enter additively.
 
 from __future__ import annotations
 
-import hashlib
 from pathlib import Path
 
 import numpy as np
@@ -138,7 +137,3 @@ def write(folder: str | Path, seed: int = SEED) -> Path:
             tmp.write_text(text)
             tmp.replace(path)
     return folder / "demo.toml"
-
-
-def table_hash(seed: int = SEED) -> str:
-    return hashlib.sha256(generate(seed).to_csv(index=False).encode()).hexdigest()

@@ -18,7 +18,7 @@ from contenders.records import CalibrationStudy
 from contenders.statistics.calibration import Calibration, calibration_dict, ecdf_band, ecdf_of_ranks
 from contenders.output import figures
 from contenders.output import format as fmt
-from contenders.output.figures import BAND, INK, MUTED, _flag_frame, _grid_shape, _new, _styled, plain, render
+from contenders.output.figures import BAND, INK, MUTED, axis_labels, flag_frame, panel_grid, plain, render, styled
 from contenders.output.tables import Cell, Table, n
 
 #: At most this many parameters get a panel per candidate (flagged ones first).
@@ -31,7 +31,7 @@ CSV_HEADERS = ["id", "status", "parameter", "ranked_simulations", "kept_draws", 
                "p_value", "outside_ecdf_band", "flagged", "level", "bin_counts"]
 
 
-@_styled
+@styled
 def ecdf_grid(cal: Calibration, ncols: int = 4) -> figures.Rendered | None:
     """One panel per parameter: the ECDF of the scaled ranks minus the uniform
     distribution function (thick ink steps) inside the simultaneous band at the
@@ -43,18 +43,11 @@ def ecdf_grid(cal: Calibration, ncols: int = 4) -> figures.Rendered | None:
     z, lower, upper = ecdf_band(cal.ranked, cal.kept_draws, 1 - cal.level)
     curves = [(q, ecdf_of_ranks(q.ranks, cal.kept_draws, z) - z) for q in params]
     lim = max(max(float(np.abs(d).max()) for _, d in curves), float(np.max(upper - z)) * 1.15) * 1.1
-    nrow, ncol = _grid_shape(len(curves), ncols)
-    width, height = 7.6, 0.45 + 1.35 * nrow
-    fig = _new(width, height)
-    fig.subplots_adjust(left=0.08, right=0.99, top=1 - 0.3 / height, bottom=0.5 / height,
-                        wspace=0.12, hspace=0.55)
-    axes = fig.subplots(nrow, ncol, squeeze=False)
+    fig, panels, ncol, height = panel_grid(len(curves), ncols, 7.6, 0.45, 1.35, left=0.08, right=0.99, top=0.3,
+                                           bottom=0.5, wspace=0.12, hspace=0.55)
     zz = np.r_[0.0, z, 1.0]
     lo, hi = np.r_[0.0, lower - z, 0.0], np.r_[0.0, upper - z, 0.0]
-    for k, ax in enumerate(axes.flat):
-        if k >= len(curves):
-            ax.set_visible(False)
-            continue
+    for k, ax in enumerate(panels):
         q, d = curves[k]
         ax.fill_between(zz, lo, hi, color=BAND, linewidth=0, step="mid" if len(z) < 30 else None,
                         label=f"{fmt.share(1 - cal.level, 1)} band")
@@ -69,11 +62,10 @@ def ecdf_grid(cal: Calibration, ncols: int = 4) -> figures.Rendered | None:
         ax.text(0.98, 0.04, ("◆ " if q.flagged else "") + "χ² p " + fmt.pvalue(q.p_value), transform=ax.transAxes,
                 ha="right", va="bottom", fontsize=6.3, fontweight="bold" if q.flagged else "normal")
         if q.flagged:
-            _flag_frame(ax)
+            flag_frame(ax)
         if k == 0:
             ax.legend(loc="upper left", fontsize=6, handlelength=1.5)
-    fig.supxlabel("scaled rank of the true value among the posterior draws", fontsize=7.5, y=0.12 / height)
-    fig.text(0.012, 0.5, "ECDF minus uniform", rotation=90, va="center", fontsize=7.5)
+    axis_labels(fig, height, "scaled rank of the true value among the posterior draws", 0.12, "ECDF minus uniform")
     return render(fig, f"calibration of {cal.id}: distribution function of the ranks minus uniform, per parameter")
 
 
@@ -139,7 +131,7 @@ def study_dict(study: CalibrationStudy) -> dict[str, Any]:
 def write_calibration(study: CalibrationStudy, out_dir: str | Path,
                       command_line: str | Sequence[str] | None = None) -> Path:
     """Write ``calibration.html``, ``calibration.json`` and ``calibration.csv``."""
-    from contenders.output.report import _environment, _write_atomic
+    from contenders.output.report import environment, write_atomic
 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
@@ -166,8 +158,8 @@ def write_calibration(study: CalibrationStudy, out_dir: str | Path,
         "command_line": (command_line if isinstance(command_line, str) or command_line is None
                          else shlex.join(list(command_line))),
     }
-    _write_atomic(out / "calibration.json", json.dumps(study_dict(study), indent=2))
-    _write_atomic(out / "calibration.csv", _csv_text(study))
+    write_atomic(out / "calibration.json", json.dumps(study_dict(study), indent=2))
+    write_atomic(out / "calibration.csv", _csv_text(study))
     path = out / "calibration.html"
-    _write_atomic(path, _environment().get_template("calibration.html.j2").render(**ctx))
+    write_atomic(path, environment().get_template("calibration.html.j2").render(**ctx))
     return path

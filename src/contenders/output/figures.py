@@ -35,7 +35,6 @@ from typing import Sequence
 
 import matplotlib
 from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: E402
-from matplotlib.collections import LineCollection  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.ticker import (  # noqa: E402
     FixedLocator, FuncFormatter, MaxNLocator, NullLocator)
@@ -175,7 +174,7 @@ def _new(width: float, height: float) -> Figure:
     return fig
 
 
-def _styled(fn):
+def styled(fn):
     """Run a drawing function under the report's style."""
     def wrapper(*args, **kwargs):
         with matplotlib.rc_context(STYLE):
@@ -340,21 +339,46 @@ def _shared_legend(fig, x: float, top: float) -> None:
                bbox_to_anchor=(x, top))
 
 
-def _flag_frame(ax) -> None:
+def flag_frame(ax) -> None:
     for side in ("left", "bottom", "top", "right"):
         ax.spines[side].set_visible(True)
         ax.spines[side].set_color(FLAG)
         ax.spines[side].set_linewidth(1.6)
 
 
-def _row_label(ax, text: str, offset: float = 6) -> None:
-    ax.annotate(_wrap(text, 17, 3), xy=(0, 0.5), xycoords="axes fraction", xytext=(-offset, 0),
-                textcoords="offset points", ha="right", va="center", fontsize=7.5, color=INK)
-
-
-def _grid_shape(n: int, ncols: int = 3) -> tuple[int, int]:
+def grid_shape(n: int, ncols: int = 3) -> tuple[int, int]:
+    """``(rows, columns)`` for ``n`` panels in rows of at most ``ncols``."""
     ncols = max(1, min(ncols, n))
     return int(np.ceil(n / ncols)), ncols
+
+
+def panel_grid(n: int, ncols: int, width: float, head: float, per_row: float, *, left: float, right: float,
+               top: float, bottom: float, wspace: float, hspace: float) -> tuple[Figure, list, int, float]:
+    """A figure of ``n`` panels in rows of at most ``ncols`` (``grid_shape``), the layout
+    every grid of the report and the calibration page shares.
+
+    The figure is ``width`` inches wide and ``head + per_row * rows`` high; ``left`` and
+    ``right`` are fractions of the width, ``top`` and ``bottom`` margins in inches,
+    ``wspace`` and ``hspace`` matplotlib's gaps between panels. Panels past ``n`` in the
+    last row are hidden. Returns ``(figure, the n axes in reading order, columns,
+    height)``."""
+    nrow, ncol = grid_shape(n, ncols)
+    height = head + per_row * nrow
+    fig = _new(width, height)
+    fig.subplots_adjust(left=left, right=right, top=1 - top / height, bottom=bottom / height,
+                        wspace=wspace, hspace=hspace)
+    axes = fig.subplots(nrow, ncol, squeeze=False)
+    for ax in axes.flat[n:]:
+        ax.set_visible(False)
+    return fig, list(axes.flat[:n]), ncol, height
+
+
+def axis_labels(fig: Figure, height: float, x: str, x_at: float, y: str | None = None) -> None:
+    """The grid's shared axis labels: ``x`` under the panels, ``x_at`` inches from the
+    bottom, and ``y`` (when given) upright at the left edge."""
+    fig.supxlabel(x, fontsize=7.5, y=x_at / height)
+    if y is not None:
+        fig.text(0.012, 0.5, y, rotation=90, va="center", fontsize=7.5)
 
 
 # --- 1. elpd differences -------------------------------------------------------------
@@ -370,7 +394,7 @@ STANDING_MARK = {
 }
 
 
-@_styled
+@styled
 def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
     """How far each ranked candidate predicts behind the best, one row each, best at
     the top: the difference in elpd as a marker whose shape and fill say the candidate's
@@ -466,20 +490,15 @@ def _statistic_panels(cands, stats, observed, draws_of, color, note_of, flag_of=
     statistic, the observed value as a thick ink line, a note (p-value or share inside
     the bounds) at the right of each row, bounds as dashed vermillion lines."""
     nc = len(cands)
-    nrow, ncol = _grid_shape(len(stats), ncols)
+    ncol = grid_shape(len(stats), ncols)[1]
     panel_h = 0.3 + 0.27 * nc
     width = 8.0 if ncol > 1 else 5.4
     left, right = 1.3, 0.8      # candidate labels; p-values or shares at the right of each row
-    height = 0.25 + (panel_h + 0.55) * nrow
-    fig = _new(width, height)
-    fig.subplots_adjust(left=left / width, right=1 - right / width, top=1 - 0.34 / height, bottom=0.42 / height,
-                        wspace=right / ((width - left - right * ncol) / ncol), hspace=0.55 / panel_h)
-    axes = fig.subplots(nrow, ncol, squeeze=False)
+    fig, panels, ncol, height = panel_grid(
+        len(stats), ncols, width, 0.25, panel_h + 0.55, left=left / width, right=1 - right / width, top=0.34,
+        bottom=0.42, wspace=right / ((width - left - right * ncol) / ncol), hspace=0.55 / panel_h)
     ypos = np.arange(nc)[::-1].astype(float)
-    for k, ax in enumerate(axes.flat):
-        if k >= len(stats):
-            ax.set_visible(False)
-            continue
+    for k, ax in enumerate(panels):
         stat = stats[k]
         obs = observed.get(stat, np.nan)
         points = tuple(points_of(stat)) if points_of else ()
@@ -520,7 +539,7 @@ def _statistic_panels(cands, stats, observed, draws_of, color, note_of, flag_of=
     return fig
 
 
-@_styled
+@styled
 def prior_grid(cands: Sequence[tuple[str, object]], statistics: Sequence[str],
                observed: dict[str, float]) -> Rendered | None:
     """One panel per test statistic; rows: candidates. The prior distribution of the
@@ -548,7 +567,7 @@ def prior_grid(cands: Sequence[tuple[str, object]], statistics: Sequence[str],
 WORST_SHOWN = 6
 
 
-@_styled
+@styled
 def pareto_k_worst(cands: Sequence[tuple[str, object, Sequence[int]]]) -> Rendered | None:
     """One small panel per candidate: its observations with the largest Pareto k, largest
     at the top, labelled by their row in the data file, as bars from 0 (blue up to the
@@ -560,20 +579,14 @@ def pareto_k_worst(cands: Sequence[tuple[str, object, Sequence[int]]]) -> Render
              if o is not None and (~np.isnan(np.asarray(o.pareto_k, dtype=float))).any()]
     if not cands:
         return None
-    nrow, ncol = _grid_shape(len(cands), 5)
     # an infinite k (the tail fit failed) is drawn to the panel's edge and labelled so;
     # the axis is set by the finite values
     finite = [k[np.isfinite(k)] for k in (np.asarray(o.pareto_k, dtype=float) for _, o, _ in cands)]
     kmax = max((float(f.max()) for f in finite if f.size), default=1.0)
     top = max(1.0, kmax + 0.08, max(o.k_threshold for _, o, _ in cands) + 0.1)
-    width, height = 10.2, 0.35 + 1.42 * nrow
-    fig = _new(width, height)
-    fig.subplots_adjust(left=0.055, right=0.99, top=1 - 0.3 / height, bottom=0.42 / height,
-                        wspace=0.55, hspace=0.62)
-    axes = fig.subplots(nrow, ncol, squeeze=False)
-    for ax in axes.flat[len(cands):]:
-        ax.set_visible(False)
-    for ax, (label, o, rows) in zip(axes.flat, cands):
+    fig, panels, _, height = panel_grid(len(cands), 5, 10.2, 0.35, 1.42, left=0.055, right=0.99, top=0.3,
+                                        bottom=0.42, wspace=0.55, hspace=0.62)
+    for ax, (label, o, rows) in zip(panels, cands):
         k = np.asarray(o.pareto_k, dtype=float)
         order = worst(k, WORST_SHOWN)
         y = np.arange(len(order))[::-1]
@@ -604,34 +617,7 @@ def pareto_k_worst(cands: Sequence[tuple[str, object, Sequence[int]]]) -> Render
 
 # --- 4. observed against replicated distributions ---------------------------------------------
 
-def silverman_bandwidth(y: np.ndarray) -> float:
-    """Rule-of-thumb kernel bandwidth 0.9 min(SD, IQR / 1.34) n^(-1/5) (Silverman 1986,
-    "Density Estimation for Statistics and Data Analysis", eq. 3.31)."""
-    y = np.asarray(y, dtype=float)
-    y = y[np.isfinite(y)]
-    sd = float(np.std(y, ddof=1)) if y.size > 1 else 0.0
-    q75, q25 = np.percentile(y, [75, 25]) if y.size else (0.0, 0.0)
-    spread = min(sd, (q75 - q25) / 1.34) or sd or 1.0
-    return 0.9 * spread * max(y.size, 1) ** -0.2
-
-
-def binned_density(rows: np.ndarray, lo: float, hi: float, bandwidth: float, m: int = 240) -> tuple[np.ndarray, np.ndarray]:
-    """Gaussian kernel density of each row on an m-point grid, by binning and smoothing
-    (values beyond the grid are left out of the counts but not of the total)."""
-    from scipy.ndimage import gaussian_filter1d
-
-    rows = np.atleast_2d(np.asarray(rows, dtype=float))
-    edges = np.linspace(lo, hi, m + 1)
-    step = edges[1] - edges[0]
-    counts = np.stack([np.histogram(r[np.isfinite(r)], bins=edges)[0] for r in rows]).astype(float)
-    sigma = bandwidth / step
-    if sigma >= 0.3:
-        counts = gaussian_filter1d(counts, sigma, axis=1, mode="constant", truncate=4.0)
-    total = np.maximum(np.isfinite(rows).sum(axis=1, keepdims=True), 1)
-    return (edges[:-1] + edges[1:]) / 2, counts / (total * step)
-
-
-@_styled
+@styled
 def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]], ncols: int = 3,
                            outcome: str = "outcome") -> Rendered | None:
     """One panel per candidate, same axes: at each point of the outcome, the central
@@ -640,6 +626,8 @@ def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]
     all smoothed with the same kernel bandwidth (Silverman's rule on the observed data).
     Where the observed density leaves the 95 % envelope by more than 1 % of the panel's
     height, a thick orange stroke runs along the bottom of the panel."""
+    from contenders.statistics.checks import binned_density, silverman_bandwidth
+
     cands = [(label, r) for label, r in cands if r is not None and np.size(r)]
     if not cands:
         return None
@@ -654,16 +642,9 @@ def replicate_density_grid(y: np.ndarray, cands: Sequence[tuple[str, np.ndarray]
         dens = binned_density(r, scale.lo, scale.hi, bw)[1]
         bands.append(np.quantile(dens, [0.025, 0.25, 0.5, 0.75, 0.975], axis=0))
     top = max(float(obs.max()), max(float(b[-1].max()) for b in bands)) * 1.1
-    nrow, ncol = _grid_shape(len(cands), ncols)
-    width, height = 7.6, 0.85 + 1.6 * nrow
-    fig = _new(width, height)
-    fig.subplots_adjust(left=0.04, right=0.99, top=1 - 0.62 / height, bottom=0.52 / height,
-                        wspace=0.1, hspace=0.45)
-    axes = fig.subplots(nrow, ncol, squeeze=False)
-    for k, ax in enumerate(axes.flat):
-        if k >= len(cands):
-            ax.set_visible(False)
-            continue
+    fig, panels, _, height = panel_grid(len(cands), ncols, 7.6, 0.85, 1.6, left=0.04, right=0.99, top=0.62,
+                                        bottom=0.52, wspace=0.1, hspace=0.45)
+    for k, ax in enumerate(panels):
         label, r = cands[k]
         lo, lo50, med, hi50, hi = bands[k]
         ax.fill_between(grid, lo, hi, color=_tint(REPLICATE, 0.35), linewidth=0,
@@ -713,7 +694,7 @@ class _PosteriorMarks:
         return next((r.p_value for r in c.rows if r.statistic == stat), np.nan)
 
 
-@_styled
+@styled
 def statistic_grid(cands: Sequence[tuple[str, object]], extreme: float) -> Rendered | None:
     """One panel per test statistic; rows: candidates. The statistic over replicated
     datasets as an interval (blue: 95 % thin, 50 % thick, white dot at the median), the
@@ -734,7 +715,7 @@ def statistic_grid(cands: Sequence[tuple[str, object]], extreme: float) -> Rende
 
 # --- 6. LOO-PIT ------------------------------------------------------------------------
 
-@_styled
+@styled
 def loo_pit_grid(cands: Sequence[tuple[str, object]], ncols: int = 2) -> Rendered | None:
     """One panel per candidate, same axes: the empirical distribution function of the
     LOO-PIT values minus the uniform one (thick ink), between the limits of the
@@ -764,16 +745,9 @@ def loo_pit_grid(cands: Sequence[tuple[str, object]], ncols: int = 2) -> Rendere
         curves.append((label, test, u, f - u, z, lower - z, upper - z, at - z, out, prob))
     lim = max(max(float(np.abs(d).max()), float(np.abs(lo).max()), float(np.abs(hi).max()))
               for _, _, _, d, _, lo, hi, *_ in curves) * 1.15
-    nrow, ncol = _grid_shape(len(cands), ncols)
-    width, height = 7.6, 0.85 + 1.7 * nrow
-    fig = _new(width, height)
-    fig.subplots_adjust(left=0.1, right=0.99, top=1 - 0.72 / height, bottom=0.62 / height,
-                        wspace=0.1, hspace=0.72)
-    axes = fig.subplots(nrow, ncol, squeeze=False)
-    for k, ax in enumerate(axes.flat):
-        if k >= len(curves):
-            ax.set_visible(False)
-            continue
+    fig, panels, ncol, height = panel_grid(len(curves), ncols, 7.6, 0.85, 1.7, left=0.1, right=0.99, top=0.72,
+                                           bottom=0.62, wspace=0.1, hspace=0.72)
+    for k, ax in enumerate(panels):
         label, test, u, d, z, lo, hi, at, out, prob = curves[k]
         band = f"{100 * prob:g} % band"
         ax.plot(z, lo, color=LIMIT, linestyle=(0, (3, 2)), linewidth=1.0, label=f"limits of the {band}")
@@ -794,18 +768,17 @@ def loo_pit_grid(cands: Sequence[tuple[str, object]], ncols: int = 2) -> Rendere
         ax.set_title(("◆ " if flagged else "") + plain(label, 60) + "\n" + state,
                      fontweight="bold" if flagged else "normal")
         if flagged:
-            _flag_frame(ax)
+            flag_frame(ax)
     _shared_legend(fig, x=0.55, top=1 - 0.04 / height)
-    fig.supxlabel("LOO-PIT value (low: the observation fell low in its leave-one-out predictive distribution)",
-                  fontsize=7.5, y=0.14 / height)
-    fig.text(0.012, 0.5, "ECDF minus uniform", rotation=90, va="center", fontsize=7.5)
+    axis_labels(fig, height, "LOO-PIT value (low: the observation fell low in its leave-one-out predictive "
+                             "distribution)", 0.14, "ECDF minus uniform")
     return render(fig, "LOO-PIT calibration per candidate: distribution function minus uniform between the "
                        "limits of a simultaneous band")
 
 
 # --- 6b. quantiles ---------------------------------------------------------------------
 
-@_styled
+@styled
 def quantile_grid(cands: Sequence[tuple[str, object]], outcome: str = "outcome", ncols: int = 2) -> Rendered | None:
     """One panel per candidate: at each quantile level (5 %, ..., 95 %) the replicated
     datasets' quantile minus the observed one, as a vertical interval (blue: 95 % thin,
@@ -826,16 +799,9 @@ def quantile_grid(cands: Sequence[tuple[str, object]], outcome: str = "outcome",
              if np.isfinite(q[key])]
         spans.append(max(v) if v else 1.0)
     shared = max(spans) <= 4 * max(min(spans), 1e-300)
-    nrow, ncol = _grid_shape(len(cands), ncols)
-    width, height = 7.6, 0.95 + 2.0 * nrow
-    fig = _new(width, height)
-    fig.subplots_adjust(left=0.1, right=0.99, top=1 - 0.72 / height, bottom=0.62 / height,
-                        wspace=0.1 if shared else 0.22, hspace=0.9)
-    axes = fig.subplots(nrow, ncol, squeeze=False)
-    for k, ax in enumerate(axes.flat):
-        if k >= len(cands):
-            ax.set_visible(False)
-            continue
+    fig, panels, ncol, height = panel_grid(len(cands), ncols, 7.6, 0.95, 2.0, left=0.1, right=0.99, top=0.72,
+                                           bottom=0.62, wspace=0.1 if shared else 0.22, hspace=0.9)
+    for k, ax in enumerate(panels):
         label, c = cands[k]
         rows = c.quantiles
         lim = (max(spans) if shared else spans[k]) * 1.12 or 1.0
@@ -867,8 +833,7 @@ def quantile_grid(cands: Sequence[tuple[str, object]], outcome: str = "outcome",
                     label="observed outside the 95 %")
             fig.legend(*ax.get_legend_handles_labels(), loc="upper center", ncol=3, fontsize=7.5,
                        handlelength=1.8, bbox_to_anchor=(0.55, 1 - 0.04 / height))
-    fig.supxlabel("quantile level (%)", fontsize=7.5, y=0.14 / height)
-    fig.text(0.012, 0.5, plain(f"replicated minus observed ({outcome})", 60), rotation=90, va="center", fontsize=7.5)
+    axis_labels(fig, height, "quantile level (%)", 0.14, plain(f"replicated minus observed ({outcome})", 60))
     return render(fig, "replicated minus observed quantile at each level from 5 % to 95 % per candidate")
 
 
@@ -883,7 +848,7 @@ def lineup_layout(n_replicates: int, seed: int, n_panels: int = 20) -> tuple[int
     return position, rows
 
 
-@_styled
+@styled
 def lineup(y: np.ndarray, y_rep: np.ndarray, seed: int, n_bins: int = 24) -> Lineup | None:
     """Twenty histograms with the same bins and the same vertical scale, drawn in one
     style: nineteen replicated datasets and the observed data at a seeded random place.
@@ -935,7 +900,7 @@ def _effect_range(values: Sequence[float]) -> tuple[float, float]:
     return lo - 0.06 * span, hi + 0.06 * span
 
 
-@_styled
+@styled
 def effects_across(effects: Sequence[object], units: dict[str, str]) -> Rendered | None:
     """One panel per effect. Each candidate is a row, ranked candidates first by elpd
     with their stacking weight: a dot at the mean of its replicated effect and a line
@@ -993,7 +958,7 @@ def effects_across(effects: Sequence[object], units: dict[str, str]) -> Rendered
         ax.set_title(("◆ " if flagged else "") + title + ("  (depends on the candidate)" if flagged else ""),
                      fontweight="bold" if flagged else "normal")
         if flagged:
-            _flag_frame(ax)
+            flag_frame(ax)
     axes[-1].set_xlabel("replicated effect (dot: mean; line: 95 % interval); thick black line: observed value",
                         fontsize=7.8)
     return render(fig, "each effect under each candidate with 95 % intervals, the stacking-weighted mix "

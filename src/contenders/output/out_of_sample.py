@@ -6,7 +6,7 @@ No matplotlib here (a rerun from the fit store must not load it)."""
 
 from __future__ import annotations
 
-from typing import Any, Sequence
+from typing import Sequence
 
 import numpy as np
 

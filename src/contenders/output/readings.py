@@ -16,7 +16,8 @@ then ``verdict`` into ``Comparison.lead`` and ``details``), ``word_health`` (a
 ``fit_with_health``), ``word_prior`` (a ``PriorTrial``'s ``message``) and
 ``compare_effects`` (each effect's ``title`` and ``sentence``), and, in ``pipeline/calibration.py``,
 ``word_calibration`` (a ``Calibration``'s ``reason``). An estimate's ``Method`` is
-worded where it is shown, by ``elpd_method``.
+worded where it is shown, by ``elpd_method``; a quick look's verdict starts with
+``QUICK_LOOK``.
 ``sensitivity_summary`` is the summary.json record with each reading's advice.
 """
 
@@ -108,6 +109,31 @@ def band_text(test: dict | None) -> str:
     if test["below"]:
         parts.append(("below it" if parts else f"below the {band}") + f" at LOO-PIT {spans(test['below'])}")
     return "; ".join(parts)
+
+
+def pit_shape_text(shape: Mapping | None) -> str:
+    """A plain reading of the LOO-PIT values' shape (``statistics.checks.pit_shape``):
+    too many or too few values in the outer tenths means predictive distributions too
+    narrow or too wide; a shifted mean means predictions run high or low. Empty when no
+    pattern is called (or below ten values)."""
+    if not shape:
+        return ""
+    tails, mean = shape["tails"], shape["mean"]
+    notes = []
+    if shape["spread"] == "narrow":
+        notes.append(f"{100 * tails:.0f} % of observations fall in the outer tenth of their predictive "
+                     "distributions (10 % expected): predictions are too narrow; consider a family with "
+                     "more spread or heavier tails")
+    elif shape["spread"] == "wide":
+        notes.append(f"only {100 * tails:.0f} % of observations fall in the outer tenth of their "
+                     "predictive distributions (10 % expected): predictions are too wide")
+    if shape["centre"] == "high":
+        notes.append(f"LOO-PIT values average {mean:.2f} (0.5 expected): observations tend to fall "
+                     "below their predictions, which run high")
+    elif shape["centre"] == "low":
+        notes.append(f"LOO-PIT values average {mean:.2f} (0.5 expected): observations tend to fall "
+                     "above their predictions, which run low")
+    return "; ".join(notes)
 
 
 def quantile_misses(rows: Sequence[dict]) -> list[str]:
@@ -431,6 +457,12 @@ def verdict(results: Sequence, comparison: Comparison, ppp_extreme: float = PPP_
         elif r.status == "skipped":
             details.append(f"{r.label} was skipped: {reason.rstrip('.')}.")
     return lead, details
+
+
+#: The first sentence of a quick look's verdict.
+QUICK_LOOK = ("Quick look, not a full result: {chains} chains x {draws} draws, no adapt_delta escalation, "
+              "R-hat below {rhat:g} and ESS of {ess:g} per chain accepted, PSIS-LOO without refits. Use it to see which candidates are "
+              "worth a full run; run again without --quick before drawing conclusions.")
 
 
 def compare_candidates(results: Sequence, seed: int = 0, ppp_extreme: float = PPP_EXTREME,

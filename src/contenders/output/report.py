@@ -33,7 +33,7 @@ from contenders.output import format as fmt
 from contenders.output.sensitivity import sensitivity_context
 from contenders.output import out_of_sample
 from contenders.statistics.coefficients import base_name, extremes, group_terms, sizes_of
-from contenders.output.tables import (MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, miss_cell, n, p_cell, pit_reading,
+from contenders.output.tables import (MILD, NEXT_STEP, STATUS_TEXT, Cell, Table, misfits, miss_cell, n, p_cell,
                      reading_cell)
 from contenders.statistics.features import StatisticRow, reading as check_reading, unit_of
 
@@ -76,7 +76,7 @@ def _umask() -> int:
     return mask
 
 
-def _write_atomic(path: Path, text: str) -> None:
+def write_atomic(path: Path, text: str) -> None:
     """Write text to a temporary file in the same folder, then rename it into place."""
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     try:
@@ -99,7 +99,9 @@ def _csv_text(table: Table) -> str:
     return buf.getvalue()
 
 
-def _environment() -> Environment:
+def environment() -> Environment:
+    """The Jinja2 environment of every page (the report, the calibration page, the batch's
+    index): templates from ``TEMPLATES``, escaped, strict about missing names."""
     return Environment(loader=FileSystemLoader(str(TEMPLATES)), autoescape=True,
                        undefined=StrictUndefined, trim_blocks=True, lstrip_blocks=True)
 
@@ -114,14 +116,14 @@ def write_report(result, out_dir: str | Path, command_line: str | Sequence[str] 
     out.mkdir(parents=True, exist_ok=True)
     ctx = build_context(result, command_line)
     for table in ctx["csv_tables"]:
-        _write_atomic(out / table.csv_name, _csv_text(table))
+        write_atomic(out / table.csv_name, _csv_text(table))
     if not result.config.conditions and (out / "grouped_checks.csv").exists():
         (out / "grouped_checks.csv").unlink()   # left by an earlier run with conditions
     if ctx["effects_table"] is None and (out / "effects.csv").exists():
         (out / "effects.csv").unlink()          # left by an earlier run with effects
-    html = _environment().get_template("report.html.j2").render(**ctx)
+    html = environment().get_template("report.html.j2").render(**ctx)
     path = out / "report.html"
-    _write_atomic(path, html)
+    write_atomic(path, html)
     return path
 
 
@@ -208,15 +210,15 @@ def _ranking(result, cands) -> Table:
               numeric=[True, False, False, True, True, True, True, False])
     for r in cands:
         row = rows.get(r.id)
+        misses = misfits(r.checks, extreme, result.config.relevant)
         notes = []
         if row:
             if row.tied_with:
                 notes.append("tied within Monte Carlo error with " + ", ".join(row.tied_with)
                              + "; the order among them would change with the seed, so they share rank "
                              + _rank(row))
-            missed = misfits(r.checks, extreme, result.config.relevant)
-            if missed:
-                notes.append("misses " + ", ".join(missed)
+            if misses:
+                notes.append("misses " + ", ".join(misses)
                              + ": treat its predictions of these with suspicion (see Predictive checks)")
             if r.prior is not None and r.prior.flagged:
                 notes.append(r.prior.message)
@@ -225,7 +227,6 @@ def _ranking(result, cands) -> Table:
         else:
             notes.append(r.reason.splitlines()[0] if r.reason else "")
             notes.append(NEXT_STEP.get(r.status, ""))
-        misses = misfits(r.checks, extreme, result.config.relevant)
         cls = {"ok": "ranked", "unhealthy": "unhealthy", "failed": "failed", "skipped": "skipped"}[r.status]
         t.add([
             n(_rank(row)),
@@ -263,8 +264,9 @@ def _certainty(result) -> Table:
         kind = st.kind if st else ("best" if row.rank == 1 else "uncertain")
         beyond = row.rank > 1 and row.elpd_diff > SE_FACTOR * row.elpd_diff_se   # the raw fact, for the CSV
         text = STANDING_TEXT[kind].format(small=fmt.num(SMALL_DIFFERENCE))
-        if st is not None and readings.standing_why(st):
-            text += f" ({readings.standing_why(st)})"
+        why = readings.standing_why(st) if st is not None else ""
+        if why:
+            text += f" ({why})"
         t.add([
             Cell(row.label, "name", cid),
             n(_with_se(row.elpd_loo, row.elpd_loo_se)),
@@ -487,8 +489,8 @@ def _check_table(checks, extreme: float, relevant=None) -> Table:
 
 def _pit_table(cands) -> Table:
     """The LOO-PIT band test per candidate: inside or not, where the ECDF leaves the band."""
-    from contenders.output.readings import band_text
-    from contenders.statistics.checks import leaves_band
+    from contenders.output.readings import band_text, pit_shape_text
+    from contenders.statistics.checks import leaves_band, pit_shape
 
     t = Table("loo_pit.csv", ["Candidate", "ECDF inside the band", "Where it leaves the band",
                               "Reading and what to do next"],
@@ -498,7 +500,7 @@ def _pit_table(cands) -> Table:
     for r in cands:
         test = r.checks.loo_pit_test
         flagged = leaves_band(test)
-        reading = pit_reading(r.checks.loo_pit)
+        reading = pit_shape_text(pit_shape(r.checks.loo_pit))
         if flagged and not reading:
             reading = "the LOO-PIT values depart from uniform; look at the figure for where"
         if not reading:
@@ -1029,6 +1031,7 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
     csv_tables = [t for t in csv_tables if t is not None]
 
     data_name = Path(str(cfg.data)).name if cfg.data else "data"
+    recovery_verdict = recovery_section.verdict(result)   # model recovery's sentences, after the verdict's
     return {
         "title": f"Candidate models for {d.outcome}",
         "data_name": data_name,
@@ -1045,10 +1048,10 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
             f"; {result.fits_reused} of {result.fits_reused + result.fits_sampled} fits loaded from the fit store"
             if getattr(result, "fits_reused", 0) else ""),
         "sections": SECTIONS + recovery_section.nav(result),
-        "verdict": list(result.comparison.verdict) + recovery_section.verdict(result),
+        "verdict": list(result.comparison.verdict) + recovery_verdict,
         "verdict_lead": list(getattr(result.comparison, "lead", result.comparison.verdict[:1])),
         "verdict_details": (list(getattr(result.comparison, "details", result.comparison.verdict[1:]))
-                            + recovery_section.verdict(result)),
+                            + recovery_verdict),
         "recovery": recovery_section.context(result),
         "preferred": preferred,
         "any_ranked": bool(rows),

@@ -11,7 +11,6 @@ import numpy as np
 from contenders.output.readings import CHECK_READINGS as READINGS, describe
 from contenders.statistics.features import named_misses, reading, unit_of
 from contenders.output import format as fmt
-from contenders.rules import SE_FACTOR
 
 STATUS_TEXT = {
     "ok": "✓ ranked",
@@ -123,36 +122,3 @@ def miss_cell(row) -> Cell:
     size = row.miss
     return n(fmt.miss(size, row.miss_share_sd, unit_of(row.statistic)),
              "muted" if size == 0 else "")
-
-
-def pit_reading(pit: np.ndarray) -> str:
-    """A plain reading of the LOO-PIT values' shape: too many or too few values in the
-    outer tenths means predictive distributions too narrow or too wide; a shifted mean
-    means predictions run high or low. The reading of these shapes follows Gneiting,
-    Balabdaoui & Raftery (2007), "Probabilistic forecasts, calibration and sharpness",
-    JRSS B 69(2), section 3; the two-standard-error rule for calling a pattern is common
-    practice, no source."""
-    pit = np.asarray(pit, dtype=float)
-    pit = pit[np.isfinite(pit)]
-    if pit.size < 10:
-        return ""
-    size = pit.size
-    tails = float(np.mean((pit < 0.05) | (pit > 0.95)))
-    tail_se = np.sqrt(0.1 * 0.9 / size)
-    mean_se = np.sqrt(1 / 12 / size)
-    notes = []
-    if tails > 0.1 + SE_FACTOR * tail_se:
-        notes.append(f"{100 * tails:.0f} % of observations fall in the outer tenth of their predictive "
-                     "distributions (10 % expected): predictions are too narrow; consider a family with "
-                     "more spread or heavier tails")
-    elif tails < 0.1 - SE_FACTOR * tail_se:
-        notes.append(f"only {100 * tails:.0f} % of observations fall in the outer tenth of their "
-                     "predictive distributions (10 % expected): predictions are too wide")
-    mean = float(pit.mean())
-    if mean < 0.5 - SE_FACTOR * mean_se:
-        notes.append(f"LOO-PIT values average {mean:.2f} (0.5 expected): observations tend to fall "
-                     "below their predictions, which run high")
-    elif mean > 0.5 + SE_FACTOR * mean_se:
-        notes.append(f"LOO-PIT values average {mean:.2f} (0.5 expected): observations tend to fall "
-                     "above their predictions, which run low")
-    return "; ".join(notes)

@@ -245,18 +245,14 @@ def _context(batch: BatchResult) -> dict[str, Any]:
 
 def write_index(batch: BatchResult) -> Path:
     """Write ``index.html``, ``index.csv`` and ``index.json`` into the batch's folder."""
-    from jinja2 import Environment, FileSystemLoader, StrictUndefined
-
-    from contenders.output.report import TEMPLATES, _write_atomic
+    from contenders.output.report import environment, write_atomic
 
     out = batch.out
-    _write_atomic(out / "index.json", json.dumps({"datasets": index_records(batch),
-                                                  "candidates": batch.candidates,
-                                                  "seconds": batch.seconds}, indent=2))
-    _write_atomic(out / "index.csv", _csv(batch))
-    env = Environment(loader=FileSystemLoader(str(TEMPLATES)), autoescape=True, undefined=StrictUndefined,
-                      trim_blocks=True, lstrip_blocks=True)
-    html = env.get_template("index.html.j2").render(**_context(batch))
+    write_atomic(out / "index.json", json.dumps({"datasets": index_records(batch),
+                                                 "candidates": batch.candidates,
+                                                 "seconds": batch.seconds}, indent=2))
+    write_atomic(out / "index.csv", _csv(batch))
+    html = environment().get_template("index.html.j2").render(**_context(batch))
     path = out / "index.html"
-    _write_atomic(path, html)
+    write_atomic(path, html)
     return path

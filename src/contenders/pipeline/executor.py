@@ -32,6 +32,13 @@ from contenders.machine import THIS_PROCESS, cores
 _REPORT: list[Callable[[str, str], None]] = [lambda _cid, _stage: None]
 
 
+def set_reporter(fn: Callable[[str, str], None]) -> Callable[[str, str], None]:
+    """Make ``fn(candidate_id, stage)`` what ``report`` calls in this process (a Dask
+    worker sends the events to its client); return the one it replaces."""
+    previous, _REPORT[0] = _REPORT[0], fn
+    return previous
+
+
 def report(candidate_id: str, stage: str) -> None:
     """Tell whoever started the run that ``candidate_id`` has reached ``stage``."""
     with contextlib.suppress(Exception):
@@ -46,7 +53,7 @@ def share(jobs: int, tasks: int) -> tuple[int, int]:
     return workers, max(1, jobs // workers)
 
 
-def _set_chain_workers(engine_name: str, n: int) -> int:
+def set_chain_workers(engine_name: str, n: int) -> int:
     """Limit the chains this process runs at once; return the previous limit (0: none).
     Both engines read this process's share (``machine.THIS_PROCESS``) at each sampling
     call, unless an engine was given a share of its own. ``engine_name`` is not needed
@@ -56,7 +63,7 @@ def _set_chain_workers(engine_name: str, n: int) -> int:
     return previous
 
 
-def _close_chain_pool() -> None:
+def close_chain_pool() -> None:
     """End this process's Stan chain processes (PyStan's), idle by now: the worker only
     exits between tasks."""
     import sys
@@ -92,7 +99,7 @@ def _worker_init(engine_name: str, chain_workers: int, events, slots=None) -> No
         os._exit(143)
 
     signal.signal(signal.SIGTERM, on_term)
-    _set_chain_workers(engine_name, chain_workers)
+    set_chain_workers(engine_name, chain_workers)
     if slots is not None:
         THIS_PROCESS.slots = slots
     # Stan's chain processes are children of this worker; a worker's exit waits for its
@@ -101,7 +108,7 @@ def _worker_init(engine_name: str, chain_workers: int, events, slots=None) -> No
     # priority 10, so this must come before them.
     from multiprocessing.util import Finalize
 
-    Finalize(None, _close_chain_pool, exitpriority=100)
+    Finalize(None, close_chain_pool, exitpriority=100)
     _REPORT[0] = lambda cid, stage: events.put((cid, stage))
 
 
@@ -131,7 +138,7 @@ class InlineExecutor(Executor):
 
     def submit(self, fn: Callable, *args: Any) -> cf.Future:
         if self._previous_chains is None:   # not before: a run without tasks loads no engine
-            self._previous_chains = _set_chain_workers(self._engine, self.chain_workers)
+            self._previous_chains = set_chain_workers(self._engine, self.chain_workers)
         future: cf.Future = cf.Future()
         try:
             future.set_result(fn(*args))
@@ -145,7 +152,7 @@ class InlineExecutor(Executor):
         _REPORT[0] = self._previous
         # this process goes on (a library caller, a test session): give back its cores
         if self._previous_chains is not None:
-            _set_chain_workers(self._engine, self._previous_chains or cores())
+            set_chain_workers(self._engine, self._previous_chains or cores())
 
 
 class ProcessExecutor(Executor):

@@ -34,7 +34,7 @@ from typing import Any, Callable
 
 from contenders.errors import UserError
 from contenders.machine import cores
-from contenders.pipeline.executor import _REPORT, Executor
+from contenders.pipeline.executor import Executor, set_reporter
 from contenders.pipeline.store import INDEX_NAME, FitStore
 
 #: Seconds to wait for the scheduler before giving up.
@@ -71,11 +71,11 @@ def _prepare_worker(engine_name: str, threads_on_host: dict[str, int]) -> None:
     multiprocessing stops its queues when the worker exits (as the local executor does)."""
     from multiprocessing.util import Finalize
 
-    from contenders.pipeline.executor import _close_chain_pool, _set_chain_workers
+    from contenders.pipeline.executor import close_chain_pool, set_chain_workers
 
-    _set_chain_workers(engine_name, _chain_workers(threads_on_host))
+    set_chain_workers(engine_name, _chain_workers(threads_on_host))
     if not _PREPARED[0]:
-        Finalize(None, _close_chain_pool, exitpriority=20)
+        Finalize(None, close_chain_pool, exitpriority=20)
         _PREPARED[0] = True
 
 
@@ -84,7 +84,7 @@ def _on_worker(fn: Callable, args: tuple, store_pos: int | None, engine_name: st
     """Runs on a Dask worker: ``fn(*args)`` with a worker-local fit store; returns
     ``(result, local store folder, {file name: bytes})``."""
     _prepare_worker(engine_name, threads_on_host)
-    _REPORT[0] = _report_to_client
+    set_reporter(_report_to_client)
     _LOCAL.topic = topic
     local = None
     try:

@@ -19,8 +19,8 @@ from typing import Any
 import numpy as np
 
 from contenders import __version__
-from contenders.output.readings import (REFITS_SKIPPED, compare_candidates, compare_effects, word_coefficients,
-                                        word_health, word_prior)
+from contenders.output.readings import (QUICK_LOOK, REFITS_SKIPPED, compare_candidates, compare_effects,
+                                        word_coefficients, word_health, word_prior)
 from contenders.statistics.compare import Plan, plan_estimate
 from contenders.inputs.candidates import Candidate, builtin_folder, check_against_data, check_outputs, discover, inputs_for, link_of
 from contenders.inputs.config import RunConfig
@@ -519,12 +519,6 @@ def _run(cfg: RunConfig, progress, say, start: float, design: Design, cands: lis
     )
     write_summary(result)
     return result, RunPrograms({c.id: c for c in cands}, programs)
-
-
-#: The first sentence of a quick look's verdict.
-QUICK_LOOK = ("Quick look, not a full result: {chains} chains x {draws} draws, no adapt_delta escalation, "
-              "R-hat below {rhat:g} and ESS of {ess:g} per chain accepted, PSIS-LOO without refits. Use it to see which candidates are "
-              "worth a full run; run again without --quick before drawing conclusions.")
 
 
 def _never_over_a_full_result(out: Path) -> None:

@@ -10,7 +10,7 @@ import numpy as np
 
 from contenders.statistics import features as st
 from contenders.statistics.censored_checks import censor_like_the_data, randomised_pit
-from contenders.rules import PIT_ALPHA, PPP_EXTREME
+from contenders.rules import PIT_ALPHA, PPP_EXTREME, SE_FACTOR
 
 
 @dataclass
@@ -220,6 +220,129 @@ def leaves_band(test: dict | None) -> bool:
         True only when the test ran and the ECDF left the band.
     """
     return bool(test) and test.get("inside") is False
+
+
+def pit_shape(pit: np.ndarray, se_factor: float = SE_FACTOR) -> dict | None:
+    """The shape of the LOO-PIT values: their share in the outer tenths and their mean.
+
+    Under calibration the values are uniform(0, 1): a share 0.1 of them falls below 0.05
+    or above 0.95 (binomial standard error ``sqrt(0.1 * 0.9 / n)``) and their mean is 0.5
+    (standard error ``sqrt(1 / 12 / n)``, the uniform law's variance being 1/12). Too
+    many values in the outer tenths means predictive distributions too narrow, too few
+    too wide; a mean below 0.5 means observations fall low in their predictive
+    distributions (predictions run high), above 0.5 the reverse. A pattern is called
+    when the value lies more than ``se_factor`` standard errors from its expectation.
+
+    Parameters
+    ----------
+    pit : numpy.ndarray
+        LOO-PIT values; non-finite ones are left out.
+    se_factor : float
+        How many standard errors call a pattern (``rules.SE_FACTOR``).
+
+    Returns
+    -------
+    dict or None
+        None below ten finite values; otherwise ``n``, ``tails`` (the share below 0.05
+        or above 0.95), ``tail_se``, ``mean``, ``mean_se``, ``spread`` (``"narrow"``,
+        ``"wide"`` or ``""``) and ``centre`` (``"high"`` when predictions run high,
+        ``"low"`` when they run low, or ``""``).
+
+    References
+    ----------
+    Gneiting, Balabdaoui & Raftery (2007), "Probabilistic forecasts, calibration and
+    sharpness", Journal of the Royal Statistical Society B 69(2), 243-268, section 3
+    (the shapes of a probability integral transform histogram); the two-standard-error
+    rule for calling a pattern is common practice, no source.
+    """
+    pit = np.asarray(pit, dtype=float)
+    pit = pit[np.isfinite(pit)]
+    if pit.size < 10:
+        return None
+    size = pit.size
+    tails = float(np.mean((pit < 0.05) | (pit > 0.95)))
+    tail_se = float(np.sqrt(0.1 * 0.9 / size))
+    mean_se = float(np.sqrt(1 / 12 / size))
+    mean = float(pit.mean())
+    spread = ("narrow" if tails > 0.1 + se_factor * tail_se
+              else "wide" if tails < 0.1 - se_factor * tail_se else "")
+    centre = ("high" if mean < 0.5 - se_factor * mean_se
+              else "low" if mean > 0.5 + se_factor * mean_se else "")
+    return {"n": int(size), "tails": tails, "tail_se": tail_se, "mean": mean, "mean_se": mean_se,
+            "spread": spread, "centre": centre}
+
+
+def silverman_bandwidth(y: np.ndarray) -> float:
+    """Rule-of-thumb bandwidth of a Gaussian kernel density estimate.
+
+    Parameters
+    ----------
+    y : numpy.ndarray
+        The values; non-finite ones are left out.
+
+    Returns
+    -------
+    float
+        ``0.9 min(SD, IQR / 1.34) n^(-1/5)``; the SD alone when the IQR is 0, and 1 when
+        both are 0.
+
+    References
+    ----------
+    Silverman (1986), "Density Estimation for Statistics and Data Analysis", Chapman &
+    Hall, equation 3.31.
+    """
+    y = np.asarray(y, dtype=float)
+    y = y[np.isfinite(y)]
+    sd = float(np.std(y, ddof=1)) if y.size > 1 else 0.0
+    q75, q25 = np.percentile(y, [75, 25]) if y.size else (0.0, 0.0)
+    spread = min(sd, (q75 - q25) / 1.34) or sd or 1.0
+    return 0.9 * spread * max(y.size, 1) ** -0.2
+
+
+def binned_density(rows: np.ndarray, lo: float, hi: float, bandwidth: float,
+                   m: int = 240) -> tuple[np.ndarray, np.ndarray]:
+    """Gaussian kernel density estimate of each row on an ``m``-point grid, by binning and
+    smoothing.
+
+    Parameters
+    ----------
+    rows : numpy.ndarray
+        One dataset per row (a single dataset may be 1-D); non-finite values are left out.
+    lo, hi : float
+        The grid's range.
+    bandwidth : float
+        The kernel's SD in the values' units (``silverman_bandwidth``); below 0.3 bins
+        the counts are not smoothed.
+    m : int
+        Number of grid points (bins).
+
+    Returns
+    -------
+    grid : numpy.ndarray
+        The bins' centres, shape ``(m,)``.
+    density : numpy.ndarray
+        Shape ``(rows, m)``: each row's density at the grid points. Values beyond the grid
+        are left out of the counts but not of the total, so a row integrates to the share
+        of its values inside ``[lo, hi]``.
+
+    References
+    ----------
+    Silverman (1986), "Density Estimation for Statistics and Data Analysis", Chapman &
+    Hall, section 3.5 (computing the estimate from binned data by a discrete
+    convolution; the section number from memory); the smoothing is SciPy's
+    ``ndimage.gaussian_filter1d``.
+    """
+    from scipy.ndimage import gaussian_filter1d
+
+    rows = np.atleast_2d(np.asarray(rows, dtype=float))
+    edges = np.linspace(lo, hi, m + 1)
+    step = edges[1] - edges[0]
+    counts = np.stack([np.histogram(r[np.isfinite(r)], bins=edges)[0] for r in rows]).astype(float)
+    sigma = bandwidth / step
+    if sigma >= 0.3:
+        counts = gaussian_filter1d(counts, sigma, axis=1, mode="constant", truncate=4.0)
+    total = np.maximum(np.isfinite(rows).sum(axis=1, keepdims=True), 1)
+    return (edges[:-1] + edges[1:]) / 2, counts / (total * step)
 
 
 #: Quantile levels of the quantile check: 5 %, 10 %, ..., 95 %.

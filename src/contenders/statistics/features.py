@@ -15,11 +15,10 @@ statistic (``[checks] relevant``), ``reading`` tells a miss that is only detecta
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Iterable, Mapping, Sequence
+from typing import Mapping, Sequence
 
 import numpy as np
 
-from contenders.inputs.config import DEFAULT_STATISTICS
 from contenders.rules import PPP_EXTREME
 
 #: Statistics measured in the outcome's own units (their miss is also given as a share
@@ -40,7 +39,7 @@ def unit_of(name: str) -> str:
     Parameters
     ----------
     name : str
-        A statistic name (``statistic_names``).
+        A statistic name (one of ``inputs.config.DEFAULT_STATISTICS`` or a ``threshold_name``).
 
     Returns
     -------
@@ -67,22 +66,6 @@ def threshold_name(t: float) -> str:
         ``"below_<t>"`` with ``t`` written by ``format(t, "g")``: ``below_300``.
     """
     return f"below_{t:g}"
-
-
-def statistic_names(thresholds: Iterable[float] = ()) -> tuple[str, ...]:
-    """Every statistic computed on a dataset, in the order of the tables.
-
-    Parameters
-    ----------
-    thresholds : iterable of float
-        Thresholds of the "share below" statistics (``[checks] thresholds``).
-
-    Returns
-    -------
-    tuple of str
-        ``DEFAULT_STATISTICS`` followed by one ``threshold_name`` per threshold.
-    """
-    return DEFAULT_STATISTICS + tuple(threshold_name(t) for t in thresholds)
 
 
 def compute(y: np.ndarray, thresholds: Sequence[float] = ()) -> dict[str, np.ndarray]:

@@ -75,7 +75,7 @@ class Health:
         return {row["parameter"]: row["mean"] for row in self.table}
 
 
-def _flatten(ds, var_names: Sequence[str]) -> dict[str, float]:
+def flatten(ds, var_names: Sequence[str]) -> dict[str, float]:
     out = {}
     for name in var_names:
         if name not in ds:
@@ -138,18 +138,18 @@ def diagnose(
     idata = draws.idata
     settings = draws.settings
     names = [p for p in parameters if p in idata.posterior]
-    rhat = _flatten(az.rhat(idata, var_names=names, method="rank"), names)
-    bulk = _flatten(az.ess(idata, var_names=names, method="bulk"), names)
-    tail = _flatten(az.ess(idata, var_names=names, method="tail"), names)
+    rhat = flatten(az.rhat(idata, var_names=names, method="rank"), names)
+    bulk = flatten(az.ess(idata, var_names=names, method="bulk"), names)
+    tail = flatten(az.ess(idata, var_names=names, method="tail"), names)
     post = idata.posterior
-    mean = _flatten(post[names].mean(dim=("chain", "draw")), names)
-    sd = _flatten(post[names].std(dim=("chain", "draw")), names)
-    q05 = _flatten(post[names].quantile(0.05, dim=("chain", "draw")), names)
-    q95 = _flatten(post[names].quantile(0.95, dim=("chain", "draw")), names)
+    mean = flatten(post[names].mean(dim=("chain", "draw")), names)
+    sd = flatten(post[names].std(dim=("chain", "draw")), names)
+    q05 = flatten(post[names].quantile(0.05, dim=("chain", "draw")), names)
+    q95 = flatten(post[names].quantile(0.95, dim=("chain", "draw")), names)
     # elements equal in every draw of every chain are fixed by the program's structure (the
     # first row of a Cholesky factor of a correlation matrix is 1, 0, ..., 0), not stuck:
     # chains stuck at their random initial values would differ from one another
-    spread = _flatten(post[names].max(dim=("chain", "draw")) - post[names].min(dim=("chain", "draw")), names)
+    spread = flatten(post[names].max(dim=("chain", "draw")) - post[names].min(dim=("chain", "draw")), names)
     for k in [k for k, v in spread.items() if v == 0 and post.sizes["chain"] * post.sizes["draw"] > 1]:
         for d in (rhat, bulk, tail):
             d.pop(k, None)

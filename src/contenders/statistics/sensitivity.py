@@ -39,7 +39,7 @@ from typing import Sequence
 
 import numpy as np
 
-from contenders.statistics.posterior import _flatten
+from contenders.statistics.posterior import flatten
 from contenders.rules import SENSITIVITY_DELTA, SENSITIVITY_K_RELIABLE, SENSITIVITY_THRESHOLD
 
 #: The paper's threshold for a sensitivity worth a look (``rules.SENSITIVITY_THRESHOLD``).
@@ -209,7 +209,7 @@ def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
         def sens(data) -> dict[str, dict[str, float]]:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                return {comp: _flatten(az.psens(data, component=comp, delta=DELTA), names)
+                return {comp: flatten(az.psens(data, component=comp, delta=DELTA), names)
                         for comp in ("prior", "likelihood")}
 
         pooled = sens(base)
