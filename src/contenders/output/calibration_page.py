@@ -15,7 +15,8 @@ import numpy as np
 
 from contenders.rules import CALIBRATION_ALPHA
 from contenders.records import CalibrationStudy
-from contenders.statistics.calibration import Calibration, calibration_dict, ecdf_band, ecdf_of_ranks
+from contenders.output.summary import calibration_dict
+from contenders.statistics.calibration import Calibration, ecdf_band, ecdf_of_ranks
 from contenders.output import figures
 from contenders.output import format as fmt
 from contenders.output.figures import BAND, INK, MUTED, axis_labels, flag_frame, panel_grid, plain, render, styled

@@ -8,19 +8,22 @@ import math
 import os
 from dataclasses import asdict
 from pathlib import Path
-from typing import Any, Mapping, Sequence
+from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
 import numpy as np
 
 from contenders import __version__
 from contenders.inputs.config import RunConfig
 from contenders.records import CandidateResult, RunResult
-from contenders.statistics.coefficients import summary as coefficients_summary
+from contenders.statistics.coefficients import Coefficients
 from contenders.statistics.compare import Comparison
-from contenders.statistics.effects import effects_summary
+from contenders.statistics.effects import EffectAcross
 from contenders.output.readings import elpd_method, sensitivity_summary, with_band_method
 from contenders.statistics.features import INTERVAL
 from contenders.rules import PPP_EXTREME
+
+if TYPE_CHECKING:   # SciPy must not load on a warm rerun, which writes summary.json
+    from contenders.statistics.calibration import Calibration
 
 
 def json_safe(value: Any) -> Any:
@@ -53,6 +56,78 @@ def ppc_entries(rows: Sequence, ppp_extreme: float = PPP_EXTREME,
                             "miss_share_sd": row.miss_share_sd,
                             "relevant": relevant.get(row.statistic), "reading": code}
             for row, code in zip(rows, read_rows(rows, ppp_extreme, relevant))}
+
+
+def coefficients_summary(c: Coefficients | None) -> dict[str, Any] | None:
+    """The JSON-ready record of the coefficients for ``summary.json``.
+
+    Parameters
+    ----------
+    c : Coefficients or None
+        The summary.
+
+    Returns
+    -------
+    dict or None
+        Link, coefficients, groups and slopes as plain numbers and text.
+    """
+    if c is None:
+        return None
+    return {
+        "link": c.link or None, "linear_predictor_sets": c.sets or None, "reason": c.reason or None,
+        "coefficients": [{"parameter": r["parameter"], "name": r["name"], "units": r["units"] or None,
+                          "internal_mean": r["internal"][0], "internal_q025": r["internal"][1],
+                          "internal_q975": r["internal"][2], "mean": r["value"][0], "q025": r["value"][1],
+                          "q975": r["value"][2]} for r in c.rows],
+        "groups": {"column": c.group_column, "parameter": c.group_parameter, "count": len(c.groups),
+                   "sd_parameter": c.group_sd_parameter or None,
+                   "sd": list(c.group_sd) if c.group_sd else None} if c.groups else None,
+        "slopes": [{"parameter": s["parameter"], "name": s["name"], "units": s["units"] or None,
+                    "sd_internal_mean": s["internal"][0], "sd_mean": s["per_unit"][0],
+                    "sd_q025": s["per_unit"][1], "sd_q975": s["per_unit"][2],
+                    "correlation_with_intercept_mean": s["correlation"][0],
+                    "correlation_q025": s["correlation"][1], "correlation_q975": s["correlation"][2]}
+                   for s in getattr(c, "slopes", [])],
+    }
+
+
+def effects_summary(effects: Sequence[EffectAcross]) -> list[dict]:
+    """The ``effects`` block of summary.json.
+
+    Parameters
+    ----------
+    effects : sequence of EffectAcross
+        Effects with their sentences written.
+
+    Returns
+    -------
+    list of dict
+        Plain numbers and text per effect, no draws.
+    """
+    return [{
+        "key": e.key, "kind": e.kind, "column": e.column, "level": e.level, "reference": e.reference,
+        "description": e.title, "observed": e.observed,
+        "candidates": [{k: v for k, v in row.items() if k != "draws"} for row in e.rows],
+        "stacking_combined": e.combined, "reading": e.reading, "sentence": e.sentence,
+    } for e in effects]
+
+
+def calibration_dict(cal: Calibration) -> dict:
+    """JSON-ready record of one candidate's calibration.
+
+    Parameters
+    ----------
+    cal : Calibration
+        The record.
+
+    Returns
+    -------
+    dict
+        Every field of ``cal`` and ``flagged``, the names of the flagged parameters.
+    """
+    d = asdict(cal)
+    d["flagged"] = [p.parameter for p in cal.flagged]
+    return d
 
 
 def candidate_summary(r: CandidateResult, comparison: Comparison, cfg: RunConfig | None = None) -> dict[str, Any]:

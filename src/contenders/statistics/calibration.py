@@ -31,7 +31,7 @@ is written from them by ``contenders.output.readings.calibration_reason``.
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 from typing import Sequence
 
 import numpy as np
@@ -381,19 +381,3 @@ def judge(cal: Calibration, theta: np.ndarray, kept_by_sim: dict[int, np.ndarray
     return cal
 
 
-def calibration_dict(cal: Calibration) -> dict:
-    """JSON-ready record of one candidate's calibration.
-
-    Parameters
-    ----------
-    cal : Calibration
-        The record.
-
-    Returns
-    -------
-    dict
-        Every field of ``cal`` and ``flagged``, the names of the flagged parameters.
-    """
-    d = asdict(cal)
-    d["flagged"] = [p.parameter for p in cal.flagged]
-    return d

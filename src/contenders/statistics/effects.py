@@ -494,22 +494,3 @@ def effects_across(results: Sequence, comparison_rows: Sequence, seed: int = 0,
     return out
 
 
-def effects_summary(effects: Sequence[EffectAcross]) -> list[dict]:
-    """The ``effects`` block of summary.json.
-
-    Parameters
-    ----------
-    effects : sequence of EffectAcross
-        Effects with their sentences written.
-
-    Returns
-    -------
-    list of dict
-        Plain numbers and text per effect, no draws.
-    """
-    return [{
-        "key": e.key, "kind": e.kind, "column": e.column, "level": e.level, "reference": e.reference,
-        "description": e.title, "observed": e.observed,
-        "candidates": [{k: v for k, v in row.items() if k != "draws"} for row in e.rows],
-        "stacking_combined": e.combined, "reading": e.reading, "sentence": e.sentence,
-    } for e in effects]
