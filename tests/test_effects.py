@@ -9,7 +9,8 @@ import pytest
 
 from contenders.output.readings import agreement, compare_effects, effect_title
 from contenders.statistics.compare import ComparisonRow, Method
-from contenders.statistics.effects import allocate, combine, effect_draws, level_differences, slope, summarise
+from contenders.statistics.effects import (EffectMix, EffectRow, allocate, combine, direction, effect_draws,
+                                          level_differences, slope, summarise)
 
 PSIS = Method("psis", k_threshold=0.7)   # plain PSIS-LOO, no refit
 
@@ -145,12 +146,12 @@ def test_combination_takes_exact_shares_and_repeats_with_the_seed():
 # --- reading agreement ------------------------------------------------------------------
 
 def _row(label, weight, lo, hi):
-    return {"label": label, "weight": weight, "lower": lo, "upper": hi, "mean": (lo + hi) / 2}
+    return EffectRow(label.lower(), label, "ok", None, weight, (lo + hi) / 2, lo, hi, direction(lo, hi), None, 100, 0)
 
 
 def test_agreement_readings():
     same = agreement("cue", [_row("A", 0.6, 20, 90), _row("B", 0.4, 40, 120)], 60.0,
-                     {"mean": 70.0, "lower": 25.0, "upper": 110.0})
+                     EffectMix(70.0, 25.0, 110.0, 400))
     assert same.reading == "agree" and "above zero" in same.sentence and "not proof" in same.sentence
     assert "25.0 to 110" in same.sentence
     # one interval above zero, the other includes it: the conclusion depends on the choice
@@ -184,9 +185,9 @@ def test_compare_effects_orders_by_elpd_and_combines_ranked_only(rng):
             for rank, cid, w in ((1, "fast", 0.8), (2, "slow", 0.2))]
     (e,) = compare_effects(results, rows, seed=3)
     assert e.title == "load: least-squares slope"          # written by the readings
-    assert [r["id"] for r in e.rows] == ["fast", "slow", "odd"]
-    assert e.rows[2]["weight"] is None
-    assert e.combined["n_draws"] == 400
+    assert [r.id for r in e.rows] == ["fast", "slow", "odd"]
+    assert e.rows[2].weight is None
+    assert e.combined.n_draws == 400
     # 320 of the combined draws come from "fast" and 80 from "slow" (0.8 and 0.2 of 400)
     from_fast = np.isin(e.combined_draws, fast[0].draws).sum()
     from_slow = np.isin(e.combined_draws, slow[0].draws).sum()
@@ -330,7 +331,7 @@ def test_summary_csv_and_report_carry_the_effects(known_effect, tmp_path):
         rows = list(csv.DictReader(fh))
     assert len(rows) == 2 * (len(ranking) + 1)            # per effect: each candidate and the mix
     mix = next(r for r in rows if r["id"] == "stacking_combined")
-    assert float(mix["replicated_mean"]) == pytest.approx(effects[0].combined["mean"])
+    assert float(mix["replicated_mean"]) == pytest.approx(effects[0].combined.mean)
 
     # without effects the section stays, says why, and a stale effects.csv is removed;
     # a failed candidate's effects are never shown

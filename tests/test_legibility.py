@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 
 from contenders.statistics.compare import ComparisonRow, Method
+from contenders.statistics.effects import EffectMix, EffectRow
 from contenders.output.report import _effects_table
 from contenders.output import figures
 from contenders.output.readings import describe
@@ -82,13 +83,12 @@ def test_svg_may_be_shown_larger_than_drawn():
 def _effect(key, title, observed, rows, reading="agree"):
     return SimpleNamespace(key=key, title=title, kind="difference", column="density", level="sparse",
                            reference="dense", observed=observed, rows=rows, reading=reading,
-                           combined={"mean": observed, "lower": observed - 1, "upper": observed + 1, "n_draws": 10})
+                           combined=EffectMix(observed, observed - 1, observed + 1, 10))
 
 
 def _row(cid, label, weight, mean, inside=True):
-    return {"id": cid, "label": label, "status": "ok" if weight is not None else "unhealthy", "rank": 1,
-            "weight": weight, "mean": mean, "lower": mean - 2, "upper": mean + 2, "direction": "above",
-            "observed_inside": inside, "n_draws": 10, "n_missing": 0}
+    return EffectRow(cid, label, "ok" if weight is not None else "unhealthy", 1, weight, mean, mean - 2, mean + 2,
+                     "above", inside, 10, 0)
 
 
 def test_effects_table_has_candidates_as_rows_and_effects_as_columns():

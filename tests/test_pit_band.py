@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 
 from contenders.output.readings import band_method, band_text, pit_shape_text, quantile_misses, with_band_method
-from contenders.statistics.checks import (QUANTILE_LEVELS, band_limits, leaves_band, pit_shape, quantile_checks,
-                                         uniformity_test)
+from contenders.statistics.checks import (QUANTILE_LEVELS, QuantileRow, band_limits, leaves_band, pit_shape,
+                                         quantile_checks, uniformity_test)
 
 
 @pytest.mark.parametrize("n, alpha", [(50, 0.05), (200, 0.01)])
@@ -85,15 +85,15 @@ def test_quantile_checks_match_numpy_quantile():
     y = rng.gamma(2.0, 150.0, size=250)
     y_rep = rng.gamma(2.0, 150.0, size=(400, 250))
     rows = quantile_checks(y, y_rep)
-    assert [r["level"] for r in rows] == list(QUANTILE_LEVELS) and len(rows) == 19
+    assert [r.level for r in rows] == list(QUANTILE_LEVELS) and len(rows) == 19
     for r in rows:
-        q = r["level"]
+        q = r.level
         reps = np.quantile(y_rep, q, axis=1)   # NumPy's default (linear) quantile
-        assert r["observed"] == pytest.approx(np.quantile(y, q), rel=1e-12)
-        assert r["median"] == pytest.approx(np.quantile(reps, 0.5), rel=1e-12)
-        assert (r["lower"], r["upper"]) == pytest.approx(tuple(np.quantile(reps, [0.025, 0.975])), rel=1e-12)
-        assert (r["lower50"], r["upper50"]) == pytest.approx(tuple(np.quantile(reps, [0.25, 0.75])), rel=1e-12)
-        assert r["share_above"] == pytest.approx(np.mean(reps >= np.quantile(y, q)))
+        assert r.observed == pytest.approx(np.quantile(y, q), rel=1e-12)
+        assert r.median == pytest.approx(np.quantile(reps, 0.5), rel=1e-12)
+        assert (r.lower, r.upper) == pytest.approx(tuple(np.quantile(reps, [0.025, 0.975])), rel=1e-12)
+        assert (r.lower50, r.upper50) == pytest.approx(tuple(np.quantile(reps, [0.25, 0.75])), rel=1e-12)
+        assert r.share_above == pytest.approx(np.mean(reps >= np.quantile(y, q)))
 
 
 def test_quantile_checks_name_the_tail_a_candidate_misses():
@@ -102,16 +102,17 @@ def test_quantile_checks_name_the_tail_a_candidate_misses():
     y_rep = rng.normal(y.mean(), y.std(), size=(300, 400))          # symmetric replicates
     rows = quantile_checks(y, y_rep)
     top = rows[-1]
-    assert top["level"] == 0.95 and top["miss"] == "replicates low"   # the replicates' 95 % is too low
+    assert top.level == 0.95 and top.miss == "replicates low"   # the replicates' 95 % is too low
     # a normal with the same mean and SD reaches further down than the lognormal: its 5 %
     # quantile is too low as well, while the body (the median) lies too high
-    assert rows[0]["miss"] == "replicates low"
-    assert rows[9]["level"] == 0.5 and rows[9]["miss"] == "replicates high"
+    assert rows[0].miss == "replicates low"
+    assert rows[9].level == 0.5 and rows[9].miss == "replicates high"
     misses = quantile_misses(rows)
     assert misses[0].startswith("5") and misses[0].endswith("(replicates low)")
     assert any(m.endswith("(replicates high)") for m in misses)
     assert misses[-1].endswith("95 % (replicates low)")
-    assert quantile_misses([{"level": 0.5, "miss": ""}]) == []
+    inside = QuantileRow(0.5, 1.0, 1.0, 0.9, 1.1, 0.95, 1.05, 0.5, "")
+    assert quantile_misses([inside]) == []
 
 
 def test_a_loo_pit_outside_the_band_is_named_in_the_misses():

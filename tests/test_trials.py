@@ -105,7 +105,7 @@ def test_loo_pit_of_true_family_looks_uniform(known_run):
     assert ln.checks.loo_pit_test["band"] == 0.99    # the default pit_alpha 0.01
     # the quantile checks of the true family miss at most a level or two by chance
     assert len(ln.checks.quantiles) == 19
-    assert sum(bool(q["miss"]) for q in ln.checks.quantiles) <= 2
+    assert sum(bool(q.miss) for q in ln.checks.quantiles) <= 2
 
 
 def test_summary_json_has_the_promised_fields(known_run):

@@ -795,8 +795,7 @@ def quantile_grid(cands: Sequence[tuple[str, object]], outcome: str = "outcome",
         return None
     spans = []
     for _, c in cands:
-        v = [abs(q[key] - q["observed"]) for q in c.quantiles for key in ("lower", "upper")
-             if np.isfinite(q[key])]
+        v = [abs(end - q.observed) for q in c.quantiles for end in (q.lower, q.upper) if np.isfinite(end)]
         spans.append(max(v) if v else 1.0)
     shared = max(spans) <= 4 * max(min(spans), 1e-300)
     fig, panels, ncol, height = panel_grid(len(cands), ncols, 7.6, 0.95, 2.0, left=0.1, right=0.99, top=0.72,
@@ -812,11 +811,11 @@ def quantile_grid(cands: Sequence[tuple[str, object]], outcome: str = "outcome",
                     color="#555555")
         ax.axhline(0, color=INK, linewidth=2.2, zorder=3, label="observed quantile")
         for q in rows:
-            if not np.isfinite(q["median"]):
+            if not np.isfinite(q.median):
                 continue
-            o = q["observed"]
-            _interval(ax, 100 * q["level"], q["lower"] - o, q["lower50"] - o, q["median"] - o, q["upper50"] - o,
-                      q["upper"] - o, POSTERIOR, vertical=True, flagged=bool(q["miss"]))
+            o = q.observed
+            _interval(ax, 100 * q.level, q.lower - o, q.lower50 - o, q.median - o, q.upper50 - o,
+                      q.upper - o, POSTERIOR, vertical=True, flagged=bool(q.miss))
         ax.set_xlim(0, 100)
         ax.set_ylim(-lim, lim * 1.3)   # room for the zone names above the intervals
         ax.set_xticks([5, 25, 50, 75, 95], ["5", "25", "50", "75", "95"])
@@ -925,21 +924,21 @@ def effects_across(effects: Sequence[object], units: dict[str, str]) -> Rendered
         labels = []
         ends = [e.observed]
         for y, row in zip(ypos, rows):
-            ranked = row["weight"] is not None
-            if np.isfinite(row["lower"]):
-                ends += [row["lower"], row["upper"]]
-                ax.hlines(y, row["lower"], row["upper"], color=POSTERIOR if ranked else MUTED,
+            ranked = row.weight is not None
+            if np.isfinite(row.lower):
+                ends += [row.lower, row.upper]
+                ax.hlines(y, row.lower, row.upper, color=POSTERIOR if ranked else MUTED,
                           linewidth=1.8 if ranked else 1.2, linestyles="solid" if ranked else (0, (1, 1.5)))
-                ax.plot([row["mean"]], [y], marker="o", markersize=4.2, color=INK if ranked else MUTED,
+                ax.plot([row.mean], [y], marker="o", markersize=4.2, color=INK if ranked else MUTED,
                         markerfacecolor=INK if ranked else "white", zorder=3)
-            head = f"{row['rank']}. " if ranked else ""
-            tail = f"  w {row['weight']:.2f}" if ranked else "  not ranked"
-            labels.append(plain(head + str(row["label"]), 60) + tail)
+            head = f"{row.rank}. " if ranked else ""
+            tail = f"  w {row.weight:.2f}" if ranked else "  not ranked"
+            labels.append(plain(head + str(row.label), 60) + tail)
         if e.combined:
             c = e.combined
-            ends += [c["lower"], c["upper"]]
-            ax.hlines(ypos[-1], c["lower"], c["upper"], color=INK, linewidth=3.0)
-            ax.plot([c["mean"]], [ypos[-1]], marker="D", markersize=5.2, color=INK, markerfacecolor="white",
+            ends += [c.lower, c.upper]
+            ax.hlines(ypos[-1], c.lower, c.upper, color=INK, linewidth=3.0)
+            ax.plot([c.mean], [ypos[-1]], marker="D", markersize=5.2, color=INK, markerfacecolor="white",
                     markeredgewidth=1.4, zorder=4)
             labels.append("stacking-weighted mix")
         lo, hi = _effect_range(ends)

@@ -136,17 +136,17 @@ def pit_shape_text(shape: Mapping | None) -> str:
     return "; ".join(notes)
 
 
-def quantile_misses(rows: Sequence[dict]) -> list[str]:
+def quantile_misses(rows: Sequence) -> list[str]:
     """Where in the distribution the replicated quantiles miss the observed ones, as
     short phrases: "5–15 % (replicates high)"."""
     out, run = [], []
-    for row in list(rows) + [{"miss": None, "level": None}]:
-        if run and row["miss"] != run[-1]["miss"]:
-            a, b = run[0]["level"], run[-1]["level"]
+    for miss, row in [(row.miss, row) for row in rows] + [(None, None)]:
+        if run and miss != run[-1].miss:
+            a, b = run[0].level, run[-1].level
             span = f"{100 * a:.0f} %" if a == b else f"{100 * a:.0f}–{100 * b:.0f} %"
-            out.append(f"{span} ({run[0]['miss']})")
+            out.append(f"{span} ({run[0].miss})")
             run = []
-        if row["miss"]:
+        if miss:
             run.append(row)
     return out
 
@@ -769,7 +769,7 @@ class Agreement:
     sentence: str
 
 
-def agreement(title: str, rows: Sequence[Mapping], observed: float, combined: Mapping | None = None,
+def agreement(title: str, rows: Sequence, observed: float, combined=None,
               min_weight: float = MIN_WEIGHT) -> Agreement:
     """Whether the healthy candidates with non-negligible weight reach the same
     conclusion about one effect (``statistics.effects.agreement_reading``), as a cautious
@@ -793,14 +793,14 @@ def agreement(title: str, rows: Sequence[Mapping], observed: float, combined: Ma
     if len(use) == 1:
         r = use[0]
         return Agreement("single", (
-            f"{title}: only {r['label']} carries a stacking weight of at least {min_weight:g} "
-            f"({r['weight']:.2f}); its 95 % interval is {_iv(r['lower'], r['upper'])} "
-            f"({direction(r['lower'], r['upper'])}). With a single candidate in play there is no "
+            f"{title}: only {r.label} carries a stacking weight of at least {min_weight:g} "
+            f"({r.weight:.2f}); its 95 % interval is {_iv(r.lower, r.upper)} "
+            f"({direction(r.lower, r.upper)}). With a single candidate in play there is no "
             "agreement to check; look at the other candidates' intervals before relying on it." + miss))
-    names = ", ".join(f"{r['label']} ({r['weight']:.2f})" for r in use)
+    names = ", ".join(f"{r.label} ({r.weight:.2f})" for r in use)
     sides = set(facts["sides"])
-    comb = (f" (stacking-weighted combination {_g(combined['mean'])}, 95 % interval "
-            f"{_iv(combined['lower'], combined['upper'])})") if combined else ""
+    comb = (f" (stacking-weighted combination {_g(combined.mean)}, 95 % interval "
+            f"{_iv(combined.lower, combined.upper)})") if combined else ""
     if facts["reading"] == "agree":
         side = sides.pop()
         if side == "includes zero":
@@ -815,7 +815,7 @@ def agreement(title: str, rows: Sequence[Mapping], observed: float, combined: Ma
         return Agreement("agree", (
             f"{title}: the {len(use)} candidates with stacking weight of at least {min_weight:g} "
             f"({names}) {what}, and the intervals overlap{comb}. {after}" + miss))
-    parts = "; ".join(f"{r['label']} {_iv(r['lower'], r['upper'])} ({direction(r['lower'], r['upper'])})"
+    parts = "; ".join(f"{r.label} {_iv(r.lower, r.upper)} ({direction(r.lower, r.upper)})"
                       for r in use)
     why = []
     if len(sides) > 1:

@@ -538,8 +538,8 @@ def _quantile_table(cands) -> Table:
         # listed, not flagged: 19 pointwise intervals miss now and then by chance
         t.add([Cell(r.label, "name", r.id), Cell("; ".join(misses) if misses else "none of the 19 levels", "wrap")])
         for q in rows:
-            t.csv_rows.append([r.id, r.label, q["level"], q["observed"], q["median"], q["lower"], q["upper"],
-                               q["lower50"], q["upper50"], q["share_above"], q["miss"]])
+            t.csv_rows.append([r.id, r.label, q.level, q.observed, q.median, q.lower, q.upper,
+                               q.lower50, q.upper50, q.share_above, q.miss])
     return t
 
 
@@ -567,8 +567,8 @@ def _effects_table(result, effects) -> Table:
     heads: list[tuple[str, str, str, Any]] = []   # id, label, status, weight
     for e in effects:
         for row in e.rows:
-            if row["id"] not in [h[0] for h in heads]:
-                heads.append((row["id"], row["label"], row["status"], row["weight"]))
+            if row.id not in [h[0] for h in heads]:
+                heads.append((row.id, row.label, row.status, row.weight))
     t = Table("effects.csv",
               ["Candidate", "Stacking weight"] + [f"{e.title} ({_effect_units(e, outcome)})" for e in effects],
               csv_headers=["effect", "description", "kind", "column", "level", "reference", "units", "id",
@@ -579,8 +579,8 @@ def _effects_table(result, effects) -> Table:
     digits = []
     for e in effects:
         c = e.combined
-        same = [e.observed] + [row[k] for row in e.rows if row["n_draws"] for k in ("mean", "lower", "upper")]
-        same += [c["mean"], c["lower"], c["upper"]] if c else []
+        same = [e.observed] + [v for row in e.rows if row.n_draws for v in (row.mean, row.lower, row.upper)]
+        same += [c.mean, c.lower, c.upper] if c else []
         digits.append(fmt.decimals(same))   # one effect per column: its values share one count of decimals
     t.add([Cell("Observed in the data"), n("")] + [n(fmt.fixed(e.observed, d)) for e, d in zip(effects, digits)],
           cls="observed")
@@ -588,16 +588,16 @@ def _effects_table(result, effects) -> Table:
         ranked = weight is not None
         cells = [Cell(label, "name", cid), n(fmt.fixed(weight, 2) if ranked else "not ranked", "" if ranked else "muted")]
         for e, d in zip(effects, digits):
-            row = {r["id"]: r for r in e.rows}.get(cid)
-            if row is None or not row["n_draws"]:
+            row = {r.id: r for r in e.rows}.get(cid)
+            if row is None or not row.n_draws:
                 cells.append(n(fmt.MISSING, "muted"))
                 continue
-            outside = row["observed_inside"] is False
-            cells.append(n(("◇ " if outside else "") + _estimate(row["mean"], row["lower"], row["upper"], d),
+            outside = row.observed_inside is False
+            cells.append(n(("◇ " if outside else "") + _estimate(row.mean, row.lower, row.upper, d),
                            ("watch " if outside else "") + ("" if ranked else "muted")))
         t.add(cells, cls="" if ranked else "muted")
     t.add([Cell("Stacking-weighted mix"), n("")]
-          + [n(_estimate(e.combined["mean"], e.combined["lower"], e.combined["upper"], d) if e.combined
+          + [n(_estimate(e.combined.mean, e.combined.lower, e.combined.upper, d) if e.combined
                else fmt.MISSING) for e, d in zip(effects, digits)], cls="combined")
     t.add([Cell("Do the weighted candidates agree?"), n("")]
           + [Cell(READING_TEXT[e.reading], "flag" if e.reading == "depends" else "") for e in effects],
@@ -607,14 +607,14 @@ def _effects_table(result, effects) -> Table:
         units = _effect_units(e, outcome)
         common = [e.key, e.title, e.kind, e.column, e.level, e.reference, units]
         for row in e.rows:
-            t.csv_rows.append(common + [row["id"], row["label"], row["status"], row["rank"], row["weight"],
-                                        e.observed, row["mean"], row["lower"], row["upper"], row["direction"],
-                                        row["observed_inside"], row["n_draws"], row["n_missing"], e.reading])
+            t.csv_rows.append(common + [row.id, row.label, row.status, row.rank, row.weight,
+                                        e.observed, row.mean, row.lower, row.upper, row.direction,
+                                        row.observed_inside, row.n_draws, row.n_missing, e.reading])
         if c:
             t.csv_rows.append(common + ["stacking_combined", "stacking-weighted mix", None, None, None,
-                                        e.observed, c["mean"], c["lower"], c["upper"],
-                                        direction(c["lower"], c["upper"]),
-                                        bool(c["lower"] <= e.observed <= c["upper"]), c["n_draws"], 0,
+                                        e.observed, c.mean, c.lower, c.upper,
+                                        direction(c.lower, c.upper),
+                                        bool(c.lower <= e.observed <= c.upper), c.n_draws, 0,
                                         e.reading])
     return t
 

@@ -107,8 +107,8 @@ def effects_summary(effects: Sequence[EffectAcross]) -> list[dict]:
     return [{
         "key": e.key, "kind": e.kind, "column": e.column, "level": e.level, "reference": e.reference,
         "description": e.title, "observed": e.observed,
-        "candidates": [{k: v for k, v in row.items() if k != "draws"} for row in e.rows],
-        "stacking_combined": e.combined, "reading": e.reading, "sentence": e.sentence,
+        "candidates": [{k: v for k, v in asdict(row).items() if k != "draws"} for row in e.rows],
+        "stacking_combined": asdict(e.combined) if e.combined else None, "reading": e.reading, "sentence": e.sentence,
     } for e in effects]
 
 
@@ -152,7 +152,7 @@ def candidate_summary(r: CandidateResult, comparison: Comparison, cfg: RunConfig
         "ppc_grouped": {cond: {lev: ppc_entries(rows, extreme, relevant) for lev, rows in levels.items()}
                         for cond, levels in k.grouped.items()} if k else {},
         "loo_pit_test": with_band_method(k.loo_pit_test) if k else None,
-        "quantiles": k.quantiles if k else [],
+        "quantiles": [asdict(q) for q in k.quantiles] if k else [],
         "elpd_loo": o.elpd_loo if o else None,
         "elpd_loo_se": o.elpd_loo_se if o else None,
         "p_loo": o.p_loo if o else None,

@@ -21,7 +21,7 @@ class PredictiveChecks:
     loo_pit_test: dict                                # uniformity_test: inside, band, where it leaves
     extreme: list[str]                                # statistics with p beyond ppp_extreme (detectable)
     stat_draws: dict[str, np.ndarray] = field(repr=False, default_factory=dict)
-    quantiles: list[dict] = field(default_factory=list)   # quantile_checks: one row per level
+    quantiles: list[QuantileRow] = field(default_factory=list)   # quantile_checks: one row per level
 
 
 def thin_draws(n_total: int, n_keep: int) -> np.ndarray:
@@ -349,8 +349,24 @@ def binned_density(rows: np.ndarray, lo: float, hi: float, bandwidth: float,
 QUANTILE_LEVELS = tuple(round(0.05 * k, 2) for k in range(1, 20))
 
 
+@dataclass
+class QuantileRow:
+    """One quantile level: the observed quantile against the same quantile of each
+    replicated dataset (``quantile_checks``); ``summary.json`` keeps these names."""
+
+    level: float
+    observed: float
+    median: float                 # of the replicated quantiles
+    lower: float                  # their central interval (95 % by default)
+    upper: float
+    lower50: float                # their central 50 % interval
+    upper50: float
+    share_above: float            # share of replicated datasets whose quantile is at or above the observed
+    miss: str                     # "replicates low", "replicates high" or "" (inside the interval)
+
+
 def quantile_checks(y: np.ndarray, y_rep: np.ndarray, levels: Sequence[float] = QUANTILE_LEVELS,
-                    interval: float = 0.95) -> list[dict]:
+                    interval: float = 0.95) -> list[QuantileRow]:
     """Observed quantiles against the same quantile of each replicated dataset.
 
     Parameters
@@ -366,14 +382,10 @@ def quantile_checks(y: np.ndarray, y_rep: np.ndarray, levels: Sequence[float] = 
 
     Returns
     -------
-    list of dict
-        One row per level: ``level``, ``observed``, the replicated quantiles' ``median``,
-        their central ``interval`` (``lower``, ``upper``) and 50 % interval
-        (``lower50``, ``upper50``), ``share_above`` (share of replicated datasets whose
-        quantile is at or above the observed one) and ``miss``: ``"replicates low"`` or
-        ``"replicates high"`` (fixed codes, also shown as they are) when the observed
-        quantile lies outside the interval, else ``""``. NumPy's default (linear)
-        quantile throughout.
+    list of QuantileRow
+        One row per level; ``miss`` is ``"replicates low"`` or ``"replicates high"``
+        (fixed codes, also shown as they are) when the observed quantile lies outside
+        the ``interval``, else ``""``. NumPy's default (linear) quantile throughout.
     """
     y = np.asarray(y, dtype=float)
     y = y[np.isfinite(y)]
@@ -386,15 +398,13 @@ def quantile_checks(y: np.ndarray, y_rep: np.ndarray, levels: Sequence[float] = 
     for k, q in enumerate(lv):
         r = reps[k][np.isfinite(reps[k])]
         if r.size == 0:
-            rows.append({"level": float(q), "observed": float(obs[k]), "median": np.nan, "lower": np.nan,
-                         "upper": np.nan, "lower50": np.nan, "upper50": np.nan, "share_above": np.nan,
-                         "miss": ""})
+            nan = float("nan")
+            rows.append(QuantileRow(float(q), float(obs[k]), nan, nan, nan, nan, nan, nan, ""))
             continue
         lo, lo50, med, hi50, hi = np.quantile(r, [tail, 0.25, 0.5, 0.75, 1 - tail])
         miss = "replicates high" if obs[k] < lo else "replicates low" if obs[k] > hi else ""
-        rows.append({"level": float(q), "observed": float(obs[k]), "median": float(med),
-                     "lower": float(lo), "upper": float(hi), "lower50": float(lo50), "upper50": float(hi50),
-                     "share_above": float(np.mean(r >= obs[k])), "miss": miss})
+        rows.append(QuantileRow(float(q), float(obs[k]), float(med), float(lo), float(hi), float(lo50),
+                                float(hi50), float(np.mean(r >= obs[k])), miss))
     return rows
 
 

@@ -368,7 +368,7 @@ def direction(lower: float, upper: float) -> str:
     return "includes zero"
 
 
-def agreement_reading(rows: Sequence[Mapping], observed: float, min_weight: float = MIN_WEIGHT) -> dict:
+def agreement_reading(rows: Sequence[EffectRow], observed: float, min_weight: float = MIN_WEIGHT) -> dict:
     """Whether the healthy candidates with non-negligible weight reach the same
     conclusion about one effect.
 
@@ -379,9 +379,9 @@ def agreement_reading(rows: Sequence[Mapping], observed: float, min_weight: floa
 
     Parameters
     ----------
-    rows : sequence of mapping
-        Per candidate: ``label``, ``weight`` (stacking weight; None when not ranked),
-        ``lower`` and ``upper`` (the 95 % interval of its replicated effect).
+    rows : sequence of EffectRow
+        Per candidate; ``label``, ``weight`` (stacking weight; None when not ranked),
+        ``lower`` and ``upper`` (the 95 % interval of its replicated effect) are read.
     observed : float
         The effect in the observed data.
     min_weight : float
@@ -396,11 +396,11 @@ def agreement_reading(rows: Sequence[Mapping], observed: float, min_weight: floa
         ``overlap`` (every pair of intervals overlaps). The sentence is
         ``contenders.output.readings.agreement``.
     """
-    use = [r for r in rows if r.get("weight") is not None and r["weight"] >= min_weight
-           and np.isfinite(r["lower"]) and np.isfinite(r["upper"])]
-    misses = [r["label"] for r in use if not r["lower"] <= observed <= r["upper"]]
-    sides = [direction(r["lower"], r["upper"]) for r in use]
-    overlap = bool(use) and max(r["lower"] for r in use) <= min(r["upper"] for r in use)
+    use = [r for r in rows if r.weight is not None and r.weight >= min_weight
+           and np.isfinite(r.lower) and np.isfinite(r.upper)]
+    misses = [r.label for r in use if not r.lower <= observed <= r.upper]
+    sides = [direction(r.lower, r.upper) for r in use]
+    overlap = bool(use) and max(r.lower for r in use) <= min(r.upper for r in use)
     if not use:
         reading = "none"
     elif len(use) == 1:
@@ -410,6 +410,36 @@ def agreement_reading(rows: Sequence[Mapping], observed: float, min_weight: floa
     else:
         reading = "depends"
     return {"reading": reading, "use": use, "misses": misses, "sides": sides, "overlap": overlap}
+
+
+@dataclass
+class EffectRow:
+    """One effect under one candidate (``effects_across``); ``summary.json`` keeps these
+    names, without the draws."""
+
+    id: str
+    label: str
+    status: str
+    rank: int | None                 # None when not ranked
+    weight: float | None             # stacking weight; None when not ranked
+    mean: float                      # of the replicated effect
+    lower: float                     # its 95 % interval
+    upper: float
+    direction: str | None            # ``direction`` of the interval; None without draws
+    observed_inside: bool | None     # the observed effect lies inside the interval
+    n_draws: int
+    n_missing: int
+    draws: np.ndarray = field(repr=False, default_factory=lambda: np.zeros(0))
+
+
+@dataclass
+class EffectMix:
+    """The stacking-weighted mixture of the ranked candidates' replicated effects."""
+
+    mean: float
+    lower: float                     # 95 % interval
+    upper: float
+    n_draws: int
 
 
 @dataclass
@@ -423,8 +453,8 @@ class EffectAcross:
     reference: str | None
     title: str                       # in words: contenders.output.readings.compare_effects fills it
     observed: float
-    rows: list[dict]                 # per candidate, ranked first by elpd; see compare_effects
-    combined: dict | None            # mean, lower, upper, n_draws of the weighted mixture
+    rows: list[EffectRow]            # per candidate, ranked first by elpd; see compare_effects
+    combined: EffectMix | None       # the stacking-weighted mixture
     reading: str                     # agree | depends | single | none
     sentence: str                    # in words: contenders.output.readings.compare_effects fills it
     combined_draws: np.ndarray = field(repr=False, default_factory=lambda: np.zeros(0))
@@ -475,11 +505,10 @@ def effects_across(results: Sequence, comparison_rows: Sequence, seed: int = 0,
                 continue
             row = ranked.get(r.id)
             w = row.stacking_weight if row else None
-            rows.append({"id": r.id, "label": r.label, "status": r.status, "rank": row.rank if row else None,
-                         "weight": w, "mean": e.mean, "lower": e.lower, "upper": e.upper,
-                         "direction": direction(e.lower, e.upper) if e.n_draws else None,
-                         "observed_inside": bool(e.lower <= e.observed <= e.upper) if e.n_draws else None,
-                         "n_draws": e.n_draws, "n_missing": e.n_missing, "draws": e.draws})
+            rows.append(EffectRow(r.id, r.label, r.status, row.rank if row else None, w, e.mean, e.lower, e.upper,
+                                  direction(e.lower, e.upper) if e.n_draws else None,
+                                  bool(e.lower <= e.observed <= e.upper) if e.n_draws else None,
+                                  e.n_draws, e.n_missing, e.draws))
             if w is not None and e.n_draws:
                 weighted.append(e.draws)
                 weights.append(w)
@@ -487,7 +516,7 @@ def effects_across(results: Sequence, comparison_rows: Sequence, seed: int = 0,
         if len(weights) >= 2 and sum(weights) > 0:
             mix = combine(weighted, weights, np.random.default_rng([int(seed), k]))
             mean, lo, hi, n = summarise(mix)
-            combined = {"mean": mean, "lower": lo, "upper": hi, "n_draws": n}
+            combined = EffectMix(mean, lo, hi, n)
         verdict = agreement_reading(rows, first.observed, min_weight)
         out.append(EffectAcross(key, first.kind, first.column, first.level, first.reference, "",
                                 first.observed, rows, combined, verdict["reading"], "", mix))
