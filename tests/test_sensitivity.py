@@ -115,11 +115,11 @@ def test_strong_prior_far_from_the_data_is_pulled_both_ways_and_a_weak_prior_is_
     print("weak prior", w.rows, w.pareto_k)
     assert s.reliable and w.reliable
     (row_s,), (row_w,) = s.rows, w.rows
-    assert row_s["parameter"] == "mu" and row_s["reading"] == "pulled_both_ways"
-    assert row_s["prior"] > 5 * THRESHOLD and row_s["likelihood"] > 5 * THRESHOLD
-    assert row_w["reading"] == "led_by_data"
-    assert row_w["prior"] < THRESHOLD / 10 and row_w["likelihood"] > THRESHOLD
-    assert not row_s["near_threshold"]
+    assert row_s.parameter == "mu" and row_s.reading == "pulled_both_ways"
+    assert row_s.prior > 5 * THRESHOLD and row_s.likelihood > 5 * THRESHOLD
+    assert row_w.reading == "led_by_data"
+    assert row_w.prior < THRESHOLD / 10 and row_w.likelihood > THRESHOLD
+    assert not row_s.near_threshold
     summary = json.loads((cfg.out / "summary.json").read_text())
     ps = summary["candidates"][0]["power_scaling"]
     assert ps["parameters"][0]["reading"] == "pulled_both_ways" and ps["threshold"] == THRESHOLD
@@ -134,7 +134,7 @@ def test_strong_prior_far_from_the_data_is_pulled_both_ways_and_a_weak_prior_is_
     table = pd.read_csv(cfg.out / "sensitivity.csv")
     assert list(table["parameter"]) == ["mu"] and table["reading"][0] == "pulled_both_ways"
     assert table["what_to_do"][0].startswith("Pulled both ways")
-    assert table["prior_sensitivity"][0] == pytest.approx(row_s["prior"])
+    assert table["prior_sensitivity"][0] == pytest.approx(row_s.prior)
 
 
 def test_programs_without_lprior_are_not_assessed():

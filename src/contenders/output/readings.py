@@ -738,12 +738,12 @@ def sensitivity_summary(s) -> dict | None:
     return {
         "threshold": s.threshold, "draws": s.n_draws, "pareto_k": s.pareto_k, "reliable": s.reliable,
         "problem": sensitivity_problem(s) or None,
-        "parameters": [{"parameter": r["parameter"], "prior": r["prior"], "likelihood": r["likelihood"],
-                        "prior_chain_range": list(r["prior_range"]),
-                        "likelihood_chain_range": list(r["likelihood_range"]),
-                        "near_threshold": r["near_threshold"],
-                        "reading": r["reading"] or None,
-                        "what_to_do": SENSITIVITY_READINGS[r["reading"]] if r["reading"] else None} for r in s.rows],
+        "parameters": [{"parameter": r.parameter, "prior": r.prior, "likelihood": r.likelihood,
+                        "prior_chain_range": list(r.prior_range),
+                        "likelihood_chain_range": list(r.likelihood_range),
+                        "near_threshold": r.near_threshold,
+                        "reading": r.reading or None,
+                        "what_to_do": SENSITIVITY_READINGS[r.reading] if r.reading else None} for r in s.rows],
     }
 
 

@@ -16,18 +16,18 @@ from contenders.output.tables import Cell, Table, n
 NAMES_SHOWN = 6
 
 
-def _names(rows: Sequence[dict], groups: set[str] = frozenset(), J: int = 0) -> str:
+def _names(rows: Sequence, groups: set[str] = frozenset(), J: int = 0) -> str:
     """Parameter names, the group terms of each vector counted rather than listed."""
     names: list[str] = []
     counts: dict[str, int] = {}
     for r in rows:
-        base = base_name(r["parameter"])
+        base = base_name(r.parameter)
         if base in groups:
             if base not in counts:
                 names.append(base)
             counts[base] = counts.get(base, 0) + 1
         else:
-            names.append(r["parameter"])
+            names.append(r.parameter)
     names = [f"{x} ({counts[x]} of {J} groups)" if x in counts else x for x in names]
     if not names:
         return "none"
@@ -87,8 +87,8 @@ def sensitivity_context(cands: Sequence[Any], J: int = 0, K: int = -1) -> dict[s
             overview.add([Cell(r.label, "name", r.id), n(fmt.MISSING), Cell(sensitivity_problem(s), "wrap muted"), "", "",
                           Cell("Look at the message; the other trials of this candidate are unaffected.", "wrap")])
             continue
-        groups = group_terms(sizes_of([row["parameter"] for row in s.rows]), J, K)
-        by = {key: [row for row in s.rows if row["reading"] == key] for key in READINGS}
+        groups = group_terms(sizes_of([row.parameter for row in s.rows]), J, K)
+        by = {key: [row for row in s.rows if row.reading == key] for key in READINGS}
         k = max(s.pareto_k.values()) if s.pareto_k else float("nan")
         reliable = (f"reliable (k {fmt.against(k, K_RELIABLE, 2)})" if s.reliable else
                     f"◆ rough: Pareto k {fmt.against(k, K_RELIABLE, 2)}, the importance weights are unreliable")
@@ -102,34 +102,34 @@ def sensitivity_context(cands: Sequence[Any], J: int = 0, K: int = -1) -> dict[s
                       Cell(_what_to_do(both, prior, s.reliable), "wrap")],
                      cls="muted" if r.status == "unhealthy" else "")
         for row in s.rows:
-            full.csv_rows.append([r.id, row["parameter"], row["prior"], *row["prior_range"], row["likelihood"],
-                                  *row["likelihood_range"], row["reading"], READINGS[row["reading"]],
-                                  row["near_threshold"],
+            full.csv_rows.append([r.id, row.parameter, row.prior, *row.prior_range, row.likelihood,
+                                  *row.likelihood_range, row.reading, READINGS[row.reading],
+                                  row.near_threshold,
                                   s.pareto_k.get("prior"), s.pareto_k.get("likelihood")])
-            if base_name(row["parameter"]) in groups:
+            if base_name(row.parameter) in groups:
                 continue
-            if row["reading"] in ACT_ON or row["near_threshold"]:
-                reading = READINGS[row["reading"]]
-                if row["near_threshold"]:
+            if row.reading in ACT_ON or row.near_threshold:
+                reading = READINGS[row.reading]
+                if row.near_threshold:
                     reading += " ◇ Close to the threshold: the reading could change with other draws."
-                detail.add([Cell(r.label, "name", r.id), Cell(row["parameter"], "code"),
-                            n(_value(row["prior"], row["prior_range"], s.threshold),
-                              "flag" if row["prior"] >= s.threshold else ""),
-                            n(_value(row["likelihood"], row["likelihood_range"], s.threshold)),
+                detail.add([Cell(r.label, "name", r.id), Cell(row.parameter, "code"),
+                            n(_value(row.prior, row.prior_range, s.threshold),
+                              "flag" if row.prior >= s.threshold else ""),
+                            n(_value(row.likelihood, row.likelihood_range, s.threshold)),
                             Cell(reading, "wrap")])
         for base in sorted(groups):
-            mine = [row for row in s.rows if base_name(row["parameter"]) == base]
+            mine = [row for row in s.rows if base_name(row.parameter) == base]
             for key in READINGS:
-                hit = [row for row in mine if row["reading"] == key and (key in ACT_ON or row["near_threshold"])]
+                hit = [row for row in mine if row.reading == key and (key in ACT_ON or row.near_threshold)]
                 if not hit:
                     continue
-                near = sum(row["near_threshold"] for row in hit)
+                near = sum(row.near_threshold for row in hit)
                 reading = READINGS[key] + (f" ◇ {near} close to the threshold." if near else "")
                 detail.add([Cell(r.label, "name", r.id),
                             Cell(f"{base}: {len(hit)} of {len(mine)} groups (each in sensitivity.csv)", "code wrap"),
-                            n(fmt.interval(min(x["prior"] for x in hit), max(x["prior"] for x in hit), 2),
+                            n(fmt.interval(min(x.prior for x in hit), max(x.prior for x in hit), 2),
                               "flag" if key in ACT_ON else ""),
-                            n(fmt.interval(min(x["likelihood"] for x in hit), max(x["likelihood"] for x in hit), 2)),
+                            n(fmt.interval(min(x.likelihood for x in hit), max(x.likelihood for x in hit), 2)),
                             Cell(reading, "wrap")])
     return {"overview": overview, "detail": detail, "csv": full, "without": without,
             "threshold": fmt.num(THRESHOLD), "k_reliable": fmt.num(K_RELIABLE)}

@@ -78,8 +78,9 @@ TRIAL_SETTINGS = tuple(s.name for s in SETTINGS if s.enters_trials_key)
 #: the prior trial's message are written from the numbers (``output.readings``).
 #: Format 13: the out-of-sample estimate's fields are named as ``summary.json`` names them
 #: (``OutOfSample.elpd_loo``, ``elpd_loo_se``, ``p_loo``, ``elpd_mcse``, ``elpd_method``), so
-#: trials stored with the old names are not read; a test statistic's row and a quantile
-#: check's are records (``features.StatisticRow``, ``checks.QuantileRow``); an estimate's
+#: trials stored with the old names are not read; a test statistic's row, a quantile
+#: check's and a power-scaling row are records (``features.StatisticRow``,
+#: ``checks.QuantileRow``, ``sensitivity.SensitivityRow``); an estimate's
 #: method is a ``compare.Method`` (kind and counts), worded by ``output.readings.elpd_method``.
 TRIALS_FORMAT = 13
 

@@ -61,19 +61,25 @@ ACT_ON = ("pulled_both_ways", "set_by_prior")
 
 
 @dataclass
+class SensitivityRow:
+    """Power-scaling sensitivity of one scalar parameter."""
+
+    parameter: str
+    prior: float                      # the diagnostic on all draws, prior scaled
+    likelihood: float                 # and likelihood scaled
+    prior_range: tuple[float, float]  # lowest and highest over chains computed one chain at a time:
+    likelihood_range: tuple[float, float]   # a rough view of the Monte Carlo spread (single chains run higher)
+    reading: str                      # one of READING_CODES
+    near_threshold: bool              # a single-chain range crosses the threshold: the reading could change
+
+
+@dataclass
 class Sensitivity:
-    """Power-scaling sensitivity of one candidate's posterior.
+    """Power-scaling sensitivity of one candidate's posterior: a ``SensitivityRow`` per
+    scalar parameter; ``pareto_k`` gives the largest Pareto k of the importance weights
+    per component."""
 
-    ``rows`` has one entry per scalar parameter: ``parameter``, ``prior`` and
-    ``likelihood`` (the diagnostic on all draws), ``prior_range`` and
-    ``likelihood_range`` (lowest and highest value over chains computed one chain at a
-    time: a rough view of the Monte Carlo spread; with fewer draws the single-chain
-    values run somewhat higher), ``near_threshold`` (a single-chain range crosses the
-    threshold, so the reading could change with other draws) and ``reading`` (one of
-    :data:`READING_CODES`).
-    ``pareto_k`` gives the largest Pareto k of the importance weights per component."""
-
-    rows: list[dict] = field(default_factory=list)
+    rows: list[SensitivityRow] = field(default_factory=list)
     pareto_k: dict[str, float] = field(default_factory=dict)
     threshold: float = THRESHOLD
     n_draws: int = 0
@@ -84,8 +90,8 @@ class Sensitivity:
         return all(np.isfinite(k) and k <= K_RELIABLE for k in self.pareto_k.values())
 
     @property
-    def flagged(self) -> list[dict]:
-        return [row for row in self.rows if row["reading"] in ACT_ON]
+    def flagged(self) -> list[SensitivityRow]:
+        return [row for row in self.rows if row.reading in ACT_ON]
 
 
 def power_scale_log_weights(log_component: np.ndarray, alpha: float) -> tuple[np.ndarray, float]:
@@ -216,15 +222,14 @@ def power_scaling(idata, parameters: Sequence[str], lprior: str = "lprior",
         per_chain = [sens(base.isel(chain=[i])) for i in range(n_chains)] if n_chains > 1 else []
         rows = []
         for name in pooled["prior"]:
-            row = {"parameter": name}
+            ranges = {}
             for comp in ("prior", "likelihood"):
-                row[comp] = pooled[comp][name]
                 vals = [c[comp][name] for c in per_chain]
-                row[f"{comp}_range"] = (min(vals), max(vals)) if vals else (np.nan, np.nan)
-            row["reading"] = _reading(row["prior"], row["likelihood"], threshold)
-            row["near_threshold"] = any(lo < threshold <= hi for lo, hi in
-                                        (row["prior_range"], row["likelihood_range"]))
-            rows.append(row)
+                ranges[comp] = (min(vals), max(vals)) if vals else (np.nan, np.nan)
+            prior, likelihood = pooled["prior"][name], pooled["likelihood"][name]
+            rows.append(SensitivityRow(name, prior, likelihood, ranges["prior"], ranges["likelihood"],
+                                       _reading(prior, likelihood, threshold),
+                                       any(lo < threshold <= hi for lo, hi in ranges.values())))
         components = {
             "prior": np.asarray(post[lprior].values, dtype=float).reshape(-1),
             "likelihood": np.asarray(total.values, dtype=float).reshape(-1),
