@@ -253,7 +253,7 @@ def test_demo_process_parameters_are_recovered_by_the_true_family(tmp_path, prog
                     only=("shifted_lognormal",), out=tmp_path / "o", chains=4, warmup=500, draws=500,
                     prior_draws=100, engine="pystan", cross_validation="loo", refit_cap=0)
     c = run(cfg).candidates[0]
-    rows = {r["parameter"]: r for r in c.health.table}
+    rows = {r.parameter: r for r in c.health.table}
     truth = {"shift": 230.0, "sigma": 0.40, "group_sd[1]": 0.15, "coef[1]": 0.20 * -1.0,
              "coef[2]": -0.30, "intercept": np.log(420) + 0.15 - 0.10}
     # X columns in the order of the predictors: cue[on] comes from "cue", density[sparse] from "density"
@@ -262,7 +262,7 @@ def test_demo_process_parameters_are_recovered_by_the_true_family(tmp_path, prog
     truth["coef[1]"], truth["coef[2]"] = -0.30, -0.20
     for name, value in truth.items():
         r = rows[name]
-        assert abs(r["mean"] - value) < 3 * r["sd"], (name, r, value)
+        assert abs(r.mean - value) < 3 * r.sd, (name, r, value)
 
 
 def test_readme_documents_every_configuration_key_and_both_commands():

@@ -247,8 +247,8 @@ def test_strike_durations_weibull_shape_matches_maximum_likelihood(strikes):
     mean lies within two posterior SDs of it."""
     c = next(c for c in strikes[0].candidates if c.id == "weibull")
     assert c.status == "ok", c.reason
-    row = next(r for r in c.health.table if r["parameter"] == "shape")
-    assert abs(row["mean"] - 0.925) < 2 * row["sd"], row
+    row = next(r for r in c.health.table if r.parameter == "shape")
+    assert abs(row.mean - 0.925) < 2 * row.sd, row
 
 
 def test_strike_durations_ranking_is_the_same_under_two_seeds(strikes):

@@ -124,7 +124,7 @@ def test_sleepstudy_with_a_days_slope_matches_published_values(tmp_path, program
     sd_centred = np.sqrt(s0**2 + 2 * r * s0 * s1 * mean_days + (mean_days * s1) ** 2)
     corr_centred = (r * s0 * s1 + mean_days * s1**2) / (sd_centred * s1)
     assert sd_centred == pytest.approx(37.6, abs=0.1) and corr_centred == pytest.approx(0.755, abs=0.002)
-    sd_of = {r["parameter"]: r["sd"] for r in c.health.table}
+    sd_of = {r.parameter: r.sd for r in c.health.table}
     assert abs(row["value"][0] - 10.467) < 2 * sd_of["coef[1]"] / scale, row["value"]
     assert abs(slope["per_unit"][0] - s1) < 2 * sd_of["slope_sd[1]"] / scale, slope["per_unit"]
     assert abs(coef.group_sd[0] - sd_centred) < 2 * sd_of["group_sd[1]"], coef.group_sd

@@ -629,7 +629,7 @@ def _hyper_table(r) -> Table:
 
 def _group_names(r, design) -> set[str]:
     """Base names of a candidate's group-level parameters (one value per group)."""
-    names = [row["parameter"] for row in r.health.table] if r.health is not None else []
+    names = [row.parameter for row in r.health.table] if r.health is not None else []
     return group_terms(sizes_of(names), design.J, design.K)
 
 
@@ -639,29 +639,28 @@ def _param_table(h, groups: set[str] = frozenset(), design=None) -> Table:
     t = Table("", ["Parameter", "Mean", "SD", "5 %", "95 %", "R-hat", "Bulk ESS", "Tail ESS"],
               numeric=[False] + [True] * 7)
     names = {f"coef[{k + 1}]": c.name for k, c in enumerate(design.coding)} if design is not None else {}
-    folded: dict[str, list[dict]] = {}
+    folded: dict[str, tuple[int, list]] = {}   # base name -> (its row in the table, its elements)
     for row in h.table:
-        base = base_name(row["parameter"])
+        base = base_name(row.parameter)
         if base in groups:
             if base not in folded:
-                folded[base] = []
                 t.add([])   # placeholder, filled below at the first row's position
-                folded[base].append({"index": len(t.rows) - 1})
-            folded[base].append(row)
+                folded[base] = (len(t.rows) - 1, [])
+            folded[base][1].append(row)
             continue
-        label = row["parameter"] + (f" ({names[row['parameter']]})" if row["parameter"] in names else "")
-        t.add([Cell(label, "code"), n(fmt.num(row["mean"])), n(fmt.num(row["sd"], 2)),
-               n(fmt.num(row["q05"])), n(fmt.num(row["q95"])), n(fmt.fixed(row["rhat"], 3)),
-               n(fmt.integer(row["ess_bulk"])), n(fmt.integer(row["ess_tail"]))])
-    for base, (slot, *rows) in folded.items():
+        label = row.parameter + (f" ({names[row.parameter]})" if row.parameter in names else "")
+        t.add([Cell(label, "code"), n(fmt.num(row.mean)), n(fmt.num(row.sd, 2)),
+               n(fmt.num(row.q05)), n(fmt.num(row.q95)), n(fmt.fixed(row.rhat, 3)),
+               n(fmt.integer(row.ess_bulk)), n(fmt.integer(row.ess_tail))])
+    for base, (slot, rows) in folded.items():
         column = design.group_column if design is not None else "the group column"
-        t.rows[slot["index"]] = [
+        t.rows[slot] = [
             Cell(f"{base}[1] … {base}[{len(rows)}] ({len(rows)} groups of {column}; summarised below, "
                  "every one in parameters.csv)", "code wrap"),
             n(fmt.MISSING, "muted"), n(fmt.MISSING, "muted"), n(fmt.MISSING, "muted"), n(fmt.MISSING, "muted"),
-            n("largest " + fmt.fixed(max(r["rhat"] for r in rows), 3)),
-            n("smallest " + fmt.integer(min(r["ess_bulk"] for r in rows))),
-            n("smallest " + fmt.integer(min(r["ess_tail"] for r in rows)))]
+            n("largest " + fmt.fixed(max(r.rhat for r in rows), 3)),
+            n("smallest " + fmt.integer(min(r.ess_bulk for r in rows))),
+            n("smallest " + fmt.integer(min(r.ess_tail for r in rows)))]
     return t
 
 
@@ -1025,8 +1024,8 @@ def build_context(result, command_line: str | Sequence[str] | None = None) -> di
                                 [[r.id, k, v] for r in cands for k, v in r.hyperparameters.items()]))
     csv_tables.append(_long_csv(
         "parameters.csv", ["id", "parameter", "mean", "sd", "q05", "q95", "rhat", "ess_bulk", "ess_tail"],
-        [[r.id, row["parameter"], row["mean"], row["sd"], row["q05"], row["q95"], row["rhat"],
-          row["ess_bulk"], row["ess_tail"]] for r in cands if r.health is not None for row in r.health.table]))
+        [[r.id, row.parameter, row.mean, row.sd, row.q05, row.q95, row.rhat,
+          row.ess_bulk, row.ess_tail] for r in cands if r.health is not None for row in r.health.table]))
     csv_tables.extend(_coefficient_csvs(cands))
     csv_tables = [t for t in csv_tables if t is not None]
 

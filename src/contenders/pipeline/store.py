@@ -79,8 +79,8 @@ TRIAL_SETTINGS = tuple(s.name for s in SETTINGS if s.enters_trials_key)
 #: Format 13: the out-of-sample estimate's fields are named as ``summary.json`` names them
 #: (``OutOfSample.elpd_loo``, ``elpd_loo_se``, ``p_loo``, ``elpd_mcse``, ``elpd_method``), so
 #: trials stored with the old names are not read; a test statistic's row, a quantile
-#: check's and a power-scaling row are records (``features.StatisticRow``,
-#: ``checks.QuantileRow``, ``sensitivity.SensitivityRow``); an estimate's
+#: check's, a power-scaling row and a parameter's summary are records (``features.StatisticRow``,
+#: ``checks.QuantileRow``, ``sensitivity.SensitivityRow``, ``posterior.ParameterRow``); an estimate's
 #: method is a ``compare.Method`` (kind and counts), worded by ``output.readings.elpd_method``.
 TRIALS_FORMAT = 13
 

@@ -47,6 +47,20 @@ class Attempt:
 
 
 @dataclass
+class ParameterRow:
+    """Posterior summary and convergence diagnostics of one parameter element."""
+
+    parameter: str
+    mean: float
+    sd: float
+    q05: float
+    q95: float
+    rhat: float                   # rank-normalised split R-hat
+    ess_bulk: float
+    ess_tail: float
+
+
+@dataclass
 class Health:
     """Sampler diagnostics of the final attempt and the record of all attempts."""
 
@@ -63,7 +77,7 @@ class Health:
     healthy: bool
     problems: list[str]            # in words: contenders.output.readings.word_health fills them
     warnings: list[str]            # from ``findings``
-    table: list[dict] = field(default_factory=list)   # per parameter element
+    table: list[ParameterRow] = field(default_factory=list)   # per parameter element
     warmup: int = 0                # per chain, of the accepted fit
     draws: int = 0                 # per chain, of the accepted fit
     #: what the diagnostics found, as codes with their values (see ``diagnose``), in the
@@ -72,7 +86,7 @@ class Health:
 
     @property
     def posterior_means(self) -> dict[str, float]:
-        return {row["parameter"]: row["mean"] for row in self.table}
+        return {row.parameter: row.mean for row in self.table}
 
 
 def flatten(ds, var_names: Sequence[str]) -> dict[str, float]:
@@ -153,8 +167,7 @@ def diagnose(
     for k in [k for k, v in spread.items() if v == 0 and post.sizes["chain"] * post.sizes["draw"] > 1]:
         for d in (rhat, bulk, tail):
             d.pop(k, None)
-    table = [{"parameter": k, "mean": mean[k], "sd": sd[k], "q05": q05[k], "q95": q95[k],
-              "rhat": rhat[k], "ess_bulk": bulk[k], "ess_tail": tail[k]} for k in rhat]
+    table = [ParameterRow(k, mean[k], sd[k], q05[k], q95[k], rhat[k], bulk[k], tail[k]) for k in rhat]
     finite_rhat = {k: v for k, v in rhat.items() if np.isfinite(v)}
     worst_r = max(finite_rhat, key=finite_rhat.get) if finite_rhat else ""
     worst_e = min(bulk, key=lambda k: min(bulk[k], tail[k])) if bulk else ""
