@@ -214,12 +214,12 @@ def test_failing_bound_that_a_narrower_prior_fixes_names_the_parameter_and_range
                                    parameters={"sigma": sigma, "noise": rng.normal(size=1000)}))
     assert p.flagged
     (r,) = p.failing
-    assert r["statistic"] == "min" and r["reading"] == "narrow_one" and r["best_parameter"] == "sigma"
+    assert r.statistic == "min" and r.reading == "narrow_one" and r.best_parameter == "sigma"
     low, high = np.quantile(sigma, [0.0, 0.1])
-    assert r["best_range"] == pytest.approx((low, high))
+    assert r.best_range == pytest.approx((low, high))
     inside = y_rep.min(axis=1) >= 100
-    assert r["best_share"] == pytest.approx(inside[sigma <= high].mean())
-    assert r["below"] == pytest.approx(1 - inside.mean())
+    assert r.best_share == pytest.approx(inside[sigma <= high].mean())
+    assert r.below == pytest.approx(1 - inside.mean())
     assert "narrower priors can fix this" in p.message and "sigma between" in p.message
 
 
@@ -249,9 +249,9 @@ def test_failing_bound_from_the_family_structure_says_priors_will_not_fix_it():
     p = word_prior(summarise_prior(y_rep, np.full(N, 600.0), bounds, (), 0.5,
                                    parameters={"stray": stray, "sigma": sigma, "mu": mu}))
     r = p.failing[0]
-    assert r["reading"] == "structure" and r["below"] > 0.8 and r["best_share"] < 0.25, r
+    assert r.reading == "structure" and r.below > 0.8 and r.best_share < 0.25, r
     assert "narrower priors will not fix this" in p.message
     assert "tighten this candidate's priors" not in p.message
     # without the parameters' draws the reading says which side fails and nothing more
     bare = word_prior(summarise_prior(y_rep, np.full(N, 600.0), {"min": (100.0, np.inf)}, (), 0.5))
-    assert bare.failing[0]["fixable"] is None and f"{100 * r['below']:.0f} % below 100" in bare.message
+    assert bare.failing[0].fixable is None and f"{100 * r.below:.0f} % below 100" in bare.message

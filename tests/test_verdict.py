@@ -297,7 +297,7 @@ def test_verdict_advice_on_flagged_priors_follows_what_the_prior_trial_found():
     from contenders.output.readings import _prior_advice
 
     def flagged(label, *readings):
-        return SimpleNamespace(label=label, prior=SimpleNamespace(failing=[{"reading": r} for r in readings]))
+        return SimpleNamespace(label=label, prior=SimpleNamespace(failing=[SimpleNamespace(reading=r) for r in readings]))
 
     text = _prior_advice([flagged("Lognormal", "narrow_one"),
                           flagged("Lognormal with guesses and lapses", "structure"),

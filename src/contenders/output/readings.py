@@ -310,7 +310,7 @@ def _prior_advice(flagged) -> str:
     bound (statistics/prior.py): narrower priors can help, or the family itself puts the
     statistic outside the bound and no prior will fix it."""
     def codes(r) -> set:
-        return {f.get("reading") for f in (getattr(r.prior, "failing", None) or [])}
+        return {f.reading for f in (getattr(r.prior, "failing", None) or [])}
 
     narrow = [r.label for r in flagged if codes(r) & {"narrow_one", "narrow_several"}]
     structure = [r.label for r in flagged if codes(r) and codes(r) <= {"structure"}]
@@ -646,41 +646,41 @@ def word_health(health):
 
 # --- prior predictive trial -------------------------------------------------------------
 
-def bound_sentence(r: dict) -> str:
+def bound_sentence(r) -> str:
     """One reading of a failing bound (``statistics.prior.read_bound``) in words: where the
     draws fall and what to do about it (used in the prior trial's message)."""
-    what = describe(r["statistic"])
+    what = describe(r.statistic)
     side = []
-    if r["below"] > 0:
-        side.append(f"{100 * r['below']:.0f} % below {r['low']:g}")
-    if r["above"] > 0:
-        side.append(f"{100 * r['above']:.0f} % above {r['high']:g}")
-    if r["nonfinite"] > 0:
-        side.append(f"{100 * r['nonfinite']:.0f} % not finite")
-    if np.isinf(r["high"]):
-        where = f"at least {r['low']:g}"
-    elif np.isinf(r["low"]):
-        where = f"at most {r['high']:g}"
+    if r.below > 0:
+        side.append(f"{100 * r.below:.0f} % below {r.low:g}")
+    if r.above > 0:
+        side.append(f"{100 * r.above:.0f} % above {r.high:g}")
+    if r.nonfinite > 0:
+        side.append(f"{100 * r.nonfinite:.0f} % not finite")
+    if np.isinf(r.high):
+        where = f"at least {r.low:g}"
+    elif np.isinf(r.low):
+        where = f"at most {r.high:g}"
     else:
-        where = f"inside {r['low']:g} to {r['high']:g}"
-    text = f"{what}: {100 * r['inside']:.0f} % of prior draws {where}"
+        where = f"inside {r.low:g} to {r.high:g}"
+    text = f"{what}: {100 * r.inside:.0f} % of prior draws {where}"
     if side:
         text += " (" + ", ".join(side) + ")"
-    lo, hi = r["best_range"] or (np.nan, np.nan)
-    if r["fixable"] is True:
-        text += (f"; narrower priors can fix this: of the prior draws with {r['best_parameter']} between "
-                 f"{lo:.3g} and {hi:.3g} (a tenth of them), {100 * r['best_share']:.0f} % are plausible (inside every "
+    lo, hi = r.best_range or (np.nan, np.nan)
+    if r.fixable is True:
+        text += (f"; narrower priors can fix this: of the prior draws with {r.best_parameter} between "
+                 f"{lo:.3g} and {hi:.3g} (a tenth of them), {100 * r.best_share:.0f} % are plausible (inside every "
                  "bound), so narrow "
-                 f"the prior on {r['best_parameter']} toward that range (this candidate's [hyperparameters] in "
+                 f"the prior on {r.best_parameter} toward that range (this candidate's [hyperparameters] in "
                  "the configuration)")
-    elif r["reading"] == "narrow_several":
+    elif r.reading == "narrow_several":
         text += (f"; no one prior fixes this alone: the best tenth of one parameter's prior draws "
-                 f"({r['best_parameter']} between {lo:.3g} and {hi:.3g}) gives {100 * r['best_share']:.0f} % "
+                 f"({r.best_parameter} between {lo:.3g} and {hi:.3g}) gives {100 * r.best_share:.0f} % "
                  "plausible datasets; narrow several of this candidate's priors together ([hyperparameters] in "
                  "the configuration) and run again")
-    elif r["reading"] == "structure":
+    elif r.reading == "structure":
         text += (f"; narrower priors will not fix this: in no tenth of any parameter's prior draws are more "
-                 f"than {100 * r['best_share']:.0f} % plausible (best: {r['best_parameter']} between {lo:.3g} and "
+                 f"than {100 * r.best_share:.0f} % plausible (best: {r.best_parameter} between {lo:.3g} and "
                  f"{hi:.3g}), so the family's structure, not the width of its priors, puts the {what} there; "
                  "check that this bound applies to this family, and judge it on the posterior checks")
     else:

@@ -303,8 +303,8 @@ def _prior_plausibility(result, cands) -> Table:
                n(fmt.integer(p.n_nonfinite), "flag" if p.n_nonfinite else ""),
                Cell(msg, "wrap")],
               [r.id, r.label, p.n_draws, p.plausible_share, p.n_nonfinite, p.flagged, p.message,
-               " ".join(f["statistic"] for f in getattr(p, "failing", [])) or None,
-               " ".join(f"{f['statistic']}={'unknown' if f['fixable'] is None else str(f['fixable']).lower()}"
+               " ".join(f.statistic for f in getattr(p, "failing", [])) or None,
+               " ".join(f"{f.statistic}={'unknown' if f.fixable is None else str(f.fixable).lower()}"
                         for f in getattr(p, "failing", [])) or None],
               "flagged" if p.flagged else "")
     return t

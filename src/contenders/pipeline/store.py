@@ -78,10 +78,10 @@ TRIAL_SETTINGS = tuple(s.name for s in SETTINGS if s.enters_trials_key)
 #: the prior trial's message are written from the numbers (``output.readings``).
 #: Format 13: the out-of-sample estimate's fields are named as ``summary.json`` names them
 #: (``OutOfSample.elpd_loo``, ``elpd_loo_se``, ``p_loo``, ``elpd_mcse``, ``elpd_method``), so
-#: trials stored with the old names are not read; a test statistic's row, a quantile
-#: check's, a power-scaling row and a parameter's summary are records (``features.StatisticRow``,
-#: ``checks.QuantileRow``, ``sensitivity.SensitivityRow``, ``posterior.ParameterRow``); an estimate's
-#: method is a ``compare.Method`` (kind and counts), worded by ``output.readings.elpd_method``.
+#: trials stored with the old names are not read. The rows of the trials are records:
+#: ``features.StatisticRow``, ``checks.QuantileRow``, ``sensitivity.SensitivityRow``,
+#: ``posterior.ParameterRow``, ``prior.BoundReading``. An estimate's method is a
+#: ``compare.Method`` (kind and counts), worded by ``output.readings.elpd_method``.
 TRIALS_FORMAT = 13
 
 

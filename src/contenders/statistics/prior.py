@@ -20,7 +20,7 @@ or the family, is what to reconsider.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Mapping, Sequence
 
 import numpy as np
@@ -41,7 +41,7 @@ class PriorTrial:
     n_nonfinite: int                     # replicated datasets with an infinite or NaN value
     flagged: bool
     message: str                         # in words: contenders.output.readings.word_prior fills it
-    failing: list[dict] = field(default_factory=list)   # reading of each failing bound (see module)
+    failing: list[BoundReading] = field(default_factory=list)   # reading of each failing bound (see module)
     stat_draws: dict[str, np.ndarray] = field(repr=False, default_factory=dict)
 
 
@@ -50,9 +50,29 @@ class PriorTrial:
 TENTHS = 10
 
 
+@dataclass
+class BoundReading:
+    """Where the prior draws of one statistic fall against its plausibility bound, and
+    whether a narrower prior on one parameter can bring enough of them inside
+    (``read_bound``). The last five stay None when no parameter draws were given."""
+
+    statistic: str
+    low: float
+    high: float
+    inside: float                 # shares of the datasets inside, below and above the bound,
+    below: float
+    above: float
+    nonfinite: float              # and with a non-finite value
+    fixable: bool | None = None   # a tenth of one parameter's draws reaches the share needed
+    reading: str | None = None    # narrow_one, narrow_several or structure
+    best_parameter: str | None = None
+    best_range: tuple[float, float] | None = None   # that tenth's range of the parameter
+    best_share: float | None = None                 # the share of plausible datasets in it
+
+
 def read_bound(name: str, values: np.ndarray, finite: np.ndarray, bound: tuple[float, float],
                parameters: Mapping[str, np.ndarray] | None, needed: float,
-               plausible: np.ndarray | None = None) -> dict:
+               plausible: np.ndarray | None = None) -> BoundReading:
     """Where the draws of one statistic fall against its bound, and whether a narrower prior
     on one parameter can bring enough of them inside (see the module docstring; our own
     rule, no source).
@@ -78,19 +98,14 @@ def read_bound(name: str, values: np.ndarray, finite: np.ndarray, bound: tuple[f
 
     Returns
     -------
-    dict
-        ``statistic``, ``low``, ``high``, the shares ``inside``, ``below``, ``above`` and
-        ``nonfinite``, and, with ``parameters``: ``fixable``, ``reading``
-        (``narrow_one``, ``narrow_several`` or ``structure``), ``best_parameter``,
-        ``best_range`` and ``best_share``.
+    BoundReading
+        The shares, and with ``parameters`` the best tenth of one parameter's draws.
     """
     low, high = bound
     values = np.asarray(values, dtype=float)
     ok = finite & (values >= low) & (values <= high)
-    out = {"statistic": name, "low": float(low), "high": float(high), "inside": float(ok.mean()),
-           "below": float((finite & (values < low)).mean()), "above": float((finite & (values > high)).mean()),
-           "nonfinite": float((~finite).mean()), "fixable": None, "reading": None, "best_parameter": None,
-           "best_range": None, "best_share": None}
+    out = BoundReading(name, float(low), float(high), float(ok.mean()), float((finite & (values < low)).mean()),
+                       float((finite & (values > high)).mean()), float((~finite).mean()))
     if not parameters:
         return out
     good = ok if plausible is None else np.asarray(plausible, dtype=bool)
@@ -111,8 +126,8 @@ def read_bound(name: str, values: np.ndarray, finite: np.ndarray, bound: tuple[f
     if best[1] is not None:
         reading = ("narrow_one" if best[0] >= needed else "narrow_several" if best[0] >= needed / 2
                    else "structure")
-        out.update(fixable=best[0] >= needed, reading=reading, best_share=best[0], best_parameter=best[1],
-                   best_range=best[2])
+        out = replace(out, fixable=best[0] >= needed, reading=reading, best_share=best[0],
+                      best_parameter=best[1], best_range=best[2])
     return out
 
 
@@ -169,7 +184,7 @@ def summarise_prior(
         plausible &= ok
     share = float(plausible.mean()) if bounds else None
     flagged = share is not None and share < implausible_share
-    failing: list[dict] = []
+    failing: list[BoundReading] = []
     if flagged:
         names = [k for k in bounds if inside_each[k] < implausible_share] or [min(inside_each, key=inside_each.get)]
         names.sort(key=inside_each.get)
