@@ -44,23 +44,23 @@ def test_identity_link_converts_by_the_coding_by_hand():
                       group_z=np.tile([1.0, -1.0], (4, 1)), group_sd=np.full(4, 0.5))
     c = coefficient_summary(post, d, BUILTIN_LINKS["normal"])
     # the statistics give kinds, columns and levels; the readings write the units from them
-    assert [(r["name"], r["kind"], r["column"], r["level"], r["reference"], r["units"]) for r in c.rows] == [
+    assert [(r.name, r.kind, r.column, r.level, r.reference, r.units) for r in c.rows] == [
         ("x", "numeric", "x", None, None, ""), ("cue[on]", "indicator", "cue", "on", "off", ""),
         ("intercept", "intercept", None, None, None, "")]
-    assert c.rows[2]["at"] == [("x", 0), ("cue", "off")]
+    assert c.rows[2].at == [("x", 0), ("cue", "off")]
     word_coefficients(c)
-    rows = {r["name"]: r for r in c.rows}
-    assert rows["x"]["value"][0] == pytest.approx(1.0) and rows["x"]["internal"][0] == pytest.approx(s)
-    assert rows["x"]["units"] == "y per unit of x"
-    assert rows["cue[on]"]["value"][0] == pytest.approx(2.0)
-    assert rows["cue[on]"]["units"] == "y, cue = on against off"
+    rows = {r.name: r for r in c.rows}
+    assert rows["x"].value[0] == pytest.approx(1.0) and rows["x"].internal[0] == pytest.approx(s)
+    assert rows["x"].units == "y per unit of x"
+    assert rows["cue[on]"].value[0] == pytest.approx(2.0)
+    assert rows["cue[on]"].units == "y, cue = on against off"
     zero = rows["intercept at x = 0, cue = off"]
-    assert zero["units"] == "y (mean at x = 0, cue = off)"
-    assert zero["value"][0] == pytest.approx(4.5)
+    assert zero.units == "y (mean at x = 0, cue = off)"
+    assert zero.value[0] == pytest.approx(4.5)
     # group offsets: group_sd * group_z, in the outcome's units under an identity link
-    assert [g["offset"][0] for g in c.groups] == pytest.approx([0.5, -0.5])
+    assert [g.offset[0] for g in c.groups] == pytest.approx([0.5, -0.5])
     low, high = extremes(c, 1)
-    assert low[0]["level"] == "b" and high[0]["level"] == "a"
+    assert low[0].level == "b" and high[0].level == "a"
 
 
 def test_log_link_gives_ratios_per_unit_and_an_outcome_value_at_zero():
@@ -72,13 +72,13 @@ def test_log_link_gives_ratios_per_unit_and_an_outcome_value_at_zero():
     b = rng.normal(np.log(1.1) * s, 0.01, 400)
     post = _posterior(intercept=np.full(400, np.log(100.0)), coef=np.column_stack([b, np.zeros(400)]))
     c = word_coefficients(coefficient_summary(post, d, BUILTIN_LINKS["lognormal"]))
-    rows = {r["name"]: r for r in c.rows}
-    assert rows["x"]["units"] == "ratio per unit of x"
-    assert rows["cue[on]"]["units"] == "ratio, cue = on against off"
-    np.testing.assert_allclose(rows["x"]["value"][0], np.mean(np.exp(b / s)))
+    rows = {r.name: r for r in c.rows}
+    assert rows["x"].units == "ratio per unit of x"
+    assert rows["cue[on]"].units == "ratio, cue = on against off"
+    np.testing.assert_allclose(rows["x"].value[0], np.mean(np.exp(b / s)))
     lo, hi = np.quantile(np.exp(b / s), [0.025, 0.975])
-    assert rows["x"]["value"][1:] == pytest.approx((lo, hi))
-    zero = rows["intercept at x = 0, cue = off"]["value"][0]
+    assert rows["x"].value[1:] == pytest.approx((lo, hi))
+    zero = rows["intercept at x = 0, cue = off"].value[0]
     assert zero == pytest.approx(np.mean(np.exp(np.log(100.0) - b * 4.5 / s)))
 
 
@@ -93,8 +93,8 @@ def test_unknown_link_shows_internal_values_only_with_the_reason(builtins, tmp_p
     assert link is None and "differs from the built-in 'normal'" in reason
     assert link_of(dataclasses.replace(changed, id="my_family"))[0] is None
     c = word_coefficients(coefficient_summary(post, d, link, reason))
-    assert c.link == "" and all(np.isnan(r["value"][0]) for r in c.rows) and c.rows[0]["internal"][0] == 1.0
-    assert [r["units"] for r in c.rows] == ["", "", ""] and c.rows[2]["name"] == "intercept at x = 0, cue = off"
+    assert c.link == "" and all(np.isnan(r.value[0]) for r in c.rows) and c.rows[0].internal[0] == 1.0
+    assert [r.units for r in c.rows] == ["", "", ""] and c.rows[2].name == "intercept at x = 0, cue = off"
 
 
 def test_link_table_matches_every_built_in_program(builtins):
@@ -137,11 +137,11 @@ def test_sleepstudy_normal_candidate_in_ms_per_day_matches_published_values(tmp_
     c = result.candidates[0].coefficients
     assert c is not None and c.link == "identity"
     days, zero = c.rows
-    assert days["name"] == "Days" and days["units"] == "Reaction per unit of Days"
-    assert abs(days["value"][0] - 10.47) < 1.0, days
-    assert days["value"][1] < 10.47 < days["value"][2]
-    assert abs(zero["value"][0] - 251.4) < 5.0, zero
-    assert zero["name"] == "intercept at Days = 0"
+    assert days.name == "Days" and days.units == "Reaction per unit of Days"
+    assert abs(days.value[0] - 10.47) < 1.0, days
+    assert days.value[1] < 10.47 < days.value[2]
+    assert abs(zero.value[0] - 251.4) < 5.0, zero
+    assert zero.name == "intercept at Days = 0"
     assert len(c.groups) == 18 and c.group_sd_parameter == "group_sd[1]"
     # the report: named coefficients beside the internal ones, coefficients.csv, and
     # the 18 group terms summarised rather than listed
@@ -150,8 +150,8 @@ def test_sleepstudy_normal_candidate_in_ms_per_day_matches_published_values(tmp_
     table = pd.read_csv(tmp_path / "o" / "coefficients.csv")
     row = table[table["name"] == "Days"].iloc[0]
     assert row["parameter"] == "coef[1]" and row["link"] == "identity"
-    assert row["mean"] == pytest.approx(days["value"][0])
-    assert row["internal_mean"] == pytest.approx(days["internal"][0])
+    assert row["mean"] == pytest.approx(days.value[0])
+    assert row["internal_mean"] == pytest.approx(days.internal[0])
     assert "Reaction per unit of Days" in html
     assert "group_z[7]" not in html.split('id="reproducibility"')[0]
     assert "18 groups of Subject" in html

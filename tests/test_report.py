@@ -250,7 +250,7 @@ def test_csv_tables_hold_the_numbers_of_the_run(report):
     assert int(pit["lognormal"]["outside_points"]) == test["outside_points"]
     assert "ks_statistic" not in pit["lognormal"] and "p_value" not in pit["lognormal"]
     quantiles = [r for r in _csv(out / "quantiles.csv") if r["id"] == "lognormal"]
-    assert [float(r["level"]) for r in quantiles] == [q["level"] for q in ln.checks.quantiles]
+    assert [float(r["level"]) for r in quantiles] == [q.level for q in ln.checks.quantiles]
     q50 = next(r for r in quantiles if float(r["level"]) == 0.5)
     assert float(q50["observed"]) == pytest.approx(float(np.quantile(result.design.y, 0.5)), rel=1e-12)
 

@@ -117,7 +117,7 @@ def test_sleepstudy_with_a_days_slope_matches_published_values(tmp_path, program
     (c,) = result.candidates
     assert c.health is not None and c.health.divergences == 0, c.reason
     coef = c.coefficients
-    (row,) = [r for r in coef.rows if r["parameter"] == "coef[1]"]
+    (row,) = [r for r in coef.rows if r.parameter == "coef[1]"]
     (slope,) = coef.slopes
     scale = load_design(cfg).coding[0].scale
     s0, s1, r, mean_days = 24.741, 5.922, 0.066, 4.5
@@ -125,11 +125,11 @@ def test_sleepstudy_with_a_days_slope_matches_published_values(tmp_path, program
     corr_centred = (r * s0 * s1 + mean_days * s1**2) / (sd_centred * s1)
     assert sd_centred == pytest.approx(37.6, abs=0.1) and corr_centred == pytest.approx(0.755, abs=0.002)
     sd_of = {r.parameter: r.sd for r in c.health.table}
-    assert abs(row["value"][0] - 10.467) < 2 * sd_of["coef[1]"] / scale, row["value"]
-    assert abs(slope["per_unit"][0] - s1) < 2 * sd_of["slope_sd[1]"] / scale, slope["per_unit"]
+    assert abs(row.value[0] - 10.467) < 2 * sd_of["coef[1]"] / scale, row.value
+    assert abs(slope.per_unit[0] - s1) < 2 * sd_of["slope_sd[1]"] / scale, slope.per_unit
     assert abs(coef.group_sd[0] - sd_centred) < 2 * sd_of["group_sd[1]"], coef.group_sd
     # the correlation's posterior SD from its 95 % interval (about 4 SD wide)
-    lo, hi = slope["correlation"][1:]
-    assert abs(slope["correlation"][0] - corr_centred) < 2 * (hi - lo) / 3.92, slope["correlation"]
-    assert (slope["column"], slope["level"], slope["reference"]) == ("Days", None, None)
-    assert slope["units"] == "Reaction per unit of Days"     # written by readings.word_coefficients
+    lo, hi = slope.correlation[1:]
+    assert abs(slope.correlation[0] - corr_centred) < 2 * (hi - lo) / 3.92, slope.correlation
+    assert (slope.column, slope.level, slope.reference) == ("Days", None, None)
+    assert slope.units == "Reaction per unit of Days"     # written by readings.word_coefficients

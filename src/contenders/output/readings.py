@@ -515,11 +515,11 @@ def elpd_method(method) -> str:
 
 # --- coefficients in the outcome's units ------------------------------------------------
 
-def _per(row: Mapping) -> str:
+def _per(row) -> str:
     """What one coefficient or slope SD is per: "per unit of x", "cue = on against off"."""
-    if row.get("level") is None:
-        return f"per unit of {row['column']}"
-    return f"{row['column']} = {row['level']} against {row['reference']}"
+    if row.level is None:
+        return f"per unit of {row.column}"
+    return f"{row.column} = {row.level} against {row.reference}"
 
 
 def _at(at: Sequence) -> str:
@@ -535,21 +535,21 @@ def word_coefficients(c):
         return None
     log = c.link == "log"
     for row in c.rows:
-        if row["kind"] == "intercept":
-            where = _at(row["at"])
-            row["name"] = f"intercept at {where}"
-            row["units"] = f"{c.outcome} ({c.sets} at {where})" if c.link else ""
+        if row.kind == "intercept":
+            where = _at(row.at)
+            row.name = f"intercept at {where}"
+            row.units = f"{c.outcome} ({c.sets} at {where})" if c.link else ""
             continue
-        what, numeric = _per(row), row["kind"] == "numeric"
+        what, numeric = _per(row), row.kind == "numeric"
         if not c.link:
-            row["units"] = ""
+            row.units = ""
         elif log:
-            row["units"] = f"ratio {what}" if numeric else f"ratio, {what}"
+            row.units = f"ratio {what}" if numeric else f"ratio, {what}"
         else:
-            row["units"] = f"{c.outcome} {what}" if numeric else f"{c.outcome}, {what}"
+            row.units = f"{c.outcome} {what}" if numeric else f"{c.outcome}, {what}"
     for s in c.slopes:
         per = _per(s)
-        s["units"] = "" if not c.link else (f"log scale, {per}" if log else f"{c.outcome} {per}")
+        s.units = "" if not c.link else (f"log scale, {per}" if log else f"{c.outcome} {per}")
     return c
 
 

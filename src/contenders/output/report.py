@@ -677,9 +677,9 @@ def _coefficient_table(c) -> Table | None:
     t = Table("", ["Coefficient", "Internal (centred and scaled)", "In the outcome's units", "Meaning"],
               numeric=[False, True, True, False])
     for r in c.rows:
-        t.add([Cell(f"{r['name']} ({r['parameter']})", "code"), n(_estimate95(r["internal"])),
-               n(_estimate95(r["value"]) if c.link else fmt.MISSING, "" if c.link else "muted"),
-               Cell(r["units"] or "link not known", "wrap" if c.link else "wrap muted")])
+        t.add([Cell(f"{r.name} ({r.parameter})", "code"), n(_estimate95(r.internal)),
+               n(_estimate95(r.value) if c.link else fmt.MISSING, "" if c.link else "muted"),
+               Cell(r.units or "link not known", "wrap" if c.link else "wrap muted")])
     return t
 
 
@@ -708,19 +708,19 @@ def _groups_note(c) -> str:
         unit = f" {c.outcome}" if c.link == "identity" else (" on the log scale" if c.link == "log" else "")
         text += f"; their SD {c.group_sd_parameter} is {_estimate95(c.group_sd)}{unit}"
     for s in getattr(c, "slopes", []):
-        text += (f"; the groups' slopes on {s['name']} vary with SD {s['parameter']} "
-                 f"{_estimate95(s['per_unit'])}" + (f" ({s['units']})" if s["units"] else "")
-                 + (f", correlated with their intercepts at {_estimate95(s['correlation'])}"
-                    if np.isfinite(s["correlation"][0]) else ""))
+        text += (f"; the groups' slopes on {s.name} vary with SD {s.parameter} "
+                 f"{_estimate95(s.per_unit)}" + (f" ({s.units})" if s.units else "")
+                 + (f", correlated with their intercepts at {_estimate95(s.correlation)}"
+                    if np.isfinite(s.correlation[0]) else ""))
     low, high = extremes(c)
-    known = bool(c.link) and np.isfinite(c.groups[0]["offset"][0])
+    known = bool(c.link) and np.isfinite(c.groups[0].offset[0])
 
     def one(g) -> str:
         if known and c.link == "log":
-            return f"{g['level']} (×{fmt.num(g['value'][0])}, {fmt.interval(g['value'][1], g['value'][2])})"
+            return f"{g.level} (×{fmt.num(g.value[0])}, {fmt.interval(g.value[1], g.value[2])})"
         if known:
-            return f"{g['level']} ({fmt.num(g['offset'][0])} {c.outcome}, {fmt.interval(g['offset'][1], g['offset'][2])})"
-        return f"{g['level']} ({c.group_parameter} {fmt.num(g['internal'][0])})"
+            return f"{g.level} ({fmt.num(g.offset[0])} {c.outcome}, {fmt.interval(g.offset[1], g.offset[2])})"
+        return f"{g.level} ({c.group_parameter} {fmt.num(g.internal[0])})"
 
     what = ("offset from the typical group, as a ratio" if known and c.link == "log" else
             "offset from the typical group" if known else "internal value")
@@ -784,12 +784,12 @@ def _coefficient_csvs(cands) -> list[Table]:
         if c is None:
             continue
         for row in c.rows:
-            coefs.csv_rows.append([r.id, r.label, c.link or None, c.sets or None, row["parameter"], row["name"],
-                                   row["column"], row["level"], row["reference"], row["center"], row["scale"],
-                                   *row["internal"], row["units"] or None, *row["value"], c.reason or None])
+            coefs.csv_rows.append([r.id, r.label, c.link or None, c.sets or None, row.parameter, row.name,
+                                   row.column, row.level, row.reference, row.center, row.scale,
+                                   *row.internal, row.units or None, *row.value, c.reason or None])
         for g in c.groups:
-            groups.csv_rows.append([r.id, r.label, c.link or None, c.group_column, g["level"], g["parameter"],
-                                    *g["internal"], *g["offset"], *g["value"]])
+            groups.csv_rows.append([r.id, r.label, c.link or None, c.group_column, g.level, g.parameter,
+                                    *g.internal, *g.offset, *g.value])
     return [coefs, groups]
 
 

@@ -75,18 +75,18 @@ def coefficients_summary(c: Coefficients | None) -> dict[str, Any] | None:
         return None
     return {
         "link": c.link or None, "linear_predictor_sets": c.sets or None, "reason": c.reason or None,
-        "coefficients": [{"parameter": r["parameter"], "name": r["name"], "units": r["units"] or None,
-                          "internal_mean": r["internal"][0], "internal_q025": r["internal"][1],
-                          "internal_q975": r["internal"][2], "mean": r["value"][0], "q025": r["value"][1],
-                          "q975": r["value"][2]} for r in c.rows],
+        "coefficients": [{"parameter": r.parameter, "name": r.name, "units": r.units or None,
+                          "internal_mean": r.internal[0], "internal_q025": r.internal[1],
+                          "internal_q975": r.internal[2], "mean": r.value[0], "q025": r.value[1],
+                          "q975": r.value[2]} for r in c.rows],
         "groups": {"column": c.group_column, "parameter": c.group_parameter, "count": len(c.groups),
                    "sd_parameter": c.group_sd_parameter or None,
                    "sd": list(c.group_sd) if c.group_sd else None} if c.groups else None,
-        "slopes": [{"parameter": s["parameter"], "name": s["name"], "units": s["units"] or None,
-                    "sd_internal_mean": s["internal"][0], "sd_mean": s["per_unit"][0],
-                    "sd_q025": s["per_unit"][1], "sd_q975": s["per_unit"][2],
-                    "correlation_with_intercept_mean": s["correlation"][0],
-                    "correlation_q025": s["correlation"][1], "correlation_q975": s["correlation"][2]}
+        "slopes": [{"parameter": s.parameter, "name": s.name, "units": s.units or None,
+                    "sd_internal_mean": s.internal[0], "sd_mean": s.per_unit[0],
+                    "sd_q025": s.per_unit[1], "sd_q975": s.per_unit[2],
+                    "correlation_with_intercept_mean": s.correlation[0],
+                    "correlation_q025": s.correlation[1], "correlation_q975": s.correlation[2]}
                    for s in getattr(c, "slopes", [])],
     }
 

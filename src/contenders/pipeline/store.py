@@ -80,7 +80,8 @@ TRIAL_SETTINGS = tuple(s.name for s in SETTINGS if s.enters_trials_key)
 #: (``OutOfSample.elpd_loo``, ``elpd_loo_se``, ``p_loo``, ``elpd_mcse``, ``elpd_method``), so
 #: trials stored with the old names are not read. The rows of the trials are records:
 #: ``features.StatisticRow``, ``checks.QuantileRow``, ``sensitivity.SensitivityRow``,
-#: ``posterior.ParameterRow``, ``prior.BoundReading``. An estimate's method is a
+#: ``posterior.ParameterRow``, ``prior.BoundReading``, ``coefficients.CoefficientRow``,
+#: ``GroupRow`` and ``SlopeRow``. An estimate's method is a
 #: ``compare.Method`` (kind and counts), worded by ``output.readings.elpd_method``.
 TRIALS_FORMAT = 13
 

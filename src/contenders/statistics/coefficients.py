@@ -102,6 +102,55 @@ def _summary(draws: np.ndarray, level: float = LEVEL) -> tuple[float, float, flo
     return float(d.mean()), float(lo), float(hi)
 
 
+#: A posterior summary: mean and the 2.5 % and 97.5 % quantiles.
+Summary3 = tuple[float, float, float]
+
+
+@dataclass
+class CoefficientRow:
+    """One coefficient, or the intercept, on the internal scale and in the outcome's units."""
+
+    parameter: str                # coef[k] or intercept
+    name: str                     # the predictor's column (with its level), or "intercept ..."
+    kind: str                     # numeric, indicator or intercept
+    column: str | None
+    level: str | None             # an indicator's level and its reference level
+    reference: str | None
+    center: float | None          # how the predictor was centred and scaled for the fit
+    scale: float | None
+    internal: Summary3            # on the fit's scale
+    value: Summary3               # per unit of the predictor, in the outcome's units (NaN: link not known)
+    units: str = ""               # in words: contenders.output.readings.word_coefficients fills it
+    at: list | None = None        # the intercept: where it is read, (column, value) pairs
+
+
+@dataclass
+class GroupRow:
+    """One group's intercept term."""
+
+    level: str
+    parameter: str
+    internal: Summary3
+    offset: Summary3              # from the typical group, on the linear predictor's scale (NaN: not known)
+    value: Summary3               # the offset in the outcome's units (a ratio under a log link)
+
+
+@dataclass
+class SlopeRow:
+    """The spread of the groups' slopes on one predictor, and their correlation with the
+    groups' intercepts."""
+
+    parameter: str                # slope_sd[k]
+    name: str
+    column: str
+    level: str | None
+    reference: str | None
+    internal: Summary3
+    per_unit: Summary3            # per unit of the predictor
+    correlation: Summary3         # with the intercepts (NaN: not known)
+    units: str = ""               # in words: contenders.output.readings.word_coefficients fills it
+
+
 @dataclass
 class Coefficients:
     """One candidate's coefficients on both scales and its group terms, summarised.
@@ -120,16 +169,16 @@ class Coefficients:
     moves: str = ""
     reason: str = ""
     outcome: str = ""
-    rows: list[dict] = field(default_factory=list)
+    rows: list[CoefficientRow] = field(default_factory=list)
     group_column: str | None = None
     group_parameter: str = ""
     group_sd_parameter: str = ""
     group_sd: tuple[float, float, float] | None = None
-    groups: list[dict] = field(default_factory=list)
+    groups: list[GroupRow] = field(default_factory=list)
     #: slopes per group (built-ins' ``slope_sd``, ``group_corr_L``): per slope column, the
     #: SD of the groups' slopes (internal, and per unit of the column) and the correlation
     #: of the groups' slopes with their intercepts
-    slopes: list[dict] = field(default_factory=list)
+    slopes: list[SlopeRow] = field(default_factory=list)
 
 
 def _draws(posterior, name: str) -> np.ndarray | None:
@@ -191,13 +240,12 @@ def coefficient_summary(posterior, design, link=None, reason: str = "") -> Coeff
             eta0 -= coef[:, k] * c.center / c.scale
             kind = "numeric" if c.level is None else "indicator"
             value = _summary(to_outcome(per_unit)) if link else (math.nan,) * 3
-            out.rows.append({"parameter": f"coef[{k + 1}]", "name": c.name, "kind": kind, "column": c.source,
-                             "level": c.level, "reference": c.reference, "center": c.center, "scale": c.scale,
-                             "internal": internal, "value": value, "units": ""})
-        out.rows.append({"parameter": "intercept", "name": "intercept", "kind": "intercept",
-                         "column": None, "level": None, "reference": None, "center": None, "scale": None,
-                         "at": _at_zero(coding), "internal": _summary(intercept[:, 0]),
-                         "value": _summary(to_outcome(eta0)) if link else (math.nan,) * 3, "units": ""})
+            out.rows.append(CoefficientRow(f"coef[{k + 1}]", c.name, kind, c.source, c.level, c.reference,
+                                           c.center, c.scale, internal, value))
+        out.rows.append(CoefficientRow("intercept", "intercept", "intercept", None, None, None, None, None,
+                                       _summary(intercept[:, 0]),
+                                       _summary(to_outcome(eta0)) if link else (math.nan,) * 3,
+                                       at=_at_zero(coding)))
     # group terms: the built-ins' group_z with group_sd[1]; any other program's vector of
     # one value per group is summarised by its own draws
     J = design.J
@@ -214,10 +262,9 @@ def coefficient_summary(posterior, design, link=None, reason: str = "") -> Coeff
             if sd is not None and sd.shape[1] == 1:
                 out.group_sd_parameter, out.group_sd = "group_sd[1]", _summary(sd[:, 0])
             for j in range(J):
-                out.groups.append({"level": design.group_levels[j], "parameter": f"{term}[{j + 1}]",
-                                   "internal": _summary(z[:, j]),
-                                   "offset": _summary(offsets[:, j]) if scaled else (math.nan,) * 3,
-                                   "value": _summary(to_outcome(offsets[:, j])) if scaled else (math.nan,) * 3})
+                out.groups.append(GroupRow(design.group_levels[j], f"{term}[{j + 1}]", _summary(z[:, j]),
+                                           _summary(offsets[:, j]) if scaled else (math.nan,) * 3,
+                                           _summary(to_outcome(offsets[:, j])) if scaled else (math.nan,) * 3))
     slope_sd, factor = _draws(posterior, "slope_sd"), _draws(posterior, "group_corr_L")
     if J > 0 and design.slopes and slope_sd is not None and slope_sd.shape[1] == len(design.slopes):
         size = len(design.slopes) + 1
@@ -226,17 +273,15 @@ def coefficient_summary(posterior, design, link=None, reason: str = "") -> Coeff
             # correlation of slope k with the intercepts: Omega = L L', and L's first row is
             # (1, 0, ..., 0), so Omega[k + 1, 1] = L[k + 1, 1] (row-major flattening)
             corr = factor[:, (k + 1) * size] if factor is not None and factor.shape[1] == size * size else None
-            out.slopes.append({"parameter": f"slope_sd[{k + 1}]", "name": c.name, "column": c.source,
-                               "level": c.level, "reference": c.reference,
-                               "internal": _summary(slope_sd[:, k]),
-                               "per_unit": _summary(slope_sd[:, k] / c.scale), "units": "",
-                               "correlation": _summary(corr) if corr is not None else (math.nan,) * 3})
+            out.slopes.append(SlopeRow(f"slope_sd[{k + 1}]", c.name, c.source, c.level, c.reference,
+                                       _summary(slope_sd[:, k]), _summary(slope_sd[:, k] / c.scale),
+                                       _summary(corr) if corr is not None else (math.nan,) * 3))
     if not out.rows and not out.groups:
         return None
     return out
 
 
-def extremes(c: Coefficients, n: int = EXTREMES) -> tuple[list[dict], list[dict]]:
+def extremes(c: Coefficients, n: int = EXTREMES) -> tuple[list[GroupRow], list[GroupRow]]:
     """The groups with the lowest and the highest posterior mean offset.
 
     Parameters
@@ -252,8 +297,8 @@ def extremes(c: Coefficients, n: int = EXTREMES) -> tuple[list[dict], list[dict]
         ``(lowest, highest)``, each lowest-first and highest-first; the internal term is
         used when the offset is not known.
     """
-    key = (lambda g: g["offset"][0]) if c.groups and np.isfinite(c.groups[0]["offset"][0]) \
-        else (lambda g: g["internal"][0])
+    key = (lambda g: g.offset[0]) if c.groups and np.isfinite(c.groups[0].offset[0]) \
+        else (lambda g: g.internal[0])
     ordered = sorted(c.groups, key=key)
     n = min(n, len(ordered) // 2)
     return ordered[:n], ordered[len(ordered) - n:][::-1]
