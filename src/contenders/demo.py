@@ -24,6 +24,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from contenders.cleanup import write_whole
+
 SEED = 20261201
 N_PARTICIPANTS = 30
 TRIALS_PER_CELL = 12
@@ -132,8 +134,6 @@ def write(folder: str | Path, seed: int = SEED) -> Path:
     }
     for name, text in files.items():
         path = folder / name
-        if not path.exists() or path.read_text() != text:
-            tmp = path.with_suffix(path.suffix + ".tmp")
-            tmp.write_text(text)
-            tmp.replace(path)
+        if not path.exists() or path.read_text(encoding="utf-8") != text:
+            write_whole(path, text)
     return folder / "demo.toml"

@@ -132,7 +132,8 @@ def study_dict(study: CalibrationStudy) -> dict[str, Any]:
 def write_calibration(study: CalibrationStudy, out_dir: str | Path,
                       command_line: str | Sequence[str] | None = None) -> Path:
     """Write ``calibration.html``, ``calibration.json`` and ``calibration.csv``."""
-    from contenders.output.report import environment, write_atomic
+    from contenders.cleanup import write_whole
+    from contenders.output.report import environment
 
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
@@ -159,8 +160,8 @@ def write_calibration(study: CalibrationStudy, out_dir: str | Path,
         "command_line": (command_line if isinstance(command_line, str) or command_line is None
                          else shlex.join(list(command_line))),
     }
-    write_atomic(out / "calibration.json", json.dumps(study_dict(study), indent=2))
-    write_atomic(out / "calibration.csv", _csv_text(study))
+    write_whole(out / "calibration.json", json.dumps(study_dict(study), indent=2))
+    write_whole(out / "calibration.csv", _csv_text(study))
     path = out / "calibration.html"
-    write_atomic(path, environment().get_template("calibration.html.j2").render(**ctx))
+    write_whole(path, environment().get_template("calibration.html.j2").render(**ctx))
     return path

@@ -6,10 +6,10 @@ from __future__ import annotations
 
 import json
 import math
-import os
 from pathlib import Path
 from typing import Any, Mapping
 
+from contenders.cleanup import write_whole
 from contenders.output.readings import fit_problem
 from contenders.rules import CONFUSED
 from contenders.statistics.recovery import NO_DECISION, Matrix, Recovery
@@ -133,9 +133,5 @@ def write(rec: Recovery, out: str | Path) -> list[Path]:
     writer.writerows(matrix_rows(rec))
     for name, text in (("recovery.json", json.dumps(summary(rec), indent=2)),
                        ("recovery_matrix.csv", buf.getvalue())):
-        path = out / name
-        tmp = path.with_name(f".{name}.{os.getpid()}.tmp")
-        tmp.write_text(text, encoding="utf-8")
-        os.replace(tmp, path)
-        written.append(path)
+        written.append(write_whole(out / name, text))
     return written

@@ -14,7 +14,6 @@ import csv
 import io
 import os
 import shlex
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
@@ -22,6 +21,7 @@ from typing import Any, Sequence
 import numpy as np
 from jinja2 import Environment, FileSystemLoader, StrictUndefined
 
+from contenders.cleanup import write_whole
 from contenders.rules import MIN_WEIGHT, SE_FACTOR, SMALL_DIFFERENCE
 from contenders.statistics.compare import ComparisonRow
 from contenders.statistics.effects import direction
@@ -70,24 +70,6 @@ CSV_FILES = (
 
 # --- writing -----------------------------------------------------------------------------
 
-def _umask() -> int:
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
-
-
-def write_atomic(path: Path, text: str) -> None:
-    """Write text to a temporary file in the same folder, then rename it into place."""
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-        os.chmod(tmp, 0o666 & ~_umask())   # mkstemp makes the file private; give it the usual mode
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
 
 
 def _csv_text(table: Table) -> str:
@@ -116,14 +98,14 @@ def write_report(result, out_dir: str | Path, command_line: str | Sequence[str] 
     out.mkdir(parents=True, exist_ok=True)
     ctx = build_context(result, command_line)
     for table in ctx["csv_tables"]:
-        write_atomic(out / table.csv_name, _csv_text(table))
+        write_whole(out / table.csv_name, _csv_text(table))
     if not result.config.conditions and (out / "grouped_checks.csv").exists():
         (out / "grouped_checks.csv").unlink()   # left by an earlier run with conditions
     if ctx["effects_table"] is None and (out / "effects.csv").exists():
         (out / "effects.csv").unlink()          # left by an earlier run with effects
     html = environment().get_template("report.html.j2").render(**ctx)
     path = out / "report.html"
-    write_atomic(path, html)
+    write_whole(path, html)
     return path
 
 

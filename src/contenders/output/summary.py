@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import json
 import math
-import os
 from dataclasses import asdict
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Mapping, Sequence
@@ -13,6 +12,7 @@ from typing import TYPE_CHECKING, Any, Mapping, Sequence
 import numpy as np
 
 from contenders import __version__
+from contenders.cleanup import write_whole
 from contenders.inputs.config import RunConfig
 from contenders.records import CandidateResult, RunResult
 from contenders.statistics.coefficients import Coefficients
@@ -214,7 +214,4 @@ def summary_dict(result: RunResult) -> dict[str, Any]:
 def write_summary(result: RunResult) -> Path:
     """Write ``summary.json`` atomically (temporary file, then rename)."""
     path = result.out / "summary.json"
-    tmp = path.with_suffix(".json.tmp")
-    tmp.write_text(json.dumps(summary_dict(result), indent=2))
-    os.replace(tmp, path)
-    return path
+    return write_whole(path, json.dumps(summary_dict(result), indent=2))

@@ -245,14 +245,15 @@ def _context(batch: BatchResult) -> dict[str, Any]:
 
 def write_index(batch: BatchResult) -> Path:
     """Write ``index.html``, ``index.csv`` and ``index.json`` into the batch's folder."""
-    from contenders.output.report import environment, write_atomic
+    from contenders.cleanup import write_whole
+    from contenders.output.report import environment
 
     out = batch.out
-    write_atomic(out / "index.json", json.dumps({"datasets": index_records(batch),
+    write_whole(out / "index.json", json.dumps({"datasets": index_records(batch),
                                                  "candidates": batch.candidates,
                                                  "seconds": batch.seconds}, indent=2))
-    write_atomic(out / "index.csv", _csv(batch))
+    write_whole(out / "index.csv", _csv(batch))
     html = environment().get_template("index.html.j2").render(**_context(batch))
     path = out / "index.html"
-    write_atomic(path, html)
+    write_whole(path, html)
     return path

@@ -24,7 +24,6 @@ from __future__ import annotations
 import concurrent.futures as cf
 import contextlib
 import inspect
-import os
 import shutil
 import tempfile
 import threading
@@ -32,6 +31,7 @@ import uuid
 from pathlib import Path
 from typing import Any, Callable
 
+from contenders.cleanup import write_whole
 from contenders.errors import UserError
 from contenders.machine import cores
 from contenders.pipeline.executor import Executor, set_reporter
@@ -124,14 +124,7 @@ def _write_into(folder: Path, files: dict[str, bytes]) -> None:
         if name == INDEX_NAME:   # records are appended to the client's index
             FitStore(folder).append_index(data)
             continue
-        path = folder / name
-        tmp = path.with_name(f".{name}.{os.getpid()}.{threading.get_ident()}.tmp")
-        try:
-            tmp.write_bytes(data)
-            os.replace(tmp, path)
-        finally:
-            if tmp.exists():
-                tmp.unlink()
+        write_whole(folder / name, data)
 
 
 def _relocate(result: Any, local: str, store: str) -> Any:

@@ -33,7 +33,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from contenders.cleanup import while_writing
+from contenders.cleanup import write_whole
 from contenders.engines.base import Draws, Engine, Program, SamplerSettings, raise_if_interrupted
 from contenders.inputs.settings import BY_NAME, SETTINGS
 
@@ -302,7 +302,7 @@ class FitStore:
         attrs["contenders_wait_seconds"] = draws.wait_seconds
         attrs["contenders_messages"] = draws.messages[:10000]
         attrs["contenders_fit_format"] = FIT_FORMAT
-        _write_whole(path, lambda tmp: write_netcdf(draws.idata, tmp))
+        write_whole(path, lambda tmp: write_netcdf(draws.idata, tmp))
         self.record(path, {"kind": "fit", **(about or {})})
         return path
 
@@ -388,21 +388,8 @@ def _save_pickle(path: Path, key: str, value) -> Path:
         with tmp.open("wb") as fh:
             pickle.dump((key, value), fh, protocol=pickle.HIGHEST_PROTOCOL)
 
-    _write_whole(path, write)
+    write_whole(path, write)
     return path
-
-
-def _write_whole(path: Path, write) -> None:
-    """Write through a temporary file renamed into place: readers see whole files only.
-    A worker stopped while writing removes the temporary file (``cleanup``)."""
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    with while_writing(tmp):
-        try:
-            write(tmp)
-            os.replace(tmp, path)
-        finally:
-            if tmp.exists():
-                tmp.unlink()
 
 
 class StoredEngine(Engine):

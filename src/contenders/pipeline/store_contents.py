@@ -19,7 +19,7 @@ no run can reach any more:
   use), including unknown ones. Other settings (draws, seed, ...) cannot make a file
   unreachable: any run with those settings reaches it again, so age is the rule there.
 
-Files another process is writing now (``.NAME.PID.tmp`` of a live process) are never
+Files another process is writing now (``.NAME.PID.THREAD.tmp`` of a live process) are never
 touched; those of a process that is gone are removed. Pruning takes the store's lock
 exclusively (``FitStore.in_use``), so it never runs while a run uses the store.
 """
@@ -35,11 +35,24 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterable
 
+from contenders.cleanup import write_whole
 from contenders.errors import UserError
 from contenders.pipeline.store import INDEX_NAME, TRIALS_FORMAT, FitStore
 
 LOCK_NAME = ".in-use.lock"
-_TMP = re.compile(r"^\..+\.(\d+)(?:\.\d+)?\.tmp$")
+_TMP = re.compile(r"^\.(?P<name>.+?)\.(?P<pid>\d+)(?:\.(?P<thread>\d+))?\.tmp$")
+
+
+def writer_pid(name: str) -> int | None:
+    """The process writing a temporary file, read from its name, or None for any other file.
+
+    ``cleanup.write_whole`` names it ``.NAME.PID.THREAD.tmp``; earlier versions wrote
+    ``.NAME.PID.tmp``. Store files end in ``.nc`` or ``.pickle``, so the first number after
+    the name is the process."""
+    match = _TMP.match(name)
+    if not match or match["name"].split(".")[-1].isdigit():
+        return None
+    return int(match["pid"])
 
 
 @dataclass
@@ -101,7 +114,7 @@ class Contents:
 def _alive(pid: int) -> bool:
     try:
         os.kill(pid, 0)
-    except ProcessLookupError:
+    except (ProcessLookupError, OverflowError):   # gone, or no process number at all
         return False
     except PermissionError:
         return True
@@ -119,9 +132,9 @@ def read(folder: str | Path) -> Contents:
     for path in sorted(p for p in store.folder.rglob("*") if p.is_file()):
         if path.name in (INDEX_NAME, LOCK_NAME):
             continue
-        tmp = _TMP.match(path.name)
-        if tmp:
-            (busy if _alive(int(tmp.group(1))) else debris).append(path)
+        pid = writer_pid(path.name)
+        if pid is not None:
+            (busy if _alive(pid) else debris).append(path)
             continue
         try:
             st = path.stat()
@@ -236,9 +249,7 @@ def _rewrite_index(folder: Path) -> None:
     store = FitStore(folder)
     present = {p.name for p in folder.rglob("*") if p.is_file()}
     kept = [rec for name, rec in store.index().items() if name in present]
-    tmp = folder / f".{INDEX_NAME}.{os.getpid()}.tmp"
-    tmp.write_text("".join(json.dumps(rec, sort_keys=True, default=str) + "\n" for rec in kept))
-    os.replace(tmp, folder / INDEX_NAME)
+    write_whole(folder / INDEX_NAME, "".join(json.dumps(rec, sort_keys=True, default=str) + "\n" for rec in kept))
 
 
 def human(size: float) -> str:
