@@ -176,10 +176,10 @@ def write_netcdf(idata, path: Path) -> None:
     import xarray as xr
 
     mode = "w"
-    if idata._attrs:   # pylint: disable=protected-access
-        xr.Dataset(attrs=idata._attrs).to_netcdf(path, mode=mode, engine="h5netcdf")
+    if idata.attrs:
+        xr.Dataset(attrs=idata.attrs).to_netcdf(path, mode=mode, engine="h5netcdf")
         mode = "a"
-    for group in idata._groups_all:
+    for group in idata.groups():
         data = getattr(idata, group)
         encoding = {}
         for name, values in data.variables.items():
