@@ -62,7 +62,7 @@ def test_density_grid_names_the_outcome_and_keeps_long_labels_whole(drawn):
 def test_elpd_figure_shows_the_shared_rank_and_whole_labels(drawn):
     nan = float("nan")
     rows = [ComparisonRow(rank, label.lower(), label, nan, nan, nan, d, dse, nan, nan, nan, 0, 0, PSIS, nan,
-                          shared_rank=shared)
+                          shared_rank=shared, standing="best" if rank == 1 else "tied")
             for rank, shared, label, d, dse in ((1, "1", LONG, 0.0, 0.0), (2, "2–3", "Gamma", 1.3, 2.9),
                                                 (3, "2–3", "Inverse Gaussian (Wald)", 1.6, 2.5))]
     assert figures.elpd_differences(rows) is not None

@@ -179,8 +179,9 @@ def test_stored_figure_is_the_figure_drawn_afresh(tmp_path):
     from contenders.output import figures
 
     nan = float("nan")
-    rows = [ComparisonRow(rank, cid, cid.upper(), nan, nan, nan, d, dse, nan, nan, nan, 0, 0, PSIS, nan)
-            for rank, cid, d, dse in ((1, "a", 0.0, 0.0), (2, "b", 3.5, 1.2))]
+    rows = [ComparisonRow(rank, cid, cid.upper(), nan, nan, nan, d, dse, nan, nan, nan, 0, 0, PSIS, nan,
+                          standing=standing)
+            for rank, cid, d, dse, standing in ((1, "a", 0.0, 0.0, "best"), (2, "b", 3.5, 1.2, "uncertain"))]
     store = FitStore(tmp_path)
     start = figure_records.NEXT_ID[0]
     fresh = figures.elpd_differences(rows)

@@ -44,7 +44,7 @@ import numpy as np  # noqa: E402
 from contenders.rules import PARETO_K_GOOD, SE_FACTOR, SMALL_DIFFERENCE  # noqa: E402
 from contenders.output.readings import describe  # noqa: E402
 from contenders.output.figure_records import Lineup, Rendered, next_prefix  # noqa: E402  (records readable without matplotlib)
-from contenders.output.out_of_sample import STANDING_WORDS, standing_of, worst  # noqa: E402  (no matplotlib there)
+from contenders.output.out_of_sample import STANDING_WORDS, worst  # noqa: E402  (no matplotlib there)
 
 # --- palette and style ------------------------------------------------------------
 
@@ -421,7 +421,7 @@ def elpd_differences(rows: Sequence[dict]) -> Rendered | None:
     for y in ypos:
         ax.axhline(y, color="#ebe8e1", linewidth=0.5, zorder=0)
     for y, di, s, r in zip(ypos, d, se, rows):
-        kind = standing_of(r)
+        kind = r.standing
         marker, face = STANDING_MARK.get(kind, STANDING_MARK["uncertain"])
         words = STANDING_WORDS.get(kind, kind)
         if r.rank != 1:

@@ -10,7 +10,7 @@ from typing import Sequence
 
 import numpy as np
 
-from contenders.rules import PARETO_K_GOOD, SE_FACTOR, SMALL_DIFFERENCE
+from contenders.rules import PARETO_K_GOOD, SMALL_DIFFERENCE
 from contenders.output import format as fmt
 from contenders.output.readings import elpd_method
 from contenders.output.tables import Cell, Table, n
@@ -34,18 +34,6 @@ STANDING_ANSWER = {
 
 #: Observations listed per candidate as the worst by Pareto k (page and CSV).
 WORST_LISTED = 5
-
-
-def standing_of(row) -> str:
-    """The row's standing, or (rows without one) the same rule read from its numbers."""
-    if row.standing:
-        return str(row.standing)
-    if row.rank == 1:
-        return "best"
-    d, se = float(row.elpd_diff), float(row.elpd_diff_se or 0.0)
-    if d < SMALL_DIFFERENCE:
-        return "close"
-    return "worse" if d > SE_FACTOR * se else "uncertain"
 
 
 def threshold_text(threshold: float) -> str:
@@ -112,7 +100,7 @@ def answer(rows: Sequence, unranked: Sequence[str]) -> list[tuple[str, str]]:
     out = [("Best at predicting new observations", f"{best.label} (stacking weight "
             f"{fmt.fixed(best.stacking_weight, 2)}).")]
     for kind in ("tied", "close", "uncertain", "worse"):
-        mine = [r for r in rows[1:] if standing_of(r) == kind]
+        mine = [r for r in rows[1:] if r.standing == kind]
         if not mine:
             continue
         lo, hi = min(r.elpd_diff for r in mine), max(r.elpd_diff for r in mine)
@@ -144,7 +132,7 @@ def comparison_tables(result, cands) -> tuple[Table, Table]:
     for r in sorted((c for c in cands if c.oos is not None),
                     key=lambda c: (c.id not in rows, rows[c.id].rank if c.id in rows else 0)):
         o, row = r.oos, rows.get(r.id)
-        kind = standing_of(row) if row else ""
+        kind = row.standing if row else ""
         if row:
             # one line per row (no id below the name), so the rows sit close to the chart's
             side.add([n(_rank(row)), Cell(r.label, "candidate", r.id),
