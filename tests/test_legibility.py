@@ -201,7 +201,8 @@ def test_prior_figure_follows_the_same_grammar(drawn):
 def test_pareto_k_bands_are_labelled_from_the_run_threshold():
     # edges 0.5 and min(1 - 1/log10 S, 0.7) (Vehtari et al. 2024, "Pareto smoothed
     # importance sampling", JMLR 25(72)); S = 1000 gives 1 - 1/3 = 0.6667
-    from contenders.output.out_of_sample import k_band_counts, k_bands
+    from contenders.output.out_of_sample import k_bands
+    from contenders.statistics.compare import k_band_counts
     t = 1 - 1 / np.log10(1000)
     assert [b[0] for b in k_bands(t)] == ["k ≤ 0.5", "0.5 < k ≤ 0.6667", "k > 0.6667"]
     assert [b[0] for b in k_bands(0.7)] == ["k ≤ 0.5", "0.5 < k ≤ 0.7", "k > 0.7"]
@@ -209,9 +210,9 @@ def test_pareto_k_bands_are_labelled_from_the_run_threshold():
     assert k_band_counts(np.array([0.1, 0.5, 0.55, 0.6667, 0.68, np.nan]), t) == [2, 1, 2]   # 0.6667 > 2/3
     # an infinite k (a failed tail fit, seen on survival's capacitor data) is the worst
     # there is: top band and first in the list; a missing one (K-fold) in neither
-    from contenders.output.out_of_sample import worst
+    from contenders.statistics.compare import worst_k
     assert k_band_counts(np.array([0.1, np.inf, np.nan]), 0.7) == [1, 0, 1]
-    assert worst(np.array([0.2, np.nan, np.inf, 0.9])) == [2, 3, 0]
+    assert worst_k(np.array([0.2, np.nan, np.inf, 0.9]), 5) == [2, 3, 0]
 
 
 def test_sensitivity_reading_codes():

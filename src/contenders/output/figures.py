@@ -44,7 +44,8 @@ import numpy as np  # noqa: E402
 from contenders.rules import PARETO_K_GOOD, SE_FACTOR, SMALL_DIFFERENCE  # noqa: E402
 from contenders.output.readings import describe  # noqa: E402
 from contenders.output.figure_records import Lineup, Rendered, next_prefix  # noqa: E402  (records readable without matplotlib)
-from contenders.output.out_of_sample import STANDING_WORDS, worst  # noqa: E402  (no matplotlib there)
+from contenders.output.out_of_sample import STANDING_WORDS
+from contenders.statistics.compare import worst_k  # noqa: E402  (no matplotlib there)
 
 # --- palette and style ------------------------------------------------------------
 
@@ -588,7 +589,7 @@ def pareto_k_worst(cands: Sequence[tuple[str, object, Sequence[int]]]) -> Render
                                         bottom=0.42, wspace=0.55, hspace=0.62)
     for ax, (label, o, rows) in zip(panels, cands):
         k = np.asarray(o.pareto_k, dtype=float)
-        order = worst(k, WORST_SHOWN)
+        order = worst_k(k, WORST_SHOWN)
         y = np.arange(len(order))[::-1]
         vals = np.minimum(k[order], top - 0.02)
         high = vals > o.k_threshold

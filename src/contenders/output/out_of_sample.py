@@ -10,9 +10,10 @@ from typing import Sequence
 
 import numpy as np
 
-from contenders.rules import PARETO_K_GOOD, SMALL_DIFFERENCE
+from contenders.rules import SMALL_DIFFERENCE
 from contenders.output import format as fmt
 from contenders.output.readings import elpd_method
+from contenders.statistics.compare import k_band_counts, k_band_edges, worst_k
 from contenders.output.tables import Cell, Table, n
 
 #: The standing of a ranked candidate (compare.standings) in this section's words.
@@ -42,34 +43,17 @@ def threshold_text(threshold: float) -> str:
 
 
 def k_bands(threshold: float) -> list[tuple[str, float, float]]:
-    """The Pareto k bands of one estimate as ``(label, low, high)``, ``low < k <= high``.
+    """The Pareto k bands of one estimate (``compare.k_band_edges``) as ``(label, low,
+    high)``; the labels carry the exact threshold."""
+    def edge(v: float) -> str:
+        return threshold_text(v) if v == float(threshold) else f"{v:g}"
 
-    Edges: 0.5 and the run's own threshold min(1 - 1/log10 S, 0.7) (Vehtari, Simpson,
-    Gelman, Yao & Gabry 2024, "Pareto smoothed importance sampling", JMLR 25(72), Section
-    3: below 0.5 the estimate converges quickly; above the threshold it is unreliable). A
-    threshold at or below 0.5 leaves two bands. The labels carry the exact threshold."""
-    t = float(threshold)
-    shown = threshold_text(t)
-    good = PARETO_K_GOOD
-    if t <= good:
-        return [(f"k ≤ {shown}", -np.inf, t), (f"k > {shown}", t, np.inf)]
-    return [(f"k ≤ {good:g}", -np.inf, good), (f"{good:g} < k ≤ {shown}", good, t), (f"k > {shown}", t, np.inf)]
-
-
-def k_band_counts(pareto_k: np.ndarray, threshold: float) -> list[int]:
-    """Observations in each band of :func:`k_bands`; a missing k (NaN: K-fold) is in
-    none, an infinite one (the tail fit failed) in the top band."""
-    k = np.asarray(pareto_k, dtype=float)
-    k = k[~np.isnan(k)]
-    return [int(((k > lo) & (k <= hi)).sum()) for _, lo, hi in k_bands(threshold)]
-
-
-def worst(pareto_k: np.ndarray, count: int = WORST_LISTED) -> list[int]:
-    """0-based observations with the largest Pareto k (an infinite one first; a
-    missing one never), largest first (ties in observation order)."""
-    k = np.asarray(pareto_k, dtype=float)
-    order = np.argsort(-np.where(np.isnan(k), -np.inf, k), kind="stable")
-    return [int(i) for i in order if not np.isnan(k[i])][:count]
+    out = []
+    for lo, hi in k_band_edges(threshold):
+        label = (f"k ≤ {edge(hi)}" if lo == -np.inf else f"k > {edge(lo)}" if hi == np.inf
+                 else f"{edge(lo)} < k ≤ {edge(hi)}")
+        out.append((label, lo, hi))
+    return out
 
 
 def data_rows(design) -> np.ndarray:
@@ -184,7 +168,7 @@ def pareto_k_tables(result, cands) -> tuple[Table, Table, bool]:
             bands.csv_rows.append([r.id, r.label, label, None if not np.isfinite(lo) else lo,
                                    None if not np.isfinite(hi) else hi, c, o.k_threshold])
         refit = set(int(i) for i in o.refitted)
-        ws = worst(k)
+        ws = worst_k(k, WORST_LISTED)
         for place, i in enumerate(ws, 1):
             worst_t.csv_rows.append([r.id, r.label, place, int(rd[i]), i + 1, float(k[i]), o.k_threshold,
                                      bool(k[i] > o.k_threshold), i in refit])

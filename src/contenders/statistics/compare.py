@@ -31,7 +31,7 @@ import numpy as np
 # ArviZ and SciPy are imported inside the functions that compute with them: a rerun
 # whose results all come from the fit store (see ``weights``) never needs them.
 
-from contenders.rules import SE_FACTOR, SMALL_DIFFERENCE, TIE_MCSE_FACTOR
+from contenders.rules import PARETO_K_GOOD, SE_FACTOR, SMALL_DIFFERENCE, TIE_MCSE_FACTOR
 
 
 #: Every kind of ``Method``: plain PSIS-LOO (no Pareto k above the threshold); PSIS-LOO
@@ -434,6 +434,74 @@ def estimate(
     """
     plan = plan_estimate(idata, strategy, refit_cap, folds, groups, seed)
     return plan.finish([refit(fitted)[:, idx] for fitted, idx in plan.fits])
+
+
+def k_band_edges(threshold: float) -> list[tuple[float, float]]:
+    """The Pareto k bands of one estimate, each ``(low, high)`` with ``low < k <= high``.
+
+    Parameters
+    ----------
+    threshold : float
+        The estimate's own threshold, min(1 - 1/log10 S, 0.7) for S draws.
+
+    Returns
+    -------
+    list of (float, float)
+        Three bands split at ``rules.PARETO_K_GOOD`` (0.5) and the threshold, or two
+        when the threshold is at or below 0.5; the outer edges are -inf and inf.
+
+    References
+    ----------
+    Vehtari, Simpson, Gelman, Yao & Gabry (2024), "Pareto smoothed importance sampling",
+    JMLR 25(72), Section 3: below 0.5 the estimate converges quickly; above the
+    threshold it is unreliable.
+    """
+    t, good = float(threshold), PARETO_K_GOOD
+    if t <= good:
+        return [(-np.inf, t), (t, np.inf)]
+    return [(-np.inf, good), (good, t), (t, np.inf)]
+
+
+def k_band_counts(pareto_k: np.ndarray, threshold: float) -> list[int]:
+    """Observations in each band of :func:`k_band_edges`.
+
+    Parameters
+    ----------
+    pareto_k : ndarray
+        One Pareto k per observation; NaN where there is none (K-fold), inf where the
+        tail fit failed.
+    threshold : float
+        The estimate's threshold.
+
+    Returns
+    -------
+    list of int
+        Counts per band, lowest first; a NaN is in no band, an inf in the top one.
+    """
+    k = np.asarray(pareto_k, dtype=float)
+    k = k[~np.isnan(k)]
+    return [int(((k > lo) & (k <= hi)).sum()) for lo, hi in k_band_edges(threshold)]
+
+
+def worst_k(pareto_k: np.ndarray, count: int) -> list[int]:
+    """The observations with the largest Pareto k.
+
+    Parameters
+    ----------
+    pareto_k : ndarray
+        One Pareto k per observation (NaN: none, inf: the tail fit failed).
+    count : int
+        How many to return at most.
+
+    Returns
+    -------
+    list of int
+        0-based observations, largest k first (an inf first, a NaN never; ties in
+        observation order).
+    """
+    k = np.asarray(pareto_k, dtype=float)
+    order = np.argsort(-np.where(np.isnan(k), -np.inf, k), kind="stable")
+    return [int(i) for i in order if not np.isnan(k[i])][:count]
 
 
 @dataclass
