@@ -619,8 +619,8 @@ def health_text(finding: Mapping) -> str:
     if code == "ebfmi":
         return (f"E-BFMI below {fmt.limit(f['limit'])} in chain(s) "
                 + ", ".join(f"{i} ({fmt.against(v, f['limit'], 2)})" for i, v in zip(f["chains"], f["values"]))
-                + ": the sampler moves poorly between energy levels; reparameterise (for example non-centred "
-                  "group effects)")
+                + ": the sampler moves poorly between energy levels; reparameterise (group effects, where the "
+                  "candidate has them, in non-centred form) or give scale parameters priors away from zero")
     if code == "treedepth":
         return (f"{f['count']} iterations hit the maximum tree depth {f['max_treedepth']}: sampling is "
                 "inefficient; raise max_treedepth or reparameterise")
