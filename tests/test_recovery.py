@@ -130,6 +130,37 @@ def test_replicates_below_two_are_user_errors(tmp_path, capsys):
     assert "Traceback" not in err
 
 
+def test_fewer_than_two_ranked_candidates_say_why_and_who_is_left_out(tmp_path):
+    """recover returns at once, with the reason and each left-out candidate in words
+    (written by output.readings, the same words as before they moved there)."""
+    from types import SimpleNamespace as NS
+
+    fit = tmp_path / "fit.nc"
+    fit.write_bytes(b"")
+    cands = [NS(id="gamma", label="Gamma", status="ok", reason="", posterior_file=str(fit)),
+             NS(id="normal", label="Normal", status="ok", reason="", posterior_file=str(tmp_path / "gone.nc")),
+             NS(id="weibull", label="Weibull", status="unhealthy", reason="R-hat 1.2 for shape\nmore", posterior_file="")]
+    result = NS(config=None, design=None, candidates=cands,
+                comparison=NS(ranking=["gamma", "normal"]))
+    said = []
+    rec = recover(result, programs=None, replicates=2, progress=said.append)
+    assert rec.reason == ("model recovery needs at least two ranked candidates with a stored posterior fit; "
+                          "this run has 1")
+    assert said == [rec.reason]
+    assert rec.left_out == ["Normal (normal): its stored posterior fit is missing",
+                            "Weibull (weibull): unhealthy: R-hat 1.2 for shape"]
+
+
+def test_calibration_notes_name_the_simulation_and_the_cause():
+    from contenders.output.readings import simulation_note
+
+    assert simulation_note(3, non_finite=4) == "simulation 3: 4 non-finite values"
+    assert simulation_note(7, message="2 outcome value(s) are zero or negative; this candidate needs y > 0") == \
+        "simulation 7: 2 outcome value(s) are zero or negative; this candidate needs y > 0"
+    assert simulation_note(9, message="RuntimeError: boom\ntraceback " + "x" * 400) == "simulation 9: RuntimeError: boom"
+    assert simulation_note(2, message="y" * 400) == "simulation 2: " + "y" * 300
+
+
 # --- simulation studies -----------------------------------------------------------------
 
 def _study(tmp_path, y, only, replicates):

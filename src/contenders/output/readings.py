@@ -561,7 +561,31 @@ def fit_problem(candidate: str, status: str, reason: str = "") -> str:
     return f"{candidate}: {status}{' (' + reason + ')' if reason else ''}"
 
 
+def left_out_text(label: str, cid: str, status: str, why: str) -> str:
+    """A run candidate that takes no part in model recovery, and why (recovery.json's and
+    the section's ``left_out``): "Normal (normal): unhealthy: R-hat 1.2 ..."; ``why`` is
+    the candidate's own status reason, or None when its stored posterior fit is missing."""
+    why = why or "its stored posterior fit is missing"
+    return f"{label} ({cid}): {status}: {why}" if status != "ok" else f"{label} ({cid}): {why}"
+
+
+def recovery_too_few(ranked: int) -> str:
+    """Why model recovery cannot run: fewer than two ranked candidates with a stored fit."""
+    return (f"model recovery needs at least two ranked candidates with a stored posterior fit; "
+            f"this run has {ranked}")
+
+
 # --- simulation-based calibration -------------------------------------------------------
+
+def simulation_note(simulation: int, non_finite: int = 0, message: str = "") -> str:
+    """One simulated dataset of a calibration study that gave no ranks (calibration.json's
+    ``not_fitted`` and ``fit_failures``, and the page): its 1-based number and either the
+    count of values that are not finite or the first line (300 characters at most) of
+    the support check's or the fit's message."""
+    if non_finite:
+        return f"simulation {simulation}: {non_finite} non-finite values"
+    return f"simulation {simulation}: {str(message).splitlines()[0][:300] if message else ''}"
+
 
 def calibration_reason(cal) -> str:
     """The verdict of one candidate's simulation-based calibration, in words, from its

@@ -16,6 +16,7 @@ from typing import Callable
 import numpy as np
 
 from contenders.errors import UserError
+from contenders.output.readings import left_out_text, recovery_too_few
 from contenders.output.recovery_files import reading
 from contenders.rules import CONFUSED
 from contenders.statistics.recovery import (DEFAULT_REPLICATES, Recovery, ReplicateFit, decide,
@@ -70,12 +71,9 @@ def recover(result, programs, replicates: int = DEFAULT_REPLICATES,
                    threshold=threshold)
     for r in result.candidates:
         if r.id not in ids:
-            why = r.reason.splitlines()[0] if r.reason else "its stored posterior fit is missing"
-            rec.left_out.append(f"{r.label} ({r.id}): {r.status}: {why}" if r.status != "ok"
-                                else f"{r.label} ({r.id}): {why}")
+            rec.left_out.append(left_out_text(r.label, r.id, r.status, r.reason.splitlines()[0] if r.reason else None))
     if len(ids) < 2:
-        rec.reason = (f"model recovery needs at least two ranked candidates with a stored posterior fit; "
-                      f"this run has {len(ids)}")
+        rec.reason = recovery_too_few(len(ids))
         say(rec.reason)
         return rec
     cands = {m: programs.candidates[m] for m in ids}   # checked against the data by the run
