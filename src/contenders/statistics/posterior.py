@@ -90,6 +90,22 @@ class Health:
 
 
 def flatten(ds, var_names: Sequence[str]) -> dict[str, float]:
+    """One value per scalar element of each named variable of a summary dataset.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        Variables without chain and draw dimensions (for example a per-parameter
+        diagnostic such as R-hat).
+    var_names : sequence of str
+        Variables to take; names not in ``ds`` are left out.
+
+    Returns
+    -------
+    dict
+        ``name`` for a scalar, ``name[i,j]`` (1-based, as Stan names elements) for each
+        element of an array, mapped to its value as a float.
+    """
     out = {}
     for name in var_names:
         if name not in ds:
