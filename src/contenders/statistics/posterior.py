@@ -262,7 +262,7 @@ def fit_with_health(
     data: Mapping[str, Any],
     settings: SamplerSettings,
     parameters: Sequence[str],
-    escalation: Sequence[float] = (0.95, 0.99),
+    escalation: Sequence[float],
     longer: float = 1.0,
     **thresholds: float,
 ) -> tuple[Draws, Health]:
@@ -287,7 +287,8 @@ def fit_with_health(
     parameters : sequence of str
         Parameters to diagnose.
     escalation : sequence of float
-        Higher adapt_delta values to try after divergent transitions.
+        Higher adapt_delta values to try after divergent transitions, in turn (the run
+        passes its setting, whose default is in ``inputs.settings``; empty: none).
     longer : float
         Factor of warmup and draws of the one longer retry (1: never).
     **thresholds : float
