@@ -83,6 +83,24 @@ def test_too_few_or_no_ranked_simulations_give_no_verdict():
     assert none.reason == "no simulated dataset could be fitted; see the counts below"
 
 
+def test_simulations_without_ranks_are_records_worded_in_calibration_json():
+    """The record keeps each simulation without ranks as (number, kind, count or message);
+    calibration.json lists them in the words the study always wrote."""
+    from contenders.output.summary import calibration_dict
+    from contenders.statistics.calibration import Unranked
+
+    cal = Calibration("c", "c", "inconclusive", simulations=6,
+                      not_fitted=[Unranked(2, "non_finite", non_finite=3),
+                                  Unranked(4, "outside_support",
+                                           message="1 outcome value(s) are zero or negative; this candidate needs y > 0")],
+                      fit_failures=[Unranked(5, "fit_failed", message="c: sampling failed: boom\n  at line 20")])
+    assert cal.not_fitted[0].non_finite == 3 and cal.fit_failures[0].kind == "fit_failed"
+    d = json.loads(json.dumps(calibration_dict(cal)))
+    assert d["not_fitted"] == ["simulation 2: 3 non-finite values",
+                               "simulation 4: 1 outcome value(s) are zero or negative; this candidate needs y > 0"]
+    assert d["fit_failures"] == ["simulation 5: c: sampling failed: boom"]
+
+
 def test_rank_counts_draws_below_and_breaks_ties_at_random():
     rng = np.random.default_rng(0)
     draws = np.array([[1.0], [2.0], [2.0], [3.0]])

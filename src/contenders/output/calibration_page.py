@@ -15,6 +15,7 @@ import numpy as np
 
 from contenders.rules import CALIBRATION_ALPHA
 from contenders.records import CalibrationStudy
+from contenders.output.readings import unranked_text
 from contenders.output.summary import calibration_dict
 from contenders.statistics.calibration import Calibration, ecdf_band, ecdf_of_ranks
 from contenders.output import figures
@@ -144,7 +145,8 @@ def write_calibration(study: CalibrationStudy, out_dir: str | Path,
                       "reason": cal.reason, "figure": ecdf_grid(cal) if cal.parameters else None,
                       "table": _parameters(cal) if cal.parameters else None,
                       "level": fmt.num(cal.level, 2), "bins": str(cal.parameters[0].bins) if cal.parameters else "",
-                      "not_fitted": cal.not_fitted[:10], "fit_failures": cal.fit_failures[:10],
+                      "not_fitted": [unranked_text(u) for u in cal.not_fitted[:10]],
+                      "fit_failures": [unranked_text(u) for u in cal.fit_failures[:10]],
                       "more_not_fitted": max(0, len(cal.not_fitted) - 10),
                       "more_failures": max(0, len(cal.fit_failures) - 10),
                       "hidden": max(0, len(cal.parameters) - PANELS), "prior_divergences": cal.prior_divergences,

@@ -587,6 +587,12 @@ def simulation_note(simulation: int, non_finite: int = 0, message: str = "") -> 
     return f"simulation {simulation}: {str(message).splitlines()[0][:300] if message else ''}"
 
 
+def unranked_text(u) -> str:
+    """A ``statistics.calibration.Unranked`` record in words (``simulation_note``): what
+    calibration.json's ``not_fitted`` and ``fit_failures`` and the page list."""
+    return simulation_note(u.simulation, u.non_finite if u.kind == "non_finite" else 0, u.message)
+
+
 def calibration_reason(cal) -> str:
     """The verdict of one candidate's simulation-based calibration, in words, from its
     ``status``, ``ranked``, flagged parameters and unhealthy fits as

@@ -18,7 +18,7 @@ from contenders.records import CandidateResult, RunResult
 from contenders.statistics.coefficients import Coefficients
 from contenders.statistics.compare import Comparison
 from contenders.statistics.effects import EffectAcross
-from contenders.output.readings import elpd_method, sensitivity_summary, with_band_method
+from contenders.output.readings import elpd_method, sensitivity_summary, unranked_text, with_band_method
 from contenders.statistics.features import INTERVAL
 from contenders.rules import PPP_EXTREME
 
@@ -123,9 +123,13 @@ def calibration_dict(cal: Calibration) -> dict:
     Returns
     -------
     dict
-        Every field of ``cal`` and ``flagged``, the names of the flagged parameters.
+        Every field of ``cal`` (the simulations without ranks, ``not_fitted`` and
+        ``fit_failures``, in words by ``readings.unranked_text``) and ``flagged``, the
+        names of the flagged parameters.
     """
     d = asdict(cal)
+    d["fit_failures"] = [unranked_text(u) for u in cal.fit_failures]
+    d["not_fitted"] = [unranked_text(u) for u in cal.not_fitted]
     d["flagged"] = [p.parameter for p in cal.flagged]
     return d
 

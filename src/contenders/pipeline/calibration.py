@@ -40,9 +40,10 @@ from contenders.errors import UserError
 from contenders.inputs.candidates import Candidate, check_against_data, check_outputs, inputs_for
 from contenders.inputs.config import RunConfig
 from contenders.inputs.data import Design, support_problem
-from contenders.output.readings import simulation_note, word_calibration
+from contenders.output.readings import word_calibration
 from contenders.records import CalibrationStudy
-from contenders.statistics.calibration import KEPT_DRAWS, Calibration, flat_names, judge, stack_parameters
+from contenders.statistics.calibration import (KEPT_DRAWS, Calibration, Unranked, flat_names, judge,
+                                               stack_parameters)
 
 #: Prior predictive draws made per simulation before even thinning to the simulations.
 PRIOR_THIN = 5
@@ -173,11 +174,11 @@ def calibrate(cfg: RunConfig, simulations: int = 100, progress: Callable[[str], 
         for s in range(simulations):
             y_s = y_sims[s]
             if not np.all(np.isfinite(y_s)):
-                cal.not_fitted.append(simulation_note(s + 1, non_finite=int((~np.isfinite(y_s)).sum())))
+                cal.not_fitted.append(Unranked(s + 1, "non_finite", non_finite=int((~np.isfinite(y_s)).sum())))
                 continue
             why = support_problem(y_s, c.support)
             if why:
-                cal.not_fitted.append(simulation_note(s + 1, message=why))
+                cal.not_fitted.append(Unranked(s + 1, "outside_support", message=why))
                 continue
             cal.implausible += _outside_bounds(y_s, cfg.bounds, cfg.thresholds)
             fittable.append(s)
@@ -197,7 +198,7 @@ def calibrate(cfg: RunConfig, simulations: int = 100, progress: Callable[[str], 
         def finished(answer) -> None:
             health, kept_part = answer
             if health is None:
-                cal.fit_failures.append(simulation_note(s + 1, message=str(kept_part)))
+                cal.fit_failures.append(Unranked(s + 1, "fit_failed", message=str(kept_part)))
             else:
                 kept_by[c.id][s] = kept_part["draws"]
                 cal.unhealthy += not kept_part["healthy"]

@@ -251,6 +251,17 @@ class ParameterRanks:
 
 
 @dataclass
+class Unranked:
+    """A simulated dataset that gave no ranks: not fitted (some values not finite, or
+    outside the candidate's support) or its fit failed."""
+
+    simulation: int              # 1-based
+    kind: str                    # non_finite | outside_support | fit_failed
+    non_finite: int = 0          # values that are not finite (kind non_finite)
+    message: str = ""            # the support check's or the failed fit's message
+
+
+@dataclass
 class Calibration:
     """Simulation-based calibration of one candidate."""
 
@@ -263,8 +274,8 @@ class Calibration:
     ranked: int = 0                          # simulations whose fit gave ranks
     unhealthy: int = 0                       # of the ranked: fits with sampler problems
     low_ess: int = 0                         # of the ranked: smallest bulk ESS below L
-    fit_failures: list[str] = field(default_factory=list)    # "simulation s: message"
-    not_fitted: list[str] = field(default_factory=list)      # "simulation s: reason"
+    fit_failures: list[Unranked] = field(default_factory=list)   # worded by output.readings.unranked_text
+    not_fitted: list[Unranked] = field(default_factory=list)     # in simulation order
     implausible: int = 0                     # simulated datasets outside [checks.bounds]
     prior_divergences: int = 0
     alpha: float = ALPHA
