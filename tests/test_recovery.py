@@ -19,7 +19,7 @@ from contenders.cli import main
 from contenders.inputs.config import RunConfig
 from contenders.output.recovery_files import reading, write
 from contenders.pipeline.recovery import recover
-from contenders.output.readings import fit_problem
+from contenders.output.readings import fit_problem, left_out_text
 from contenders.statistics.recovery import (
     NO_DECISION, ReplicateFit, decide, evenly_spaced, paired_difference, recovery_matrix, wilson_interval,
 )
@@ -147,8 +147,9 @@ def test_fewer_than_two_ranked_candidates_say_why_and_who_is_left_out(tmp_path):
     assert rec.reason == ("model recovery needs at least two ranked candidates with a stored posterior fit; "
                           "this run has 1")
     assert said == [rec.reason]
-    assert rec.left_out == ["Normal (normal): its stored posterior fit is missing",
-                            "Weibull (weibull): unhealthy: R-hat 1.2 for shape"]
+    assert [(x.candidate, x.status) for x in rec.left_out] == [("normal", "ok"), ("weibull", "unhealthy")]
+    assert [left_out_text(x) for x in rec.left_out] == ["Normal (normal): its stored posterior fit is missing",
+                                                        "Weibull (weibull): unhealthy: R-hat 1.2 for shape"]
 
 
 def test_calibration_notes_name_the_simulation_and_the_cause():

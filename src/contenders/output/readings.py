@@ -561,12 +561,13 @@ def fit_problem(candidate: str, status: str, reason: str = "") -> str:
     return f"{candidate}: {status}{' (' + reason + ')' if reason else ''}"
 
 
-def left_out_text(label: str, cid: str, status: str, why: str) -> str:
-    """A run candidate that takes no part in model recovery, and why (recovery.json's and
-    the section's ``left_out``): "Normal (normal): unhealthy: R-hat 1.2 ..."; ``why`` is
-    the candidate's own status reason, or None when its stored posterior fit is missing."""
-    why = why or "its stored posterior fit is missing"
-    return f"{label} ({cid}): {status}: {why}" if status != "ok" else f"{label} ({cid}): {why}"
+def left_out_text(x) -> str:
+    """A run candidate that takes no part in model recovery (a
+    ``statistics.recovery.LeftOut``), and why, in words (recovery.json's and the section's
+    ``left_out``): "Normal (normal): unhealthy: R-hat 1.2 ..."; the why is the first line
+    of the candidate's own status reason, or that its stored posterior fit is missing."""
+    why = x.reason.splitlines()[0] if x.reason else "its stored posterior fit is missing"
+    return f"{x.label} ({x.candidate}): {x.status}: {why}" if x.status != "ok" else f"{x.label} ({x.candidate}): {why}"
 
 
 def recovery_too_few(ranked: int) -> str:

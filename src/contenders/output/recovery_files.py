@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import Any, Mapping
 
 from contenders.cleanup import write_whole
-from contenders.output.readings import fit_problem
+from contenders.output.readings import fit_problem, left_out_text
 from contenders.rules import CONFUSED
 from contenders.statistics.recovery import NO_DECISION, Matrix, Recovery
 
@@ -101,7 +101,7 @@ def summary(rec: Recovery) -> dict[str, Any]:
         "method": "model recovery (Wilson & Collins 2019, eLife 8:e49547, rule 6)",
         "candidates": rec.ids, "replicates": rec.replicates, "observed_winner": rec.observed_winner,
         "interval": f"{100 * rec.level:.0f} % Wilson score", "confused_threshold": rec.threshold,
-        "reason": rec.reason, "left_out": rec.left_out, "reading": rec.reading,
+        "reason": rec.reason, "left_out": [left_out_text(x) for x in rec.left_out], "reading": rec.reading,
         "fits": rec.n_fits, "fits_stored_before": rec.stored_before,
         "estimated_seconds": _finite(rec.estimated_seconds), "seconds": rec.seconds, "workers": rec.workers,
         "matrix": matrix_rows(rec),

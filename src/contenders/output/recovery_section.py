@@ -9,6 +9,7 @@ from __future__ import annotations
 from typing import Any
 
 from contenders.statistics.recovery import NO_DECISION, Matrix, Recovery
+from contenders.output.readings import left_out_text
 from contenders.output import format as fmt
 from contenders.output.tables import Cell, Table, n
 
@@ -83,7 +84,8 @@ def context(result) -> dict[str, Any] | None:
     rec: Recovery | None = getattr(result, "recovery", None)
     if rec is None:
         return None
-    base = {"anchor": ANCHOR, "title": TITLE, "reason": rec.reason, "left_out": rec.left_out,
+    base = {"anchor": ANCHOR, "title": TITLE, "reason": rec.reason,
+            "left_out": [left_out_text(x) for x in rec.left_out],
             "replicates": str(rec.replicates), "threshold": fmt.share(rec.threshold),
             "level": fmt.share(rec.level)}
     if rec.by_elpd is None:

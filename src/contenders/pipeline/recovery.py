@@ -16,10 +16,10 @@ from typing import Callable
 import numpy as np
 
 from contenders.errors import UserError
-from contenders.output.readings import left_out_text, recovery_too_few
+from contenders.output.readings import recovery_too_few
 from contenders.output.recovery_files import reading
 from contenders.rules import CONFUSED
-from contenders.statistics.recovery import (DEFAULT_REPLICATES, Recovery, ReplicateFit, decide,
+from contenders.statistics.recovery import (DEFAULT_REPLICATES, LeftOut, Recovery, ReplicateFit, decide,
                                             evenly_spaced, keep_loo, recovery_matrix)
 
 
@@ -71,7 +71,7 @@ def recover(result, programs, replicates: int = DEFAULT_REPLICATES,
                    threshold=threshold)
     for r in result.candidates:
         if r.id not in ids:
-            rec.left_out.append(left_out_text(r.label, r.id, r.status, r.reason.splitlines()[0] if r.reason else None))
+            rec.left_out.append(LeftOut(r.id, r.label, r.status, r.reason or ""))
     if len(ids) < 2:
         rec.reason = recovery_too_few(len(ids))
         say(rec.reason)

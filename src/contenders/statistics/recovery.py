@@ -312,6 +312,17 @@ class Replicate:
 
 
 @dataclass
+class LeftOut:
+    """A candidate of the run that takes no part in model recovery (only ranked
+    candidates with a stored posterior fit can generate or win)."""
+
+    candidate: str
+    label: str
+    status: str                  # the run's status of the candidate
+    reason: str = ""             # the run's reason for it; "" when the stored posterior fit is missing
+
+
+@dataclass
 class Recovery:
     ids: list[str]
     labels: dict[str, str]
@@ -327,7 +338,7 @@ class Recovery:
     estimated_seconds: float = math.nan
     seconds: float = 0.0
     workers: int = 1
-    left_out: list[str] = field(default_factory=list)   # run candidates not in the analysis, with why
+    left_out: list[LeftOut] = field(default_factory=list)   # worded by output.readings.left_out_text
     reason: str = ""             # why there is no analysis (fewer than two ranked candidates)
     threshold: float = CONFUSED
     level: float = LEVEL
